@@ -1,0 +1,85 @@
+"""Baseline, steady state, input resistance, V–I slope and sag."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+
+def robust_level(v: np.ndarray, trim: float = 0.2) -> float:
+    """Trimmed mean of a window (drops `trim` of the samples at each end), in the input's unit."""
+    v = np.sort(np.asarray(v, dtype=np.float64))
+    k = int(trim * v.size)
+    return float(v[k: v.size - k].mean())
+
+
+def noise_sd(v: np.ndarray) -> float:
+    """Robust sd of a window after removing its linear trend (MAD × 1.4826), in the input's unit."""
+    v = np.asarray(v, dtype=np.float64)
+    x = np.arange(v.size)
+    detrended = v - np.polyval(np.polyfit(x, v, 1), x)
+    return float(1.4826 * np.median(np.abs(detrended - np.median(detrended))))
+
+
+def smooth(v: np.ndarray, width: int) -> np.ndarray:
+    """Moving average over `width` samples (same length; edges use shorter windows)."""
+    width = max(1, int(width))
+    if width == 1:
+        return np.asarray(v, dtype=np.float64)
+    kernel = np.ones(width)
+    return np.convolve(v, kernel, "same") / np.convolve(np.ones(len(v)), kernel, "same")
+
+
+def sag_ratio(step_trace: np.ndarray, v_base: float, v_steady: float, width: int) -> float | None:
+    """Steady-state deflection over peak deflection (1 = no sag), or None without a deflection.
+
+    Parameters
+    ----------
+    step_trace : ndarray
+        Voltage during the step, in V.
+    v_base, v_steady : float
+        Baseline and steady-state voltage, in V.
+    width : int
+        Smoothing width in samples, so noise does not make a peak.
+    """
+    deflection = v_steady - v_base
+    if deflection == 0:
+        return None
+    smoothed = smooth(step_trace, width)[width:-width or None]
+    peak = np.max(smoothed - v_base) if deflection > 0 else np.min(smoothed - v_base)
+    return float(deflection / peak)
+
+
+@dataclass(frozen=True)
+class VISlope:
+    """Linear regression of steady-state deflection on step current.
+
+    slope_ohm is the input resistance in Ω; r2 the coefficient of determination;
+    curvature the relative change of slope across the current range (0 = linear).
+    """
+
+    slope_ohm: float
+    slope_se_ohm: float
+    intercept_V: float
+    r2: float
+    curvature: float
+    n_levels: int
+
+
+def vi_slope(currents_A: np.ndarray, deflections_V: np.ndarray) -> VISlope | None:
+    """Input resistance from the V–I relation; None with fewer than 3 distinct currents."""
+    i = np.asarray(currents_A, dtype=np.float64)
+    v = np.asarray(deflections_V, dtype=np.float64)
+    levels = np.unique(np.round(i, 15))
+    if levels.size < 3:
+        return None
+    (slope, intercept), cov = np.polyfit(i, v, 1, cov=True) if i.size > 3 else (
+        np.polyfit(i, v, 1), np.full((2, 2), np.nan))
+    residual = v - (slope * i + intercept)
+    total = np.sum((v - v.mean()) ** 2)
+    r2 = 1.0 - np.sum(residual**2) / total if total > 0 else float("nan")
+    quad = np.polyfit(i, v, 2)[0]
+    curvature = abs(2 * quad * np.ptp(i) / slope) if slope != 0 else float("inf")
+    return VISlope(float(slope), float(np.sqrt(cov[0, 0])), float(intercept), float(r2),
+                   float(curvature), int(levels.size))
