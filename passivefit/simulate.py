@@ -1,0 +1,585 @@
+"""Simulated ball-and-stick neurons under somatic current clamp, and simulated recordings.
+
+A :class:`BallStick` is a lumped soma plus one uniform equivalent cylinder with a
+sealed far end, uniform Rm, Cm and Ri. Its somatic impulse response is the exact
+eigen-expansion h(t) = sum_n g_n exp(-t/tau_n) (REFERENCES.md §2);
+:func:`compartmental_modes` gives the same modes by an independent route (a fine
+compartmental discretisation, eigen-decomposed). :meth:`BallStick.soma_response`
+is exact for a current held constant over each sample (zero-order hold).
+
+:func:`simulate_recording` wraps a cell into a :class:`~passivefit.io.recording.Recording`
+with the usual recording imperfections (noise, low-pass filter, residual bridge
+imbalance, drift, mains hum, spontaneous events) and returns the ground truth beside it.
+All quantities are SI inside; the truth dict carries display units in its keys.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from passivefit.core import cable
+from passivefit.io.recording import Recording, Sweep
+
+__all__ = [
+    "BallStick",
+    "PulseProtocol",
+    "StepProtocol",
+    "compartmental_modes",
+    "simulate_recording",
+    "truth_to_json",
+]
+
+LAB_NAME = "Lindqvist-Okafor Lab of Dendritic Physiology (invented)"
+
+# A mode whose exp(-dt/tau) is below this is fully relaxed within one sample (exact in
+# double precision): it is applied as an instantaneous resistance, delayed one sample.
+_RELAXED = 1e-17
+
+
+@dataclass(frozen=True)
+class BallStick:
+    """A ball-and-stick neuron: lumped soma plus a uniform, sealed-end cylinder.
+
+    Parameters
+    ----------
+    tau_m_s : float
+        Membrane time constant Rm*Cm (uniform), in s.
+    L : float
+        Electrotonic length of the cylinder.
+    g_soma_S : float
+        Somatic membrane conductance G_S, in S (0 for a bare cylinder).
+    g_inf_S : float
+        Input conductance G_inf of a semi-infinite extension of the cylinder, in S.
+    """
+
+    tau_m_s: float
+    L: float
+    g_soma_S: float
+    g_inf_S: float
+
+    def __post_init__(self) -> None:
+        for name in ("tau_m_s", "L", "g_inf_S"):
+            value = getattr(self, name)
+            if not (math.isfinite(value) and value > 0):
+                raise ValueError(f"`{name}` must be a finite positive number, got {value!r}")
+        if not (math.isfinite(self.g_soma_S) and self.g_soma_S >= 0):
+            raise ValueError(f"`g_soma_S` must be finite and >= 0, got {self.g_soma_S!r}")
+
+    # ------------------------------------------------------------------ constructors
+    @classmethod
+    def from_electrotonic(cls, tau_m_s: float, L: float, rho: float,
+                          r_in_ohm: float) -> BallStick:
+        """Cell from tau_m (s), L, rho = G_D/G_S and input resistance (Ohm).
+
+        G_N = 1/R_N = G_S*(1 + rho), G_D = rho*G_S = G_inf*tanh(L).
+        """
+        if not (rho > 0 and math.isfinite(rho)):
+            raise ValueError(f"`rho` must be finite and positive, got {rho!r} "
+                             "(use BallStick.cylinder for a cell without soma)")
+        if not (r_in_ohm > 0 and math.isfinite(r_in_ohm)):
+            raise ValueError(f"`r_in_ohm` must be finite and positive, got {r_in_ohm!r}")
+        g_soma = 1.0 / (r_in_ohm * (1.0 + rho))
+        return cls(tau_m_s, L, g_soma, rho * g_soma / math.tanh(L))
+
+    @classmethod
+    def cylinder(cls, tau_m_s: float, L: float, r_in_ohm: float) -> BallStick:
+        """A bare finite cylinder (no soma) with input resistance R_N = R_inf*coth(L), in Ohm."""
+        return cls(tau_m_s, L, 0.0, 1.0 / (r_in_ohm * math.tanh(L)))
+
+    @classmethod
+    def from_morphology(cls, rm_ohm_cm2: float, cm_F_cm2: float, ri_ohm_cm: float,
+                        soma_diameter_m: float, dend_diameter_m: float,
+                        dend_length_m: float) -> BallStick:
+        """Cell from specific membrane properties and a spherical soma plus one cylinder.
+
+        Parameters
+        ----------
+        rm_ohm_cm2 : float
+            Specific membrane resistance, in Ohm*cm^2.
+        cm_F_cm2 : float
+            Specific membrane capacitance, in F/cm^2 (1e-6 for 1 uF/cm^2).
+        ri_ohm_cm : float
+            Axial resistivity, in Ohm*cm.
+        soma_diameter_m : float
+            Soma sphere diameter (area pi*d^2), in m; 0 for a bare cylinder.
+        dend_diameter_m, dend_length_m : float
+            Equivalent-cylinder diameter and length, in m.
+
+        Notes
+        -----
+        lambda = sqrt(Rm*d/(4*Ri)), G_inf = (pi/2)*d^(3/2)/sqrt(Rm*Ri) (REFERENCES.md, notation).
+        """
+        rm = rm_ohm_cm2 * 1e-4  # Ohm*m^2
+        ri = ri_ohm_cm * 1e-2  # Ohm*m
+        tau = rm * cm_F_cm2 * 1e4
+        d = dend_diameter_m
+        lam = math.sqrt(rm * d / (4.0 * ri))
+        g_inf = 0.5 * math.pi * d**1.5 / math.sqrt(rm * ri)
+        g_soma = math.pi * soma_diameter_m**2 / rm
+        return cls(tau, dend_length_m / lam, g_soma, g_inf)
+
+    # -------------------------------------------------------------------- properties
+    @property
+    def tau0_s(self) -> float:
+        """Slowest time constant, in s (= tau_m for a uniform membrane)."""
+        return self.tau_m_s
+
+    @property
+    def rho(self) -> float:
+        """Dendritic-to-somatic conductance ratio G_inf*tanh(L)/G_S (inf without soma)."""
+        g_d = self.g_inf_S * math.tanh(self.L)
+        return g_d / self.g_soma_S if self.g_soma_S > 0 else math.inf
+
+    @property
+    def r_in_ohm(self) -> float:
+        """Somatic input resistance 1/(G_S + G_inf*tanh L), in Ohm."""
+        return 1.0 / (self.g_soma_S + self.g_inf_S * math.tanh(self.L))
+
+    @property
+    def c_total_F(self) -> float:
+        """Total membrane capacitance tau_m*(G_S + G_inf*L), in F."""
+        return self.tau_m_s * (self.g_soma_S + self.g_inf_S * self.L)
+
+    @property
+    def c_tau_F(self) -> float:
+        """tau0/R_N, in F (underestimates c_total_F; REFERENCES.md §3)."""
+        return self.tau0_s / self.r_in_ohm
+
+    def alphas(self, n: int) -> np.ndarray:
+        """alpha_1..alpha_n of the eigenvalue equation tan(alpha*L) = -alpha*tanh(L)/rho."""
+        return cable.ballstick_alphas(self.L, self.rho, n)
+
+    def taus(self, n: int) -> np.ndarray:
+        """The first `n` time constants tau0, tau1, ..., tau_{n-1}, in s."""
+        if n < 1:
+            raise ValueError(f"`n` must be >= 1, got {n}")
+        return self.tau0_s / np.concatenate(([1.0], 1.0 + self.alphas(n - 1) ** 2))
+
+    def pulse_ratios(self, n: int) -> np.ndarray:
+        """C_k/C_0 of a brief somatic charge pulse, k = 1..n."""
+        return cable.pulse_ratios(self.L, self.rho, n)
+
+    def step_ratios(self, n: int) -> np.ndarray:
+        """B_k/B_0 of the somatic charging curve for a current step, k = 1..n."""
+        return cable.step_ratios(self.L, self.rho, n)
+
+    def b0_over_vinf(self) -> float:
+        """B0/V_inf of the step charging curve (also (tau0/R_N)/C_total)."""
+        return cable.b0_over_vinf(self.L, self.rho)
+
+    # ------------------------------------------------------------------------- modes
+    def modes(self, n_modes: int = 400) -> tuple[np.ndarray, np.ndarray]:
+        """Somatic impulse response h(t) = sum_n g_n exp(-t/tau_n) by eigen-expansion.
+
+        Parameters
+        ----------
+        n_modes : int
+            Number of modes including the tau0 mode.
+
+        Returns
+        -------
+        taus_s : ndarray
+            Time constants, slowest first, in s.
+        gains_V_per_C : ndarray
+            g_n, in V/C (g_0 = 1/C_total, g_n = g_0*C_n/C_0; REFERENCES.md §2).
+        """
+        if n_modes < 1:
+            raise ValueError(f"`n_modes` must be >= 1, got {n_modes}")
+        alphas = self.alphas(n_modes - 1)
+        taus = self.tau0_s / np.concatenate(([1.0], 1.0 + alphas**2))
+        ratios = cable.pulse_ratios_from_alphas(alphas, self.L, self.rho)
+        return taus, np.concatenate(([1.0], ratios)) / self.c_total_F
+
+    def _modes_for_dt(self, dt_s: float) -> int:
+        """Mode count whose neglected tail is fully relaxed within one sample."""
+        # alpha_n >= (n - 1/2)*pi/L; need tau_n <= dt/40.
+        need = self.L * math.sqrt(40.0 * self.tau0_s / dt_s) / math.pi + 2.0
+        return max(400, int(need))
+
+    def soma_response(self, current_A: np.ndarray, dt_s: float,
+                      modes: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
+        """Somatic voltage deviation for a sampled current, exact for a zero-order hold.
+
+        Sample k of the output is the voltage at t = k*dt when current[k] flows from
+        k*dt to (k+1)*dt. Per mode: x[k+1] = x[k]*e^(-dt/tau) + g*tau*(1 - e^(-dt/tau))*I[k].
+
+        Parameters
+        ----------
+        current_A : array_like
+            Injected current per sample, in A.
+        dt_s : float
+            Sample interval, in s.
+        modes : (taus_s, gains_V_per_C), optional
+            Modes to use as given (e.g. from :func:`compartmental_modes`). By default the
+            analytic modes, enough of them for `dt_s`, with the resistance of the
+            remaining (instantaneous) tail added so the steady state is exactly I*R_N.
+
+        Returns
+        -------
+        ndarray
+            Voltage deviation from rest, in V.
+        """
+        from scipy.signal import lfilter
+
+        current = np.asarray(current_A, dtype=float)
+        if not (math.isfinite(dt_s) and dt_s > 0):
+            raise ValueError(f"`dt_s` must be a finite positive number, got {dt_s!r}")
+        tail_ohm = 0.0
+        if modes is None:
+            taus, gains = self.modes(self._modes_for_dt(dt_s))
+            tail_ohm = max(self.r_in_ohm - float(np.sum(gains * taus)), 0.0)
+        else:
+            taus, gains = (np.asarray(m, dtype=float) for m in modes)
+        decay = np.exp(-dt_s / taus)
+        slow = decay > _RELAXED
+        v = np.zeros_like(current)
+        for tau, g, a in zip(taus[slow], gains[slow], decay[slow], strict=True):
+            v += lfilter([0.0, g * tau * (1.0 - a)], [1.0, -a], current)
+        instant_ohm = float(np.sum(gains[~slow] * taus[~slow])) + tail_ohm
+        v[1:] += instant_ohm * current[:-1]
+        return v
+
+    def summary(self) -> dict:
+        """Cell properties as plain floats, display units in the keys."""
+        taus = self.taus(4)
+        ratios_c = self.pulse_ratios(1)
+        ratios_b = self.step_ratios(1)
+        return {
+            "tau0_ms": float(taus[0] * 1e3),
+            "tau1_ms": float(taus[1] * 1e3),
+            "tau2_ms": float(taus[2] * 1e3),
+            "tau3_ms": float(taus[3] * 1e3),
+            "L": float(self.L),
+            "rho": float(self.rho),
+            "r_in_MOhm": float(self.r_in_ohm * 1e-6),
+            "c_total_pF": float(self.c_total_F * 1e12),
+            "c_tau_pF": float(self.c_tau_F * 1e12),
+            "b1_over_b0": float(ratios_b[0]),
+            "c1_over_c0": float(ratios_c[0]),
+            "b0_over_vinf": float(self.b0_over_vinf()),
+            "L_cyl_naive": float(cable.cylinder_L(taus[0], taus[1])),
+        }
+
+
+def compartmental_modes(cell: BallStick,
+                        n_compartments: int = 1000) -> tuple[np.ndarray, np.ndarray]:
+    """Somatic impulse-response modes of a compartmental model of `cell` (independent check).
+
+    The cylinder is cut into `n_compartments` equal pieces with nodes at both ends of
+    each (half compartments at the ends); the soma is lumped into node 0. The
+    generalized problem C dV/dt = -G V is symmetrised, W = C^(-1/2) G C^(-1/2), and
+    W (tridiagonal) is eigen-decomposed with scipy.linalg.eigh_tridiagonal.
+
+    Returns
+    -------
+    taus_s : ndarray
+        All n_compartments + 1 time constants, slowest first, in s.
+    gains_V_per_C : ndarray
+        g_k = U[0, k]^2 / C_0, in V/C.
+    """
+    from scipy.linalg import eigh_tridiagonal
+
+    n = int(n_compartments)
+    if n < 2:
+        raise ValueError(f"`n_compartments` must be >= 2, got {n}")
+    dx = cell.L / n
+    weight = np.ones(n + 1)
+    weight[[0, -1]] = 0.5
+    cap = cell.tau_m_s * cell.g_inf_S * dx * weight
+    cap[0] += cell.tau_m_s * cell.g_soma_S
+    g_axial = cell.g_inf_S / dx
+    n_links = np.full(n + 1, 2.0)
+    n_links[[0, -1]] = 1.0
+    diag = 1.0 / cell.tau_m_s + g_axial * n_links / cap
+    off = -g_axial / np.sqrt(cap[:-1] * cap[1:])
+    rates, vecs = eigh_tridiagonal(diag, off)
+    return 1.0 / rates, vecs[0] ** 2 / cap[0]
+
+
+# ---------------------------------------------------------------------------- protocols
+
+
+@dataclass(frozen=True)
+class StepProtocol:
+    """Current steps; sweep k gets amplitudes_A[k % len(amplitudes_A)].
+
+    Parameters
+    ----------
+    onset_s, duration_s : float
+        Step edge from sweep start and step duration, in s.
+    amplitudes_A : tuple of float
+        Step amplitudes, in A (hyperpolarizing negative).
+    """
+
+    onset_s: float
+    duration_s: float
+    amplitudes_A: tuple[float, ...]
+
+    kind = "step"
+
+    def amplitude_of(self, sweep_index: int) -> float:
+        return float(self.amplitudes_A[sweep_index % len(self.amplitudes_A)])
+
+    def describe(self) -> str:
+        amps = ", ".join(f"{a * 1e12:+g}" for a in self.amplitudes_A)
+        return (f"current steps at {self.onset_s * 1e3:g} ms for {self.duration_s * 1e3:g} ms, "
+                f"amplitudes cycling through {amps} pA")
+
+
+@dataclass(frozen=True)
+class PulseProtocol:
+    """A brief square current pulse, the same in every sweep.
+
+    Parameters
+    ----------
+    onset_s, duration_s : float
+        Pulse start from sweep start and pulse duration (e.g. 0.5e-3), in s.
+    amplitude_A : float
+        Pulse amplitude, in A.
+    """
+
+    onset_s: float
+    duration_s: float
+    amplitude_A: float
+
+    kind = "pulse"
+
+    @property
+    def amplitudes_A(self) -> tuple[float, ...]:
+        return (float(self.amplitude_A),)
+
+    def amplitude_of(self, sweep_index: int) -> float:
+        return float(self.amplitude_A)
+
+    def describe(self) -> str:
+        return (f"brief current pulse at {self.onset_s * 1e3:g} ms, "
+                f"{self.duration_s * 1e3:g} ms of {self.amplitude_A * 1e12:+g} pA")
+
+
+def _unit_command(protocol: StepProtocol | PulseProtocol, n_samples: int,
+                  sample_rate_hz: float) -> np.ndarray:
+    """1 while the step/pulse is on, else 0 (same sampling rule as StepSpec.command)."""
+    t = np.arange(n_samples) / sample_rate_hz
+    on = (t >= protocol.onset_s) & (t < protocol.onset_s + protocol.duration_s)
+    return on.astype(float)
+
+
+# --------------------------------------------------------------------------- recording
+
+
+def _bessel(filter_hz: float, sample_rate_hz: float) -> tuple[np.ndarray, np.ndarray]:
+    from scipy.signal import bessel
+
+    if not 0 < filter_hz < sample_rate_hz / 2:
+        raise ValueError(f"`filter_hz` ({filter_hz} Hz) must be between 0 and half the "
+                         f"sampling rate ({sample_rate_hz / 2:g} Hz), or None for no filter")
+    return bessel(4, filter_hz, btype="low", norm="phase", fs=sample_rate_hz)
+
+
+def _apply_filter(ba: tuple[np.ndarray, np.ndarray] | None, x: np.ndarray) -> np.ndarray:
+    from scipy.signal import lfilter, lfilter_zi
+
+    if ba is None:
+        return x
+    b, a = ba
+    y, _ = lfilter(b, a, x, zi=lfilter_zi(b, a) * x[0])
+    return y
+
+
+def _noise_gain(ba: tuple[np.ndarray, np.ndarray] | None) -> float:
+    """sd of the filter's output for unit-sd white noise input."""
+    from scipy.signal import lfilter
+
+    if ba is None:
+        return 1.0
+    impulse = np.zeros(4096)
+    impulse[0] = 1.0
+    return float(np.sqrt(np.sum(lfilter(*ba, impulse) ** 2)))
+
+
+def _electrode_lag(current: np.ndarray, dt_s: float, tau_s: float) -> np.ndarray:
+    """Current seen through a first-order electrode lag (zero-order hold, exact)."""
+    from scipy.signal import lfilter
+
+    if tau_s <= 0:
+        return current
+    a = math.exp(-dt_s / tau_s)
+    return lfilter([0.0, 1.0 - a], [1.0, -a], current)
+
+
+def _events(rng: np.random.Generator, rate_per_s: float, n_samples: int,
+            dt_s: float) -> np.ndarray:
+    """Spontaneous EPSP-like events: biexponential (rise 1 ms, decay 8 ms), 0.5–2 mV peaks."""
+    from scipy.signal import oaconvolve
+
+    trace = np.zeros(n_samples)
+    if rate_per_s <= 0:
+        return trace
+    count = rng.poisson(rate_per_s * n_samples * dt_s)
+    where = rng.integers(0, n_samples, size=count)
+    np.add.at(trace, where, rng.uniform(0.5e-3, 2e-3, size=count))
+    t = np.arange(int(0.08 / dt_s)) * dt_s
+    shape = np.exp(-t / 8e-3) - np.exp(-t / 1e-3)
+    return oaconvolve(trace, shape / shape.max())[:n_samples]
+
+
+def _date_from_cell_id(cell_id: str) -> str:
+    parts = cell_id.split("-")
+    if len(parts) >= 4 and all(p.isdigit() for p in parts[1:4]):
+        return "-".join(parts[1:4])
+    return "2026-11-03"
+
+
+def _protocol_truth(cell: BallStick, protocol: StepProtocol | PulseProtocol,
+                    dt_s: float, n_samples: int) -> dict:
+    """Protocol settings and the amplitudes they should produce, plain types."""
+    out: dict = {
+        "protocol": protocol.kind,
+        "onset_ms": float(protocol.onset_s * 1e3),
+        "duration_ms": float(protocol.duration_s * 1e3),
+        "amplitudes_pA": [float(a * 1e12) for a in protocol.amplitudes_A],
+    }
+    if isinstance(protocol, PulseProtocol):
+        d = float(_unit_command(protocol, n_samples, 1.0 / dt_s).sum() * dt_s)
+        taus, gains = cell.modes(2)
+        held = gains * taus * -np.expm1(-d / taus) * protocol.amplitude_A
+        out["charge_pC"] = float(protocol.amplitude_A * d * 1e12)
+        out["c0_mV"] = float(held[0] * 1e3)  # decay amplitudes, time zero at pulse end
+        out["c1_mV"] = float(held[1] * 1e3)
+        out["c1_over_c0_square"] = float(held[1] / held[0])
+    return out
+
+
+def simulate_recording(cell: BallStick, *, protocol: StepProtocol | PulseProtocol,
+                       sample_rate_hz: float = 20_000, sweep_duration_s: float = 1.0,
+                       n_sweeps: int = 20, v_rest_V: float = -0.070,
+                       noise_sd_V: float = 0.2e-3, filter_hz: float | None = 5_000,
+                       bridge_ohm: float = 0.0, electrode_tau_s: float = 50e-6,
+                       drift_V_per_s: float = 0.0, hum_V: float = 0.0,
+                       events_per_s: float = 0.0, seed: int = 0,
+                       cell_id: str = "LOL-2026-11-03-c1",
+                       metadata: dict | None = None) -> tuple[Recording, dict]:
+    """A simulated current-clamp recording of `cell` and its ground truth.
+
+    Parameters
+    ----------
+    cell : BallStick
+    protocol : StepProtocol or PulseProtocol
+    sample_rate_hz : float
+        Sampling rate, in Hz.
+    sweep_duration_s : float
+        Sweep length, in s.
+    n_sweeps : int
+    v_rest_V : float
+        Resting potential, in V.
+    noise_sd_V : float
+        Standard deviation of the recorded (after filtering) white noise, in V.
+    filter_hz : float or None
+        -3 dB corner of a 4-pole Bessel low-pass applied to the voltage, in Hz; None
+        for no filter.
+    bridge_ohm : float
+        Residual bridge imbalance: adds I*R through the electrode lag, in Ohm.
+    electrode_tau_s : float
+        Electrode time constant of that artefact, in s.
+    drift_V_per_s : float
+        Linear drift within each sweep, in V/s.
+    hum_V : float
+        Peak amplitude of 50 Hz hum (random phase per sweep), in V.
+    events_per_s : float
+        Mean rate of spontaneous EPSP-like events (0.5–2 mV), in 1/s.
+    seed : int
+        Seed of the random generator: equal seeds give equal recordings.
+    cell_id : str
+    metadata : dict, optional
+        Extra metadata; overrides the defaults.
+
+    Returns
+    -------
+    recording : Recording
+        format "simulated"; each sweep carries its ideal command current.
+    truth : dict
+        Plain floats (units in the keys): cell properties (tau0_ms, tau1_ms, tau2_ms,
+        tau3_ms, L, rho, r_in_MOhm, c_total_pF, c_tau_pF, b1_over_b0, c1_over_c0,
+        b0_over_vinf, L_cyl_naive), recording settings (v_rest_mV, bridge_MOhm,
+        noise_sd_mV, ...) and protocol values.
+    """
+    if n_sweeps < 1:
+        raise ValueError(f"`n_sweeps` must be >= 1, got {n_sweeps}")
+    if protocol.onset_s < 0 or protocol.onset_s + protocol.duration_s > sweep_duration_s:
+        raise ValueError(
+            f"the {protocol.kind} ({protocol.onset_s:g} s + {protocol.duration_s:g} s) does not "
+            f"fit in a sweep of {sweep_duration_s:g} s: lengthen `sweep_duration_s`"
+        )
+    n = int(round(sweep_duration_s * sample_rate_hz))
+    dt = 1.0 / sample_rate_hz
+    t = np.arange(n) * dt
+    unit = _unit_command(protocol, n, sample_rate_hz)
+    if not unit.any():
+        raise ValueError(f"the {protocol.kind} is shorter than one sample at {sample_rate_hz:g} Hz")
+    unit_response = cell.soma_response(unit, dt) + bridge_ohm * _electrode_lag(
+        unit, dt, electrode_tau_s)
+    ba = None if filter_hz is None else _bessel(filter_hz, sample_rate_hz)
+    white_sd = noise_sd_V / _noise_gain(ba)
+    rng = np.random.default_rng(seed)
+
+    sweeps = []
+    for k in range(n_sweeps):
+        amp = protocol.amplitude_of(k)
+        signal = amp * unit_response + drift_V_per_s * t
+        if hum_V:
+            signal = signal + hum_V * np.sin(2 * np.pi * 50.0 * t + rng.uniform(0, 2 * np.pi))
+        signal = signal + _events(rng, events_per_s, n, dt)
+        noise = _apply_filter(ba, rng.normal(0.0, white_sd, n)) if noise_sd_V > 0 else 0.0
+        voltage = v_rest_V + _apply_filter(ba, signal) + noise
+        sweeps.append(Sweep(k, voltage, amp * unit))
+
+    digest = hashlib.sha256(b"".join(s.voltage.tobytes() for s in sweeps)).hexdigest()
+    meta = {
+        "cell_id": cell_id,
+        "date": _date_from_cell_id(cell_id),
+        "temperature_C": 32.0,
+        "lab": LAB_NAME,
+        "simulated": True,
+        "protocol": protocol.describe(),
+    }
+    meta.update(metadata or {})
+    recording = Recording(sweeps, float(sample_rate_hz), path=f"<simulated {cell_id}>",
+                          sha256=digest, format="simulated", metadata=meta)
+
+    truth = cell.summary()
+    truth.update({
+        "cell_id": cell_id,
+        "v_rest_mV": float(v_rest_V * 1e3),
+        "bridge_MOhm": float(bridge_ohm * 1e-6),
+        "electrode_tau_ms": float(electrode_tau_s * 1e3),
+        "noise_sd_mV": float(noise_sd_V * 1e3),
+        "filter_hz": None if filter_hz is None else float(filter_hz),
+        "drift_mV_per_s": float(drift_V_per_s * 1e3),
+        "hum_mV": float(hum_V * 1e3),
+        "events_per_s": float(events_per_s),
+        "sample_rate_hz": float(sample_rate_hz),
+        "sweep_duration_ms": float(sweep_duration_s * 1e3),
+        "n_sweeps": int(n_sweeps),
+        "seed": int(seed),
+    })
+    truth.update(_protocol_truth(cell, protocol, dt, n))
+    return recording, truth
+
+
+def truth_to_json(truth: dict) -> str:
+    """The truth dict as JSON text (sorted keys, 2-space indent, non-finite as null)."""
+    def plain(v):
+        if isinstance(v, float | np.floating) and not math.isfinite(v):
+            return None
+        if isinstance(v, np.generic):
+            return v.item()
+        if isinstance(v, list | tuple):
+            return [plain(x) for x in v]
+        return v
+
+    return json.dumps({k: plain(v) for k, v in truth.items()}, sort_keys=True, indent=2)
