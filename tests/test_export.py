@@ -1,0 +1,186 @@
+"""Parameter sheets (CSV, XLSX, JSON) and the per-cell PDF report."""
+
+from __future__ import annotations
+
+import copy
+import csv
+import json
+import math
+
+import pytest
+
+from passivefit.export.provenance import flags_text, settings_hash, unit_of
+from passivefit.export.sheets import write_sheet
+
+SETTINGS = {"components": "auto", "fit_start_ms": None, "sweeps": None, "step": None}
+
+
+def example_result(name: str = "LOL-2026-11-03-c1", *, tau0_ms: float = 22.0,
+                   tau1_ms: float = 2.2, r_in_MOhm: float = 113.0, n_sweeps: int = 4,
+                   reject: int | None = 3, digest: str | None = None) -> dict:
+    """A `RecordingResult.to_dict()` object of the invented Lindqvist-Okafor lab.
+
+    Values are in the range of CA1 pyramidal cells (REFERENCES.md §7, Pike et al.
+    2000 [pub]); L_cyl follows from τ0/τ1 by the equivalent-cylinder relation
+    (REFERENCES.md §1, Rall 1969 [pub]) so the object is self-consistent.
+    """
+    L_cyl = math.pi / math.sqrt(tau0_ms / tau1_ms - 1.0)
+    sweeps = []
+    for k in range(n_sweeps):
+        accepted = k != reject
+        sweeps.append({
+            "index": k, "accepted": accepted,
+            "reject_reason": None if accepted else "baseline drift 1.8 mV > 1.0 mV",
+            "step_pA": -50.0 + 10.0 * k, "v_rest_mV": -66.4 + 0.05 * k,
+            "r_in_MOhm": r_in_MOhm * (1 + 0.01 * k), "tau0_ms": tau0_ms * (1 - 0.005 * k),
+            "tau1_ms": tau1_ms * (1 + 0.02 * k), "c0_mV": -5.1 + 1.0 * k,
+            "c1_mV": -0.45 + 0.1 * k, "rmse_mV": 0.081,
+            "flags": [] if accepted else ["BASELINE_DRIFT"],
+        })
+    return {
+        "passivefit_version": "0.1.0",
+        "source": {"path": f"/data/lol/2026-11-03/{name}.abf",
+                   "sha256": digest or (name.encode().hex() * 8)[:64],
+                   "format": "abf", "sweep_count": n_sweeps},
+        "settings": dict(SETTINGS),
+        "cell": {
+            "v_rest_mV": -66.3, "r_in_MOhm": r_in_MOhm, "tau0_ms": tau0_ms,
+            "tau0_ci95_ms": [tau0_ms * 0.97, tau0_ms * 1.03], "tau1_ms": tau1_ms,
+            "tau1_ci95_ms": [tau1_ms * 0.8, tau1_ms * 1.25], "c0_mV": -4.6, "c1_mV": -0.41,
+            "L_cyl": L_cyl, "L_bs": 0.9 * L_cyl, "L_ci95": [0.8 * L_cyl, 1.05 * L_cyl],
+            "rho": 4.2, "rho_ci95": None, "c_tau_pF": tau0_ms / r_in_MOhm * 1e3,
+            "c_total_pF": 1.12 * tau0_ms / r_in_MOhm * 1e3, "sag_ratio": 0.97,
+            "n_sweeps_used": n_sweeps - (reject is not None),
+        },
+        "sweeps": sweeps,
+        "flags": [{"code": "RHO_CI_UNAVAILABLE", "message": "too few sweeps for a rho interval"},
+                  {"code": "SEAL_CHECK", "message": "holding current drifted", "value": -31.5}],
+    }
+
+
+def _number(text: str):
+    return None if text == "" else float(text)
+
+
+@pytest.fixture
+def results():
+    return [example_result(), example_result("LOL-2026-11-04-c2", tau0_ms=31.0, tau1_ms=4.1,
+                                             r_in_MOhm=292.0, n_sweeps=3, reject=None)]
+
+
+def test_csv_cells_and_sweeps_read_back(tmp_path, results):
+    written = write_sheet(results, tmp_path / "cells.csv")
+    assert [p.name for p in written] == ["cells.csv", "cells_sweeps.csv"]
+    with open(written[0], newline="") as f:
+        cells = list(csv.DictReader(f))
+    with open(written[1], newline="") as f:
+        sweeps = list(csv.DictReader(f))
+    assert len(cells) == 2 and len(sweeps) == 4 + 3
+    for row, result in zip(cells, results, strict=True):
+        assert row["source_path"] == result["source"]["path"]
+        assert row["source_sha256"] == result["source"]["sha256"]
+        for key in ("v_rest_mV", "r_in_MOhm", "tau0_ms", "tau1_ms", "L_cyl", "L_bs",
+                    "c_total_pF", "sag_ratio", "n_sweeps_used"):
+            assert _number(row[key]) == result["cell"][key], key  # repr round trip: exact
+        assert [_number(row["tau0_ci95_ms_lo"]), _number(row["tau0_ci95_ms_hi"])] == \
+            result["cell"]["tau0_ci95_ms"]
+        assert row["rho_ci95"] == ""  # null interval: empty, not "None"
+        assert row["flags"] == ("RHO_CI_UNAVAILABLE: too few sweeps for a rho interval; "
+                                "SEAL_CHECK: holding current drifted")
+        assert row["settings_hash"] == settings_hash(result["settings"])
+    first = [s for s in sweeps if s["source_path"] == results[0]["source"]["path"]]
+    assert [int(s["index"]) for s in first] == [0, 1, 2, 3]
+    assert [s["accepted"] for s in first] == ["true", "true", "true", "false"]
+    assert first[3]["reject_reason"] == "baseline drift 1.8 mV > 1.0 mV"
+    assert first[3]["flags"] == "BASELINE_DRIFT"
+    assert _number(first[2]["tau1_ms"]) == results[0]["sweeps"][2]["tau1_ms"]
+
+
+def test_tsv_uses_tabs(tmp_path, results):
+    cells_path, sweeps_path = write_sheet(results, tmp_path / "out.tsv")
+    assert sweeps_path.name == "out_sweeps.tsv"
+    header = cells_path.read_text().splitlines()[0].split("\t")
+    assert header[:3] == ["source_path", "source_sha256", "source_format"]
+
+
+def test_xlsx_sheets_units_and_values(tmp_path, results):
+    from openpyxl import load_workbook
+
+    (path,) = write_sheet(results, tmp_path / "cells.xlsx",
+                          annotations=[{"cell_id": "LOL-2026-11-03-c1", "region": "CA1"},
+                                       {"cell_id": "LOL-2026-11-04-c2", "region": "DG"}])
+    book = load_workbook(path, read_only=True)
+    assert book.sheetnames == ["cells", "sweeps", "flags", "provenance"]
+    rows = list(book["cells"].iter_rows(values_only=True))
+    header, units, data = rows[0], rows[1], rows[2:]
+    unit = dict(zip(header, units, strict=True))
+    assert unit["r_in_MOhm"] == "MΩ" and unit["tau0_ci95_ms_hi"] == "ms"
+    assert unit["c_total_pF"] == "pF" and unit["v_rest_mV"] == "mV"
+    assert unit["L_cyl"] is None and unit["rho"] is None  # dimensionless: empty unit cell
+    assert len(data) == 2
+    for values, result in zip(data, results, strict=True):
+        row = dict(zip(header, values, strict=True))
+        assert row["source_path"] == result["source"]["path"]
+        assert row["tau0_ms"] == result["cell"]["tau0_ms"]
+        assert row["L_ci95_lo"] == result["cell"]["L_ci95"][0]
+        assert row["rho_ci95"] is None
+    assert dict(zip(header, data[1], strict=True))["region"] == "DG"
+
+    sweep_rows = list(book["sweeps"].iter_rows(values_only=True))
+    sweep_header = sweep_rows[0]
+    assert dict(zip(sweep_header, sweep_rows[1], strict=True))["step_pA"] == "pA"
+    assert len(sweep_rows) - 2 == 7
+
+    prov = list(book["provenance"].iter_rows(values_only=True))
+    prov_row = dict(zip(prov[0], prov[2], strict=True))
+    assert json.loads(prov_row["settings"]) == results[0]["settings"]
+    assert prov_row["passivefit_version"] == "0.1.0"
+    assert prov_row["source_sha256"] == results[0]["source"]["sha256"]
+
+    flag_rows = list(book["flags"].iter_rows(values_only=True))[2:]
+    assert ("SEAL_CHECK", -31.5) in {(r[1], r[3]) for r in flag_rows}
+
+
+def test_json_is_the_list_of_results(tmp_path, results):
+    original = copy.deepcopy(results)
+    (path,) = write_sheet(results, tmp_path / "all.json")
+    assert json.loads(path.read_text()) == original
+    assert results == original  # the input is not modified
+
+
+def test_json_carries_annotations(tmp_path, results):
+    (path,) = write_sheet(results, tmp_path / "all.json",
+                          annotations=[{"region": "CA1"}, {"region": "DG"}])
+    loaded = json.loads(path.read_text())
+    assert [r["annotations"]["region"] for r in loaded] == ["CA1", "DG"]
+    assert loaded[0]["cell"] == results[0]["cell"]
+
+
+def test_unknown_extension_is_a_clear_error(tmp_path, results):
+    with pytest.raises(ValueError, match=r"unknown sheet type '\.ods'.*\.xlsx"):
+        write_sheet(results, tmp_path / "cells.ods")
+    assert not list(tmp_path.iterdir())
+
+
+def test_annotations_must_match_results(tmp_path, results):
+    with pytest.raises(ValueError, match="1 annotations given for 2 results"):
+        write_sheet(results, tmp_path / "c.csv", annotations=[{"region": "CA1"}])
+
+
+def test_units_from_key_names():
+    assert [unit_of(k) for k in ("tau0_ms", "tau0_ci95_ms_lo", "r_in_MOhm", "c_tau_pF",
+                                 "step_pA", "temperature_C", "L_bs", "n_sweeps_used")] == \
+        ["ms", "ms", "MΩ", "pF", "pA", "°C", "", ""]
+
+
+def test_settings_hash_is_canonical():
+    a = {"components": "auto", "fit_start_ms": 0.5}
+    b = {"fit_start_ms": 0.5, "components": "auto"}
+    assert settings_hash(a) == settings_hash(b)
+    assert settings_hash(a) != settings_hash({**a, "fit_start_ms": 0.6})
+    assert len(settings_hash(a)) == 64
+
+
+def test_flags_text_accepts_objects_and_codes():
+    assert flags_text([{"code": "A", "message": "m"}, "B", {"code": "C"}]) == "A: m; B; C"
+    assert flags_text([]) == ""
