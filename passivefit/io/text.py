@@ -191,7 +191,7 @@ def _sample_rate(path: Path, header: _Header, table: np.ndarray, metadata: dict)
             f"the time column gives {rate!r} Hz but `sample_rate_hz` says {declared!r}; "
             f"correct one of them",
         )
-    return rate
+    return rate if declared is None else whole_hz(declared)
 
 
 def read_text(path: str | Path) -> Recording:
@@ -253,9 +253,9 @@ def _metadata_lines(recording: Recording) -> list[str]:
 def write_csv(recording: Recording, path: str | Path) -> None:
     """Write a recording as a passivefit sweep table.
 
-    Times go in ms, voltages in mV, currents in pA, with full float precision
-    (``repr``-exact), so reading the file back gives the same numbers. A ``.tsv``
-    path is written tab-separated.
+    Times go in ms, voltages in mV, currents in pA, each with 10 significant digits
+    (1e-10 relative), plus a ``# sample_rate_hz:`` line with the exact rate. A
+    ``.tsv`` path is written tab-separated.
 
     Parameters
     ----------
@@ -288,6 +288,6 @@ def write_csv(recording: Recording, path: str | Path) -> None:
     delimiter = "\t" if path.suffix.lower() == ".tsv" else ","
     header = "\n".join([*_metadata_lines(recording), delimiter.join(names)])
     np.savetxt(
-        path, np.column_stack(columns), fmt="%.17g", delimiter=delimiter,
+        path, np.column_stack(columns), fmt="%.10g", delimiter=delimiter,
         header=header, comments="", encoding="utf-8",
     )
