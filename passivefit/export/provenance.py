@@ -14,20 +14,21 @@ UNIT_TOKENS = {"mV": "mV", "MOhm": "MΩ", "ms": "ms", "pF": "pF", "pA": "pA", "C
 
 
 def settings_hash(settings: Mapping) -> str:
-    """Stable identity of analysis settings: sha256 of their canonical JSON.
+    """Stable identity of analysis settings, equal to ``Settings.settings_hash()``.
 
     Parameters
     ----------
     settings : mapping
-        The ``settings`` object of a result (plain JSON types).
+        The ``settings`` object of a result (``Settings.to_dict()``, plain JSON types).
 
     Returns
     -------
     str
-        64 hex digits; equal settings give equal hashes whatever the key order.
+        16 hex digits of the sha256 of the key-sorted JSON text; equal settings give
+        equal hashes whatever the key order.
     """
-    text = json.dumps(settings, sort_keys=True, separators=(",", ":"), allow_nan=False)
-    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+    text = json.dumps(settings, sort_keys=True)
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
 def result_settings_hash(result: Mapping) -> str:
