@@ -1,0 +1,705 @@
+"""Multi-exponential least squares by variable projection.
+
+Model, for segments ``s`` that share the time constants ``tau_i``::
+
+    y_s(t) = offset_s + sum_i a[s, i] * exp(-t / tau_i)
+
+with ``t`` measured (in seconds) from each segment's own edge. Only ``log(tau)``
+is searched by the nonlinear solver; for every trial ``tau`` the amplitudes and
+offsets are solved linearly, segment by segment (Golub & Pereyra 2003, Inverse
+Problems 19:R1). The Jacobian of the projected residual is the full
+Golub–Pereyra form, used by a small Levenberg–Marquardt loop (see
+:func:`_levenberg_marquardt` for why not :func:`scipy.optimize.least_squares`).
+
+Segments are padded to a common length with zero-weight rows so that every
+linear solve runs as one batched SVD: no Python loop over samples or segments
+on the hot path (the linear solve uses the column-scaled normal equations, by
+symmetric eigendecomposition, which is fast and accurate for the conditioning of
+sums of exponentials with tau ratios above ~1.05). Samples may be non-uniform with per-sample weights (see
+:func:`decimate_tail`), so the late, slow part of a transient can be averaged
+into bins while the early, fast part stays at full resolution.
+
+All quantities are SI (s, V).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from passivefit.core.peel import check_samples, geometric_bins, peel
+
+_MIN_EXTRA_POINTS = 3  # points required beyond the number of free parameters
+_MAX_EXP_ARG = 700.0  # exp() argument clip: exp(700) ~ 1e304 < float64 max
+_SPREAD_STARTS = 2  # extra, log-spread starting points tried after a failed fit
+_RANK_TOL = 1e-7  # relative singular value below which a design column is dropped
+_XTOL = 1e-10  # stop when no log tau moves more than this
+_SE_FRACTION = 1e-3  # ... or than this fraction of its standard error
+_FTOL = 1e-13  # ... or the cost falls by less than this fraction
+
+
+@dataclass(frozen=True, eq=False)
+class Segment:
+    """One transient to fit: samples ``y`` (V) at times ``t`` (s) from its edge.
+
+    Parameters
+    ----------
+    t : numpy.ndarray
+        Sample times (s) measured from the segment's edge, strictly increasing.
+        Need not be uniform.
+    y : numpy.ndarray
+        Membrane potential (V), same shape as ``t``.
+    weight : numpy.ndarray or None
+        Statistical weight of each sample (dimensionless): the number of raw
+        samples a binned value averages, or 1/variance up to a common factor.
+        ``None`` means all ones.
+    offset : float or None
+        Known asymptote (V). ``None`` fits the offset.
+    """
+
+    t: np.ndarray
+    y: np.ndarray
+    weight: np.ndarray | None = None
+    offset: float | None = None
+
+
+@dataclass(frozen=True, eq=False)
+class ExpFit:
+    """Result of a multi-exponential fit (SI units).
+
+    Attributes
+    ----------
+    taus : numpy.ndarray
+        Time constants (s), descending: ``taus[0]`` is the slowest (tau0).
+    amplitudes : numpy.ndarray
+        Amplitudes (V), shape (n_segments, n_components), columns in ``taus`` order.
+    offsets : numpy.ndarray
+        Asymptote of each segment (V); the given value when it was fixed.
+    tau_se : numpy.ndarray
+        Standard errors of ``taus`` (s), marginal of the full-parameter covariance
+        (amplitudes and offsets included), scaled by the residual variance.
+    tau_ci95 : numpy.ndarray
+        95 % confidence half-widths of ``taus`` (s), Student-t quantile.
+    amp_se : numpy.ndarray
+        Standard errors of ``amplitudes`` (V).
+    rmse : float
+        Weighted root-mean-square residual (V) per unit weight.
+    n_points : int
+        Number of data points (bins count once).
+    n_params : int
+        Number of free parameters (taus, amplitudes, free offsets).
+    rss : float
+        Weighted residual sum of squares (V^2).
+    aic, bic : float
+        Information criteria ``N ln(RSS/N) + 2P`` and ``N ln(RSS/N) + P ln N``.
+    success : bool
+        Whether the solver converged away from the bounds.
+    message : str
+        Solver message, or why ``success`` is false.
+    """
+
+    taus: np.ndarray
+    amplitudes: np.ndarray
+    offsets: np.ndarray
+    tau_se: np.ndarray
+    tau_ci95: np.ndarray
+    amp_se: np.ndarray
+    rmse: float
+    n_points: int
+    n_params: int
+    rss: float
+    aic: float
+    bic: float
+    success: bool
+    message: str
+
+    def evaluate(self, segment_index: int, t: np.ndarray) -> np.ndarray:
+        """Model of one segment at times ``t`` (s from its edge); returns V."""
+        t = np.asarray(t, dtype=float)
+        arg = np.minimum(-t[..., None] / self.taus, _MAX_EXP_ARG)
+        return self.offsets[segment_index] + np.exp(arg) @ self.amplitudes[segment_index]
+
+    def to_dict(self) -> dict:
+        """Plain-JSON summary; keys carry their SI unit."""
+        return {
+            "taus_s": self.taus.tolist(),
+            "tau_se_s": self.tau_se.tolist(),
+            "tau_ci95_s": self.tau_ci95.tolist(),
+            "amplitudes_V": self.amplitudes.tolist(),
+            "amp_se_V": self.amp_se.tolist(),
+            "offsets_V": self.offsets.tolist(),
+            "rmse_V": float(self.rmse),
+            "rss_V2": float(self.rss),
+            "n_points": int(self.n_points),
+            "n_params": int(self.n_params),
+            "aic": float(self.aic),
+            "bic": float(self.bic),
+            "success": bool(self.success),
+            "message": str(self.message),
+        }
+
+
+# ---------------------------------------------------------------- validation
+
+
+def _check_segments(segments: Sequence[Segment], n_components: int) -> list[tuple]:
+    if isinstance(segments, Segment):
+        segments = [segments]
+    if len(segments) == 0:
+        raise ValueError("no segments given; pass at least one Segment(t, y)")
+    if int(n_components) < 1:
+        raise ValueError(f"`n_components` must be at least 1, got {n_components}")
+    out = []
+    for k, seg in enumerate(segments):
+        t, y, w = check_samples(seg.t, seg.y, seg.weight, f"segment {k}")
+        n_free = n_components + (seg.offset is None)
+        if t.size < n_free + _MIN_EXTRA_POINTS:
+            raise ValueError(
+                f"segment {k}: {t.size} points are too few for {n_components} exponential(s); "
+                f"need at least {n_free + _MIN_EXTRA_POINTS}"
+            )
+        if seg.offset is not None and not math.isfinite(seg.offset):
+            raise ValueError(f"segment {k}: fixed `offset` must be finite, got {seg.offset}")
+        out.append((t, y, w, seg.offset))
+    return out
+
+
+# ---------------------------------------------------------- projected problem
+
+
+class _Projected:
+    """Variable-projection residual and Jacobian over padded, batched segments.
+
+    Time is scaled by ``scale`` (the record length) and the nonlinear parameters
+    are ``theta_i = log(tau_i / scale)``.
+    """
+
+    def __init__(self, checked: list[tuple], n_components: int) -> None:
+        self.k = n_components
+        n_seg = len(checked)
+        n_max = max(c[0].size for c in checked)
+        self.scale = max(float(c[0][-1]) for c in checked)
+        if self.scale <= 0:
+            raise ValueError("all sample times are <= 0; `t` must be measured from the edge (s)")
+        self.u = np.zeros((n_seg, n_max))
+        self.sw = np.zeros((n_seg, n_max))
+        self.yw = np.zeros((n_seg, n_max))
+        self.has_offset = np.zeros(n_seg, dtype=bool)
+        self.fixed = np.zeros(n_seg)
+        self.sizes = np.array([c[0].size for c in checked])
+        for s, (t, y, w, off) in enumerate(checked):
+            n = t.size
+            self.u[s, :n] = t / self.scale
+            self.sw[s, :n] = np.sqrt(w)
+            self.has_offset[s] = off is None
+            self.fixed[s] = 0.0 if off is None else off
+            self.yw[s, :n] = self.sw[s, :n] * (y - self.fixed[s])
+        self.n_points = int(self.sizes.sum())
+        self.n_params = n_components * (n_seg + 1) + int(self.has_offset.sum())
+        self._cache_key: bytes | None = None
+
+    def basis(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Weighted design matrices (S, N, k+1) and exponentials (S, N, k)."""
+        rate = np.exp(-theta)
+        e = np.exp(np.maximum(-self.u[..., None] * rate, -_MAX_EXP_ARG))
+        const = (self.sw * self.has_offset[:, None])[..., None]
+        phi = np.concatenate([e * self.sw[..., None], const], axis=-1)
+        return phi, e
+
+    def _solve(self, theta: np.ndarray) -> None:
+        key = theta.tobytes()
+        if key == self._cache_key:
+            return
+        phi, e = self.basis(theta)
+        # Orthonormal basis of each design matrix from its column-scaled Gram
+        # matrix (much faster than an SVD of a tall, thin matrix; columns whose
+        # singular value falls below 1e-7 of the largest are dropped).
+        gram = np.swapaxes(phi, 1, 2) @ phi
+        norms = np.sqrt(np.diagonal(gram, axis1=1, axis2=2))
+        norms = np.where(norms > 0, norms, 1.0)
+        lam, vec = np.linalg.eigh(gram / (norms[:, :, None] * norms[:, None, :]))
+        keep = lam > lam[:, -1:] * _RANK_TOL**2
+        inv_sqrt = np.where(keep, 1.0 / np.sqrt(np.where(keep, lam, 1.0)), 0.0)
+        q = (phi / norms[:, None, :]) @ (vec * inv_sqrt[:, None, :])
+        proj = np.einsum("snp,sn->sp", q, self.yw)
+        self.q, self.e = q, e
+        self.m = inv_sqrt[:, :, None] * np.swapaxes(vec, 1, 2) / norms[:, None, :]  # (Phi^+)^T = q @ m
+        self.coef = np.einsum("spj,sp->sj", self.m, proj)
+        self.resid = self.yw - np.einsum("snp,sp->sn", q, proj)
+        self._cache_key = key
+
+    def residual(self, theta: np.ndarray) -> np.ndarray:
+        self._solve(theta)
+        return self.resid.ravel()
+
+    def jacobian(self, theta: np.ndarray) -> np.ndarray:
+        """Golub–Pereyra Jacobian of the projected residual, shape (S*N, k)."""
+        self._solve(theta)
+        k = self.k
+        d = (self.sw * self.u)[..., None] * np.exp(-theta) * self.e  # d(phi_i)/d(theta_i)
+        dc = d * self.coef[:, None, :k]
+        a = dc - self.q @ (np.swapaxes(self.q, 1, 2) @ dc)
+        g = np.einsum("snk,sn->sk", d, self.resid)
+        b = (self.q @ self.m[:, :, :k]) * g[:, None, :]
+        return -(a + b).reshape(-1, k)
+
+    def full_jacobian(self, theta: np.ndarray) -> np.ndarray:
+        """Jacobian of the weighted model in (theta, coefficients of every segment)."""
+        self._solve(theta)
+        k, n_seg = self.k, self.u.shape[0]
+        phi, e = self.basis(theta)
+        d = (self.sw * self.u)[..., None] * np.exp(-theta) * e * self.coef[:, None, :k]
+        n_c = phi.shape[2]
+        jac = np.zeros((n_seg, phi.shape[1], k + n_seg * n_c))
+        jac[..., :k] = d
+        for s in range(n_seg):
+            jac[s, :, k + s * n_c : k + (s + 1) * n_c] = phi[s]
+        return jac.reshape(-1, jac.shape[2])
+
+
+# ------------------------------------------------------------------- fitting
+
+
+def _theta_bounds(prob: _Projected, checked: list[tuple], tau_bounds) -> tuple[float, float]:
+    dt = min(float(np.min(np.diff(c[0]))) for c in checked)
+    lo = max(float(tau_bounds[0]), dt / 2.0)
+    hi = min(float(tau_bounds[1]), 10.0 * prob.scale)
+    if not lo < hi:
+        raise ValueError(f"`tau_bounds` {tau_bounds} leave no room between dt/2 and 10x the record")
+    return math.log(lo / prob.scale), math.log(hi / prob.scale)
+
+
+def _peel_init(checked: list[tuple], n_components: int) -> np.ndarray | None:
+    """Peel taus of the segment with the largest swing (the next one if that fails)."""
+    order = np.argsort([-abs(float(y[0] - y[-1])) for _, y, _, _ in checked])
+    for s in order:
+        t, y, w, off = checked[s]
+        try:
+            return peel(t, y, y_inf=off, n_components=n_components, weight=w).taus
+        except ValueError:
+            continue
+    return None
+
+
+def _spread_starts(lo: float, hi: float, k: int, count: int) -> list[np.ndarray]:
+    """Starting thetas spread over the inner part of [lo, hi]."""
+    starts = []
+    for j in range(count):
+        a = lo + (hi - lo) * (0.15 + 0.1 * j)
+        b = lo + (hi - lo) * (0.75 - 0.1 * j)
+        starts.append(np.linspace(b, a, k))
+    return starts
+
+
+@dataclass(frozen=True)
+class _Solution:
+    x: np.ndarray
+    cost: float
+    status: int  # 1 converged, 0 iteration limit
+    message: str
+
+
+def _levenberg_marquardt(
+    prob: _Projected, theta0: np.ndarray, lo: float, hi: float, max_iter: int = 100
+) -> _Solution:
+    """Marquardt-scaled Levenberg–Marquardt on the projected residual, box by clipping.
+
+    With only the log taus as unknowns (1–3 of them) the normal equations are
+    tiny, so this loop costs little beyond one residual and Jacobian per step;
+    that makes it several times faster here than scipy's general trust-region
+    solver, whose per-iteration overhead dominates for such small problems.
+    """
+    theta = np.clip(theta0, lo + 1e-3 * (hi - lo), hi - 1e-3 * (hi - lo))
+    r = prob.residual(theta)
+    cost = float(r @ r)
+    lam = 1e-3
+    for _ in range(max_iter):
+        jac = prob.jacobian(theta)
+        grad = jac.T @ r
+        hess = jac.T @ jac
+        damp = np.diag(np.maximum(np.diag(hess), 1e-300))
+        while True:
+            step = np.linalg.solve(hess + lam * damp, -grad)
+            trial = np.clip(theta + step, lo, hi)
+            r_trial = prob.residual(trial)
+            cost_trial = float(r_trial @ r_trial)
+            if cost_trial <= cost:
+                break
+            lam *= 10.0
+            if lam > 1e10:
+                prob.residual(theta)
+                return _Solution(theta, 0.5 * cost, 1, "no further decrease of the cost")
+        moved = np.abs(trial - theta)
+        decrease = cost - cost_trial
+        theta, r, cost = trial, r_trial, cost_trial
+        lam = max(lam * 0.1, 1e-12)
+        # negligible against the statistical error of theta, or against rounding
+        se = np.sqrt(cost / max(prob.n_points - prob.n_params, 1) * np.abs(np.diag(np.linalg.pinv(hess))))
+        if np.all(moved < np.maximum(_XTOL, _SE_FRACTION * se)) or decrease <= _FTOL * cost:
+            return _Solution(theta, 0.5 * cost, 1, "converged")
+    return _Solution(theta, 0.5 * cost, 0, f"no convergence in {max_iter} iterations")
+
+
+def _problems(theta: np.ndarray, lo: float, hi: float, status: int) -> str:
+    """Why a solution is suspect ('' when it is fine)."""
+    if status <= 0:
+        return "solver did not converge"
+    edge = 1e-6 * (hi - lo)
+    if np.any(theta <= lo + edge) or np.any(theta >= hi - edge):
+        return "a time constant sits at its bound"
+    if theta.size > 1 and np.min(np.diff(np.sort(theta))) < math.log(1.05):
+        return "time constants collapsed together"
+    return ""
+
+
+def fit_exponentials(
+    segments: Sequence[Segment],
+    n_components: int,
+    tau_init: Sequence[float] | None = None,
+    tau_bounds: tuple[float, float] = (1e-5, 10.0),
+) -> ExpFit:
+    """Fit offset + sum of exponentials with time constants shared by all segments.
+
+    Parameters
+    ----------
+    segments : sequence of Segment
+        Transients (t in s from their edges, y in V), e.g. onset and offset of a step.
+    n_components : int
+        Number of exponentials.
+    tau_init : sequence of float or None
+        Starting time constants (s). ``None`` takes them from :func:`peel`.
+    tau_bounds : (float, float)
+        Allowed range of every tau (s); further limited to [dt/2, 10 x record length].
+
+    Returns
+    -------
+    ExpFit
+        Time constants (descending), amplitudes, offsets and their uncertainties.
+
+    Raises
+    ------
+    ValueError
+        Too few points, NaN samples, non-increasing ``t`` or bad ``tau_init``.
+    """
+    checked = _check_segments(segments, n_components)
+    prob = _Projected(checked, n_components)
+    lo, hi = _theta_bounds(prob, checked, tau_bounds)
+    if tau_init is not None:
+        tau0 = np.asarray(tau_init, dtype=float).ravel()
+        if tau0.size != n_components or np.any(~np.isfinite(tau0)) or np.any(tau0 <= 0):
+            raise ValueError(f"`tau_init` must hold {n_components} positive values (s), got {tau_init!r}")
+    else:
+        tau0 = _peel_init(checked, n_components)
+    starts = [] if tau0 is None else [np.log(np.sort(tau0)[::-1] / prob.scale)]
+    starts += _spread_starts(lo, hi, n_components, _SPREAD_STARTS)
+    tried = []
+    for theta0 in starts:
+        res = _levenberg_marquardt(prob, theta0, lo, hi)
+        problem = _problems(res.x, lo, hi, res.status)
+        tried.append((bool(problem), res.cost, res, problem))
+        if not problem:
+            break
+    _, _, best, best_problem = min(tried, key=lambda item: item[:2])
+    return _summarize(prob, best.x, best_problem or best.message, not best_problem)
+
+
+def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool) -> ExpFit:
+    from scipy.special import stdtrit
+
+    k = prob.k
+    order = np.argsort(theta)[::-1]
+    theta = theta[order]
+    prob._cache_key = None
+    resid = prob.residual(theta)
+    rss = float(resid @ resid)
+    n, p = prob.n_points, prob.n_params
+    dof = max(n - p, 1)
+    sigma2 = rss / dof
+    jac = prob.full_jacobian(theta)
+    n_c = k + 1
+    free = np.ones(jac.shape[1], dtype=bool)  # drop fixed-offset columns (all zero)
+    for s in np.flatnonzero(~prob.has_offset):
+        free[k + s * n_c + k] = False
+    cov = np.zeros((jac.shape[1],) * 2)
+    cov[np.ix_(free, free)] = sigma2 * np.linalg.pinv(jac[:, free].T @ jac[:, free])
+    var = np.diag(cov)
+    taus = np.exp(theta) * prob.scale
+    tau_se = taus * np.sqrt(var[:k])
+    coef_se = np.sqrt(var[k:]).reshape(-1, n_c)
+    offsets = np.where(prob.has_offset, prob.coef[:, k], prob.fixed)
+    rss_safe = max(rss, np.finfo(float).tiny)
+    loglik_term = n * math.log(rss_safe / n)
+    return ExpFit(
+        taus=taus,
+        amplitudes=prob.coef[:, :k].copy(),
+        offsets=offsets,
+        tau_se=tau_se,
+        tau_ci95=tau_se * float(stdtrit(dof, 0.975)),
+        amp_se=coef_se[:, :k].copy(),
+        rmse=math.sqrt(rss / n),
+        n_points=n,
+        n_params=p,
+        rss=rss,
+        aic=loglik_term + 2 * p,
+        bic=loglik_term + p * math.log(n),
+        success=success,
+        message=message if message else "converged",
+    )
+
+
+# ------------------------------------------------------------------ helpers
+
+
+def decimate_tail(
+    t: np.ndarray, y: np.ndarray, keep_first_s: float, bin_factor: float = 1.05
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Keep the early part of a transient, average the late part into geometric bins.
+
+    Samples with ``t <= keep_first_s`` are kept; later ones are averaged in bins
+    whose edges grow by ``bin_factor`` (width ~ (bin_factor - 1) x t), each bin
+    at least one sample. A bin of n samples gets weight n, the inverse variance
+    of its mean in units of one sample's variance, so the weighted fit keeps the
+    statistics of the full data (up to the tiny curvature of the model inside a
+    bin, relative size ~ (width/tau)^2 / 24).
+
+    Parameters
+    ----------
+    t : numpy.ndarray
+        Sample times (s) from the edge, strictly increasing.
+    y : numpy.ndarray
+        Potential (V).
+    keep_first_s : float
+        Samples up to this time (s) stay at full resolution; choose a few tau1.
+    bin_factor : float
+        Ratio of successive bin edges, > 1.
+
+    Returns
+    -------
+    (t, y, weight) : tuple of numpy.ndarray
+        Pass them on as ``Segment(t, y, weight)``.
+    """
+    t, y, w = check_samples(t, y, None, "decimate_tail")
+    return geometric_bins(t, y, w, float(keep_first_s), float(bin_factor))
+
+
+def _record(fit: ExpFit) -> dict:
+    return {
+        "bic": float(fit.bic),
+        "aic": float(fit.aic),
+        "rss": float(fit.rss),
+        "taus_s": fit.taus.tolist(),
+        "success": bool(fit.success),
+    }
+
+
+def _component_problems(fit: ExpFit) -> list[str]:
+    """Reasons to distrust a fit's components (empty when all look real)."""
+    from scipy.special import stdtrit
+
+    out = []
+    if not fit.success:
+        out.append(f"fit failed: {fit.message}")
+    wide = np.flatnonzero(~(fit.tau_ci95 < fit.taus))
+    if wide.size:
+        out.append(f"tau CI wider than the value for component(s) {wide.tolist()}")
+    if fit.taus.size > 1 and np.min(fit.taus[:-1] / fit.taus[1:]) < _MIN_TAU_RATIO:
+        out.append(f"taus closer than a factor {_MIN_TAU_RATIO}")
+    q = float(stdtrit(max(fit.n_points - fit.n_params, 1), 0.975))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = np.abs(fit.amplitudes) / fit.amp_se
+    weak = np.flatnonzero(~(np.nanmax(z, axis=0) > q))
+    if weak.size:
+        out.append(f"amplitude not significant (95 %) for component(s) {weak.tolist()}")
+    return out
+
+
+_MIN_TAU_RATIO = 1.5
+_F_ALPHA = 0.01
+
+
+def fit_auto(
+    segments: Sequence[Segment],
+    max_components: int = 3,
+    tau_init: Sequence[float] | None = None,
+    tau_bounds: tuple[float, float] = (1e-5, 10.0),
+) -> tuple[ExpFit, dict]:
+    """Fit 1..``max_components`` exponentials and choose how many the data support.
+
+    Component n+1 is accepted over n only if BIC falls, the extra-sum-of-squares
+    F-test gives p < 0.01, and the new fit is sound: every tau CI half-width is
+    below its tau, neighbouring taus differ by at least a factor 1.5, and every
+    component has an amplitude significant at 95 % in at least one segment. The
+    search stops at the first n+1 that is not accepted.
+
+    Parameters
+    ----------
+    segments : sequence of Segment
+        As for :func:`fit_exponentials`.
+    max_components : int
+        Largest number of exponentials tried (1–3 is sensible).
+    tau_init : sequence of float or None
+        Starting taus (s) for the largest model; smaller models take its slowest ones.
+    tau_bounds : (float, float)
+        As for :func:`fit_exponentials`.
+
+    Returns
+    -------
+    (ExpFit, dict)
+        The chosen fit and a record ``{"criterion", "per_n", "chosen", "reason"}``;
+        ``per_n[n]`` holds bic, aic, rss, taus_s, success, F-test p and problems.
+    """
+    from scipy.stats import f as f_dist
+
+    if int(max_components) < 1:
+        raise ValueError(f"`max_components` must be at least 1, got {max_components}")
+    fits: dict[int, ExpFit] = {}
+    per_n: dict[int, dict] = {}
+    chosen, reason = 1, "one exponential is the simplest model"
+    stopped = False
+    for n in range(1, int(max_components) + 1):
+        init = None if tau_init is None else np.sort(np.asarray(tau_init, float))[::-1][:n]
+        if init is not None and init.size < n:
+            init = None
+        fits[n] = fit_exponentials(segments, n, init, tau_bounds)
+        per_n[n] = _record(fits[n]) | {"problems": _component_problems(fits[n])}
+        if n == 1:
+            if per_n[1]["problems"]:
+                reason = "one exponential (nothing simpler), but: " + "; ".join(per_n[1]["problems"])
+            continue
+        prev = fits[n - 1]
+        extra = fits[n].n_params - prev.n_params
+        dof = fits[n].n_points - fits[n].n_params
+        f_stat = ((prev.rss - fits[n].rss) / extra) / max(fits[n].rss / max(dof, 1), 1e-300)
+        p_value = float(f_dist.sf(f_stat, extra, max(dof, 1)))
+        per_n[n]["f_p"] = p_value
+        if stopped:
+            continue
+        why_not = list(per_n[n]["problems"])
+        if not fits[n].bic < prev.bic:
+            why_not.append(f"BIC did not fall ({fits[n].bic:.1f} vs {prev.bic:.1f})")
+        if not p_value < _F_ALPHA:
+            why_not.append(f"F-test p = {p_value:.3g} >= {_F_ALPHA}")
+        if why_not:
+            reason = f"{n - 1} chosen; {n} rejected: " + "; ".join(why_not)
+            stopped = True
+        else:
+            chosen = n
+            reason = f"{n} chosen: BIC fell by {prev.bic - fits[n].bic:.1f}, F-test p = {p_value:.3g}"
+    record = {
+        "criterion": "BIC + F-test (p < 0.01) + sound components",
+        "per_n": per_n,
+        "chosen": chosen,
+        "reason": reason,
+    }
+    return fits[chosen], record
+
+
+def fit_start_scan(
+    segments: Sequence[Segment],
+    starts_s: Sequence[float],
+    n_components: int,
+    tau_init: Sequence[float] | None = None,
+    tau_bounds: tuple[float, float] = (1e-5, 10.0),
+) -> dict[str, np.ndarray]:
+    """Refit with the fit window starting at each of ``starts_s`` (s from the edge).
+
+    Pass the whole transients (``t`` from the edge); each start drops the samples
+    before it in every segment. Each fit starts from the previous successful one.
+    A start that leaves too few points gives NaN.
+
+    Returns
+    -------
+    dict of numpy.ndarray
+        ``start_s``; ``tau{i}`` and ``tau{i}_ci`` (95 % half-width), both in s,
+        for i < n_components; ``rmse`` (V); ``success`` (bool).
+    """
+    if isinstance(segments, Segment):
+        segments = [segments]
+    starts = np.asarray(starts_s, dtype=float).ravel()
+    taus = np.full((starts.size, n_components), np.nan)
+    cis = np.full_like(taus, np.nan)
+    rmse = np.full(starts.size, np.nan)
+    success = np.zeros(starts.size, dtype=bool)
+    guess = None if tau_init is None else np.asarray(tau_init, dtype=float)
+    for j, start in enumerate(starts):
+        cropped = []
+        for seg in segments:
+            t = np.asarray(seg.t, dtype=float)
+            keep = t >= start
+            w = None if seg.weight is None else np.asarray(seg.weight)[keep]
+            cropped.append(Segment(t[keep], np.asarray(seg.y)[keep], w, seg.offset))
+        try:
+            fit = fit_exponentials(cropped, n_components, guess, tau_bounds)
+        except ValueError:
+            continue
+        taus[j], cis[j], rmse[j], success[j] = fit.taus, fit.tau_ci95, fit.rmse, fit.success
+        if fit.success:
+            guess = fit.taus
+    out = {"start_s": starts}
+    for i in range(n_components):
+        out[f"tau{i}"] = taus[:, i]
+        out[f"tau{i}_ci"] = cis[:, i]
+    out["rmse"] = rmse
+    out["success"] = success
+    return out
+
+
+def crlb_taus(
+    t: np.ndarray | Sequence[np.ndarray],
+    sigma: float | np.ndarray | Sequence[np.ndarray],
+    taus: Sequence[float],
+    amplitudes: Sequence[float] | np.ndarray,
+    offset_known: bool = False,
+) -> np.ndarray:
+    """Cramér–Rao lower bound (sd, s) of each tau for white Gaussian noise.
+
+    From the Fisher information of the full model ``offset + sum a_i exp(-t/tau_i)``
+    with the amplitudes (and the offsets unless ``offset_known``) as nuisance
+    parameters; several segments share the taus.
+
+    Parameters
+    ----------
+    t : numpy.ndarray or sequence of numpy.ndarray
+        Sample times (s) of one segment, or one array per segment.
+    sigma : float or numpy.ndarray or sequence of numpy.ndarray
+        Noise sd per sample (V): a scalar for all, or arrays shaped like ``t``
+        (a bin of n samples has sd sigma/sqrt(n)).
+    taus : sequence of float
+        True time constants (s).
+    amplitudes : array-like
+        True amplitudes (V): shape (n_components,) for one segment, or
+        (n_segments, n_components).
+    offset_known : bool
+        True when every offset is known (not estimated).
+
+    Returns
+    -------
+    numpy.ndarray
+        Lower bound of sd(tau_i) (s), in the order of ``taus``.
+    """
+    ts = [np.asarray(t, float)] if np.ndim(t[0]) == 0 else [np.asarray(x, float) for x in t]
+    taus = np.asarray(taus, dtype=float)
+    amps = np.atleast_2d(np.asarray(amplitudes, dtype=float))
+    if amps.shape != (len(ts), taus.size):
+        raise ValueError(
+            f"`amplitudes` must have shape ({len(ts)}, {taus.size}) to match `t` and `taus`, "
+            f"got {amps.shape}"
+        )
+    k = taus.size
+    n_lin = k + (not offset_known)
+    fisher = np.zeros((k + len(ts) * n_lin,) * 2)
+    for s, ts_ in enumerate(ts):
+        sd = sigma if np.ndim(sigma) == 0 else np.asarray(sigma[s] if len(ts) > 1 else sigma)
+        e = np.exp(-ts_[:, None] / taus)
+        cols = [amps[s] * ts_[:, None] / taus**2 * e, e]
+        if not offset_known:
+            cols.append(np.ones((ts_.size, 1)))
+        jac = np.zeros((ts_.size, fisher.shape[0]))
+        jac[:, :k] = cols[0]
+        jac[:, k + s * n_lin : k + (s + 1) * n_lin] = np.hstack(cols[1:])
+        jw = jac / np.broadcast_to(np.asarray(sd, float), ts_.shape)[:, None]
+        fisher += jw.T @ jw
+    return np.sqrt(np.diag(np.linalg.inv(fisher))[:k])
