@@ -1,0 +1,967 @@
+"""Recording + Settings → RecordingResult: per-sweep fits and the cell's passive properties.
+
+The steps of one analysis:
+
+1. find the step in every sweep (command waveform, or the user's step);
+2. per sweep: baseline, steady state, a joint fit of the onset and offset transients
+   with shared time constants, bridge jump, sag, rejection tests;
+3. per cell: a joint fit of the averaged accepted sweeps of each amplitude, CIs by a
+   bootstrap over sweeps, input resistance from the V–I slope, the fit-start scan;
+4. cable interpretation (equivalent cylinder, ball-and-stick, capacitance) and flags.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import asdict, dataclass, field, replace
+
+import numpy as np
+
+from passivefit import __version__
+from passivefit.core import steady
+from passivefit.core.qc import Flag, runs_test_z
+from passivefit.core.steps import Step, find_step
+from passivefit.io.recording import LoadError, Recording, StepSpec
+
+SETTINGS_VERSION = 1
+MS, MV, PA, MOHM, PF = 1e-3, 1e-3, 1e-12, 1e6, 1e-12
+
+
+# --------------------------------------------------------------------------- settings
+@dataclass(frozen=True)
+class Windows:
+    """Analysis windows in ms relative to the step onset; None = chosen automatically.
+
+    ``fit_ms`` gives the start and end of the charging-transient fit; the decay after the
+    step is fitted from the same start relative to the step's end.
+    """
+
+    baseline_ms: tuple[float, float] | None = None
+    steady_ms: tuple[float, float] | None = None
+    fit_ms: tuple[float, float] | None = None
+
+    def merged(self, other: Windows | None) -> Windows:
+        """`other`'s windows where it sets them, ours elsewhere."""
+        if other is None:
+            return self
+        return Windows(*(o if o is not None else s for s, o in
+                         zip(astuple_shallow(self), astuple_shallow(other), strict=True)))
+
+
+def astuple_shallow(w: Windows) -> tuple:
+    return (w.baseline_ms, w.steady_ms, w.fit_ms)
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Everything a person can choose about an analysis (saved with the review).
+
+    Parameters
+    ----------
+    sweeps : tuple of int or None
+        Sweep indices to analyse; None = all.
+    step : StepSpec or None
+        The step, for files without a command waveform.
+    fit_start_ms : float or None
+        Fit start after each step edge, in ms; None = after the detected artefact.
+    components : str
+        "auto", "1", "2" or "3" exponential components.
+    correct_bridge : bool
+        Subtract the instantaneous (bridge) jump from the steady-state deflection.
+    windows : Windows
+        Windows for all sweeps.
+    sweep_windows : tuple of (int, Windows)
+        Per-sweep window overrides.
+    decisions : tuple of (int, bool, str)
+        A person's accept (True) / reject (False) of a sweep, with a reason.
+    bootstrap : int
+        Resamples over sweeps for the cell-level CIs (0 = Jacobian CIs only).
+    """
+
+    sweeps: tuple[int, ...] | None = None
+    step: StepSpec | None = None
+    fit_start_ms: float | None = None
+    components: str = "auto"
+    correct_bridge: bool = True
+    windows: Windows = field(default_factory=Windows)
+    sweep_windows: tuple[tuple[int, Windows], ...] = ()
+    decisions: tuple[tuple[int, bool, str], ...] = ()
+    bootstrap: int = 40
+
+    def __post_init__(self) -> None:
+        if self.components not in ("auto", "1", "2", "3"):
+            raise ValueError(f"`components` must be auto, 1, 2 or 3, not {self.components!r}")
+        if self.fit_start_ms is not None and not self.fit_start_ms >= 0:
+            raise ValueError(f"`fit_start_ms` must be >= 0, not {self.fit_start_ms!r}")
+
+    def windows_for(self, index: int) -> Windows:
+        override = dict(self.sweep_windows).get(index)
+        return self.windows.merged(override)
+
+    def decision_for(self, index: int) -> tuple[bool, str] | None:
+        for i, accepted, reason in self.decisions:
+            if i == index:
+                return accepted, reason
+        return None
+
+    def with_decision(self, index: int, accepted: bool | None, reason: str = "") -> Settings:
+        """A copy with sweep `index` accepted, rejected, or (None) left to the automatic tests."""
+        kept = tuple(d for d in self.decisions if d[0] != index)
+        new = () if accepted is None else ((index, accepted, reason),)
+        return replace(self, decisions=tuple(sorted(kept + new)))
+
+    def with_sweep_windows(self, index: int, windows: Windows | None) -> Settings:
+        kept = tuple(w for w in self.sweep_windows if w[0] != index)
+        new = () if windows is None else ((index, windows),)
+        return replace(self, sweep_windows=tuple(sorted(kept + new, key=lambda w: w[0])))
+
+    def to_dict(self) -> dict:
+        d = asdict(self)
+        d["sweeps"] = list(self.sweeps) if self.sweeps is not None else None
+        d["step"] = asdict(self.step) if self.step else None
+        d["windows"] = _windows_dict(self.windows)
+        d["sweep_windows"] = [[i, _windows_dict(w)] for i, w in self.sweep_windows]
+        d["decisions"] = [list(x) for x in self.decisions]
+        return d
+
+    @classmethod
+    def from_dict(cls, d: dict) -> Settings:
+        d = dict(d)
+        d["sweeps"] = tuple(d["sweeps"]) if d.get("sweeps") is not None else None
+        d["step"] = StepSpec(**d["step"]) if d.get("step") else None
+        d["windows"] = _windows_from(d.get("windows") or {})
+        d["sweep_windows"] = tuple((int(i), _windows_from(w)) for i, w in d.get("sweep_windows", []))
+        d["decisions"] = tuple((int(i), bool(a), str(r)) for i, a, r in d.get("decisions", []))
+        return cls(**d)
+
+    def settings_hash(self) -> str:
+        """Stable hash of the settings that change numbers (decisions included)."""
+        text = json.dumps(self.to_dict(), sort_keys=True)
+        return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def _windows_dict(w: Windows) -> dict:
+    return {k: (list(v) if v is not None else None) for k, v in asdict(w).items()}
+
+
+def _windows_from(d: dict) -> Windows:
+    return Windows(**{k: (tuple(v) if v is not None else None) for k, v in d.items()})
+
+
+# --------------------------------------------------------------------------- results
+def _num(x: float | None, scale: float = 1.0, digits: int = 6) -> float | None:
+    """SI value → display unit, rounded to `digits` significant digits; None stays None."""
+    if x is None or not np.isfinite(x):
+        return None
+    v = float(x) / scale
+    return float(f"{v:.{digits}g}")
+
+
+@dataclass(frozen=True)
+class Segment:
+    """Where one fitted transient lies in its sweep (for drawing and refits)."""
+
+    edge_s: float       # time of the step edge the transient starts from
+    start_s: float      # fit start (absolute sweep time)
+    end_s: float        # fit end (absolute sweep time)
+    index: int          # segment index in the ExpFit
+
+
+def fit_curves(fit, segments: tuple[Segment, ...], n: int = 400):
+    """(time in s, model voltage in V) of `fit` over each segment."""
+    curves = []
+    for seg in segments:
+        t = np.linspace(seg.start_s, seg.end_s, n)
+        curves.append((t, fit.evaluate(seg.index, t - seg.edge_s)))
+    return curves
+
+
+@dataclass(frozen=True)
+class SweepFit:
+    """The analysis of one sweep."""
+
+    index: int
+    accepted: bool
+    reject_reason: str | None
+    step: Step | None
+    v_rest_V: float | None = None
+    dv_ss_V: float | None = None
+    r_in_ohm: float | None = None
+    taus_s: tuple[float, ...] = ()
+    amps_V: tuple[float, ...] = ()       # signed in the direction of the response, at the edge
+    rmse_V: float | None = None
+    bridge_ohm: float | None = None
+    sag: float | None = None
+    noise_V: float | None = None
+    windows_s: dict = field(default_factory=dict)   # name -> (start, end) absolute times
+    segments: tuple[Segment, ...] = ()
+    fit: object | None = None            # core.expfit.ExpFit
+    flags: tuple[Flag, ...] = ()
+
+    def tau(self, n: int) -> float | None:
+        return self.taus_s[n] if n < len(self.taus_s) else None
+
+    def amp(self, n: int) -> float | None:
+        return self.amps_V[n] if n < len(self.amps_V) else None
+
+    def model_curves(self) -> list[tuple[np.ndarray, np.ndarray]]:
+        """(time in s, fitted voltage in V) over each fit segment, for drawing."""
+        return fit_curves(self.fit, self.segments) if self.fit is not None else []
+
+    def to_dict(self) -> dict:
+        return {
+            "index": self.index,
+            "accepted": self.accepted,
+            "reject_reason": self.reject_reason,
+            "step_pA": _num(self.step.amplitude_A if self.step else None, PA, 5),
+            "v_rest_mV": _num(self.v_rest_V, MV),
+            "r_in_MOhm": _num(self.r_in_ohm, MOHM),
+            "tau0_ms": _num(self.tau(0), MS),
+            "tau1_ms": _num(self.tau(1), MS),
+            "tau2_ms": _num(self.tau(2), MS),
+            "c0_mV": _num(self.amp(0), MV),
+            "c1_mV": _num(self.amp(1), MV),
+            "rmse_mV": _num(self.rmse_V, MV),
+            "bridge_MOhm": _num(self.bridge_ohm, MOHM),
+            "sag_ratio": _num(self.sag, 1.0, 4),
+            "n_components": len(self.taus_s),
+            "flags": [f.to_dict() for f in self.flags],
+        }
+
+
+CELL_KEYS = ("v_rest_mV", "r_in_MOhm", "tau0_ms", "tau0_ci95_ms", "tau1_ms", "tau1_ci95_ms",
+             "c0_mV", "c1_mV", "L_cyl", "L_bs", "L_ci95", "rho", "rho_ci95", "c_tau_pF",
+             "c_total_pF", "sag_ratio", "n_sweeps_used")
+
+
+@dataclass(frozen=True)
+class CellResult:
+    """Cell-level values in display units (the JSON `cell` object) plus extras."""
+
+    values: dict
+
+    def __getitem__(self, key: str):
+        return self.values[key]
+
+    def to_dict(self) -> dict:
+        return dict(self.values)
+
+
+@dataclass(frozen=True)
+class GroupAverage:
+    """The average of the accepted sweeps of one step amplitude.
+
+    ``segments`` index into the cell-level fit (`RecordingResult.cell_fit`), which fits all
+    group averages jointly with shared time constants.
+    """
+
+    step: Step
+    sweep_indices: tuple[int, ...]
+    v_V: np.ndarray          # averaged voltage, V
+    v_base_V: float
+    windows_s: dict
+    segments: tuple[Segment, ...] = ()
+
+    @property
+    def amplitude_A(self) -> float:
+        return self.step.amplitude_A
+
+    def model_curves(self, fit) -> list[tuple[np.ndarray, np.ndarray]]:
+        """(time in s, fitted voltage in V) of the cell-level fit over this average."""
+        return fit_curves(fit, self.segments)
+
+
+@dataclass(frozen=True)
+class RecordingResult:
+    """Everything one analysis produced; `to_dict()` is the JSON contract."""
+
+    source: dict
+    settings: Settings
+    sweeps: tuple[SweepFit, ...]
+    cell: CellResult
+    flags: tuple[Flag, ...]
+    groups: tuple[GroupAverage, ...] = ()
+    cell_fit: object | None = None          # ExpFit over the group averages
+    reference_group: int | None = None      # index into groups used for c0, c1, cable
+    peel: object | None = None              # core.peel.Peel of the reference average
+    scan: dict | None = None                # fit-start scan (arrays)
+    vi: dict | None = None                  # V–I points and regression
+    protocol: str = "step"
+
+    def to_dict(self) -> dict:
+        return {
+            "passivefit_version": __version__,
+            "source": dict(self.source),
+            "settings": self.settings.to_dict(),
+            "cell": self.cell.to_dict(),
+            "sweeps": [s.to_dict() for s in self.sweeps],
+            "flags": [f.to_dict() for f in self.flags],
+        }
+
+
+# --------------------------------------------------------------------------- steps
+def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
+    """The step of every sweep: from the user's StepSpec, else from the current trace."""
+    fs = recording.sample_rate_hz
+    if settings.step is not None:
+        rec = recording.with_step(settings.step)
+    elif recording.has_current:
+        rec = recording
+    else:
+        raise LoadError(recording.path, "no step found: this file carries no command or current "
+                        "waveform; give `--step ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]`")
+    steps = [find_step(s.current, fs) for s in rec.sweeps]
+    if all(s is None for s in steps):
+        raise LoadError(recording.path, "no current step found in any sweep; give `--step "
+                        "ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]` if the waveform is wrong")
+    return steps
+
+
+# --------------------------------------------------------------------------- windows
+GUARD_S = 0.5e-3         # keep windows this far from step edges
+MIN_FIT_START_S = 0.3e-3  # earliest automatic fit start after an edge
+KEEP_FULL_S, BIN_FACTOR = 8e-3, 1.04  # fit samples at full rate up to 8 ms, then 4 % bins
+
+
+def artefact_end_s(v: np.ndarray, edge: int, fs: float, noise: float) -> float:
+    """Time after a step edge at which the electrode/filter artefact has settled, in s.
+
+    The artefact is the fast jump at the edge and the filter's ringing: the second
+    difference of the voltage stays far above its baseline noise while it lasts.
+    """
+    n = min(int(5e-3 * fs), v.size - edge - 2)
+    if n < 4:
+        return MIN_FIT_START_S
+    d2 = np.abs(np.diff(v[edge - 1: edge + n + 1], 2))
+    pre = np.abs(np.diff(v[max(0, edge - int(0.02 * fs)): edge - 1], 2))
+    level = 6.0 * (np.median(pre) / 0.6745 if pre.size > 10 else noise)
+    loud = np.flatnonzero(d2 > level)
+    settle = (loud[-1] + 3) / fs if loud.size else 0.0
+    return float(np.clip(settle, max(MIN_FIT_START_S, 8 / fs), 3e-3))
+
+
+def resolve_windows(step: Step, n_samples: int, fs: float, w: Windows,
+                    fit_start_s: float) -> dict:
+    """Absolute (start, end) times in s of the baseline, steady and fit windows."""
+    on, off, end = step.onset / fs, step.offset / fs, n_samples / fs
+    duration = off - on
+
+    def absolute(rel_ms):
+        return (on + rel_ms[0] * MS, on + rel_ms[1] * MS)
+
+    base = absolute(w.baseline_ms) if w.baseline_ms else (max(0.0, on - 0.1), on - GUARD_S / 2)
+    out = {"baseline": base}
+    if step.kind == "step":
+        out["steady"] = (absolute(w.steady_ms) if w.steady_ms
+                         else (off - max(0.2 * duration, min(duration, 2e-3)), off - GUARD_S / 2))
+        fit = absolute(w.fit_ms) if w.fit_ms else (on + fit_start_s, off - GUARD_S / 2)
+        out["fit"] = fit
+        tail = min(end, off + duration + 0.1)
+        out["fit_off"] = (off + (fit[0] - on), tail)
+    else:
+        fit = absolute(w.fit_ms) if w.fit_ms else (off + fit_start_s, end)
+        out["fit_off"] = fit
+    return out
+
+
+def _index(t_s: float, fs: float, n: int) -> int:
+    return int(np.clip(round(t_s * fs), 0, n))
+
+
+# --------------------------------------------------------------------------- sweep fit
+def _segments(v: np.ndarray, fs: float, step: Step, wins: dict):
+    """Fit segments (t from their edge, y) and their drawing records."""
+    from passivefit.core.expfit import Segment as FitSegment
+    from passivefit.core.expfit import decimate_tail
+
+    segs, records = [], []
+    edges = {"fit": step.onset / fs, "fit_off": step.offset / fs}
+    for name in ("fit", "fit_off"):
+        if name not in wins:
+            continue
+        a, b = (_index(t, fs, v.size) for t in wins[name])
+        if b - a < 20:
+            continue
+        t = np.arange(a, b) / fs - edges[name]
+        segs.append(FitSegment(*decimate_tail(t, v[a:b], KEEP_FULL_S, BIN_FACTOR)))
+        records.append(Segment(edges[name], a / fs, (b - 1) / fs, len(records)))
+    return segs, tuple(records)
+
+
+def _fit(segs, components: str, tau_init=None, max_components: int = 3):
+    from passivefit.core import expfit
+
+    if components == "auto":
+        fit, _choice = expfit.fit_auto(segs, max_components=max_components, tau_init=tau_init)
+        return fit
+    return expfit.fit_exponentials(segs, int(components), tau_init=tau_init)
+
+
+def _response_amplitudes(fit, segment: int, kind: str) -> tuple[float, ...]:
+    """Component amplitudes at the edge, signed in the direction of the response.
+
+    Charging: V(t) = V∞ − Σ c_n e^(−t/τn); decay: V(t) = V_base + Σ c_n e^(−t/τn).
+    """
+    a = np.asarray(fit.amplitudes[segment], dtype=float)
+    return tuple(float(x) for x in (-a if kind == "step" else a))
+
+
+def _event_in(v: np.ndarray, model: np.ndarray, fs: float, noise: float) -> float:
+    """Largest excursion of the 1-ms-smoothed residual, in units of its expected noise."""
+    width = max(1, int(1e-3 * fs))
+    resid = steady.smooth(v - model, width)
+    expected = max(noise / np.sqrt(width), 1e-7)
+    return float(np.max(np.abs(resid)) / expected)
+
+
+def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
+                  settings: Settings) -> SweepFit:
+    """Baseline, steady state, fitted transients and tests of one sweep."""
+    if step is None:
+        return SweepFit(index, False, "no step in this sweep", None)
+    flags: list[Flag] = []
+    w = settings.windows_for(index)
+    guess = resolve_windows(step, v.size, fs, w, MIN_FIT_START_S)
+    b0, b1 = (_index(t, fs, v.size) for t in guess["baseline"])
+    if b1 - b0 < 10:
+        return SweepFit(index, False, "no baseline before the step", step)
+    v_base = steady.robust_level(v[b0:b1])
+    noise = steady.noise_sd(v[b0:b1])
+    if settings.fit_start_ms is not None:
+        start = settings.fit_start_ms * MS
+    else:
+        start = artefact_end_s(v, step.onset, fs, noise)
+        if step.kind == "pulse":
+            start = max(start, artefact_end_s(v, step.offset, fs, noise))
+    wins = resolve_windows(step, v.size, fs, w, start)
+    fit_error = None
+    try:
+        segs, records = _segments(v, fs, step, wins)
+        if not segs:
+            raise ValueError("the fit window holds too few samples")
+        # single sweeps rarely resolve a third component: "auto" stops at two here
+        fit = _fit(segs, settings.components, max_components=2)
+        if not fit.success:
+            raise ValueError(fit.message)
+    except (ValueError, np.linalg.LinAlgError, RuntimeError) as exc:
+        fit, records, fit_error = None, (), f"fit failed: {exc}"
+
+    v_ss = dv = r_in = bridge = sag = None
+    amps: tuple[float, ...] = ()
+    if step.kind == "step":
+        s0, s1 = (_index(t, fs, v.size) for t in wins["steady"])
+        v_ss = steady.robust_level(v[s0:s1]) if s1 - s0 >= 5 else None
+        if fit is not None:
+            amps = _response_amplitudes(fit, 0, "step")
+            v_inf = float(fit.offsets[0])
+            jump = float(fit.evaluate(0, np.zeros(1))[0]) - v_base
+            bridge = jump / step.amplitude_A
+            model_in_steady = fit.evaluate(0, np.arange(s0, s1) / fs - step.onset_s)
+            unsettled = abs(np.mean(model_in_steady) - v_inf) / max(abs(v_inf - v_base), 1e-9)
+            if v_ss is None or unsettled > 0.01:
+                flags.append(Flag("steady.not_reached", "the voltage is still changing in the "
+                                  "steady-state window; the fitted asymptote is used "
+                                  "(fraction of the deflection left)", unsettled))
+                v_ss = v_inf
+        if v_ss is not None:
+            dv = v_ss - v_base
+            r_in = dv / step.amplitude_A    # the cell's bridge estimate is subtracted later
+            sag = steady.sag_ratio(v[step.onset: step.offset], v_base, v_ss,
+                                   max(1, int(2e-3 * fs)))
+    elif fit is not None:
+        amps = _response_amplitudes(fit, 0, "pulse")
+
+    accepted, reason = True, None
+    if fit_error:
+        accepted, reason = False, fit_error
+    elif np.max(v) > -0.010:
+        accepted, reason = False, f"action potential (peak {np.max(v) / MV:.0f} mV)"
+    elif fit is not None:
+        worst = max(_event_in(v[int(round(r.start_s * fs)): int(round(r.end_s * fs)) + 1],
+                              fit.evaluate(r.index, np.arange(int(round(r.start_s * fs)),
+                                                              int(round(r.end_s * fs)) + 1)
+                                           / fs - r.edge_s), fs, noise)
+                    for r in records)
+        if worst > 8.0:
+            accepted, reason = False, "spontaneous event in the fit window"
+            flags.append(Flag("sweep.event", "a spontaneous event or other excursion from the "
+                              "fit (residual in noise units)", worst))
+    return SweepFit(
+        index=index, accepted=accepted, reject_reason=reason, step=step,
+        v_rest_V=v_base, dv_ss_V=dv, r_in_ohm=r_in,
+        taus_s=tuple(float(t) for t in fit.taus) if fit is not None else (),
+        amps_V=amps, rmse_V=float(fit.rmse) if fit is not None else None,
+        bridge_ohm=bridge, sag=sag, noise_V=noise, windows_s=wins, segments=records,
+        fit=fit, flags=tuple(flags),
+    )
+
+
+def reject_outliers(fits: list[SweepFit]) -> list[SweepFit]:
+    """Reject sweeps whose baseline or noise stands far from the others'."""
+    ok = [f for f in fits if f.accepted]
+    if len(ok) < 4:
+        return fits
+    base = np.array([f.v_rest_V for f in ok])
+    noise = np.array([f.rmse_V for f in ok])
+    med_base = np.median(base)
+    spread = max(1.4826 * np.median(np.abs(base - med_base)), 0.5 * MV)
+    med_noise = np.median(noise)
+    out = []
+    for f in fits:
+        reason = None
+        if f.accepted and abs(f.v_rest_V - med_base) > max(5 * spread, 3 * MV):
+            reason = f"baseline {f.v_rest_V / MV:.1f} mV far from the others' {med_base / MV:.1f} mV"
+        elif f.accepted and f.rmse_V > 3 * med_noise:
+            reason = f"noise {f.rmse_V / MV:.2f} mV, over 3× the others' {med_noise / MV:.2f} mV"
+        out.append(replace(f, accepted=False, reject_reason=reason) if reason else f)
+    return out
+
+
+def apply_decisions(fits: list[SweepFit], settings: Settings) -> list[SweepFit]:
+    """A person's accept/reject overrides the automatic tests."""
+    out = []
+    for f in fits:
+        decision = settings.decision_for(f.index)
+        if decision is None or f.step is None or (decision[0] and f.fit is None):
+            out.append(f)
+        else:
+            accepted, reason = decision
+            out.append(replace(f, accepted=accepted,
+                               reject_reason=None if accepted else (reason or "rejected by hand")))
+    return out
+
+
+# --------------------------------------------------------------------------- cell level
+def group_averages(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
+                   settings: Settings) -> list[GroupAverage]:
+    """Averages of the accepted sweeps of each step amplitude and timing, largest group first."""
+    groups: dict[tuple, list[SweepFit]] = {}
+    for f in fits:
+        if f.accepted and f.step is not None:
+            s = f.step
+            key = (round(s.amplitude_A / (0.5 * PA)), s.onset, s.offset, voltages[f.index].size)
+            groups.setdefault(key, []).append(f)
+    # reference first: hyperpolarizing before depolarizing, then the best signal (|I|·√n)
+    ordered = sorted(groups.values(), key=lambda g: (g[0].step.amplitude_A > 0,
+                                                     -abs(g[0].step.amplitude_A) * len(g) ** 0.5))
+    return [_average(g[0].step, [f.index for f in g],
+                     np.mean([voltages[f.index] for f in g], axis=0), fs, settings)
+            for g in ordered]
+
+
+def _average(step: Step, indices: list[int], v: np.ndarray, fs: float,
+             settings: Settings) -> GroupAverage:
+    w = settings.windows_for(indices[0])
+    guess = resolve_windows(step, v.size, fs, w, MIN_FIT_START_S)
+    b0, b1 = (_index(t, fs, v.size) for t in guess["baseline"])
+    v_base = steady.robust_level(v[b0:b1])
+    if settings.fit_start_ms is not None:
+        start = settings.fit_start_ms * MS
+    else:
+        edge = step.onset if step.kind == "step" else step.offset
+        start = artefact_end_s(v, edge, fs, steady.noise_sd(v[b0:b1]))
+    wins = resolve_windows(step, v.size, fs, w, start)
+    return GroupAverage(step, tuple(indices), v, v_base, wins)
+
+
+def fit_groups(groups: list[GroupAverage], fs: float, components: str, tau_init=None):
+    """Joint fit of all group averages with shared time constants.
+
+    Returns the fit and the groups with their segment records filled in.
+    """
+    segs, filled = [], []
+    for g in groups:
+        s, recs = _segments(g.v_V, fs, g.step, g.windows_s)
+        shifted = tuple(replace(r, index=r.index + len(segs)) for r in recs)
+        segs.extend(s)
+        filled.append(replace(g, segments=shifted))
+    if not segs:
+        raise ValueError("no fit window holds enough samples")
+    return _fit(segs, components, tau_init), filled
+
+
+def _onset_amplitudes(fit, g: GroupAverage) -> tuple[float, ...]:
+    """Response-direction amplitudes of the group's first transient (charging, or decay)."""
+    return _response_amplitudes(fit, g.segments[0].index, g.step.kind)
+
+
+def _ratio(fit, g: GroupAverage) -> float | None:
+    """B1/B0 (step charging) or C1/C0 (pulse decay) of one group in the cell fit."""
+    amps = _onset_amplitudes(fit, g)
+    return amps[1] / amps[0] if len(amps) > 1 and amps[0] != 0 else None
+
+
+def _percentile_halfwidth(samples: np.ndarray) -> float | None:
+    """Half the width of the central 95 % of bootstrap samples (None with fewer than 10)."""
+    samples = samples[np.isfinite(samples)]
+    if samples.size < 10:
+        return None
+    lo, hi = np.percentile(samples, [2.5, 97.5])
+    return float((hi - lo) / 2)
+
+
+def _bootstrap(groups: list[GroupAverage], voltages: dict[int, np.ndarray], fs: float,
+               fit, n_boot: int, ref: int, seed: int = 0) -> dict[str, np.ndarray]:
+    """τ0, τ1 and the reference amplitude ratio refitted on sweeps resampled with replacement."""
+    rng = np.random.default_rng(seed)
+    n = len(fit.taus)
+    stacks = [np.stack([voltages[i] for i in g.sweep_indices]) for g in groups]
+    out: dict[str, list[float]] = {"tau0": [], "tau1": [], "ratio": [], "b0": []}
+    for _ in range(n_boot):
+        resampled = [replace(g, v_V=st[rng.integers(0, len(st), len(st))].mean(axis=0))
+                     for g, st in zip(groups, stacks, strict=True)]
+        try:
+            boot, filled = fit_groups(resampled, fs, str(n), tau_init=fit.taus)
+        except (ValueError, np.linalg.LinAlgError, RuntimeError):
+            continue
+        if not boot.success:
+            continue
+        out["tau0"].append(boot.taus[0])
+        out["tau1"].append(boot.taus[1] if n > 1 else np.nan)
+        r = _ratio(boot, filled[ref])
+        out["ratio"].append(np.nan if r is None else r)
+        out["b0"].append(_onset_amplitudes(boot, filled[ref])[0])
+    return {k: np.asarray(v, dtype=float) for k, v in out.items()}
+
+
+def fit_start_scan(g: GroupAverage, fs: float, n_components: int, tau_init,
+                   n_starts: int = 10, span_s: float = 4e-3) -> dict:
+    """τ0 and τ1 refitted from a series of later fit starts (for the plateau check)."""
+    edges = {"fit": g.step.onset_s, "fit_off": g.step.offset / fs}
+    main = "fit" if g.step.kind == "step" else "fit_off"
+    first = g.windows_s[main][0] - edges[main]
+    starts = first + np.linspace(0.0, span_s, n_starts)
+    rows = []
+    for s0 in starts:
+        wins = dict(g.windows_s)
+        for name in edges.keys() & wins.keys():
+            wins[name] = (edges[name] + s0, wins[name][1])
+        try:
+            fit, _ = fit_groups([replace(g, windows_s=wins)], fs, str(n_components), tau_init)
+            taus = list(fit.taus) + [np.nan] * 2
+            ci = list(fit.tau_ci95) + [np.nan] * 2
+            rows.append((s0, taus[0], ci[0], taus[1], ci[1]))
+        except (ValueError, np.linalg.LinAlgError, RuntimeError):
+            rows.append((s0, np.nan, np.nan, np.nan, np.nan))
+    a = np.array(rows)
+    return {"start_s": a[:, 0], "tau0_s": a[:, 1], "tau0_ci95_s": a[:, 2],
+            "tau1_s": a[:, 3], "tau1_ci95_s": a[:, 4]}
+
+
+# --------------------------------------------------------------------------- the analysis
+def analyze(recording: Recording, settings: Settings | None = None) -> RecordingResult:
+    """Fit every sweep and the cell; the one entry point for CLI, GUI, batch and tests."""
+    settings = settings or Settings()
+    fs = recording.sample_rate_hz
+    steps = sweep_steps(recording, settings)
+    chosen = [(s, st) for s, st in zip(recording.sweeps, steps, strict=True)
+              if settings.sweeps is None or s.index in settings.sweeps]
+    if not chosen:
+        raise LoadError(recording.path, f"none of the sweeps {list(settings.sweeps or [])} exist; "
+                        f"the file has sweeps 0-{len(recording.sweeps) - 1}")
+    voltages = {s.index: s.voltage for s, _ in chosen}
+    fits = [analyze_sweep(s.voltage, st, s.index, fs, settings) for s, st in chosen]
+    fits = apply_decisions(reject_outliers(fits), settings)
+    cell, extras = summarize_cell(fits, voltages, fs, settings)
+    flags = tuple(extras.pop("flags"))
+    return RecordingResult(
+        source={"path": recording.path, "sha256": recording.sha256, "format": recording.format,
+                "sweep_count": len(recording.sweeps)},
+        settings=settings, sweeps=tuple(fits), cell=CellResult(cell), flags=flags, **extras)
+
+
+def _empty_cell() -> dict:
+    return dict.fromkeys(CELL_KEYS)
+
+
+def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
+                   settings: Settings) -> tuple[dict, dict]:
+    """Cell-level values (display units) and the arrays behind them."""
+    cell = _empty_cell()
+    flags: list[Flag] = []
+    used = [f for f in fits if f.accepted]
+    cell["n_sweeps_used"] = len(used)
+    extras: dict = {"flags": flags, "protocol": used[0].step.kind if used else "step"}
+    if not used:
+        flags.append(Flag("cell.no_sweeps", "no sweep was accepted; nothing to report"))
+        return cell, extras
+    if len(used) < 3:
+        flags.append(Flag("cell.few_sweeps", "fewer than 3 sweeps accepted: averages are noisy "
+                          "and no bootstrap CIs (number of sweeps)", len(used)))
+    kind = extras["protocol"]
+    cell["v_rest_mV"] = _num(np.mean([f.v_rest_V for f in used]), MV)
+    groups = group_averages(fits, voltages, fs, settings)
+    try:
+        fit, groups = fit_groups(groups, fs, settings.components)
+        if not fit.success:
+            raise ValueError(fit.message)
+    except (ValueError, np.linalg.LinAlgError, RuntimeError) as exc:
+        flags.append(Flag("fit.failed", f"the fit of the averaged sweeps failed: {exc}"))
+        fit = None
+    bridge = _bridge(fit, groups, used)
+    cell["bridge_MOhm"] = _num(bridge, MOHM, 4)
+    if bridge is not None and abs(bridge) > 5 * MOHM:
+        what = "subtracted from" if settings.correct_bridge else "left in"
+        flags.append(Flag("cell.bridge", f"an instantaneous jump at the step edge shows a bridge "
+                          f"imbalance; it is {what} R_in (MΩ)", bridge / MOHM))
+    if settings.correct_bridge and bridge is not None:
+        fits[:] = [_corrected(f, bridge) for f in fits]
+        used = [f for f in fits if f.accepted]
+    _input_resistance(used, cell, extras, flags)
+    extras["groups"] = tuple(groups)
+    if fit is None:
+        return cell, extras
+    ref = 0
+    g_ref = groups[ref]
+    extras.update(cell_fit=fit, reference_group=ref)
+    n = len(fit.taus)
+    cell["n_components"] = n
+    cell["tau0_ms"] = _num(fit.taus[0], MS)
+    cell["tau0_ci95_ms"] = _num(fit.tau_ci95[0], MS, 3)
+    amps = _onset_amplitudes(fit, g_ref)
+    cell["c0_mV"] = _num(amps[0], MV)
+    cell["ref_step_pA"] = _num(g_ref.amplitude_A, PA, 5)
+    tau1_ok = n >= 2 and _tau1_resolved(fit, fs, flags)
+    if n >= 2:
+        cell["c1_mV"] = _num(amps[1], MV)
+    if tau1_ok:
+        cell["tau1_ms"] = _num(fit.taus[1], MS)
+        cell["tau1_ci95_ms"] = _num(fit.tau_ci95[1], MS, 3)
+    elif n < 2:
+        flags.append(Flag("fit.tau1_unresolved", "only one exponential component is resolved: "
+                          "no τ1, so no electrotonic length"))
+    if n >= 3:
+        cell["tau2_ms"] = _num(fit.taus[2], MS)
+
+    boot = None
+    if settings.bootstrap and min(len(g.sweep_indices) for g in groups) >= 3:
+        boot = _bootstrap(groups, voltages, fs, fit, settings.bootstrap, ref)
+        for key, name in (("tau0", "tau0_ci95_ms"), ("tau1", "tau1_ci95_ms")):
+            hw = _percentile_halfwidth(boot[key])
+            if hw is not None and cell[name] is not None:
+                cell[name] = _num(hw, MS, 3)
+        cell["ci_method"] = "bootstrap over sweeps"
+    else:
+        cell["ci_method"] = "fit covariance"
+
+    per_sweep_tau0 = [f.tau(0) for f in used if f.tau(0) is not None]
+    if len(per_sweep_tau0) >= 3:
+        spread = np.std(per_sweep_tau0, ddof=1) / np.sqrt(len(per_sweep_tau0))
+        gap = abs(np.median(per_sweep_tau0) - fit.taus[0])
+        if gap > max(3 * spread, 0.05 * fit.taus[0]):
+            flags.append(Flag("cell.sweep_spread", "τ0 of the averaged sweeps differs from the "
+                              "median of the single sweeps (ms)", gap / MS))
+    _residual_structure(fit, groups, fs, flags)
+    _onset_offset(g_ref, fs, n, fit, flags)
+    scan = fit_start_scan(g_ref, fs, n, fit.taus)
+    extras["scan"] = scan
+    if tau1_ok:
+        _scan_drift(scan, flags)
+    extras["peel"] = _peel(g_ref, fs, fit, n)
+    _sag(used, cell, flags)
+    _cable(cell, fit, g_ref, kind, tau1_ok, boot, flags)
+    return cell, extras
+
+
+def _bridge(fit, groups: list[GroupAverage], used: list[SweepFit]) -> float | None:
+    """Bridge imbalance (Ω): the fitted model's jump at the step edge against the current.
+
+    From the cell fit: each group average's model extrapolated to the edge, minus its
+    baseline, regressed on the step current through the origin (weighted by sweeps).
+    Without a cell fit, the median of the single sweeps' estimates.
+    """
+    if fit is not None and groups and groups[0].step.kind == "step":
+        i = np.array([g.amplitude_A for g in groups])
+        n = np.array([len(g.sweep_indices) for g in groups])
+        jump = np.array([fit.evaluate(g.segments[0].index, np.zeros(1))[0] - g.v_base_V
+                         for g in groups])
+        return float(np.sum(n * i * jump) / np.sum(n * i * i))
+    single = [f.bridge_ohm for f in used if f.bridge_ohm is not None]
+    return float(np.median(single)) if single else None
+
+
+def _corrected(f: SweepFit, bridge: float) -> SweepFit:
+    """The sweep with the bridge jump taken out of its deflection and R_in."""
+    if f.dv_ss_V is None:
+        return f
+    dv = f.dv_ss_V - bridge * f.step.amplitude_A
+    return replace(f, dv_ss_V=dv, r_in_ohm=dv / f.step.amplitude_A)
+
+
+def _tau1_resolved(fit, fs: float, flags: list[Flag]) -> bool:
+    tau1, ci = fit.taus[1], fit.tau_ci95[1]
+    if tau1 < 3 / fs:
+        flags.append(Flag("fit.tau1_unresolved", "τ1 is shorter than 3 sampling intervals: "
+                          "not resolved (ms)", tau1 / MS))
+        return False
+    if not np.isfinite(ci) or ci > tau1:
+        flags.append(Flag("fit.tau1_unresolved", "the 95 % CI of τ1 is wider than τ1 itself: "
+                          "not resolved (ms)", tau1 / MS))
+        return False
+    return True
+
+
+def _input_resistance(used: list[SweepFit], cell: dict, extras: dict, flags: list[Flag]) -> None:
+    pts = [(f.step.amplitude_A, f.dv_ss_V) for f in used if f.dv_ss_V is not None]
+    if not pts:
+        flags.append(Flag("cell.no_steady_state", "brief pulses reach no steady state: R_in is "
+                          "not measured"))
+        return
+    i, dv = (np.array(x) for x in zip(*pts, strict=True))
+    fitline = steady.vi_slope(i, dv)
+    extras["vi"] = {"current_A": i, "dv_V": dv, "slope": fitline}
+    if fitline is not None:
+        cell["r_in_MOhm"] = _num(fitline.slope_ohm, MOHM)
+        cell["r_in_method"] = "V-I slope"
+        cell["vi_r2"] = _num(fitline.r2, 1.0, 5)
+        if fitline.r2 < 0.98 or fitline.curvature > 0.15:
+            flags.append(Flag("vi.nonlinear", "the V–I relation is not straight over the step "
+                              "range (relative change of slope)", fitline.curvature))
+    else:
+        cell["r_in_MOhm"] = _num(np.sum(dv * i) / np.sum(i * i), MOHM)
+        cell["r_in_method"] = "mean step"
+    neg, pos = dv[i < 0] / i[i < 0], dv[i > 0] / i[i > 0]
+    if neg.size and pos.size:
+        asym = abs(neg.mean() - pos.mean()) / abs(np.mean(dv / i))
+        cell["r_in_asymmetry"] = _num(asym, 1.0, 3)
+        if asym > 0.1:
+            flags.append(Flag("cell.asymmetric", "depolarizing and hyperpolarizing steps give R_in "
+                              "that differ: the responses are not linear (relative difference)",
+                              asym))
+
+
+def _residual_structure(fit, groups: list[GroupAverage], fs: float, flags: list[Flag]) -> None:
+    """Runs test on 0.5-ms bin means of the residuals (bins make filtered noise independent)."""
+    width = max(1, int(0.5e-3 * fs))
+    resid = []
+    for g in groups:
+        for seg in g.segments:
+            a, b = int(round(seg.start_s * fs)), int(round(seg.end_s * fs)) + 1
+            r = g.v_V[a:b] - fit.evaluate(seg.index, np.arange(a, b) / fs - seg.edge_s)
+            m = r.size // width * width
+            resid.append(r[:m].reshape(-1, width).mean(axis=1))
+    z = runs_test_z(np.concatenate(resid)) if resid else 0.0
+    if z < -4:
+        flags.append(Flag("fit.residual_structure", "the residuals keep their sign too long: the "
+                          "model misses part of the transient (runs-test z)", z))
+
+
+def _onset_offset(g: GroupAverage, fs: float, n: int, fit, flags: list[Flag]) -> None:
+    """Compare τ0 of the charging and the decay transient fitted apart."""
+    if g.step.kind != "step" or len(g.segments) < 2:
+        return
+    taus = []
+    for name in ("fit", "fit_off"):
+        wins = {k: v for k, v in g.windows_s.items() if k != ("fit_off" if name == "fit" else "fit")}
+        try:
+            part, _ = fit_groups([replace(g, windows_s=wins)], fs, str(n), fit.taus)
+            taus.append((part.taus[0], part.tau_ci95[0]))
+        except (ValueError, np.linalg.LinAlgError, RuntimeError):
+            return
+    (t_on, ci_on), (t_off, ci_off) = taus
+    diff = abs(t_on - t_off) / fit.taus[0]
+    if diff > 0.1 and abs(t_on - t_off) > np.hypot(ci_on, ci_off):
+        flags.append(Flag("fit.onset_offset", "τ0 of the charging and of the decay transient "
+                          "disagree (relative difference)", diff))
+
+
+def _scan_drift(scan: dict, flags: list[Flag]) -> None:
+    tau1 = scan["tau1_s"]
+    later = np.flatnonzero(scan["start_s"] - scan["start_s"][0] >= 1e-3)
+    if later.size and np.isfinite(tau1[0]) and np.isfinite(tau1[later[0]]):
+        drift = (tau1[later[0]] - tau1[0]) / tau1[0]
+        if abs(drift) > 0.1:
+            flags.append(Flag("fit.tau1_drift", "τ1 still changes when the fit starts 1 ms later: "
+                              "early artefact or unresolved faster components (relative change)",
+                              drift))
+
+
+def _peel(g: GroupAverage, fs: float, fit, n: int):
+    from passivefit.core import peel
+
+    seg = g.segments[0]
+    a, b = int(round(seg.start_s * fs)), int(round(seg.end_s * fs)) + 1
+    y_inf = float(fit.offsets[seg.index])
+    try:
+        return peel.peel(np.arange(a, b) / fs - seg.edge_s, g.v_V[a:b], y_inf,
+                         n_components=max(2, n))
+    except (ValueError, np.linalg.LinAlgError):
+        return None
+
+
+def _sag(used: list[SweepFit], cell: dict, flags: list[Flag]) -> None:
+    hyper = [f for f in used if f.sag is not None and f.step.amplitude_A < 0]
+    if not hyper:
+        return
+    most = min(f.step.amplitude_A for f in hyper)
+    ratio = float(np.mean([f.sag for f in hyper if f.step.amplitude_A == most]))
+    cell["sag_ratio"] = _num(ratio, 1.0, 4)
+    if ratio < 0.95:
+        flags.append(Flag("cell.sag", "the voltage sags back during hyperpolarizing steps "
+                          "(an active, e.g. h-type, conductance): the cell is not passive "
+                          "(steady/peak ratio)", ratio))
+
+
+def _cable(cell: dict, fit, g: GroupAverage, kind: str, tau1_ok: bool,
+           boot: dict | None, flags: list[Flag]) -> None:
+    """Equivalent cylinder, ball-and-stick and capacitance from the cell fit."""
+    from passivefit.core import cable
+
+    tau0 = float(fit.taus[0])
+    amps = _onset_amplitudes(fit, g)
+    step = g.step
+    r_in = cell["r_in_MOhm"] * MOHM if cell["r_in_MOhm"] and cell["r_in_MOhm"] > 0 else None
+    if r_in:
+        cell["c_tau_pF"] = _num(cable.c_tau(tau0, r_in), PF, 5)
+    if kind == "step":
+        cell["c_total_pF"] = _num(cable.c_total_step(step.amplitude_A, tau0, amps[0]), PF, 5)
+    else:
+        # decay after a square pulse: C0 = I·τ0·(1 − e^(−D/τ0))/C_total (REFERENCES.md §1)
+        charge = step.amplitude_A * tau0 * -np.expm1(-step.duration_s / tau0)
+        cell["c_total_pF"] = _num(cable.c_total_pulse(charge, amps[0]), PF, 5)
+    if cell["c_tau_pF"] and cell["c_total_pF"]:
+        cell["c_ratio"] = _num(cell["c_tau_pF"] / cell["c_total_pF"], 1.0, 4)
+    if not tau1_ok:
+        return
+    tau1 = float(fit.taus[1])
+    cell["L_cyl"] = _num(cable.cylinder_L(tau0, tau1), 1.0, 5)
+    ratio = amps[1] / amps[0]
+    estimate = _ballstick(cable, tau0, tau1, ratio, kind, step.duration_s, flags)
+    if estimate is not None:
+        L, rho = estimate
+        cell["L_bs"], cell["rho"] = _num(L, 1.0, 5), _num(rho, 1.0, 5)
+        if kind == "step" and r_in:
+            try:
+                rho_amp = cable.rho_from_amplitudes_step(r_in * step.amplitude_A, amps[0], L)
+                cell["rho_amplitude"] = _num(rho_amp, 1.0, 4)
+            except cable.CableFitError as exc:
+                flags.append(Flag("cable.rho_amplitude", str(exc)))
+    if boot is not None:
+        samples = [_ballstick(cable, t0, t1, r, kind, step.duration_s, None)
+                   for t0, t1, r in zip(boot["tau0"], boot["tau1"], boot["ratio"], strict=True)]
+        cyl = [cable.cylinder_L(t0, t1) if t1 < t0 else np.nan
+               for t0, t1 in zip(boot["tau0"], boot["tau1"], strict=True)]
+        cell["L_cyl_ci95"] = _num(_percentile_halfwidth(np.array(cyl, dtype=float)), 1, 3)
+        good = np.array([s for s in samples if s is not None], dtype=float).reshape(-1, 2)
+        if estimate is not None and good.shape[0] >= 10:
+            cell["L_ci95"] = _num(_percentile_halfwidth(good[:, 0]), 1.0, 3)
+            cell["rho_ci95"] = _num(_percentile_halfwidth(good[:, 1]), 1.0, 3)
+    tau2 = float(fit.taus[2]) if len(fit.taus) > 2 else None
+    ratios = {"b1_over_b0": ratio} if kind == "step" else {
+        "c1_over_c0": ratio / cable.square_pulse_factor(tau0, tau1, step.duration_s)}
+    flags.extend(cable.plausibility_flags(tau0=tau0, tau1=tau1, tau2=tau2, **ratios,
+                                          L=estimate[0] if estimate else None,
+                                          rho=estimate[1] if estimate else None))
+
+
+def _ballstick(cable, tau0, tau1, ratio, kind, duration_s, flags):
+    if not (np.isfinite(tau0) and np.isfinite(tau1) and np.isfinite(ratio)) or tau1 >= tau0:
+        return None
+    kind_bs = "square" if kind == "pulse" else "step"
+    try:
+        return cable.estimate_ballstick(tau0, tau1, ratio, kind_bs, duration_s=duration_s)
+    except cable.CableFitError as exc:
+        if flags is not None:
+            flags.append(Flag("cable.no_ballstick", str(exc), ratio))
+        return None
