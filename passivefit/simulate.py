@@ -72,15 +72,16 @@ class BallStick:
 
     # ------------------------------------------------------------------ constructors
     @classmethod
-    def from_electrotonic(cls, tau_m_s: float, L: float, rho: float,
-                          r_in_ohm: float) -> BallStick:
+    def from_electrotonic(cls, tau_m_s: float, L: float, rho: float, r_in_ohm: float) -> BallStick:
         """Cell from tau_m (s), L, rho = G_D/G_S and input resistance (Ohm).
 
         G_N = 1/R_N = G_S*(1 + rho), G_D = rho*G_S = G_inf*tanh(L).
         """
         if not (rho > 0 and math.isfinite(rho)):
-            raise ValueError(f"`rho` must be finite and positive, got {rho!r} "
-                             "(use BallStick.cylinder for a cell without soma)")
+            raise ValueError(
+                f"`rho` must be finite and positive, got {rho!r} "
+                "(use BallStick.cylinder for a cell without soma)"
+            )
         if not (r_in_ohm > 0 and math.isfinite(r_in_ohm)):
             raise ValueError(f"`r_in_ohm` must be finite and positive, got {r_in_ohm!r}")
         g_soma = 1.0 / (r_in_ohm * (1.0 + rho))
@@ -92,9 +93,15 @@ class BallStick:
         return cls(tau_m_s, L, 0.0, 1.0 / (r_in_ohm * math.tanh(L)))
 
     @classmethod
-    def from_morphology(cls, rm_ohm_cm2: float, cm_F_cm2: float, ri_ohm_cm: float,
-                        soma_diameter_m: float, dend_diameter_m: float,
-                        dend_length_m: float) -> BallStick:
+    def from_morphology(
+        cls,
+        rm_ohm_cm2: float,
+        cm_F_cm2: float,
+        ri_ohm_cm: float,
+        soma_diameter_m: float,
+        dend_diameter_m: float,
+        dend_length_m: float,
+    ) -> BallStick:
         """Cell from specific membrane properties and a spherical soma plus one cylinder.
 
         Parameters
@@ -201,8 +208,9 @@ class BallStick:
         need = self.L * math.sqrt(40.0 * self.tau0_s / dt_s) / math.pi + 2.0
         return max(400, int(need))
 
-    def soma_response(self, current_A: np.ndarray, dt_s: float,
-                      modes: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
+    def soma_response(
+        self, current_A: np.ndarray, dt_s: float, modes: tuple[np.ndarray, np.ndarray] | None = None
+    ) -> np.ndarray:
         """Somatic voltage deviation for a sampled current, exact for a zero-order hold.
 
         Sample k of the output is the voltage at t = k*dt when current[k] flows from
@@ -266,8 +274,9 @@ class BallStick:
         }
 
 
-def compartmental_modes(cell: BallStick,
-                        n_compartments: int = 1000) -> tuple[np.ndarray, np.ndarray]:
+def compartmental_modes(
+    cell: BallStick, n_compartments: int = 1000
+) -> tuple[np.ndarray, np.ndarray]:
     """Somatic impulse-response modes of a compartmental model of `cell` (independent check).
 
     The cylinder is cut into `n_compartments` equal pieces with nodes at both ends of
@@ -327,8 +336,10 @@ class StepProtocol:
 
     def describe(self) -> str:
         amps = ", ".join(f"{a * 1e12:+g}" for a in self.amplitudes_A)
-        return (f"current steps at {self.onset_s * 1e3:g} ms for {self.duration_s * 1e3:g} ms, "
-                f"amplitudes cycling through {amps} pA")
+        return (
+            f"current steps at {self.onset_s * 1e3:g} ms for {self.duration_s * 1e3:g} ms, "
+            f"amplitudes cycling through {amps} pA"
+        )
 
 
 @dataclass(frozen=True)
@@ -357,12 +368,15 @@ class PulseProtocol:
         return float(self.amplitude_A)
 
     def describe(self) -> str:
-        return (f"brief current pulse at {self.onset_s * 1e3:g} ms, "
-                f"{self.duration_s * 1e3:g} ms of {self.amplitude_A * 1e12:+g} pA")
+        return (
+            f"brief current pulse at {self.onset_s * 1e3:g} ms, "
+            f"{self.duration_s * 1e3:g} ms of {self.amplitude_A * 1e12:+g} pA"
+        )
 
 
-def _unit_command(protocol: StepProtocol | PulseProtocol, n_samples: int,
-                  sample_rate_hz: float) -> np.ndarray:
+def _unit_command(
+    protocol: StepProtocol | PulseProtocol, n_samples: int, sample_rate_hz: float
+) -> np.ndarray:
     """1 while the step/pulse is on, else 0 (same sampling rule as StepSpec.command)."""
     t = np.arange(n_samples) / sample_rate_hz
     on = (t >= protocol.onset_s) & (t < protocol.onset_s + protocol.duration_s)
@@ -376,8 +390,10 @@ def _bessel(filter_hz: float, sample_rate_hz: float) -> tuple[np.ndarray, np.nda
     from scipy.signal import bessel
 
     if not 0 < filter_hz < sample_rate_hz / 2:
-        raise ValueError(f"`filter_hz` ({filter_hz} Hz) must be between 0 and half the "
-                         f"sampling rate ({sample_rate_hz / 2:g} Hz), or None for no filter")
+        raise ValueError(
+            f"`filter_hz` ({filter_hz} Hz) must be between 0 and half the "
+            f"sampling rate ({sample_rate_hz / 2:g} Hz), or None for no filter"
+        )
     return bessel(4, filter_hz, btype="low", norm="phase", fs=sample_rate_hz)
 
 
@@ -412,8 +428,7 @@ def _electrode_lag(current: np.ndarray, dt_s: float, tau_s: float) -> np.ndarray
     return lfilter([0.0, 1.0 - a], [1.0, -a], current)
 
 
-def _events(rng: np.random.Generator, rate_per_s: float, n_samples: int,
-            dt_s: float) -> np.ndarray:
+def _events(rng: np.random.Generator, rate_per_s: float, n_samples: int, dt_s: float) -> np.ndarray:
     """Spontaneous EPSP-like events: biexponential (rise 1 ms, decay 8 ms), 0.5–2 mV peaks."""
     from scipy.signal import oaconvolve
 
@@ -435,8 +450,9 @@ def _date_from_cell_id(cell_id: str) -> str:
     return "2026-11-03"
 
 
-def _protocol_truth(cell: BallStick, protocol: StepProtocol | PulseProtocol,
-                    dt_s: float, n_samples: int) -> dict:
+def _protocol_truth(
+    cell: BallStick, protocol: StepProtocol | PulseProtocol, dt_s: float, n_samples: int
+) -> dict:
     """Protocol settings and the amplitudes they should produce, plain types."""
     out: dict = {
         "protocol": protocol.kind,
@@ -455,15 +471,25 @@ def _protocol_truth(cell: BallStick, protocol: StepProtocol | PulseProtocol,
     return out
 
 
-def simulate_recording(cell: BallStick, *, protocol: StepProtocol | PulseProtocol,
-                       sample_rate_hz: float = 20_000, sweep_duration_s: float = 1.0,
-                       n_sweeps: int = 20, v_rest_V: float = -0.070,
-                       noise_sd_V: float = 0.2e-3, filter_hz: float | None = 5_000,
-                       bridge_ohm: float = 0.0, electrode_tau_s: float = 50e-6,
-                       drift_V_per_s: float = 0.0, hum_V: float = 0.0,
-                       events_per_s: float = 0.0, seed: int = 0,
-                       cell_id: str = "LOL-2026-11-03-c1",
-                       metadata: dict | None = None) -> tuple[Recording, dict]:
+def simulate_recording(
+    cell: BallStick,
+    *,
+    protocol: StepProtocol | PulseProtocol,
+    sample_rate_hz: float = 20_000,
+    sweep_duration_s: float = 1.0,
+    n_sweeps: int = 20,
+    v_rest_V: float = -0.070,
+    noise_sd_V: float = 0.2e-3,
+    filter_hz: float | None = 5_000,
+    bridge_ohm: float = 0.0,
+    electrode_tau_s: float = 50e-6,
+    drift_V_per_s: float = 0.0,
+    hum_V: float = 0.0,
+    events_per_s: float = 0.0,
+    seed: int = 0,
+    cell_id: str = "LOL-2026-11-03-c1",
+    metadata: dict | None = None,
+) -> tuple[Recording, dict]:
     """A simulated current-clamp recording of `cell` and its ground truth.
 
     Parameters
@@ -522,7 +548,8 @@ def simulate_recording(cell: BallStick, *, protocol: StepProtocol | PulseProtoco
     if not unit.any():
         raise ValueError(f"the {protocol.kind} is shorter than one sample at {sample_rate_hz:g} Hz")
     unit_response = cell.soma_response(unit, dt) + bridge_ohm * _electrode_lag(
-        unit, dt, electrode_tau_s)
+        unit, dt, electrode_tau_s
+    )
     ba = None if filter_hz is None else _bessel(filter_hz, sample_rate_hz)
     white_sd = noise_sd_V / _noise_gain(ba)
     rng = np.random.default_rng(seed)
@@ -548,31 +575,40 @@ def simulate_recording(cell: BallStick, *, protocol: StepProtocol | PulseProtoco
         "protocol": protocol.describe(),
     }
     meta.update(metadata or {})
-    recording = Recording(sweeps, float(sample_rate_hz), path=f"<simulated {cell_id}>",
-                          sha256=digest, format="simulated", metadata=meta)
+    recording = Recording(
+        sweeps,
+        float(sample_rate_hz),
+        path=f"<simulated {cell_id}>",
+        sha256=digest,
+        format="simulated",
+        metadata=meta,
+    )
 
     truth = cell.summary()
-    truth.update({
-        "cell_id": cell_id,
-        "v_rest_mV": float(v_rest_V * 1e3),
-        "bridge_MOhm": float(bridge_ohm * 1e-6),
-        "electrode_tau_ms": float(electrode_tau_s * 1e3),
-        "noise_sd_mV": float(noise_sd_V * 1e3),
-        "filter_hz": None if filter_hz is None else float(filter_hz),
-        "drift_mV_per_s": float(drift_V_per_s * 1e3),
-        "hum_mV": float(hum_V * 1e3),
-        "events_per_s": float(events_per_s),
-        "sample_rate_hz": float(sample_rate_hz),
-        "sweep_duration_ms": float(sweep_duration_s * 1e3),
-        "n_sweeps": int(n_sweeps),
-        "seed": int(seed),
-    })
+    truth.update(
+        {
+            "cell_id": cell_id,
+            "v_rest_mV": float(v_rest_V * 1e3),
+            "bridge_MOhm": float(bridge_ohm * 1e-6),
+            "electrode_tau_ms": float(electrode_tau_s * 1e3),
+            "noise_sd_mV": float(noise_sd_V * 1e3),
+            "filter_hz": None if filter_hz is None else float(filter_hz),
+            "drift_mV_per_s": float(drift_V_per_s * 1e3),
+            "hum_mV": float(hum_V * 1e3),
+            "events_per_s": float(events_per_s),
+            "sample_rate_hz": float(sample_rate_hz),
+            "sweep_duration_ms": float(sweep_duration_s * 1e3),
+            "n_sweeps": int(n_sweeps),
+            "seed": int(seed),
+        }
+    )
     truth.update(_protocol_truth(cell, protocol, dt, n))
     return recording, truth
 
 
 def truth_to_json(truth: dict) -> str:
     """The truth dict as JSON text (sorted keys, 2-space indent, non-finite as null)."""
+
     def plain(v):
         if isinstance(v, float | np.floating) and not math.isfinite(v):
             return None

@@ -40,8 +40,9 @@ BALLSTICK_TABLE = [
     ("0.5", "5", "2.6814", "29.7602", "0.5858", "1.6565", "0.0557", "0.9361"),
 ]
 
-WORKED = dict(rm_ohm_cm2=20e3, cm_F_cm2=1e-6, ri_ohm_cm=100.0, soma_diameter_m=0.0,
-              dend_diameter_m=2e-6)
+WORKED = dict(
+    rm_ohm_cm2=20e3, cm_F_cm2=1e-6, ri_ohm_cm=100.0, soma_diameter_m=0.0, dend_diameter_m=2e-6
+)
 
 
 @pytest.mark.parametrize("row", CYLINDER_TABLE, ids=lambda r: f"L={r[0]}")
@@ -88,7 +89,8 @@ def test_cylinder_sum_identity(L):
 
 @pytest.mark.parametrize(("L", "rho"), [(0.5, 1.0), (1.0, 5.0), (2.0, 0.5), (1.0, math.inf)])
 def test_step_amplitudes_sum_to_steady_state(L, rho):
-    # V_inf = sum_n B_n at t = 0 (REFERENCES.md §1/§2 charging curve V = V_inf - sum B_n e^-t/tau_n [der])
+    # V_inf = sum_n B_n at t = 0: REFERENCES.md §1/§2 charging curve
+    # V = V_inf - sum B_n exp(-t/tau_n) [der]
     n = 20000
     total = cable.b0_over_vinf(L, rho) * (1.0 + cable.step_ratios(L, rho, n).sum())
     # each neglected term B_m/V_inf is in (0, 2/alpha_m^2) with alpha_m >= (m - 1/2) pi/L,
@@ -118,8 +120,11 @@ def test_rho_limits():
         assert_allclose(cable.ballstick_alphas(L, 1e-9, 5) * L, (n - 0.5) * math.pi, rtol=1e-8)
         # cylinder limits of the amplitude ratios: C_n/C_0 = 2, B_n/B_0 = 2 tau_n/tau0 (§1)
         assert_allclose(cable.pulse_ratios(L, 1e9, 5), 2.0, rtol=1e-6)
-        assert_allclose(cable.step_ratios(L, math.inf, 5),
-                        2.0 / cable.ballstick_tau_ratios(L, math.inf, 5), rtol=1e-12)
+        assert_allclose(
+            cable.step_ratios(L, math.inf, 5),
+            2.0 / cable.ballstick_tau_ratios(L, math.inf, 5),
+            rtol=1e-12,
+        )
         assert_allclose(cable.b0_over_vinf(L, 1e9), math.tanh(L) / L, rtol=1e-8)
         # isopotential limit: all of the response in the tau0 term
         assert_allclose(cable.b0_over_vinf(L, 1e-9), 1.0, rtol=1e-8)
@@ -134,13 +139,22 @@ def test_tau2_ratio_range():
             q = (r2 - 1.0) / (r1 - 1.0)
             qs.append(q)
             assert 4.0 <= q <= 9.0
-            assert not [f for f in cable.plausibility_flags(tau0=1.0, tau1=1 / r1, tau2=1 / r2)
-                        if f.code == "cable.tau2_ratio"]
+            assert not [
+                f
+                for f in cable.plausibility_flags(tau0=1.0, tau1=1 / r1, tau2=1 / r2)
+                if f.code == "cable.tau2_ratio"
+            ]
     assert min(qs) < 4.1 and max(qs) > 8.5  # the grid reaches both ends of the range
 
 
 GRID = [(float(r[0]), float(r[1])) for r in BALLSTICK_TABLE] + [
-    (0.2, 0.3), (0.4, 50.0), (0.8, 0.15), (2.0, 1.0), (2.8, 20.0), (3.0, 0.2)]
+    (0.2, 0.3),
+    (0.4, 50.0),
+    (0.8, 0.15),
+    (2.0, 1.0),
+    (2.8, 20.0),
+    (3.0, 0.2),
+]
 
 
 @pytest.mark.parametrize(("L", "rho"), GRID)
@@ -152,8 +166,11 @@ def test_estimate_ballstick_round_trip(L, rho):
         assert_allclose(cable.estimate_ballstick(tau0, tau1, ratio, kind), (L, rho), rtol=1e-7)
     duration = 0.5e-3
     square = cable.pulse_ratio(L, rho) * cable.square_pulse_factor(tau0, tau1, duration)
-    assert_allclose(cable.estimate_ballstick(tau0, tau1, square, "square", duration_s=duration),
-                    (L, rho), rtol=1e-7)
+    assert_allclose(
+        cable.estimate_ballstick(tau0, tau1, square, "square", duration_s=duration),
+        (L, rho),
+        rtol=1e-7,
+    )
 
 
 def test_square_pulse_factor_against_compartmental_model():
@@ -164,8 +181,9 @@ def test_square_pulse_factor_against_compartmental_model():
     duration = 2e-3
     held = gains[:2] * taus[:2] * -np.expm1(-duration / taus[:2])
     brief = cable.pulse_ratio(cell.L, cell.rho)
-    assert_allclose(held[1] / held[0],
-                    brief * cable.square_pulse_factor(taus[0], taus[1], duration), rtol=1e-5)
+    assert_allclose(
+        held[1] / held[0], brief * cable.square_pulse_factor(taus[0], taus[1], duration), rtol=1e-5
+    )
 
 
 def test_cylinder_overestimates_L_and_c_tau_underestimates_capacitance():
@@ -257,18 +275,33 @@ def test_errors_are_clear():
 
 
 def test_plausibility_flags():
-    flags = cable.plausibility_flags(tau0=20e-3, tau1=2e-3, tau2=1.5e-3, c1_over_c0=2.3,
-                                     b1_over_b0=0.25, L=4.0, rho=0.05)
+    flags = cable.plausibility_flags(
+        tau0=20e-3, tau1=2e-3, tau2=1.5e-3, c1_over_c0=2.3, b1_over_b0=0.25, L=4.0, rho=0.05
+    )
     codes = [f.code for f in flags]
-    assert codes == ["cable.tau2_ratio", "cable.shunt_suspected", "cable.shunt_suspected",
-                     "cable.L_range", "cable.rho_range"]
+    assert codes == [
+        "cable.tau2_ratio",
+        "cable.shunt_suspected",
+        "cable.shunt_suspected",
+        "cable.L_range",
+        "cable.rho_range",
+    ]
     assert all(f.message and f.value is not None for f in flags)
     assert "somatic shunt or non-uniform membrane" in flags[1].message
     # a uniform ball-and-stick in the usual range raises none (REFERENCES.md §2 [der])
     cell = BallStick.from_electrotonic(0.02, 1.0, 5.0, 100e6)
     tau0, tau1, tau2 = cell.taus(3)
-    assert cable.plausibility_flags(
-        tau0=tau0, tau1=tau1, tau2=tau2, c1_over_c0=cell.pulse_ratios(1)[0],
-        b1_over_b0=cell.step_ratios(1)[0], L=cell.L, rho=cell.rho) == []
+    assert (
+        cable.plausibility_flags(
+            tau0=tau0,
+            tau1=tau1,
+            tau2=tau2,
+            c1_over_c0=cell.pulse_ratios(1)[0],
+            b1_over_b0=cell.step_ratios(1)[0],
+            L=cell.L,
+            rho=cell.rho,
+        )
+        == []
+    )
     # missing values are skipped, not flagged
     assert cable.plausibility_flags(tau0=20e-3, tau1=None, L=None) == []

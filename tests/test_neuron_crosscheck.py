@@ -54,21 +54,28 @@ def neuron_soma_voltage(soma_um: float, dend_diam_um: float, dend_len_um: float)
     return np.array(v)
 
 
-@pytest.mark.parametrize(("soma_um", "dend_diam_um", "dend_len_um"),
-                         [(20.0, 2.0, 1000.0), (15.0, 4.0, 600.0)])
+@pytest.mark.parametrize(
+    ("soma_um", "dend_diam_um", "dend_len_um"), [(20.0, 2.0, 1000.0), (15.0, 4.0, 600.0)]
+)
 def test_step_response_matches_neuron(soma_um, dend_diam_um, dend_len_um):
     v_nrn = neuron_soma_voltage(soma_um, dend_diam_um, dend_len_um)
-    cell = BallStick.from_morphology(RM_OHM_CM2, CM_UF_CM2 * 1e-6, RI_OHM_CM, soma_um * 1e-6,
-                                     dend_diam_um * 1e-6, dend_len_um * 1e-6)
+    cell = BallStick.from_morphology(
+        RM_OHM_CM2,
+        CM_UF_CM2 * 1e-6,
+        RI_OHM_CM,
+        soma_um * 1e-6,
+        dend_diam_um * 1e-6,
+        dend_len_um * 1e-6,
+    )
     dt = DT_MS * 1e-3
     onset, width = round(DELAY_MS / DT_MS), round(DURATION_MS / DT_MS)
     current = np.zeros(v_nrn.size)
-    current[onset:onset + width] = AMP_NA * 1e-9
+    current[onset : onset + width] = AMP_NA * 1e-9
     ours_mV = -70.0 + 1e3 * cell.soma_response(current, dt)
     steady_mV = abs(AMP_NA * 1e-9 * cell.r_in_ohm * 1e3)
     error = np.abs(v_nrn - ours_mV) / steady_mV
-    error[onset:onset + 3] = 0.0  # first samples after each edge: integrator start-up
-    error[onset + width:onset + width + 3] = 0.0
+    error[onset : onset + 3] = 0.0  # first samples after each edge: integrator start-up
+    error[onset + width : onset + width + 3] = 0.0
     assert error.max() < 2e-3  # 0.2 % of the steady deflection at every other sample
 
     # NEURON's steady-state input resistance equals ours within 0.1 %

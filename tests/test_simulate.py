@@ -97,7 +97,8 @@ def test_soma_response_is_exact_for_held_current():
     kernel = np.where(
         k > j,
         np.sum(gains * taus * (np.exp(-(age - dt) / taus) - np.exp(-age / taus)), axis=-1),
-        0.0)
+        0.0,
+    )
     assert_allclose(v, kernel @ current, rtol=1e-10, atol=1e-15)
 
 
@@ -137,8 +138,9 @@ def test_recording_shape_units_and_metadata():
     assert all(s.n_samples == 12_000 for s in rec.sweeps)
     amps = [s.current[2500] for s in rec.sweeps]
     assert_allclose(amps, [-50e-12, -30e-12, -10e-12, 10e-12] * 2)
-    assert all(s.current[1999] == 0 and s.current[2000] != 0 and s.current[10000] == 0
-               for s in rec.sweeps)
+    assert all(
+        s.current[1999] == 0 and s.current[2000] != 0 and s.current[10000] == 0 for s in rec.sweeps
+    )
     assert abs(np.median(rec.sweeps[0].voltage) + 0.070) < 0.02  # volts, not mV
     meta = rec.metadata
     assert meta["cell_id"] == "LOL-2026-11-03-c1" and meta["date"] == "2026-11-03"
@@ -146,10 +148,19 @@ def test_recording_shape_units_and_metadata():
     assert meta["simulated"] is True and "-50, -30, -10, +10 pA" in meta["protocol"]
     assert "temperature_C" in meta
     cell = CELLS["L1-rho5"]
-    assert_allclose([truth["tau0_ms"], truth["tau1_ms"], truth["r_in_MOhm"], truth["L"],
-                     truth["rho"], truth["c_total_pF"], truth["c_tau_pF"]],
-                    [20.0, cell.taus(2)[1] * 1e3, 200.0, 1.0, 5.0, cell.c_total_F * 1e12,
-                     100.0], rtol=1e-12)
+    assert_allclose(
+        [
+            truth["tau0_ms"],
+            truth["tau1_ms"],
+            truth["r_in_MOhm"],
+            truth["L"],
+            truth["rho"],
+            truth["c_total_pF"],
+            truth["c_tau_pF"],
+        ],
+        [20.0, cell.taus(2)[1] * 1e3, 200.0, 1.0, 5.0, cell.c_total_F * 1e12, 100.0],
+        rtol=1e-12,
+    )
     assert_allclose(truth["L_cyl_naive"], 1.1443, atol=5e-5)  # REFERENCES.md §4 [der]
     assert_allclose(truth["b1_over_b0"], 0.2034, atol=5e-5)  # REFERENCES.md §4 [der]
     assert_allclose(truth["c1_over_c0"], 1.7365, atol=5e-5)  # REFERENCES.md §4 [der]
@@ -197,7 +208,8 @@ def test_reproducible_by_seed():
     a, _ = simulate(hum_V=0.1e-3, events_per_s=3.0)
     b, _ = simulate(hum_V=0.1e-3, events_per_s=3.0)
     c, _ = simulate(hum_V=0.1e-3, events_per_s=3.0, seed=5)
-    assert all(np.array_equal(x.voltage, y.voltage) for x, y in zip(a.sweeps, b.sweeps))
+    pairs = zip(a.sweeps, b.sweeps, strict=True)
+    assert all(np.array_equal(x.voltage, y.voltage) for x, y in pairs)
     assert a.sha256 == b.sha256 != c.sha256
     assert not np.allclose(a.sweeps[0].voltage, c.sweeps[0].voltage)
 
@@ -219,9 +231,14 @@ def test_drift_hum_and_events():
 
 def test_pulse_protocol_truth():
     cell = CELLS["L1-rho5"]
-    rec, truth = simulate_recording(cell, protocol=PulseProtocol(0.05, 0.5e-3, 1e-9),
-                                    sweep_duration_s=0.3, n_sweeps=3, noise_sd_V=0.0,
-                                    filter_hz=None)
+    rec, truth = simulate_recording(
+        cell,
+        protocol=PulseProtocol(0.05, 0.5e-3, 1e-9),
+        sweep_duration_s=0.3,
+        n_sweeps=3,
+        noise_sd_V=0.0,
+        filter_hz=None,
+    )
     assert truth["protocol"] == "pulse" and truth["charge_pC"] == pytest.approx(0.5)
     assert np.count_nonzero(rec.sweeps[0].current) == 10
     # square-pulse amplitudes at the pulse end: REFERENCES.md §1 duration factor [der]
@@ -245,7 +262,8 @@ def test_bad_arguments():
 
 
 def test_cylinder_truth_is_json_ready():
-    rec, truth = simulate_recording(CELLS["cylinder-L1.5"], protocol=STEPS, n_sweeps=1,
-                                    sweep_duration_s=0.6)
+    rec, truth = simulate_recording(
+        CELLS["cylinder-L1.5"], protocol=STEPS, n_sweeps=1, sweep_duration_s=0.6
+    )
     assert math.isinf(truth["rho"])
     assert json.loads(truth_to_json(truth))["rho"] is None

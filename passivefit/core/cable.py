@@ -15,13 +15,13 @@ plain-words reason when its inputs admit no answer; none of them returns NaN.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 
 import numpy as np
 
+from passivefit.core.qc import Flag
+
 __all__ = [
     "CableFitError",
-    "Flag",
     "ballstick_alphas",
     "ballstick_tau_ratios",
     "b0_over_vinf",
@@ -49,15 +49,6 @@ _Z95 = 1.959963984540054  # two-sided 95 % normal quantile
 
 class CableFitError(ValueError):
     """The measured quantities admit no cable-model answer; the message says why."""
-
-
-@dataclass(frozen=True)
-class Flag:
-    """A plausibility warning: a code of our own, a plain-words reason, the value."""
-
-    code: str
-    message: str
-    value: float | None = None
 
 
 def _positive(name: str, value: float | None) -> float:
@@ -193,7 +184,7 @@ def ballstick_tau_ratios(L: float, rho: float, n: int) -> np.ndarray:
 
 
 def _pulse_ratio_s(alpha: np.ndarray | float, L: float, s: float) -> np.ndarray | float:
-    """C_k/C_0 = 2 rho_inf (L rho_inf + 1) / (L rho_inf^2 + rho_inf + L alpha^2), with s = 1/rho_inf."""
+    """C_k/C_0 = 2 rho_inf (L rho_inf + 1)/(L rho_inf^2 + rho_inf + L alpha^2); s = 1/rho_inf."""
     return 2.0 * (L + s) / (L + s + L * (alpha * s) ** 2)
 
 
@@ -250,8 +241,9 @@ def square_pulse_factor(tau0: float, tau_n: float, duration_s: float) -> float:
 _KIND_NAMES = {"pulse": "C1/C0", "step": "B1/B0", "square": "C1/C0 (square pulse)"}
 
 
-def _brief_pulse_ratio(tau0: float, tau1: float, ratio: float, kind: str,
-                       duration_s: float | None) -> float:
+def _brief_pulse_ratio(
+    tau0: float, tau1: float, ratio: float, kind: str, duration_s: float | None
+) -> float:
     """The measured amplitude ratio converted to the C1/C0 of a brief pulse."""
     if kind == "pulse":
         return ratio
@@ -259,13 +251,16 @@ def _brief_pulse_ratio(tau0: float, tau1: float, ratio: float, kind: str,
         return ratio * tau0 / tau1
     if kind == "square":
         if duration_s is None:
-            raise CableFitError("`duration_s` is needed for kind='square' (the pulse duration in s)")
+            raise CableFitError(
+                "`duration_s` is needed for kind='square' (the pulse duration in s)"
+            )
         return ratio / square_pulse_factor(tau0, tau1, duration_s)
     raise ValueError(f"`kind` must be 'step', 'pulse' or 'square', got {kind!r}")
 
 
-def estimate_ballstick(tau0: float, tau1: float, ratio: float, kind: str = "pulse",
-                       duration_s: float | None = None) -> tuple[float, float]:
+def estimate_ballstick(
+    tau0: float, tau1: float, ratio: float, kind: str = "pulse", duration_s: float | None = None
+) -> tuple[float, float]:
     """L and rho of a uniform ball-and-stick from tau0, tau1 and the first amplitude ratio.
 
     REFERENCES.md §2: with alpha1 = sqrt(tau0/tau1 - 1), L is searched in
@@ -328,9 +323,14 @@ def estimate_ballstick(tau0: float, tau1: float, ratio: float, kind: str = "puls
     return L, math.tanh(L) * a1 / -math.tan(x)
 
 
-def estimate_ballstick_ci(tau0: float, tau1: float, ratio: float, cov: np.ndarray,
-                          kind: str = "pulse",
-                          duration_s: float | None = None) -> tuple[float, float]:
+def estimate_ballstick_ci(
+    tau0: float,
+    tau1: float,
+    ratio: float,
+    cov: np.ndarray,
+    kind: str = "pulse",
+    duration_s: float | None = None,
+) -> tuple[float, float]:
     """95 % CI half-widths of (L, rho) from :func:`estimate_ballstick`.
 
     First-order (delta-method) propagation of the covariance of (tau0, tau1, ratio)
@@ -408,7 +408,7 @@ def rho_from_amplitudes_step(v_inf: float, b0: float, L: float) -> float:
 
 
 def rho_from_amplitudes_pulse(q: float, r_n: float, c0: float, tau0: float, L: float) -> float:
-    """rho from the pulse amplitudes: (Q*R_N - C0*tau0)/(C0*tau0*L*coth L - Q*R_N) (REFERENCES.md §2).
+    """rho from pulse amplitudes: (Q*R_N - C0*tau0)/(C0*tau0*L*coth L - Q*R_N) (REFERENCES.md §2).
 
     Parameters
     ----------
@@ -493,10 +493,16 @@ def _valid(*values: float | None) -> bool:
     return all(v is not None and math.isfinite(v) and v > 0 for v in values)
 
 
-def plausibility_flags(*, tau0: float | None = None, tau1: float | None = None,
-                       tau2: float | None = None, c1_over_c0: float | None = None,
-                       b1_over_b0: float | None = None, L: float | None = None,
-                       rho: float | None = None) -> list[Flag]:
+def plausibility_flags(
+    *,
+    tau0: float | None = None,
+    tau1: float | None = None,
+    tau2: float | None = None,
+    c1_over_c0: float | None = None,
+    b1_over_b0: float | None = None,
+    L: float | None = None,
+    rho: float | None = None,
+) -> list[Flag]:
     """Warnings about cable estimates that a uniform passive ball-and-stick cannot produce.
 
     Checks (each only when its inputs are given and finite): the tau2 ratio
@@ -514,25 +520,53 @@ def plausibility_flags(*, tau0: float | None = None, tau1: float | None = None,
     if _valid(tau0, tau1, tau2) and tau2 < tau1 < tau0:
         q = (tau0 / tau2 - 1.0) / (tau0 / tau1 - 1.0)
         if not 4.0 <= q <= 9.0:
-            flags.append(Flag(
-                "cable.tau2_ratio",
-                f"(tau0/tau2 - 1)/(tau0/tau1 - 1) = {q:.2f} is outside 4-9, the range of a "
-                "uniform ball-and-stick: tau1 or tau2 is unreliable, or the cell is not uniform",
-                q))
+            flags.append(
+                Flag(
+                    "cable.tau2_ratio",
+                    f"(tau0/tau2 - 1)/(tau0/tau1 - 1) = {q:.2f} is outside 4-9, the range of "
+                    "a uniform ball-and-stick: tau1 or tau2 is unreliable, or the cell is "
+                    "not uniform",
+                    q,
+                )
+            )
     shunt = "not a uniform passive cell (somatic shunt or non-uniform membrane?)"
     if c1_over_c0 is not None and math.isfinite(c1_over_c0) and c1_over_c0 > 2.0:
-        flags.append(Flag("cable.shunt_suspected",
-                          f"pulse C1/C0 = {c1_over_c0:.3f} exceeds 2: {shunt}", c1_over_c0))
-    if (b1_over_b0 is not None and math.isfinite(b1_over_b0) and _valid(tau0, tau1)
-            and b1_over_b0 > 2.0 * tau1 / tau0):
-        flags.append(Flag("cable.shunt_suspected",
-                          f"step B1/B0 = {b1_over_b0:.3f} exceeds 2*tau1/tau0 = "
-                          f"{2.0 * tau1 / tau0:.3f}: {shunt}", b1_over_b0))
+        flags.append(
+            Flag(
+                "cable.shunt_suspected",
+                f"pulse C1/C0 = {c1_over_c0:.3f} exceeds 2: {shunt}",
+                c1_over_c0,
+            )
+        )
+    if (
+        b1_over_b0 is not None
+        and math.isfinite(b1_over_b0)
+        and _valid(tau0, tau1)
+        and b1_over_b0 > 2.0 * tau1 / tau0
+    ):
+        flags.append(
+            Flag(
+                "cable.shunt_suspected",
+                f"step B1/B0 = {b1_over_b0:.3f} exceeds 2*tau1/tau0 = "
+                f"{2.0 * tau1 / tau0:.3f}: {shunt}",
+                b1_over_b0,
+            )
+        )
     if L is not None and math.isfinite(L) and not 0.1 <= L <= 3.0:
-        flags.append(Flag("cable.L_range",
-                          f"L = {L:.3g} is outside 0.1-3, unusual for a neuron: check tau1", L))
+        flags.append(
+            Flag(
+                "cable.L_range",
+                f"L = {L:.3g} is outside 0.1-3, unusual for a neuron: check tau1",
+                L,
+            )
+        )
     if rho is not None and math.isfinite(rho) and not 0.1 <= rho <= 100.0:
-        flags.append(Flag("cable.rho_range",
-                          f"rho = {rho:.3g} is outside 0.1-100, unusual for a neuron: check "
-                          "the amplitude ratio", rho))
+        flags.append(
+            Flag(
+                "cable.rho_range",
+                f"rho = {rho:.3g} is outside 0.1-100, unusual for a neuron: check "
+                "the amplitude ratio",
+                rho,
+            )
+        )
     return flags
