@@ -20,12 +20,13 @@ def charging_recording(
 ) -> Recording:
     """Sweeps of a single-exponential charge to a hyperpolarizing step, with noise.
 
-    Step from 10 ms for half the sweep; -40 pA, -60 pA, ...; R_in 150 MOhm, tau 15 ms,
+    Step from 10 % of the sweep for half the sweep; -40 pA, -60 pA, ...; R_in 150 MOhm, tau 15 ms,
     rest -68 mV, 0.1 mV noise. Values are not used for fitting, only round trips.
     """
     rng = np.random.default_rng(seed)
     t = np.arange(n_samples) / rate_hz
-    onset, duration = 0.010, 0.5 * n_samples / rate_hz
+    length_s = n_samples / rate_hz
+    onset, duration = 0.1 * length_s, 0.5 * length_s
     on = (t >= onset) & (t < onset + duration)
     sweeps = []
     for k in range(n_sweeps):
