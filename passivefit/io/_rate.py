@@ -62,8 +62,10 @@ def rate_from_times(t_s: np.ndarray) -> float:
     if np.any(steps <= 0):
         bad = int(np.flatnonzero(steps <= 0)[0]) + 1
         raise ValueError(f"time does not increase at sample {bad} ({t[bad - 1]!r} then {t[bad]!r})")
-    dt = (t[-1] - t[0]) / (t.size - 1)
-    off_grid = np.abs(t - (t[0] + np.arange(t.size) * dt))
+    # least-squares line through (index, time): rounding of the times averages out
+    index = np.arange(t.size) - 0.5 * (t.size - 1)
+    dt = float(np.dot(index, t - t.mean()) / np.dot(index, index))
+    off_grid = np.abs(t - (t.mean() + index * dt))
     worst = int(np.argmax(off_grid))
     if off_grid[worst] > _GRID_TOLERANCE * dt:
         raise ValueError(
