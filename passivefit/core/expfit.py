@@ -11,13 +11,15 @@ Problems 19:R1). The Jacobian of the projected residual is the full
 Golub–Pereyra form, used by a small Levenberg–Marquardt loop (see
 :func:`_levenberg_marquardt` for why not :func:`scipy.optimize.least_squares`).
 
-Segments are padded to a common length with zero-weight rows so that every
-linear solve runs as one batched SVD: no Python loop over samples or segments
-on the hot path (the linear solve uses the column-scaled normal equations, by
-symmetric eigendecomposition, which is fast and accurate for the conditioning of
-sums of exponentials with tau ratios above ~1.05). Samples may be non-uniform with per-sample weights (see
-:func:`decimate_tail`), so the late, slow part of a transient can be averaged
-into bins while the early, fast part stays at full resolution.
+Segments are padded to a common length with zero-weight rows so that all
+linear solves run as one batched call: no Python loop over samples or segments
+on the hot path. The linear solve orthonormalises each design matrix through
+its column-scaled Gram matrix (a symmetric eigendecomposition): much faster
+than an SVD of a tall, thin matrix and accurate for the conditioning of sums of
+exponentials whose taus differ by more than a few per cent. Samples may be
+non-uniform with per-sample weights (see :func:`decimate_tail`), so the late,
+slow part of a transient can be averaged into bins while the early, fast part
+stays at full resolution.
 
 All quantities are SI (s, V).
 """
@@ -226,7 +228,9 @@ class _Projected:
         q = (phi / norms[:, None, :]) @ (vec * inv_sqrt[:, None, :])
         proj = np.einsum("snp,sn->sp", q, self.yw)
         self.q, self.e = q, e
-        self.m = inv_sqrt[:, :, None] * np.swapaxes(vec, 1, 2) / norms[:, None, :]  # (Phi^+)^T = q @ m
+        self.m = (
+            inv_sqrt[:, :, None] * np.swapaxes(vec, 1, 2) / norms[:, None, :]
+        )  # (Phi^+)^T = q @ m
         self.coef = np.einsum("spj,sp->sj", self.m, proj)
         self.resid = self.yw - np.einsum("snp,sp->sn", q, proj)
         self._cache_key = key
@@ -337,7 +341,9 @@ def _levenberg_marquardt(
         theta, r, cost = trial, r_trial, cost_trial
         lam = max(lam * 0.1, 1e-12)
         # negligible against the statistical error of theta, or against rounding
-        se = np.sqrt(cost / max(prob.n_points - prob.n_params, 1) * np.abs(np.diag(np.linalg.pinv(hess))))
+        se = np.sqrt(
+            cost / max(prob.n_points - prob.n_params, 1) * np.abs(np.diag(np.linalg.pinv(hess)))
+        )
         if np.all(moved < np.maximum(_XTOL, _SE_FRACTION * se)) or decrease <= _FTOL * cost:
             return _Solution(theta, 0.5 * cost, 1, "converged")
     return _Solution(theta, 0.5 * cost, 0, f"no convergence in {max_iter} iterations")
@@ -390,7 +396,9 @@ def fit_exponentials(
     if tau_init is not None:
         tau0 = np.asarray(tau_init, dtype=float).ravel()
         if tau0.size != n_components or np.any(~np.isfinite(tau0)) or np.any(tau0 <= 0):
-            raise ValueError(f"`tau_init` must hold {n_components} positive values (s), got {tau_init!r}")
+            raise ValueError(
+                f"`tau_init` must hold {n_components} positive values (s), got {tau_init!r}"
+            )
     else:
         tau0 = _peel_init(checked, n_components)
     starts = [] if tau0 is None else [np.log(np.sort(tau0)[::-1] / prob.scale)]
@@ -567,7 +575,9 @@ def fit_auto(
         per_n[n] = _record(fits[n]) | {"problems": _component_problems(fits[n])}
         if n == 1:
             if per_n[1]["problems"]:
-                reason = "one exponential (nothing simpler), but: " + "; ".join(per_n[1]["problems"])
+                reason = "one exponential (nothing simpler), but: " + "; ".join(
+                    per_n[1]["problems"]
+                )
             continue
         prev = fits[n - 1]
         extra = fits[n].n_params - prev.n_params
@@ -587,7 +597,9 @@ def fit_auto(
             stopped = True
         else:
             chosen = n
-            reason = f"{n} chosen: BIC fell by {prev.bic - fits[n].bic:.1f}, F-test p = {p_value:.3g}"
+            reason = (
+                f"{n} chosen: BIC fell by {prev.bic - fits[n].bic:.1f}, F-test p = {p_value:.3g}"
+            )
     record = {
         "criterion": "BIC + F-test (p < 0.01) + sound components",
         "per_n": per_n,

@@ -12,9 +12,10 @@ in proportion to time, so early samples stay single and late ones are averaged),
 which suits exponentials on several time scales and makes it cheap. Windows are
 chosen from the noise level: a stage uses the bins up to where the remainder
 (averaged with the next four bins) falls below ``snr`` noise standard deviations
-or 1/1000 of its peak (three bins running; a semilog line by eye rarely spans more than three decades); every stage
-except the last keeps only the late part of that span (from ``late_start`` of
-the way along it), where faster components have died out.
+or 1/1000 of its peak (three bins running; a semilog line drawn by eye rarely
+spans more than three decades); every stage except the last keeps only the
+late part of that span (from ``late_start`` of the way along it), where faster
+components have died out.
 
 All quantities are SI (s, V); logs are natural logs of volts.
 """
@@ -89,7 +90,9 @@ def check_samples(t, y, weight, label: str) -> tuple[np.ndarray, np.ndarray, np.
     t = np.asarray(t, dtype=float).ravel()
     y = np.asarray(y, dtype=float).ravel()
     if t.shape != y.shape:
-        raise ValueError(f"{label}: `t` has {t.size} samples but `y` has {y.size}; pass equal lengths")
+        raise ValueError(
+            f"{label}: `t` has {t.size} samples but `y` has {y.size}; pass equal lengths"
+        )
     if t.size == 0 or np.all(np.isnan(y)):
         raise ValueError(f"{label}: no data (empty or all-NaN `y`); pass a recorded transient")
     bad = ~np.isfinite(y)
@@ -113,7 +116,8 @@ def check_samples(t, y, weight, label: str) -> tuple[np.ndarray, np.ndarray, np.
 def estimate_asymptote(t: np.ndarray, y: np.ndarray, weight: np.ndarray | None = None) -> float:
     """Asymptote (V) of a decay from its tail, by Aitken extrapolation of block means.
 
-    The last half of the record is cut into three equal time blocks. For a single
+    The last half of the record is cut into three equal blocks (equal sample
+    counts for uniform sampling, equal durations otherwise). For a single
     exponential tail their means ``m1, m2, m3`` form a geometric sequence, so
     ``m3 - (m3 - m2)**2 / ((m3 - m2) - (m2 - m1))`` is the exact asymptote. When
     the steps do not shrink geometrically (already flat, or noise dominates) the
@@ -122,14 +126,16 @@ def estimate_asymptote(t: np.ndarray, y: np.ndarray, weight: np.ndarray | None =
     t = np.asarray(t, dtype=float)
     y = np.asarray(y, dtype=float)
     w = np.ones_like(t) if weight is None else np.asarray(weight, dtype=float)
-    edges = np.linspace(t[0] + 0.5 * (t[-1] - t[0]), t[-1], 4)
-    idx = np.searchsorted(t, edges)
-    idx[-1] = t.size
-    means = []
-    for a, b in zip(idx[:-1], idx[1:], strict=True):
-        if b <= a:
-            return float(np.average(y[-max(1, t.size // 6) :], weights=w[-max(1, t.size // 6) :]))
-        means.append(np.average(y[a:b], weights=w[a:b]))
+    n = t.size
+    if n >= 6 and np.allclose(np.diff(t), t[1] - t[0], rtol=1e-6):
+        size = (n - n // 2) // 3  # uniform: three equal-count blocks ending at the last sample
+        idx = n - size * np.arange(3, -1, -1)
+    else:
+        idx = np.searchsorted(t, np.linspace(t[0] + 0.5 * (t[-1] - t[0]), t[-1], 4))
+        idx[-1] = n
+    if np.any(np.diff(idx) <= 0):
+        return float(np.average(y, weights=w))
+    means = [np.average(y[a:b], weights=w[a:b]) for a, b in zip(idx[:-1], idx[1:], strict=True)]
     m1, m2, m3 = means
     d1, d2 = m2 - m1, m3 - m2
     if d1 == 0 or not 0 < d2 / d1 < 0.9:

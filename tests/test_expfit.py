@@ -1,0 +1,305 @@
+"""Tests of the variable-projection exponential fitter (passivefit.core.expfit)."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from scipy.optimize import brentq
+
+from passivefit.core.expfit import (
+    ExpFit,
+    Segment,
+    crlb_taus,
+    decimate_tail,
+    fit_auto,
+    fit_exponentials,
+    fit_start_scan,
+)
+
+FS = 20_000.0
+DT = 1.0 / FS
+
+
+def transient(t, offset, amps, taus):
+    """offset + sum a_i exp(-t/tau_i)."""
+    return offset + np.exp(-np.asarray(t)[:, None] / np.asarray(taus)) @ np.asarray(amps)
+
+
+def step_pair(taus, amps, rng=None, sigma=0.0, start=0.5e-3, on_s=0.5, off_s=0.4):
+    """Onset (charging, negative amplitudes) and offset (decay) segments of one sweep."""
+    t_on = np.arange(start, on_s, DT)
+    t_off = np.arange(start, off_s, DT)
+    y_on = transient(t_on, -0.065, -np.asarray(amps), taus)
+    y_off = transient(t_off, -0.070, amps, taus)
+    if rng is not None:
+        y_on = y_on + rng.normal(0.0, sigma, t_on.size)
+        y_off = y_off + rng.normal(0.0, sigma, t_off.size)
+    return (t_on, y_on), (t_off, y_off)
+
+
+# ----------------------------------------------------------- exact recovery
+
+
+@pytest.mark.parametrize(
+    ("taus", "amps"),
+    [
+        ([0.030], [5e-3]),
+        ([0.020, 0.0015], [4e-3, 0.8e-3]),
+        ([0.030, 0.004, 0.0006], [4e-3, 1.5e-3, 1e-3]),
+    ],
+)
+def test_exact_recovery_single_segment(taus, amps):
+    t = np.arange(0.2e-3, 0.3, DT)
+    y = transient(t, -0.065, amps, taus)
+    fit = fit_exponentials([Segment(t, y)], len(taus))
+    assert fit.success, fit.message
+    assert_allclose(fit.taus, taus, rtol=1e-6)
+    assert_allclose(fit.amplitudes[0], amps, rtol=1e-6)
+    assert_allclose(fit.offsets, [-0.065], rtol=1e-9)
+    assert_allclose(fit.evaluate(0, t), y, atol=1e-12)
+
+
+@pytest.mark.parametrize("fixed", [False, True])
+def test_exact_recovery_joint_onset_offset(fixed):
+    taus, amps = [0.020, 0.0015], [4e-3, 0.8e-3]
+    (t_on, y_on), (t_off, y_off) = step_pair(taus, amps)
+    segs = [
+        Segment(t_on, y_on, offset=-0.065 if fixed else None),
+        Segment(t_off, y_off, offset=-0.070 if fixed else None),
+    ]
+    fit = fit_exponentials(segs, 2)
+    assert fit.success, fit.message
+    assert_allclose(fit.taus, taus, rtol=1e-6)
+    assert_allclose(fit.amplitudes, [[-4e-3, -0.8e-3], [4e-3, 0.8e-3]], rtol=1e-6)
+    assert_allclose(fit.offsets, [-0.065, -0.070], rtol=1e-9)
+    # a fixed offset is not a parameter: 2 taus + 2x2 amplitudes (+ 2 offsets when free)
+    assert fit.n_params == (6 if fixed else 8)
+    assert fit.n_points == t_on.size + t_off.size
+
+
+def test_exact_recovery_from_bad_start():
+    t = np.arange(0.5e-3, 0.4, DT)
+    y = transient(t, -0.06, [3e-3, 1e-3], [0.025, 0.002])
+    fit = fit_exponentials([Segment(t, y)], 2, tau_init=[1e-4, 8e-5])
+    assert_allclose(fit.taus, [0.025, 0.002], rtol=1e-6)
+
+
+def test_ordering_and_dict_are_plain():
+    t = np.arange(0.5e-3, 0.3, DT)
+    y = transient(t, 0.0, [1e-3, 3e-3], [0.002, 0.02])
+    fit = fit_exponentials([Segment(t, y)], 2, tau_init=[0.001, 0.03])
+    assert fit.taus[0] > fit.taus[1]
+    assert_allclose(fit.amplitudes[0], [3e-3, 1e-3], rtol=1e-6)
+    d = fit.to_dict()
+    assert json.loads(json.dumps(d)) == d
+    assert d["taus_s"] == fit.taus.tolist()
+
+
+# ------------------------------------------------------------------ noise
+
+
+def test_one_exponential_ci_coverage_and_se():
+    rng = np.random.default_rng(20261103)
+    tau, amp, sigma = 0.030, 5e-3, 2e-4
+    t = np.arange(0.0, 0.15, 1e-4)
+    truth = transient(t, -0.065, [amp], [tau])
+    est, se, covered = [], [], 0
+    for _ in range(200):
+        fit = fit_exponentials([Segment(t, truth + rng.normal(0, sigma, t.size))], 1)
+        est.append(fit.taus[0])
+        se.append(fit.tau_se[0])
+        covered += abs(fit.taus[0] - tau) <= fit.tau_ci95[0]
+    est = np.array(est)
+    # coverage of the nominal 95 % CI: loose binomial bounds for 200 trials
+    assert 0.88 <= covered / 200 <= 0.99
+    assert abs(est.mean() - tau) < 3 * est.std() / np.sqrt(est.size)
+    assert np.median(se) == pytest.approx(est.std(ddof=1), rel=0.15)
+    # the least-squares sd reaches the Cramer-Rao bound of the same design
+    bound = crlb_taus(t, sigma, [tau], [amp])[0]
+    assert np.median(se) == pytest.approx(bound, rel=0.05)
+
+
+def test_two_exponential_joint_fit_is_unbiased():
+    rng = np.random.default_rng(7)
+    taus, amps, sigma = [0.020, 0.0015], [4e-3, 0.8e-3], 2e-4
+    est = []
+    for _ in range(40):
+        (t_on, y_on), (t_off, y_off) = step_pair(taus, amps, rng, sigma)
+        segs = [
+            Segment(*decimate_tail(t_on, y_on, 5e-3)),
+            Segment(*decimate_tail(t_off, y_off, 5e-3)),
+        ]
+        est.append(fit_exponentials(segs, 2).taus)
+    est = np.array(est)
+    sem = est.std(axis=0, ddof=1) / np.sqrt(len(est))
+    assert np.all(np.abs(est.mean(axis=0) - taus) < 3.5 * sem)
+    assert np.all(np.abs(est.mean(axis=0) - taus) / taus < [0.01, 0.05])
+
+
+def test_decimated_fit_matches_full_resolution():
+    rng = np.random.default_rng(11)
+    (t_on, y_on), (t_off, y_off) = step_pair([0.020, 0.0015], [4e-3, 0.8e-3], rng, 2e-4)
+    full = fit_exponentials([Segment(t_on, y_on), Segment(t_off, y_off)], 2)
+    dec_segs = [
+        Segment(*decimate_tail(t_on, y_on, 5e-3, 1.05)),
+        Segment(*decimate_tail(t_off, y_off, 5e-3, 1.05)),
+    ]
+    dec = fit_exponentials(dec_segs, 2)
+    assert dec.n_points < full.n_points / 20
+    assert np.all(np.abs(dec.taus - full.taus) < 0.05 * full.tau_ci95)
+    # the noise sd is estimated from ~400 bins instead of ~18,000 samples:
+    # its relative sd is ~sqrt(1/(2*400)) ~ 3.5 %, so CIs agree to ~10 %
+    assert_allclose(dec.tau_ci95, full.tau_ci95, rtol=0.15)
+    assert dec.rmse == pytest.approx(full.rmse, rel=0.15)
+
+
+def test_decimate_tail_weights_count_samples():
+    t = np.arange(0.0, 0.2, DT)
+    y = np.sin(t * 50)
+    td, yd, wd = decimate_tail(t, y, 0.01, 1.1)
+    assert wd.sum() == t.size
+    assert np.all(wd[td <= 0.01] == 1)
+    assert np.all(np.diff(td) > 0)
+    assert wd @ yd == pytest.approx(y.sum(), rel=1e-12)
+    with pytest.raises(ValueError, match="bin_factor"):
+        decimate_tail(t, y, 0.01, 1.0)
+
+
+# ------------------------------------------------------------------ CRLB
+
+
+@pytest.mark.parametrize(
+    ("n_tau", "expected_percent"),
+    [(1, 7.2), (2, 2.0), (3, 1.1), (5, 0.71), (10, 0.53)],
+)
+def test_crlb_offset_unknown_matches_reference(n_tau, expected_percent):
+    # REFERENCES.md §5 precision, offset unknown vs record length [der]
+    tau, dt = 0.030, 0.05e-3
+    t = np.arange(0.0, n_tau * tau, dt)
+    sd = crlb_taus(t, 0.04, [tau], [1.0], offset_known=False)[0]
+    assert 100 * sd / tau == pytest.approx(expected_percent, rel=0.05)
+
+
+def test_crlb_offset_known_long_record_matches_formula():
+    # REFERENCES.md §5: sd(tau)/tau ~ (sigma/A) sqrt(8 dt / tau), offset known, record >> tau [der]
+    tau, dt, sigma, amp = 0.030, 0.05e-3, 0.04, 1.0
+    t = np.arange(0.0, 20 * tau, dt)
+    sd = crlb_taus(t, sigma, [tau], [amp], offset_known=True)[0]
+    assert sd / tau == pytest.approx(sigma / amp * np.sqrt(8 * dt / tau), rel=0.02)
+
+
+def test_crlb_shape_check():
+    with pytest.raises(ValueError, match="amplitudes"):
+        crlb_taus(np.arange(10.0), 0.1, [1.0, 0.1], [1.0])
+
+
+# ------------------------------------------------------------- model choice
+
+
+def test_fit_auto_picks_one_for_single_exponential():
+    rng = np.random.default_rng(3)
+    t = np.arange(0.5e-3, 0.2, DT)
+    y = transient(t, -0.065, [-5e-3], [0.025]) + rng.normal(0, 2e-4, t.size)
+    fit, rec = fit_auto([Segment(*decimate_tail(t, y, 5e-3))], max_components=3)
+    assert rec["chosen"] == 1 and fit.taus.size == 1
+    assert rec["reason"].startswith("1 chosen; 2 rejected")
+    assert set(rec["per_n"]) == {1, 2, 3}
+    assert {"bic", "rss", "problems"} <= set(rec["per_n"][2])
+
+
+def test_fit_auto_picks_two_for_clear_double_exponential():
+    rng = np.random.default_rng(4)
+    (t_on, y_on), (t_off, y_off) = step_pair([0.020, 0.002], [4e-3, 1.5e-3], rng, 1e-4)
+    segs = [Segment(*decimate_tail(t_on, y_on, 5e-3)), Segment(*decimate_tail(t_off, y_off, 5e-3))]
+    fit, rec = fit_auto(segs, max_components=3)
+    assert rec["chosen"] == 2, rec["reason"]
+    assert rec["per_n"][2]["bic"] < rec["per_n"][1]["bic"]
+    assert "3 rejected" in rec["reason"]
+    assert_allclose(fit.taus, [0.020, 0.002], rtol=0.1)
+
+
+# ------------------------------------------------------ ball-and-stick scan
+
+
+def ball_and_stick_step(L, rho, tau0, t, n_modes=300):
+    """Somatic step response (V per V_inf scale) from REFERENCES.md §2 formulas [der]."""
+    rho_inf = rho / np.tanh(L)
+    alpha = np.array(
+        [0.0]
+        + [
+            brentq(
+                lambda x: np.tan(x) + x * np.tanh(L) / (rho * L),
+                (n - 0.5) * np.pi + 1e-12,
+                n * np.pi - 1e-12,
+            )
+            / L
+            for n in range(1, n_modes)
+        ]
+    )
+    c_ratio = 2 * rho_inf * (L * rho_inf + 1) / (L * rho_inf**2 + rho_inf + L * alpha**2)
+    c_ratio[0] = 1.0
+    b = c_ratio / (1 + alpha**2)
+    taus = tau0 / (1 + alpha**2)
+    return -(np.exp(-t[:, None] / taus) @ b), taus, b
+
+
+def test_ball_and_stick_late_start_recovers_table_and_early_start_biases_tau1():
+    t = np.arange(0.0, 0.2, 1e-5)
+    y, taus, b = ball_and_stick_step(1.0, 5.0, 0.020, t)
+    # REFERENCES.md §4 ball-and-stick table, L = 1, rho = 5:
+    # tau0/tau1 = 8.5378, step B1/B0 = 0.2034 [der]
+    assert taus[0] / taus[1] == pytest.approx(8.5378, rel=1e-4)
+    scan = fit_start_scan([Segment(t, y)], [0.5e-3, 2e-3, 4e-3, 8e-3], 2)
+    late = fit_exponentials([Segment(t[t >= 8e-3], y[t >= 8e-3])], 2)
+    assert late.taus[0] / late.taus[1] == pytest.approx(8.5378, rel=1e-3)
+    assert late.amplitudes[0, 1] / late.amplitudes[0, 0] == pytest.approx(0.2034, rel=2e-3)
+    # REFERENCES.md §5: an early 2-exp start absorbs tau2.. into tau1 and biases it low [der]
+    bias = scan["tau1"] / taus[1] - 1
+    assert np.all(bias < 0) and np.all(np.diff(bias) > 0)
+    assert bias[0] < -0.03 and abs(bias[-1]) < 1e-3
+    three = fit_start_scan([Segment(t, y)], [0.5e-3], 3)
+    assert abs(three["tau1"][0] / taus[1] - 1) < abs(bias[0]) / 3
+    assert set(scan) == {"start_s", "tau0", "tau0_ci", "tau1", "tau1_ci", "rmse", "success"}
+
+
+def test_start_scan_too_late_gives_nan():
+    t = np.arange(0.0, 0.05, DT)
+    y = transient(t, 0.0, [1e-3], [0.01])
+    out = fit_start_scan([Segment(t, y)], [0.0, 0.0499], 1)
+    assert np.isfinite(out["tau0"][0]) and np.isnan(out["tau0"][1])
+    assert list(out["success"]) == [True, False]
+
+
+# -------------------------------------------------------------- bad input
+
+
+def test_bad_input_errors():
+    t = np.arange(0.0, 0.01, DT)
+    y = np.exp(-t / 0.003)
+    with pytest.raises(ValueError, match="too few"):
+        fit_exponentials([Segment(t[:4], y[:4])], 2)
+    with pytest.raises(ValueError, match="all-NaN"):
+        fit_exponentials([Segment(t, np.full_like(t, np.nan))], 1)
+    with pytest.raises(ValueError, match="NaN or infinite"):
+        fit_exponentials([Segment(t, np.where(t > 0.005, np.nan, y))], 1)
+    with pytest.raises(ValueError, match="strictly increasing"):
+        fit_exponentials([Segment(t[::-1], y)], 1)
+    with pytest.raises(ValueError, match="equal lengths"):
+        fit_exponentials([Segment(t, y[:-1])], 1)
+    with pytest.raises(ValueError, match="no segments"):
+        fit_exponentials([], 1)
+    with pytest.raises(ValueError, match="tau_init"):
+        fit_exponentials([Segment(t, y)], 2, tau_init=[0.01])
+    with pytest.raises(ValueError, match="weight"):
+        fit_exponentials([Segment(t, y, weight=-np.ones_like(t))], 1)
+
+
+def test_result_type():
+    t = np.arange(0.0, 0.05, DT)
+    fit = fit_exponentials([Segment(t, transient(t, 0.0, [1e-3], [0.01]))], 1)
+    assert isinstance(fit, ExpFit)
+    with pytest.raises(AttributeError):
+        fit.rss = 0.0  # frozen
