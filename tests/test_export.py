@@ -37,7 +37,7 @@ def example_result(name: str = "LOL-2026-11-03-c1", *, tau0_ms: float = 22.0,
             "c1_mV": -0.45 + 0.1 * k, "rmse_mV": 0.081,
             "flags": [] if accepted else ["BASELINE_DRIFT"],
         })
-    return {
+    return _rounded({
         "passivefit_version": "0.1.0",
         "source": {"path": f"/data/lol/2026-11-03/{name}.abf",
                    "sha256": digest or (name.encode().hex() * 8)[:64],
@@ -55,7 +55,16 @@ def example_result(name: str = "LOL-2026-11-03-c1", *, tau0_ms: float = 22.0,
         "sweeps": sweeps,
         "flags": [{"code": "RHO_CI_UNAVAILABLE", "message": "too few sweeps for a rho interval"},
                   {"code": "SEAL_CHECK", "message": "holding current drifted", "value": -31.5}],
-    }
+    })
+
+
+def _rounded(value):
+    """Floats to 6 significant digits, as `to_dict()` reports them."""
+    if isinstance(value, dict):
+        return {k: _rounded(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_rounded(v) for v in value]
+    return float(f"{value:.6g}") if isinstance(value, float) else value
 
 
 def _number(text: str):
@@ -178,7 +187,17 @@ def test_settings_hash_is_canonical():
     b = {"fit_start_ms": 0.5, "components": "auto"}
     assert settings_hash(a) == settings_hash(b)
     assert settings_hash(a) != settings_hash({**a, "fit_start_ms": 0.6})
-    assert len(settings_hash(a)) == 64
+    assert len(settings_hash(a)) == 16
+
+
+def test_settings_hash_matches_the_settings_object():
+    # The database skips analyses by this hash; it must equal the one batch computes.
+    from passivefit.analysis import Settings
+    from passivefit.io.recording import StepSpec
+
+    for settings in (Settings(), Settings(components="2", fit_start_ms=0.8,
+                                          step=StepSpec(0.1, 0.3, -40e-12), sweeps=(0, 2))):
+        assert settings_hash(settings.to_dict()) == settings.settings_hash()
 
 
 def test_flags_text_accepts_objects_and_codes():

@@ -17,7 +17,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from datetime import UTC, datetime
+from datetime import UTC, date, datetime
 from pathlib import Path
 
 from sqlalchemy import create_engine, event, func, select, text, update
@@ -40,7 +40,7 @@ from passivefit.store.models import (
 )
 
 SQLITE_BUSY_TIMEOUT_MS = 60_000
-_WRITE_ATTEMPTS = 4
+_WRITE_ATTEMPTS = 8
 _PG_SCHEMA_LOCK = 0x70617373  # advisory lock id serialising schema creation
 
 
@@ -316,8 +316,21 @@ def _upsert_cell(session: Session, metadata: Mapping, path: str) -> CellRow:
     for key in CELL_METADATA_KEYS:
         value = metadata.get(key)
         if value is not None and value != "":
-            setattr(cell, key, float(value) if key == "temperature_C" else str(value))
+            setattr(cell, key, _cell_value(key, value))
     return cell
+
+
+def _cell_value(key: str, value) -> float | str:
+    """A metadata value as stored: temperature as a number, dates as YYYY-MM-DD."""
+    if key == "temperature_C":
+        return float(value)
+    text = value.isoformat() if isinstance(value, date | datetime) else str(value)
+    if key == "date":
+        try:  # "2026-11-20T00:00:00+00:00" (NWB session start) → "2026-11-20"
+            return date.fromisoformat(text[:10]).isoformat()
+        except ValueError:
+            return text
+    return text
 
 
 def _analysis_row(result: Mapping, digest: str, version: str, when: datetime,

@@ -62,13 +62,13 @@ class CellRow(Base):
     __tablename__ = "cells"
 
     id: Mapped[int] = mapped_column(primary_key=True)
-    cell_id: Mapped[str] = mapped_column(String(200), unique=True)
-    date: Mapped[str | None] = mapped_column(String(10))  # ISO YYYY-MM-DD
-    preparation: Mapped[str | None] = mapped_column(String(200))
-    region: Mapped[str | None] = mapped_column(String(200))
-    cell_type: Mapped[str | None] = mapped_column(String(200))
+    cell_id: Mapped[str] = mapped_column(Text, unique=True)
+    date: Mapped[str | None] = mapped_column(Text)  # ISO YYYY-MM-DD when the source gives one
+    preparation: Mapped[str | None] = mapped_column(Text)
+    region: Mapped[str | None] = mapped_column(Text)
+    cell_type: Mapped[str | None] = mapped_column(Text)
     temperature_C: Mapped[float | None] = mapped_column(Float)
-    internal_solution: Mapped[str | None] = mapped_column(String(200))
+    internal_solution: Mapped[str | None] = mapped_column(Text)
     notes: Mapped[str | None] = mapped_column(Text)
 
     recordings: Mapped[list[RecordingRow]] = relationship(back_populates="cell")
@@ -80,7 +80,7 @@ class RecordingRow(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     sha256: Mapped[str] = mapped_column(String(64), unique=True)
     path: Mapped[str] = mapped_column(Text)
-    format: Mapped[str] = mapped_column(String(16))
+    format: Mapped[str] = mapped_column(String(32))
     sweep_count: Mapped[int] = mapped_column(Integer)
     first_seen: Mapped[datetime] = mapped_column(DateTime(timezone=True))
     cell_pk: Mapped[int | None] = mapped_column(ForeignKey("cells.id"))
