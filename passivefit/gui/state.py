@@ -1,0 +1,438 @@
+"""The review of one recording, free of Qt: settings, current sweep, result, undo, saving.
+
+Widgets edit a :class:`ReviewState` through its methods and redraw when it emits an
+:class:`Event`; the state re-runs the core (`analyze_sweep` for the sweep on screen at
+once, `analyze` for the cell, which a window runs off its UI thread). Nothing here
+imports Qt, so the same review logic runs in tests and scripts without a display.
+
+The review a person makes (windows, accept/reject decisions, settings) is kept in a
+small JSON file of our own beside the recording, ``<recording>.passivefit-review.json``::
+
+    {"format": "passivefit-review", "version": 1, "passivefit_version": "...",
+     "recording": {"file": "cell.nwb", "sha256": "..."}, "saved_at": "2026-11-03T...Z",
+     "current_sweep": 4, "settings": {... Settings.to_dict() ...}}
+
+It is written to a temporary file and renamed over the old one, so a crash never
+leaves half a review.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from dataclasses import dataclass, replace
+from datetime import UTC, datetime
+from pathlib import Path
+
+from passivefit import __version__
+from passivefit.analysis import (
+    RecordingResult,
+    Settings,
+    SweepFit,
+    Windows,
+    analyze,
+    analyze_sweep,
+    sweep_steps,
+)
+from passivefit.io.recording import Recording
+
+REVIEW_FORMAT = "passivefit-review"
+REVIEW_VERSION = 1
+REVIEW_SUFFIX = ".passivefit-review.json"
+WINDOW_NAMES = ("baseline", "steady", "fit")
+MAX_UNDO = 200
+
+
+class ReviewFileError(ValueError):
+    """A review file cannot be used; the message says why and what happens instead."""
+
+
+class Event:
+    """A list of plain callbacks: ``connect(fn)``, ``disconnect(fn)``, ``emit(*args)``."""
+
+    def __init__(self) -> None:
+        self._callbacks: list = []
+
+    def connect(self, callback) -> None:
+        self._callbacks.append(callback)
+
+    def disconnect(self, callback) -> None:
+        self._callbacks.remove(callback)
+
+    def emit(self, *args) -> None:
+        for callback in list(self._callbacks):
+            callback(*args)
+
+
+# ----------------------------------------------------------------------------- review file
+def review_path(recording_path: str | os.PathLike, sha256: str = "") -> Path:
+    """Where the review of a recording is kept.
+
+    Beside the recording when its folder is writable and is not the bundled sample
+    folder; otherwise in the user's state folder
+    (``$XDG_STATE_HOME/passivefit/reviews``), named after the file and its hash.
+    """
+    path = Path(recording_path).resolve()
+    beside = path.with_name(path.name + REVIEW_SUFFIX)
+    if os.access(path.parent, os.W_OK) and not _is_sample_folder(path.parent):
+        return beside
+    state = Path(os.environ.get("XDG_STATE_HOME", Path.home() / ".local" / "state"))
+    return state / "passivefit" / "reviews" / f"{path.name}.{sha256[:12] or 'nohash'}{REVIEW_SUFFIX}"
+
+
+def _is_sample_folder(folder: Path) -> bool:
+    from passivefit.samples import REPO_SAMPLES
+
+    return folder == REPO_SAMPLES.resolve()
+
+
+def review_document(recording: Recording, settings: Settings, current_sweep: int) -> dict:
+    """The JSON object of a review file."""
+    return {
+        "format": REVIEW_FORMAT,
+        "version": REVIEW_VERSION,
+        "passivefit_version": __version__,
+        "recording": {"file": Path(recording.path).name, "sha256": recording.sha256},
+        "saved_at": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "current_sweep": int(current_sweep),
+        "settings": settings.to_dict(),
+    }
+
+
+def write_review(path: str | os.PathLike, document: dict) -> Path:
+    """Write a review file atomically (temporary file in the same folder, then rename)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            json.dump(document, f, indent=2)
+            f.write("\n")
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path
+
+
+def read_review(path: str | os.PathLike, sha256: str = "") -> tuple[Settings, int]:
+    """The settings and current sweep of a review file.
+
+    Raises
+    ------
+    ReviewFileError
+        Not JSON, not a review, a newer version, or made for a different recording
+        (another sha256).
+    """
+    path = Path(path)
+    try:
+        doc = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise ReviewFileError(f"{path}: not a readable review file ({exc}); starting afresh") \
+            from None
+    if not isinstance(doc, dict) or doc.get("format") != REVIEW_FORMAT:
+        raise ReviewFileError(f"{path}: not a {REVIEW_FORMAT} file; starting afresh")
+    if not isinstance(doc.get("version"), int) or doc["version"] > REVIEW_VERSION:
+        raise ReviewFileError(f"{path}: review version {doc.get('version')!r} is newer than "
+                              f"this passivefit reads ({REVIEW_VERSION}); update passivefit")
+    saved_sha = (doc.get("recording") or {}).get("sha256") or ""
+    if sha256 and saved_sha and saved_sha != sha256:
+        raise ReviewFileError(f"{path}: the review was made for a different version of the "
+                              "recording (sha256 differs); starting afresh")
+    try:
+        settings = Settings.from_dict(doc["settings"])
+    except (KeyError, TypeError, ValueError) as exc:
+        raise ReviewFileError(f"{path}: the saved settings are damaged ({exc}); starting "
+                              "afresh") from None
+    return settings, int(doc.get("current_sweep") or 0)
+
+
+# ----------------------------------------------------------------------------- windows
+def result_key(name: str, kind: str) -> str:
+    """The `SweepFit.windows_s` key a window edits: the fit of a brief pulse is its decay."""
+    return "fit_off" if name == "fit" and kind == "pulse" else name
+
+
+def with_window(windows: Windows, name: str, span_ms: tuple[float, float] | None) -> Windows:
+    """`windows` with one window (``baseline``, ``steady`` or ``fit``) set, or None = automatic."""
+    if name not in WINDOW_NAMES:
+        raise ValueError(f"unknown window {name!r}; use one of {', '.join(WINDOW_NAMES)}")
+    if span_ms is not None:
+        start, end = (float(x) for x in span_ms)
+        if not end > start:
+            raise ValueError(f"the {name} window must end after it starts ({start:g} to "
+                             f"{end:g} ms)")
+        span_ms = (start, end)
+    return replace(windows, **{f"{name}_ms": span_ms})
+
+
+@dataclass(frozen=True)
+class SweepStatus:
+    """What the sweep table shows about one sweep's fate."""
+
+    accepted: bool
+    reason: str
+    by_hand: bool
+
+
+# ----------------------------------------------------------------------------- the state
+class ReviewState:
+    """One recording under review.
+
+    Parameters
+    ----------
+    recording : Recording
+    settings : Settings, optional
+        Starting settings (a saved review, when `restore` finds one, replaces them).
+    review_file : path-like or None, optional
+        Where to keep the review; default :func:`review_path` of the recording.
+    restore : bool
+        Read the review file when it exists.
+    autosave : bool
+        Write the review file after every change.
+
+    Events
+    ------
+    current_changed(index)       the sweep on screen changed
+    sweep_refitted(SweepFit)     a live single-sweep fit is ready
+    settings_changed(Settings)   windows or decisions changed (undo, redo included)
+    analysis_needed(Settings)    the cell must be re-analysed with these settings
+    result_changed(RecordingResult)
+    saved(Path)
+    """
+
+    def __init__(self, recording: Recording, settings: Settings | None = None, *,
+                 review_file: str | os.PathLike | None = None, restore: bool = True,
+                 autosave: bool = True) -> None:
+        self.recording = recording
+        self.fs = recording.sample_rate_hz
+        self.review_file = Path(review_file) if review_file else review_path(
+            recording.path, recording.sha256)
+        self.autosave = autosave
+        self.restore_note = ""
+        self.restored = False
+        settings = settings or Settings()
+        position = 0
+        if restore and self.review_file.exists():
+            try:
+                settings, position = read_review(self.review_file, recording.sha256)
+                self.restored = True
+            except ReviewFileError as exc:
+                self.restore_note = str(exc)
+        self.settings = settings
+        self.steps = dict(zip((s.index for s in recording.sweeps),
+                              sweep_steps(recording, settings), strict=True))
+        self.indices = [s.index for s in recording.sweeps
+                        if settings.sweeps is None or s.index in settings.sweeps]
+        if not self.indices:
+            raise ValueError(f"none of the sweeps {list(settings.sweeps or ())} exist in "
+                             f"{recording.path}")
+        self._voltage = {s.index: s.voltage for s in recording.sweeps}
+        self.position = min(max(position, 0), len(self.indices) - 1)
+        self.result: RecordingResult | None = None
+        self.live: dict[int, SweepFit] = {}
+        self._undo: list[Settings] = []
+        self._redo: list[Settings] = []
+        self.current_changed = Event()
+        self.sweep_refitted = Event()
+        self.settings_changed = Event()
+        self.analysis_needed = Event()
+        self.result_changed = Event()
+        self.saved = Event()
+
+    @classmethod
+    def open(cls, path: str | os.PathLike, settings: Settings | None = None,
+             **kwargs) -> ReviewState:
+        """Load a recording (LoadError when it cannot be read) and restore its review."""
+        from passivefit.io import load
+
+        return cls(load(path), settings, **kwargs)
+
+    # ------------------------------------------------------------------ reading
+    @property
+    def current(self) -> int:
+        """Index of the sweep on screen."""
+        return self.indices[self.position]
+
+    def voltage(self, index: int):
+        """Voltage of sweep `index`, in V."""
+        return self._voltage[index]
+
+    def sweep_fit(self, index: int | None = None) -> SweepFit | None:
+        """The newest fit of a sweep: a live refit if there is one, else the analysis's."""
+        index = self.current if index is None else index
+        if index in self.live:
+            return self.live[index]
+        if self.result is not None:
+            return next((f for f in self.result.sweeps if f.index == index), None)
+        return None
+
+    def status(self, index: int) -> SweepStatus | None:
+        """Accepted or not and why; a person's decision shows before the re-analysis ends."""
+        decision = self.settings.decision_for(index)
+        if decision is not None:
+            accepted, reason = decision
+            return SweepStatus(accepted, "" if accepted else (reason or "rejected by hand"), True)
+        fit = self.result_sweep(index)
+        if fit is None:
+            return None
+        return SweepStatus(fit.accepted, fit.reject_reason or "", False)
+
+    def result_sweep(self, index: int) -> SweepFit | None:
+        if self.result is None:
+            return None
+        return next((f for f in self.result.sweeps if f.index == index), None)
+
+    def window_ms(self, name: str, index: int | None = None) -> tuple[float, float] | None:
+        """A window of a sweep as used by its newest fit, in ms from the step onset."""
+        index = self.current if index is None else index
+        fit, step = self.sweep_fit(index), self.steps.get(index)
+        if fit is None or step is None:
+            return None
+        span = fit.windows_s.get(result_key(name, step.kind))
+        if span is None:
+            return None
+        return ((span[0] - step.onset_s) * 1e3, (span[1] - step.onset_s) * 1e3)
+
+    def has_own_windows(self, index: int | None = None) -> bool:
+        index = self.current if index is None else index
+        return index in dict(self.settings.sweep_windows)
+
+    @property
+    def up_to_date(self) -> bool:
+        """True when the cell result belongs to the current settings."""
+        return self.result is not None and self.result.settings == self.settings
+
+    @property
+    def can_undo(self) -> bool:
+        return bool(self._undo)
+
+    @property
+    def can_redo(self) -> bool:
+        return bool(self._redo)
+
+    # ------------------------------------------------------------------ navigation
+    def go_to(self, index: int) -> None:
+        """Show sweep `index` (a sweep number, not a position)."""
+        if index not in self.indices:
+            raise ValueError(f"sweep {index} is not in this review "
+                             f"(sweeps {self.indices[0]}-{self.indices[-1]})")
+        if index != self.current:
+            self.position = self.indices.index(index)
+            self.current_changed.emit(self.current)
+
+    def step_sweep(self, delta: int) -> None:
+        """Move `delta` sweeps forward (negative: back), stopping at the ends."""
+        position = min(max(self.position + delta, 0), len(self.indices) - 1)
+        if position != self.position:
+            self.position = position
+            self.current_changed.emit(self.current)
+
+    # ------------------------------------------------------------------ fitting
+    def refit_sweep(self, index: int | None = None, settings: Settings | None = None) -> SweepFit:
+        """Fit one sweep now with `settings` (default: the current ones) and show it."""
+        index = self.current if index is None else index
+        fit = analyze_sweep(self._voltage[index], self.steps[index], index, self.fs,
+                            settings or self.settings)
+        self.live[index] = fit
+        self.sweep_refitted.emit(fit)
+        return fit
+
+    def preview_window(self, name: str, span_ms: tuple[float, float], *,
+                       this_sweep_only: bool = False) -> SweepFit:
+        """Refit the sweep on screen with a window moved, without keeping the change.
+
+        For live feedback while a window is dragged; :meth:`set_window` keeps it.
+        """
+        return self.refit_sweep(settings=self._window_settings(name, span_ms, this_sweep_only))
+
+    def set_window(self, name: str, span_ms: tuple[float, float] | None, *,
+                   this_sweep_only: bool = False) -> None:
+        """Keep a window (ms from the step onset; None = automatic) and re-analyse.
+
+        With `this_sweep_only` the window applies to the sweep on screen only;
+        otherwise to every sweep (and the sweep on screen loses its own setting of it).
+        """
+        self._change(self._window_settings(name, span_ms, this_sweep_only))
+
+    def reset_windows(self) -> None:
+        """Every window back to automatic, for every sweep."""
+        self._change(replace(self.settings, windows=Windows(), sweep_windows=()))
+
+    def _window_settings(self, name: str, span_ms, this_sweep_only: bool) -> Settings:
+        s, index = self.settings, self.current
+        own = dict(s.sweep_windows).get(index)
+        if this_sweep_only:
+            return s.with_sweep_windows(index, with_window(own or Windows(), name, span_ms))
+        s = replace(s, windows=with_window(s.windows, name, span_ms))
+        if own is not None:
+            rest = with_window(own, name, None)
+            s = s.with_sweep_windows(index, None if rest == Windows() else rest)
+        return s
+
+    def set_decision(self, index: int | None, accepted: bool | None, reason: str = "") -> None:
+        """Accept (True) or reject (False, with a reason) a sweep; None = automatic tests."""
+        index = self.current if index is None else index
+        self._change(self.settings.with_decision(index, accepted, reason))
+
+    def run_analysis(self) -> RecordingResult:
+        """Analyse the cell now, in this thread, and keep the result."""
+        result = self.compute(self.settings)
+        self.accept_result(result)
+        return result
+
+    def compute(self, settings: Settings) -> RecordingResult:
+        """The full analysis with `settings` (safe to call from a worker thread)."""
+        return analyze(self.recording, settings)
+
+    def accept_result(self, result: RecordingResult) -> bool:
+        """Keep a finished analysis unless the settings changed meanwhile (then False)."""
+        if result.settings != self.settings:
+            return False
+        self.result = result
+        self.live.clear()
+        self.result_changed.emit(result)
+        return True
+
+    # ------------------------------------------------------------------ undo
+    def undo(self) -> bool:
+        if not self._undo:
+            return False
+        self._redo.append(self.settings)
+        self._apply(self._undo.pop())
+        return True
+
+    def redo(self) -> bool:
+        if not self._redo:
+            return False
+        self._undo.append(self.settings)
+        self._apply(self._redo.pop())
+        return True
+
+    def _change(self, settings: Settings) -> None:
+        if settings == self.settings:
+            return
+        self._undo = [*self._undo[-(MAX_UNDO - 1):], self.settings]
+        self._redo.clear()
+        self._apply(settings)
+
+    def _apply(self, settings: Settings) -> None:
+        self.settings = settings
+        self.live.clear()
+        self.settings_changed.emit(settings)
+        if self.steps.get(self.current) is not None:
+            self.refit_sweep()
+        if self.autosave:
+            self.save()
+        self.analysis_needed.emit(settings)
+
+    # ------------------------------------------------------------------ saving
+    def save(self, path: str | os.PathLike | None = None) -> Path:
+        """Write the review file (atomically); returns its path."""
+        written = write_review(path or self.review_file,
+                               review_document(self.recording, self.settings, self.current))
+        self.saved.emit(written)
+        return written
