@@ -167,6 +167,10 @@ class Segment:
     end_s: float        # fit end (absolute sweep time)
     index: int          # segment index in the ExpFit
 
+    def samples(self, fs: float) -> slice:
+        """The sweep samples this segment covers."""
+        return slice(int(round(self.start_s * fs)), int(round(self.end_s * fs)) + 1)
+
 
 def fit_curves(fit, segments: tuple[Segment, ...], n: int = 400):
     """(time in s, model voltage in V) of `fit` over each segment."""
@@ -407,12 +411,21 @@ def _response_amplitudes(fit, segment: int, kind: str) -> tuple[float, ...]:
     return tuple(float(x) for x in (-a if kind == "step" else a))
 
 
-def _event_in(v: np.ndarray, model: np.ndarray, fs: float, noise: float) -> float:
-    """Largest excursion of the 1-ms-smoothed residual, in units of its expected noise."""
-    width = max(1, int(1e-3 * fs))
-    resid = steady.smooth(v - model, width)
-    expected = max(noise / np.sqrt(width), 1e-7)
-    return float(np.max(np.abs(resid)) / expected)
+EVENT_Z = 6.0  # 1-ms-smoothed residual this many robust sds away: an event, not noise
+
+
+def residual(v: np.ndarray, fit, seg: Segment, fs: float) -> tuple[np.ndarray, np.ndarray]:
+    """(sample times in s, data − model in V) over one fitted segment at full resolution."""
+    span = seg.samples(fs)
+    t = np.arange(span.start, span.stop) / fs
+    return t, v[span] - fit.evaluate(seg.index, t - seg.edge_s)
+
+
+def _event_in(resid: np.ndarray, fs: float) -> float:
+    """Largest excursion of the 1-ms-smoothed residual, in robust sds of itself."""
+    resid = steady.smooth(resid, max(1, int(1e-3 * fs)))
+    spread = 1.4826 * np.median(np.abs(resid - np.median(resid)))
+    return float(np.max(np.abs(resid - np.median(resid))) / max(spread, 1e-9))
 
 
 def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
@@ -447,7 +460,7 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
     except (ValueError, np.linalg.LinAlgError, RuntimeError) as exc:
         fit, records, fit_error = None, (), f"fit failed: {exc}"
 
-    v_ss = dv = r_in = bridge = sag = None
+    v_ss = dv = r_in = bridge = sag = rmse = None
     amps: tuple[float, ...] = ()
     if step.kind == "step":
         s0, s1 = (_index(t, fs, v.size) for t in wins["steady"])
@@ -467,8 +480,9 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         if v_ss is not None:
             dv = v_ss - v_base
             r_in = dv / step.amplitude_A    # the cell's bridge estimate is subtracted later
-            sag = steady.sag_ratio(v[step.onset: step.offset], v_base, v_ss,
-                                   max(1, int(2e-3 * fs)))
+            width = max(1, int(2e-3 * fs))
+            smooth_noise = steady.noise_sd(steady.smooth(v[b0:b1], width)[width:-width])
+            sag = steady.sag_ratio(v[step.onset: step.offset], v_base, v_ss, width, smooth_noise)
     elif fit is not None:
         amps = _response_amplitudes(fit, 0, "pulse")
 
@@ -478,12 +492,10 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
     elif np.max(v) > -0.010:
         accepted, reason = False, f"action potential (peak {np.max(v) / MV:.0f} mV)"
     elif fit is not None:
-        worst = max(_event_in(v[int(round(r.start_s * fs)): int(round(r.end_s * fs)) + 1],
-                              fit.evaluate(r.index, np.arange(int(round(r.start_s * fs)),
-                                                              int(round(r.end_s * fs)) + 1)
-                                           / fs - r.edge_s), fs, noise)
-                    for r in records)
-        if worst > 8.0:
+        resids = [residual(v, fit, r, fs)[1] for r in records]
+        rmse = float(np.sqrt(np.mean(np.concatenate(resids) ** 2)))
+        worst = max(_event_in(r, fs) for r in resids)
+        if worst > EVENT_Z:
             accepted, reason = False, "spontaneous event in the fit window"
             flags.append(Flag("sweep.event", "a spontaneous event or other excursion from the "
                               "fit (residual in noise units)", worst))
@@ -491,7 +503,7 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         index=index, accepted=accepted, reject_reason=reason, step=step,
         v_rest_V=v_base, dv_ss_V=dv, r_in_ohm=r_in,
         taus_s=tuple(float(t) for t in fit.taus) if fit is not None else (),
-        amps_V=amps, rmse_V=float(fit.rmse) if fit is not None else None,
+        amps_V=amps, rmse_V=rmse,
         bridge_ohm=bridge, sag=sag, noise_V=noise, windows_s=wins, segments=records,
         fit=fit, flags=tuple(flags),
     )
@@ -837,8 +849,7 @@ def _residual_structure(fit, groups: list[GroupAverage], fs: float, flags: list[
     resid = []
     for g in groups:
         for seg in g.segments:
-            a, b = int(round(seg.start_s * fs)), int(round(seg.end_s * fs)) + 1
-            r = g.v_V[a:b] - fit.evaluate(seg.index, np.arange(a, b) / fs - seg.edge_s)
+            r = residual(g.v_V, fit, seg, fs)[1]
             m = r.size // width * width
             resid.append(r[:m].reshape(-1, width).mean(axis=1))
     z = runs_test_z(np.concatenate(resid)) if resid else 0.0
@@ -881,10 +892,10 @@ def _peel(g: GroupAverage, fs: float, fit, n: int):
     from passivefit.core import peel
 
     seg = g.segments[0]
-    a, b = int(round(seg.start_s * fs)), int(round(seg.end_s * fs)) + 1
-    y_inf = float(fit.offsets[seg.index])
+    span = seg.samples(fs)
+    t = np.arange(span.start, span.stop) / fs - seg.edge_s
     try:
-        return peel.peel(np.arange(a, b) / fs - seg.edge_s, g.v_V[a:b], y_inf,
+        return peel.peel(t, g.v_V[span], float(fit.offsets[seg.index]),
                          n_components=max(2, n))
     except (ValueError, np.linalg.LinAlgError):
         return None

@@ -24,7 +24,8 @@ def error_line(path: str | None, message: str) -> str:
     return f"passivefit: error: {where}{message}"
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(command: str | None = None) -> argparse.ArgumentParser:
+    """The argument parser; only `command`'s module is imported (all when None)."""
     parser = argparse.ArgumentParser(
         prog="passivefit",
         description="Passive membrane properties from whole-cell current-clamp recordings.",
@@ -33,7 +34,8 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name, module, help_text in COMMANDS:
         p = sub.add_parser(name, help=help_text, description=help_text)
-        _command_module(module).add_arguments(p)
+        if command in (None, name):
+            _command_module(module).add_arguments(p)
         p.set_defaults(_module=module)
     return parser
 
@@ -58,7 +60,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     if not argv:
         argv = ["gui"]
-    parser = build_parser()
+    names = {name for name, _, _ in COMMANDS}
+    parser = build_parser(next((a for a in argv if a in names), ""))
     args = parser.parse_args(argv)
     if args.command is None:
         parser.print_help()

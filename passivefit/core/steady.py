@@ -15,11 +15,19 @@ def robust_level(v: np.ndarray, trim: float = 0.2) -> float:
 
 
 def noise_sd(v: np.ndarray) -> float:
-    """Robust sd of a window after removing its linear trend (MAD × 1.4826), in the input's unit."""
+    """Robust sd of a window about its linear trend (MAD × 1.4826), in the input's unit.
+
+    The trend is fitted twice, the second time without the samples beyond 5 MADs, so a
+    spike does not tilt it.
+    """
     v = np.asarray(v, dtype=np.float64)
     x = np.arange(v.size)
-    detrended = v - np.polyval(np.polyfit(x, v, 1), x)
-    return float(1.4826 * np.median(np.abs(detrended - np.median(detrended))))
+    keep = np.ones(v.size, dtype=bool)
+    for _ in range(2):
+        detrended = v - np.polyval(np.polyfit(x[keep], v[keep], 1), x)
+        mad = np.median(np.abs(detrended - np.median(detrended)))
+        keep = np.abs(detrended - np.median(detrended)) <= 5 * mad
+    return float(1.4826 * mad)
 
 
 def smooth(v: np.ndarray, width: int) -> np.ndarray:
@@ -31,7 +39,8 @@ def smooth(v: np.ndarray, width: int) -> np.ndarray:
     return np.convolve(v, kernel, "same") / np.convolve(np.ones(len(v)), kernel, "same")
 
 
-def sag_ratio(step_trace: np.ndarray, v_base: float, v_steady: float, width: int) -> float | None:
+def sag_ratio(step_trace: np.ndarray, v_base: float, v_steady: float, width: int,
+              noise: float = 0.0) -> float | None:
     """Steady-state deflection over peak deflection (1 = no sag), or None without a deflection.
 
     Parameters
@@ -42,12 +51,17 @@ def sag_ratio(step_trace: np.ndarray, v_base: float, v_steady: float, width: int
         Baseline and steady-state voltage, in V.
     width : int
         Smoothing width in samples, so noise does not make a peak.
+    noise : float
+        Noise sd of the trace smoothed over `width` samples, in V: a peak less than 4 of
+        these beyond the steady state is noise, and the ratio is 1.
     """
     deflection = v_steady - v_base
     if deflection == 0:
         return None
     smoothed = smooth(step_trace, width)[width:-width or None]
     peak = np.max(smoothed - v_base) if deflection > 0 else np.min(smoothed - v_base)
+    if abs(peak) - abs(deflection) < 4 * noise:
+        return 1.0
     return float(deflection / peak)
 
 

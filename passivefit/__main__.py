@@ -1,0 +1,5 @@
+import sys
+
+from passivefit.cli import main
+
+sys.exit(main())

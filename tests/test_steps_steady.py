@@ -1,0 +1,69 @@
+"""Step detection and steady-state measures."""
+
+import numpy as np
+import pytest
+
+from passivefit.core import steady
+from passivefit.core.steps import PULSE_MAX_S, find_step
+from passivefit.io.recording import StepSpec
+
+FS = 20_000.0
+
+
+def test_find_step_recovers_a_commanded_step():
+    current = StepSpec(0.1, 0.4, -50e-12).command(20_000, FS, 0)
+    step = find_step(current, FS)
+    assert (step.onset, step.offset) == (2000, 10_000)
+    assert step.amplitude_A == pytest.approx(-50e-12)
+    assert step.kind == "step"
+
+
+def test_find_step_on_a_noisy_recorded_current_with_holding_offset():
+    rng = np.random.default_rng(3)
+    current = 20e-12 + StepSpec(0.05, 0.3, 40e-12).command(16_000, FS, 0)
+    current += rng.normal(0, 2e-12, current.size)
+    step = find_step(current, FS)
+    assert abs(step.onset - 1000) <= 1 and abs(step.offset - 7000) <= 1
+    assert step.amplitude_A == pytest.approx(40e-12, rel=0.02)
+
+
+def test_brief_pulse_is_a_pulse_and_flat_command_has_no_step():
+    pulse = StepSpec(0.02, 0.5e-3, 1e-9).command(4000, FS, 0)
+    assert find_step(pulse, FS).kind == "pulse"
+    assert find_step(np.zeros(4000), FS) is None
+    assert PULSE_MAX_S < 0.01
+
+
+def test_step_spec_increment_changes_amplitude_per_sweep():
+    spec = StepSpec(0.1, 0.2, -50e-12, 20e-12)
+    assert [spec.amplitude_of(k) * 1e12 for k in range(3)] == pytest.approx([-50, -30, -10])
+
+
+def test_robust_level_ignores_a_spike_and_noise_sd_a_trend():
+    rng = np.random.default_rng(0)
+    v = -0.07 + rng.normal(0, 1e-4, 4000)
+    v[100:110] += 0.02
+    assert steady.robust_level(v) == pytest.approx(-0.07, abs=2e-5)
+    ramp = v + np.linspace(0, 5e-3, v.size)
+    assert steady.noise_sd(ramp) == pytest.approx(1e-4, rel=0.1)
+
+
+def test_vi_slope_is_input_resistance_and_flags_curvature():
+    i = np.repeat([-50e-12, -30e-12, -10e-12, 10e-12], 5)
+    fit = steady.vi_slope(i, 110e6 * i)
+    assert fit.slope_ohm == pytest.approx(110e6)
+    assert fit.r2 == pytest.approx(1.0)
+    assert fit.curvature == pytest.approx(0.0, abs=1e-9)
+    bent = 110e6 * i + 4e17 * i**2  # rectifying: steeper for hyperpolarization
+    assert steady.vi_slope(i, bent).curvature > 0.15
+    assert steady.vi_slope(i[:10], 110e6 * i[:10]) is None  # two levels only
+
+
+def test_sag_ratio_of_a_sagging_and_a_flat_response():
+    t = np.arange(8000) / FS
+    flat = -0.07 - 5e-3 * (1 - np.exp(-t / 0.02))
+    assert steady.sag_ratio(flat, -0.07, flat[-1], 40) == pytest.approx(1.0, abs=1e-3)
+    # common practice, no source: sag = steady/peak deflection of an h-current-like relaxation
+    sag = flat + 1e-3 * (1 - np.exp(-t / 0.08))
+    ratio = steady.sag_ratio(sag, -0.07, sag[-1], 40)
+    assert 0.75 < ratio < 0.95
