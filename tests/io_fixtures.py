@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import struct
+
 import numpy as np
 
 from passivefit.io import Recording, Sweep
@@ -39,3 +41,97 @@ def charging_recording(
         sweeps.append(Sweep(k, voltage, current if with_current else None))
     metadata = {"cell_id": CELL_ID, "date": DATE, "temperature_C": 32.0, "lab": LAB}
     return Recording(sweeps, rate_hz, metadata=metadata)
+
+
+def abf2_bytes(
+    voltage_counts: np.ndarray,
+    current_counts: np.ndarray,
+    rate_hz: float,
+    epochs: list[tuple[int, float, float, int]],
+    waveform_enabled: bool = True,
+) -> bytes:
+    """A minimal two-channel ABF 2 file (IN 0 in mV, IN 1 in pA, OUT 0 in pA).
+
+    Built here from the section layout that pyabf's reader uses (pyabf/abf2/*.py,
+    byte offsets in its comments), since no ABF 2 sample may be downloaded.
+    Gains: 0.01 mV and 0.1 pA per count. `epochs` are (type, first level pA,
+    level increment pA, duration in samples) of the DAC 0 epoch table.
+
+    Parameters
+    ----------
+    voltage_counts, current_counts : ndarray of int16, shape (sweeps, samples)
+    rate_hz : float
+    epochs : list of tuple
+    waveform_enabled : bool
+        Whether DAC 0 plays its epoch table.
+    """
+    sweeps, samples = voltage_counts.shape
+    strings = b"\0\0" + b"\0".join([
+        b"Clampex", b"C:\\protocols\\lol-steps.pro", b"IN 0", b"mV", b"IN 1", b"pA",
+        b"OUT 0", b"pA", b"LOL-2026-11-03-c1 bath 32 C",
+    ])  # indices 1..9; no trailing NUL (pyabf splits after the last double NUL)
+    blocks: dict[str, bytearray] = {}
+
+    header = bytearray(512)
+    struct.pack_into("<4s4B", header, 0, b"ABF2", 0, 0, 6, 2)
+    struct.pack_into("<IIII", header, 8, 512, sweeps, 20261103, 14 * 3_600_000 + 22 * 60_000 + 5250)
+    struct.pack_into("<I", header, 60, 1)  # uCreatorNameIndex
+    struct.pack_into("<I", header, 72, 2)  # uProtocolPathIndex
+
+    protocol = bytearray(512)
+    struct.pack_into("<hf", protocol, 0, 5, 1e6 / rate_hz)  # episodic, sample interval us
+    struct.pack_into("<i", protocol, 22, samples)
+    struct.pack_into("<fxxxxi", protocol, 110, 10.0, 32768)  # fADCRange, lADCResolution
+    struct.pack_into("<i", protocol, 132, 9)  # lFileCommentIndex
+    struct.pack_into("<h", protocol, 142, 0)  # nActiveDACChannel
+    blocks["protocol"] = protocol
+
+    adc = bytearray(256)
+    for i, (per_count, name, unit) in enumerate([(0.01, 3, 4), (0.1, 5, 6)]):
+        base = 128 * i
+        struct.pack_into("<hh", adc, base, i, 0)  # nADCNum, nTelegraphEnable
+        struct.pack_into("<hhf", adc, base + 24, i, i, 1.0)  # PtoL map, sampling seq, prog gain
+        struct.pack_into("<ffff", adc, base + 40, 10.0 / 32768 / per_count, 0.0, 1.0, 0.0)
+        struct.pack_into("<ii", adc, base + 74, name, unit)
+    blocks["adc"] = adc
+
+    dac = bytearray(512)
+    for i in range(2):
+        base = 256 * i
+        struct.pack_into("<h", dac, base, i)
+        struct.pack_into("<ii", dac, base + 24, 7, 8)  # name, units indices
+        struct.pack_into("<hhh", dac, base + 40, int(waveform_enabled and i == 0), 1, 0)
+    blocks["dac"] = dac
+
+    epoch_digital = bytearray(4 * len(epochs))
+    for k in range(len(epochs)):
+        struct.pack_into("<hh", epoch_digital, 4 * k, k, 0)
+    blocks["epoch"] = epoch_digital
+
+    per_dac = bytearray(48 * len(epochs))
+    for k, (kind, level, increment, duration) in enumerate(epochs):
+        struct.pack_into("<hhhffii", per_dac, 48 * k, k, 0, kind, level, increment, duration, 0)
+    blocks["per_dac"] = per_dac
+
+    synch = bytearray(8 * sweeps)  # per sweep: first sample, length (all channels)
+    for k in range(sweeps):
+        struct.pack_into("<ii", synch, 8 * k, 2 * samples * k, 2 * samples)
+    blocks["synch"] = synch
+
+    blocks["strings"] = bytearray(strings)
+    data = np.empty((sweeps, samples, 2), dtype="<i2")
+    data[:, :, 0], data[:, :, 1] = voltage_counts, current_counts
+    blocks["data"] = bytearray(data.tobytes())
+
+    # section map: (map offset, entry size, entry count) per block, in file order
+    layout = {
+        "protocol": (76, 512, 1), "adc": (92, 128, 2), "dac": (108, 256, 2),
+        "epoch": (124, 4, len(epochs)), "per_dac": (156, 48, len(epochs)),
+        "synch": (316, 8, sweeps), "strings": (220, len(strings), 1),
+        "data": (236, 2, data.size),
+    }
+    out = header
+    for name, (offset, size, count) in layout.items():
+        struct.pack_into("<IIi", out, offset, len(out) // 512, size, count)
+        out += blocks[name] + bytes(-len(blocks[name]) % 512)
+    return bytes(out)
