@@ -66,10 +66,19 @@ def abf2_bytes(
         Whether DAC 0 plays its epoch table.
     """
     sweeps, samples = voltage_counts.shape
-    strings = b"\0\0" + b"\0".join([
-        b"Clampex", b"C:\\protocols\\lol-steps.pro", b"IN 0", b"mV", b"IN 1", b"pA",
-        b"OUT 0", b"pA", b"LOL-2026-11-03-c1 bath 32 C",
-    ])  # indices 1..9; no trailing NUL (pyabf splits after the last double NUL)
+    strings = b"\0\0" + b"\0".join(
+        [
+            b"Clampex",
+            b"C:\\protocols\\lol-steps.pro",
+            b"IN 0",
+            b"mV",
+            b"IN 1",
+            b"pA",
+            b"OUT 0",
+            b"pA",
+            b"LOL-2026-11-03-c1 bath 32 C",
+        ]
+    )  # indices 1..9; no trailing NUL (pyabf splits after the last double NUL)
     blocks: dict[str, bytearray] = {}
 
     header = bytearray(512)
@@ -125,9 +134,13 @@ def abf2_bytes(
 
     # section map: (map offset, entry size, entry count) per block, in file order
     layout = {
-        "protocol": (76, 512, 1), "adc": (92, 128, 2), "dac": (108, 256, 2),
-        "epoch": (124, 4, len(epochs)), "per_dac": (156, 48, len(epochs)),
-        "synch": (316, 8, sweeps), "strings": (220, len(strings), 1),
+        "protocol": (76, 512, 1),
+        "adc": (92, 128, 2),
+        "dac": (108, 256, 2),
+        "epoch": (124, 4, len(epochs)),
+        "per_dac": (156, 48, len(epochs)),
+        "synch": (316, 8, sweeps),
+        "strings": (220, len(strings), 1),
         "data": (236, 2, data.size),
     }
     out = header

@@ -101,8 +101,12 @@ class ReaderContract:
 class TestNWBContract(ReaderContract):
     extension = ".nwb"
     format_name = "nwb"
-    kept_metadata = {"cell_id": CELL_ID, "date": DATE, "temperature_C": 32.0,
-                     "lab": "Lindqvist-Okafor Lab of Dendritic Physiology"}
+    kept_metadata = {
+        "cell_id": CELL_ID,
+        "date": DATE,
+        "temperature_C": 32.0,
+        "lab": "Lindqvist-Okafor Lab of Dendritic Physiology",
+    }
 
     def voltage_tolerance(self, written, path):
         # stored as float32 mV: half an ulp of the largest |mV| value
@@ -119,8 +123,12 @@ class TestNWBContract(ReaderContract):
 class TestCSVContract(ReaderContract):
     extension = ".csv"
     format_name = "csv"
-    kept_metadata = {"cell_id": CELL_ID, "date": DATE, "temperature_C": 32.0,
-                     "lab": "Lindqvist-Okafor Lab of Dendritic Physiology"}
+    kept_metadata = {
+        "cell_id": CELL_ID,
+        "date": DATE,
+        "temperature_C": 32.0,
+        "lab": "Lindqvist-Okafor Lab of Dendritic Physiology",
+    }
 
     def voltage_tolerance(self, written, path):
         # 10 significant digits: each value within 5e-10 of its own magnitude
@@ -131,8 +139,9 @@ class TestTSVContract(TestCSVContract):
     extension = ".tsv"
 
     def test_tab_separated(self, written):
-        header = [ln for ln in Path(written[1]).read_text().splitlines()
-                  if not ln.startswith("#")][0]
+        header = [ln for ln in Path(written[1]).read_text().splitlines() if not ln.startswith("#")][
+            0
+        ]
         assert header.split("\t")[:3] == ["time_ms", "V0_mV", "I0_pA"]
 
 

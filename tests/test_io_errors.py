@@ -16,8 +16,9 @@ EXTENSIONS = [".abf", ".nwb", ".csv"]
 
 
 def _saved(tmp_path: Path, ext: str, recording: Recording | None = None) -> Path:
-    return save(recording or charging_recording(n_sweeps=2, n_samples=2500),
-                tmp_path / f"cell{ext}")
+    return save(
+        recording or charging_recording(n_sweeps=2, n_samples=2500), tmp_path / f"cell{ext}"
+    )
 
 
 @pytest.mark.parametrize("ext", EXTENSIONS)

@@ -19,7 +19,10 @@ from io_fixtures import charging_recording
 from passivefit.io import LoadError, load, save
 
 FUZZ = settings(
-    max_examples=40, derandomize=True, database=None, deadline=None,
+    max_examples=40,
+    derandomize=True,
+    database=None,
+    deadline=None,
     suppress_health_check=[HealthCheck.function_scoped_fixture],
 )
 # NWB examples cost ~0.1 s each (HDF5 open + pynwb object mapping)
@@ -57,8 +60,13 @@ def test_truncated_anywhere(tmp_path, folder, ext, fraction):
 
 @pytest.mark.parametrize("ext", FORMATS)
 @FUZZ
-@given(flips=st.lists(st.tuples(st.floats(0.0, 1.0, exclude_max=True),
-                                st.integers(1, 255)), min_size=1, max_size=12))
+@given(
+    flips=st.lists(
+        st.tuples(st.floats(0.0, 1.0, exclude_max=True), st.integers(1, 255)),
+        min_size=1,
+        max_size=12,
+    )
+)
 def test_flipped_bytes(tmp_path, folder, ext, flips):
     data = bytearray(_valid_bytes(ext, folder))
     for where, mask in flips:
@@ -78,8 +86,7 @@ def test_nan_patterns_written_into_binary_files(tmp_path, folder, ext, spots):
 
 
 @FUZZ
-@given(cells=st.lists(st.tuples(st.integers(0, 1199), st.integers(0, 4)), min_size=1,
-                      max_size=8))
+@given(cells=st.lists(st.tuples(st.integers(0, 1199), st.integers(0, 4)), min_size=1, max_size=8))
 def test_nan_cells_in_a_table(tmp_path, folder, cells):
     lines = _valid_bytes(".csv", folder).decode().splitlines()
     header_at = next(i for i, line in enumerate(lines) if not line.startswith("#"))

@@ -20,8 +20,10 @@ N = 1500
 
 def _file(**kwargs) -> tuple[NWBFile, object]:
     nwb = NWBFile(
-        session_description="steps", identifier="LOL-2026-11-05-c3",
-        session_start_time=dt.datetime(2026, 11, 5, 9, 30, tzinfo=dt.UTC), **kwargs,
+        session_description="steps",
+        identifier="LOL-2026-11-05-c3",
+        session_start_time=dt.datetime(2026, 11, 5, 9, 30, tzinfo=dt.UTC),
+        **kwargs,
     )
     device = nwb.create_device(name="amp")
     electrode = nwb.create_icephys_electrode(name="e0", description="patch", device=device)
@@ -43,12 +45,29 @@ def test_pairs_by_sweep_number_with_conversion_and_offset(tmp_path):
     nwb, electrode = _file()
     for k in (1, 0):  # stored out of order
         counts = (np.arange(N) % 50 + 100 * k).astype(np.int16)
-        nwb.add_acquisition(CurrentClampSeries(
-            name=f"v{k}", data=counts, electrode=electrode, gain=1.0, rate=RATE,
-            conversion=1e-4, offset=-0.07, sweep_number=np.uint32(k)))
-        nwb.add_stimulus(CurrentClampStimulusSeries(
-            name=f"i{k}", data=np.full(N, -30.0 - k), electrode=electrode, gain=1.0,
-            rate=RATE, conversion=1e-12, sweep_number=np.uint32(k)))
+        nwb.add_acquisition(
+            CurrentClampSeries(
+                name=f"v{k}",
+                data=counts,
+                electrode=electrode,
+                gain=1.0,
+                rate=RATE,
+                conversion=1e-4,
+                offset=-0.07,
+                sweep_number=np.uint32(k),
+            )
+        )
+        nwb.add_stimulus(
+            CurrentClampStimulusSeries(
+                name=f"i{k}",
+                data=np.full(N, -30.0 - k),
+                electrode=electrode,
+                gain=1.0,
+                rate=RATE,
+                conversion=1e-12,
+                sweep_number=np.uint32(k),
+            )
+        )
     rec = load(_write(nwb, tmp_path / "pairs.nwb"))
     assert rec.sample_rate_hz == RATE
     assert_allclose(rec.sweeps[0].voltage, (np.arange(N) % 50) * 1e-4 - 0.07)
@@ -60,15 +79,22 @@ def test_table_rows_slice_one_long_series(tmp_path):
     nwb, electrode = _file()
     long_v = np.concatenate([_ramp(0), _ramp(5)]) * 1e-3
     long_i = np.concatenate([np.full(N, -20.0), np.full(N, -40.0)]) * 1e-12
-    response = CurrentClampSeries(name="v", data=long_v, electrode=electrode, gain=1.0,
-                                  rate=RATE, sweep_number=np.uint32(0))
-    stimulus = CurrentClampStimulusSeries(name="i", data=long_i, electrode=electrode,
-                                          gain=1.0, rate=RATE, sweep_number=np.uint32(0))
+    response = CurrentClampSeries(
+        name="v", data=long_v, electrode=electrode, gain=1.0, rate=RATE, sweep_number=np.uint32(0)
+    )
+    stimulus = CurrentClampStimulusSeries(
+        name="i", data=long_i, electrode=electrode, gain=1.0, rate=RATE, sweep_number=np.uint32(0)
+    )
     for k in range(2):
         nwb.add_intracellular_recording(
-            electrode=electrode, response=response, stimulus=stimulus,
-            response_start_index=k * N, response_index_count=N,
-            stimulus_start_index=k * N, stimulus_index_count=N)
+            electrode=electrode,
+            response=response,
+            stimulus=stimulus,
+            response_start_index=k * N,
+            response_index_count=N,
+            stimulus_start_index=k * N,
+            stimulus_index_count=N,
+        )
     rec = load(_write(nwb, tmp_path / "slices.nwb"))
     assert len(rec.sweeps) == 2
     assert_allclose(rec.sweeps[1].voltage, _ramp(5) * 1e-3)
@@ -77,8 +103,14 @@ def test_table_rows_slice_one_long_series(tmp_path):
 
 def test_voltage_clamp_rows_are_skipped(tmp_path):
     nwb, electrode = _file()
-    vc = VoltageClampSeries(name="vc", data=_ramp(0) * 1e-12, electrode=electrode, gain=1.0,
-                            rate=RATE, sweep_number=np.uint32(0))
+    vc = VoltageClampSeries(
+        name="vc",
+        data=_ramp(0) * 1e-12,
+        electrode=electrode,
+        gain=1.0,
+        rate=RATE,
+        sweep_number=np.uint32(0),
+    )
     nwb.add_intracellular_recording(electrode=electrode, response=vc)
     with pytest.raises(LoadError, match="no current-clamp sweeps in this NWB file"):
         load(_write(nwb, tmp_path / "vc.nwb"))
@@ -86,20 +118,34 @@ def test_voltage_clamp_rows_are_skipped(tmp_path):
 
 def test_metadata_from_the_file(tmp_path):
     nwb, electrode = _file(
-        lab="Lindqvist-Okafor Lab of Dendritic Physiology", institution="Invented Institute",
+        lab="Lindqvist-Okafor Lab of Dendritic Physiology",
+        institution="Invented Institute",
         notes="Bath temperature: 31.5 C, slice 2",
-        subject=Subject(subject_id="mouse-17", species="Mus musculus"))
-    nwb.add_acquisition(CurrentClampSeries(
-        name="v0", data=_ramp(0) * 1e-3, electrode=electrode, gain=1.0, rate=RATE,
-        sweep_number=np.uint32(0)))
+        subject=Subject(subject_id="mouse-17", species="Mus musculus"),
+    )
+    nwb.add_acquisition(
+        CurrentClampSeries(
+            name="v0",
+            data=_ramp(0) * 1e-3,
+            electrode=electrode,
+            gain=1.0,
+            rate=RATE,
+            sweep_number=np.uint32(0),
+        )
+    )
     meta = load(_write(nwb, tmp_path / "meta.nwb")).metadata
     assert meta["cell_id"] == "LOL-2026-11-05-c3"  # no electrode cell_id: the identifier
     assert meta["date"] == "2026-11-05T09:30:00+00:00"
     assert meta["temperature_C"] == 31.5
     assert (meta["lab"], meta["institution"]) == (
-        "Lindqvist-Okafor Lab of Dendritic Physiology", "Invented Institute")
+        "Lindqvist-Okafor Lab of Dendritic Physiology",
+        "Invented Institute",
+    )
     assert (meta["subject_id"], meta["species"], meta["electrode"]) == (
-        "mouse-17", "Mus musculus", "patch")
+        "mouse-17",
+        "Mus musculus",
+        "patch",
+    )
 
 
 def test_hdf5_that_is_not_nwb(tmp_path):
@@ -112,7 +158,14 @@ def test_hdf5_that_is_not_nwb(tmp_path):
 
 def test_timestamps_instead_of_rate(tmp_path):
     nwb, electrode = _file()
-    nwb.add_acquisition(CurrentClampSeries(
-        name="v0", data=_ramp(0) * 1e-3, electrode=electrode, gain=1.0,
-        timestamps=np.arange(N) / 8000.0, sweep_number=np.uint32(0)))
+    nwb.add_acquisition(
+        CurrentClampSeries(
+            name="v0",
+            data=_ramp(0) * 1e-3,
+            electrode=electrode,
+            gain=1.0,
+            timestamps=np.arange(N) / 8000.0,
+            sweep_number=np.uint32(0),
+        )
+    )
     assert load(_write(nwb, tmp_path / "ts.nwb")).sample_rate_hz == 8000.0

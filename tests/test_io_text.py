@@ -19,9 +19,7 @@ def _table(tmp_path: Path, text: str, name: str = "cell.csv") -> Path:
 
 def _rows(n: int, columns, delimiter: str = ",") -> str:
     """n rows of time_ms at 10 kHz followed by the given column functions of k."""
-    return "\n".join(
-        delimiter.join([f"{k * 0.1:.1f}", *(f(k) for f in columns)]) for k in range(n)
-    )
+    return "\n".join(delimiter.join([f"{k * 0.1:.1f}", *(f(k) for f in columns)]) for k in range(n))
 
 
 def _wave(k: int) -> str:
@@ -54,8 +52,9 @@ def test_tabs_seconds_and_sweeps_in_number_order(tmp_path):
 
 
 def test_rate_from_metadata_without_time_column(tmp_path):
-    path = _table(tmp_path, "# sample_rate_hz: 25000\nV0_mV\n" + "\n".join(
-        _wave(k) for k in range(150)))
+    path = _table(
+        tmp_path, "# sample_rate_hz: 25000\nV0_mV\n" + "\n".join(_wave(k) for k in range(150))
+    )
     assert load(path).sample_rate_hz == 25_000.0
 
 
@@ -81,11 +80,15 @@ def test_blank_lines_keep_line_numbers(tmp_path):
         ("# temperature_C: warm\ntime_ms,V0_mV\n0,1\n", "`temperature_C` is 'warm', not a number"),
         ("time_ms,V0_mV\n0,1\n0.1,2,3\n", "line 3: 3 values where the header has 2"),
         ("time_ms,V0_mV\n0,1\n0.1,\n", r"line 3, column 'V0_mV': '' is not a number"),
-        ("time_ms,V0_mV\n0,1\n0.1,2\n0.15,3\n0.3,4\n",
-         r"time column: time is not evenly sampled: sample 2 is 0\.\d+ intervals off"),
+        (
+            "time_ms,V0_mV\n0,1\n0.1,2\n0.15,3\n0.3,4\n",
+            r"time column: time is not evenly sampled: sample 2 is 0\.\d+ intervals off",
+        ),
         ("time_ms,V0_mV\n0,1\n0.1,2\n0.1,3\n", r"time does not increase at sample 2"),
-        ("# sample_rate_hz: 20000\ntime_ms,V0_mV\n0,1\n0.1,2\n",
-         r"the time column gives 10000.0 Hz but `sample_rate_hz` says 20000.0"),
+        (
+            "# sample_rate_hz: 20000\ntime_ms,V0_mV\n0,1\n0.1,2\n",
+            r"the time column gives 10000.0 Hz but `sample_rate_hz` says 20000.0",
+        ),
         ("# sample_rate_hz: -5\nV0_mV\n1\n2\n", r"`sample_rate_hz` is -5.0; give a positive rate"),
     ],
 )
@@ -111,8 +114,9 @@ def test_large_table_reads(tmp_path):
         cols += [-70 + rng.normal(0, 0.1, n), np.where(t > 100, -10.0 * k, 0.0)]
         names += [f"V{k}_mV", f"I{k}_pA"]
     path = tmp_path / "big.csv"
-    np.savetxt(path, np.column_stack(cols), fmt="%.6g", delimiter=",",
-               header=",".join(names), comments="")
+    np.savetxt(
+        path, np.column_stack(cols), fmt="%.6g", delimiter=",", header=",".join(names), comments=""
+    )
     rec = load(path)
     assert len(rec.sweeps) == sweeps and rec.sweeps[0].n_samples == n
     assert_allclose(rec.sweeps[19].current[-1], -190e-12)

@@ -59,9 +59,7 @@ def _open(path: Path) -> Any:
     with open(path, "rb") as f:
         signature = f.read(4)
     if signature not in _SIGNATURES:
-        raise LoadError(
-            path, f"not an ABF file (bad signature {signature!r}); {_supported_text()}"
-        )
+        raise LoadError(path, f"not an ABF file (bad signature {signature!r}); {_supported_text()}")
     import pyabf
 
     try:
@@ -126,8 +124,9 @@ def _channel(abf: Any, units: dict[str, float]) -> int | None:
 
 
 def _channel_list(abf: Any) -> str:
-    return ", ".join(f"{name} [{unit}]" for name, unit in zip(abf.adcNames, abf.adcUnits,
-                                                               strict=False))
+    return ", ".join(
+        f"{name} [{unit}]" for name, unit in zip(abf.adcNames, abf.adcUnits, strict=False)
+    )
 
 
 def _epoch_command_enabled(abf: Any, channel: int) -> bool:

@@ -83,8 +83,9 @@ def _acquisition_pairs(nwb: Any, current_clamp: tuple[type, ...]) -> list[tuple[
         if isinstance(s, CurrentClampStimulusSeries) and s.sweep_number is not None
     }
     responses.sort(key=lambda s: (s.sweep_number is None, s.sweep_number or 0, s.name))
-    return [(r, stimuli.get(r.sweep_number) if r.sweep_number is not None else None)
-            for r in responses]
+    return [
+        (r, stimuli.get(r.sweep_number) if r.sweep_number is not None else None) for r in responses
+    ]
 
 
 def _cut(item: Any) -> tuple[Any, int, int | None]:
@@ -239,8 +240,7 @@ def _notes(metadata: dict) -> str | None:
 def _compressed(values: np.ndarray) -> Any:
     from hdmf.backends.hdf5.h5_utils import H5DataIO
 
-    return H5DataIO(values.astype(np.float32), compression="gzip", compression_opts=4,
-                    shuffle=True)
+    return H5DataIO(values.astype(np.float32), compression="gzip", compression_opts=4, shuffle=True)
 
 
 def _new_file(metadata: dict) -> Any:
@@ -296,20 +296,30 @@ def write_nwb(recording: Recording, path: str | Path) -> None:
     for k, sweep in enumerate(recording.sweeps):
         number = np.uint32(k)
         response = CurrentClampSeries(
-            name=f"response_{k:04d}", data=_compressed(sweep.voltage * _V_UNITS_PER_SI),
-            electrode=electrode, gain=1.0, rate=float(recording.sample_rate_hz),
-            conversion=1.0 / _V_UNITS_PER_SI, sweep_number=number,
+            name=f"response_{k:04d}",
+            data=_compressed(sweep.voltage * _V_UNITS_PER_SI),
+            electrode=electrode,
+            gain=1.0,
+            rate=float(recording.sample_rate_hz),
+            conversion=1.0 / _V_UNITS_PER_SI,
+            sweep_number=number,
         )
         stimulus = None
         if sweep.current is not None:
             stimulus = CurrentClampStimulusSeries(
-                name=f"stimulus_{k:04d}", data=_compressed(sweep.current * _I_UNITS_PER_SI),
-                electrode=electrode, gain=1.0, rate=float(recording.sample_rate_hz),
-                conversion=1.0 / _I_UNITS_PER_SI, sweep_number=number,
+                name=f"stimulus_{k:04d}",
+                data=_compressed(sweep.current * _I_UNITS_PER_SI),
+                electrode=electrode,
+                gain=1.0,
+                rate=float(recording.sample_rate_hz),
+                conversion=1.0 / _I_UNITS_PER_SI,
+                sweep_number=number,
             )
-        rows.append(nwb.add_intracellular_recording(
-            electrode=electrode, stimulus=stimulus, response=response
-        ))
+        rows.append(
+            nwb.add_intracellular_recording(
+                electrode=electrode, stimulus=stimulus, response=response
+            )
+        )
     simultaneous = [nwb.add_icephys_simultaneous_recording(recordings=[row]) for row in rows]
     nwb.add_icephys_sequential_recording(
         simultaneous_recordings=simultaneous, stimulus_type="current steps"

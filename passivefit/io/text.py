@@ -76,7 +76,8 @@ def _typed_metadata(path: Path, raw: dict) -> dict:
                 metadata[key] = float(metadata[key])
             except ValueError:
                 raise LoadError(
-                    path, f"metadata `{key}` is {raw[key]!r}, not a number; write e.g. `# {key}: 32`"
+                    path,
+                    f"metadata `{key}` is {raw[key]!r}, not a number; write e.g. `# {key}: 32`",
                 ) from None
     return metadata
 
@@ -130,7 +131,8 @@ def _parse_header(path: Path, names: list[str], line_no: int) -> _Header:
     orphans = sorted(set(header.current) - set(header.voltage))
     if orphans:
         raise LoadError(
-            path, f"line {line_no}: current column I{orphans[0]} has no voltage column V{orphans[0]}"
+            path,
+            f"line {line_no}: current column I{orphans[0]} has no voltage column V{orphans[0]}",
         )
     return header
 
@@ -175,9 +177,7 @@ def _sample_rate(path: Path, header: _Header, table: np.ndarray, metadata: dict)
     declared = metadata.pop("sample_rate_hz", None)
     if header.time is None:
         if declared is None:
-            raise LoadError(
-                path, "no time column and no `# sample_rate_hz:` line; add either one"
-            )
+            raise LoadError(path, "no time column and no `# sample_rate_hz:` line; add either one")
         if not (np.isfinite(declared) and declared > 0):
             raise LoadError(path, f"`sample_rate_hz` is {declared!r}; give a positive rate in Hz")
         return whole_hz(declared)
@@ -288,6 +288,11 @@ def write_csv(recording: Recording, path: str | Path) -> None:
     delimiter = "\t" if path.suffix.lower() == ".tsv" else ","
     header = "\n".join([*_metadata_lines(recording), delimiter.join(names)])
     np.savetxt(
-        path, np.column_stack(columns), fmt="%.10g", delimiter=delimiter,
-        header=header, comments="", encoding="utf-8",
+        path,
+        np.column_stack(columns),
+        fmt="%.10g",
+        delimiter=delimiter,
+        header=header,
+        comments="",
+        encoding="utf-8",
     )
