@@ -254,10 +254,9 @@ class CellResult:
 
 @dataclass(frozen=True)
 class GroupAverage:
-    """The average of the accepted sweeps of one step amplitude.
+    """The accepted sweeps combined into one response to the step `step` (see SweepPool).
 
-    ``segments`` index into the cell-level fit (`RecordingResult.cell_fit`), which fits all
-    group averages jointly with shared time constants.
+    ``segments`` index into the cell-level fit (`RecordingResult.cell_fit`).
     """
 
     step: Step
@@ -285,13 +284,19 @@ class RecordingResult:
     sweeps: tuple[SweepFit, ...]
     cell: CellResult
     flags: tuple[Flag, ...]
-    groups: tuple[GroupAverage, ...] = ()
-    cell_fit: object | None = None          # ExpFit over the group averages
-    reference_group: int | None = None      # index into groups used for c0, c1, cable
+    average: GroupAverage | None = None     # the accepted sweeps combined (SweepPool)
+    cell_fit: object | None = None          # ExpFit of the combined response
     peel: object | None = None              # core.peel.Peel of the reference average
     scan: dict | None = None                # fit-start scan (arrays)
     vi: dict | None = None                  # V–I points and regression
     protocol: str = "step"
+
+    @property
+    def groups(self) -> tuple[GroupAverage, ...]:
+        """The combined responses behind the cell values (one for now)."""
+        return () if self.average is None else (self.average,)
+
+    reference_group = 0
 
     def to_dict(self) -> dict:
         return {
@@ -545,21 +550,48 @@ def apply_decisions(fits: list[SweepFit], settings: Settings) -> list[SweepFit]:
 
 
 # --------------------------------------------------------------------------- cell level
-def group_averages(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
-                   settings: Settings) -> list[GroupAverage]:
-    """Averages of the accepted sweeps of each step amplitude and timing, largest group first."""
-    groups: dict[tuple, list[SweepFit]] = {}
-    for f in fits:
-        if f.accepted and f.step is not None:
-            s = f.step
-            key = (round(s.amplitude_A / (0.5 * PA)), s.onset, s.offset, voltages[f.index].size)
-            groups.setdefault(key, []).append(f)
-    # reference first: hyperpolarizing before depolarizing, then the best signal (|I|·√n)
-    ordered = sorted(groups.values(), key=lambda g: (g[0].step.amplitude_A > 0,
-                                                     -abs(g[0].step.amplitude_A) * len(g) ** 0.5))
-    return [_average(g[0].step, [f.index for f in g],
-                     np.mean([voltages[f.index] for f in g], axis=0), fs, settings)
-            for g in ordered]
+@dataclass(frozen=True)
+class SweepPool:
+    """Accepted sweeps of one step timing, ready to be combined (and resampled).
+
+    Under linearity sweep k is base_k + I_k·h(t); the least-squares h over a set of sweeps
+    is Σ I_k (v_k − base_k) / Σ I_k². The combined response is shown and fitted as
+    base + I_ref·h, scaled to the reference step I_ref (the largest hyperpolarizing step,
+    else the largest step).
+    """
+
+    step: Step                  # timing of the pool, with amplitude I_ref
+    indices: tuple[int, ...]
+    currents: np.ndarray        # A, per sweep
+    deflections: np.ndarray     # V, per sweep × sample, baseline removed
+    base: float                 # V, mean baseline
+
+    def combine(self, pick: np.ndarray | None = None) -> np.ndarray:
+        """The combined response (V) of all sweeps, or of the sweeps at positions `pick`."""
+        i = self.currents if pick is None else self.currents[pick]
+        d = self.deflections if pick is None else self.deflections[pick]
+        return self.base + self.step.amplitude_A * (i @ d) / (i @ i)
+
+
+def sweep_pool(fits: list[SweepFit], voltages: dict[int, np.ndarray]) -> SweepPool | None:
+    """The accepted sweeps of the most common step timing; None without any."""
+    from collections import Counter
+
+    used = [f for f in fits if f.accepted and f.step is not None]
+    if not used:
+        return None
+
+    def timing(f: SweepFit) -> tuple:
+        return (f.step.onset, f.step.offset, voltages[f.index].size)
+
+    common = Counter(timing(f) for f in used).most_common(1)[0][0]
+    members = [f for f in used if timing(f) == common]
+    currents = np.array([f.step.amplitude_A for f in members])
+    bases = np.array([f.v_rest_V for f in members])
+    deflections = np.stack([voltages[f.index] for f in members]) - bases[:, None]
+    i_ref = currents.min() if np.any(currents < 0) else currents.max()
+    return SweepPool(replace(members[0].step, amplitude_A=float(i_ref)),
+                     tuple(f.index for f in members), currents, deflections, float(bases.mean()))
 
 
 def _average(step: Step, indices: list[int], v: np.ndarray, fs: float,
@@ -577,20 +609,15 @@ def _average(step: Step, indices: list[int], v: np.ndarray, fs: float,
     return GroupAverage(step, tuple(indices), v, v_base, wins)
 
 
-def fit_groups(groups: list[GroupAverage], fs: float, components: str, tau_init=None):
-    """Joint fit of all group averages with shared time constants.
+def fit_average(g: GroupAverage, fs: float, components: str, tau_init=None):
+    """Fit the combined response's transients with shared time constants.
 
-    Returns the fit and the groups with their segment records filled in.
+    Returns the fit and `g` with its segment records filled in.
     """
-    segs, filled = [], []
-    for g in groups:
-        s, recs = _segments(g.v_V, fs, g.step, g.windows_s)
-        shifted = tuple(replace(r, index=r.index + len(segs)) for r in recs)
-        segs.extend(s)
-        filled.append(replace(g, segments=shifted))
+    segs, records = _segments(g.v_V, fs, g.step, g.windows_s)
     if not segs:
         raise ValueError("no fit window holds enough samples")
-    return _fit(segs, components, tau_init), filled
+    return _fit(segs, components, tau_init), replace(g, segments=records)
 
 
 def _onset_amplitudes(fit, g: GroupAverage) -> tuple[float, ...]:
@@ -613,27 +640,28 @@ def _percentile_halfwidth(samples: np.ndarray) -> float | None:
     return float((hi - lo) / 2)
 
 
-def _bootstrap(groups: list[GroupAverage], voltages: dict[int, np.ndarray], fs: float,
-               fit, n_boot: int, ref: int, seed: int = 0) -> dict[str, np.ndarray]:
-    """τ0, τ1 and the reference amplitude ratio refitted on sweeps resampled with replacement."""
+def _bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
+               seed: int = 0) -> dict[str, np.ndarray]:
+    """τ0, τ1 and the amplitude ratio refitted on sweeps resampled with replacement."""
     rng = np.random.default_rng(seed)
     n = len(fit.taus)
-    stacks = [np.stack([voltages[i] for i in g.sweep_indices]) for g in groups]
     out: dict[str, list[float]] = {"tau0": [], "tau1": [], "ratio": [], "b0": []}
     for _ in range(n_boot):
-        resampled = [replace(g, v_V=st[rng.integers(0, len(st), len(st))].mean(axis=0))
-                     for g, st in zip(groups, stacks, strict=True)]
+        pick = rng.integers(0, len(pool.indices), len(pool.indices))
+        if np.all(pool.currents[pick] == 0):
+            continue
         try:
-            boot, filled = fit_groups(resampled, fs, str(n), tau_init=fit.taus)
+            boot, filled = fit_average(replace(g, v_V=pool.combine(pick)), fs, str(n),
+                                       tau_init=fit.taus)
         except (ValueError, np.linalg.LinAlgError, RuntimeError):
             continue
         if not boot.success:
             continue
         out["tau0"].append(boot.taus[0])
         out["tau1"].append(boot.taus[1] if n > 1 else np.nan)
-        r = _ratio(boot, filled[ref])
+        r = _ratio(boot, filled)
         out["ratio"].append(np.nan if r is None else r)
-        out["b0"].append(_onset_amplitudes(boot, filled[ref])[0])
+        out["b0"].append(_onset_amplitudes(boot, filled)[0])
     return {k: np.asarray(v, dtype=float) for k, v in out.items()}
 
 
@@ -650,7 +678,7 @@ def fit_start_scan(g: GroupAverage, fs: float, n_components: int, tau_init,
         for name in edges.keys() & wins.keys():
             wins[name] = (edges[name] + s0, wins[name][1])
         try:
-            fit, _ = fit_groups([replace(g, windows_s=wins)], fs, str(n_components), tau_init)
+            fit, _ = fit_average(replace(g, windows_s=wins), fs, str(n_components), tau_init)
             taus = list(fit.taus) + [np.nan] * 2
             ci = list(fit.tau_ci95) + [np.nan] * 2
             rows.append((s0, taus[0], ci[0], taus[1], ci[1]))
@@ -703,15 +731,16 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
                           "and no bootstrap CIs (number of sweeps)", len(used)))
     kind = extras["protocol"]
     cell["v_rest_mV"] = _num(np.mean([f.v_rest_V for f in used]), MV)
-    groups = group_averages(fits, voltages, fs, settings)
+    pool = sweep_pool(fits, voltages)
+    avg = _average(pool.step, list(pool.indices), pool.combine(), fs, settings)
     try:
-        fit, groups = fit_groups(groups, fs, settings.components)
+        fit, avg = fit_average(avg, fs, settings.components)
         if not fit.success:
             raise ValueError(fit.message)
     except (ValueError, np.linalg.LinAlgError, RuntimeError) as exc:
         flags.append(Flag("fit.failed", f"the fit of the averaged sweeps failed: {exc}"))
         fit = None
-    bridge = _bridge(fit, groups, used)
+    bridge = _bridge(fit, avg, used)
     cell["bridge_MOhm"] = _num(bridge, MOHM, 4)
     if bridge is not None and abs(bridge) > 5 * MOHM:
         what = "subtracted from" if settings.correct_bridge else "left in"
@@ -721,12 +750,11 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         fits[:] = [_corrected(f, bridge) for f in fits]
         used = [f for f in fits if f.accepted]
     _input_resistance(used, cell, extras, flags)
-    extras["groups"] = tuple(groups)
+    extras["average"] = avg
     if fit is None:
         return cell, extras
-    ref = 0
-    g_ref = groups[ref]
-    extras.update(cell_fit=fit, reference_group=ref)
+    g_ref = avg
+    extras["cell_fit"] = fit
     n = len(fit.taus)
     cell["n_components"] = n
     cell["tau0_ms"] = _num(fit.taus[0], MS)
@@ -747,8 +775,8 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         cell["tau2_ms"] = _num(fit.taus[2], MS)
 
     boot = None
-    if settings.bootstrap and min(len(g.sweep_indices) for g in groups) >= 3:
-        boot = _bootstrap(groups, voltages, fs, fit, settings.bootstrap, ref)
+    if settings.bootstrap and len(pool.indices) >= 3:
+        boot = _bootstrap(pool, g_ref, fs, fit, settings.bootstrap)
         for key, name in (("tau0", "tau0_ci95_ms"), ("tau1", "tau1_ci95_ms")):
             hw = _percentile_halfwidth(boot[key])
             if hw is not None and cell[name] is not None:
@@ -764,7 +792,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         if gap > max(3 * spread, 0.05 * fit.taus[0]):
             flags.append(Flag("cell.sweep_spread", "τ0 of the averaged sweeps differs from the "
                               "median of the single sweeps (ms)", gap / MS))
-    _residual_structure(fit, groups, fs, flags)
+    _residual_structure(fit, avg, fs, flags)
     _onset_offset(g_ref, fs, n, fit, flags)
     scan = fit_start_scan(g_ref, fs, n, fit.taus)
     extras["scan"] = scan
@@ -776,19 +804,14 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     return cell, extras
 
 
-def _bridge(fit, groups: list[GroupAverage], used: list[SweepFit]) -> float | None:
-    """Bridge imbalance (Ω): the fitted model's jump at the step edge against the current.
+def _bridge(fit, avg: GroupAverage, used: list[SweepFit]) -> float | None:
+    """Bridge imbalance (Ω): the jump at the step edge of the fitted combined response.
 
-    From the cell fit: each group average's model extrapolated to the edge, minus its
-    baseline, regressed on the step current through the origin (weighted by sweeps).
     Without a cell fit, the median of the single sweeps' estimates.
     """
-    if fit is not None and groups and groups[0].step.kind == "step":
-        i = np.array([g.amplitude_A for g in groups])
-        n = np.array([len(g.sweep_indices) for g in groups])
-        jump = np.array([fit.evaluate(g.segments[0].index, np.zeros(1))[0] - g.v_base_V
-                         for g in groups])
-        return float(np.sum(n * i * jump) / np.sum(n * i * i))
+    if fit is not None and avg.step.kind == "step":
+        jump = fit.evaluate(avg.segments[0].index, np.zeros(1))[0] - avg.v_base_V
+        return float(jump / avg.amplitude_A)
     single = [f.bridge_ohm for f in used if f.bridge_ohm is not None]
     return float(np.median(single)) if single else None
 
@@ -843,15 +866,14 @@ def _input_resistance(used: list[SweepFit], cell: dict, extras: dict, flags: lis
                               asym))
 
 
-def _residual_structure(fit, groups: list[GroupAverage], fs: float, flags: list[Flag]) -> None:
+def _residual_structure(fit, avg: GroupAverage, fs: float, flags: list[Flag]) -> None:
     """Runs test on 0.5-ms bin means of the residuals (bins make filtered noise independent)."""
     width = max(1, int(0.5e-3 * fs))
     resid = []
-    for g in groups:
-        for seg in g.segments:
-            r = residual(g.v_V, fit, seg, fs)[1]
-            m = r.size // width * width
-            resid.append(r[:m].reshape(-1, width).mean(axis=1))
+    for seg in avg.segments:
+        r = residual(avg.v_V, fit, seg, fs)[1]
+        m = r.size // width * width
+        resid.append(r[:m].reshape(-1, width).mean(axis=1))
     z = runs_test_z(np.concatenate(resid)) if resid else 0.0
     if z < -4:
         flags.append(Flag("fit.residual_structure", "the residuals keep their sign too long: the "
@@ -866,7 +888,7 @@ def _onset_offset(g: GroupAverage, fs: float, n: int, fit, flags: list[Flag]) ->
     for name in ("fit", "fit_off"):
         wins = {k: v for k, v in g.windows_s.items() if k != ("fit_off" if name == "fit" else "fit")}
         try:
-            part, _ = fit_groups([replace(g, windows_s=wins)], fs, str(n), fit.taus)
+            part, _ = fit_average(replace(g, windows_s=wins), fs, str(n), fit.taus)
             taus.append((part.taus[0], part.tau_ci95[0]))
         except (ValueError, np.linalg.LinAlgError, RuntimeError):
             return
