@@ -11,6 +11,7 @@ from passivefit.io import Recording, Sweep
 CELL_ID = "LOL-2026-11-03-c1"  # invented scenario (helper_rules.md)
 LAB = "Lindqvist-Okafor Lab of Dendritic Physiology"
 DATE = "2026-11-03T14:22:05.250"
+PROTOCOL = "hyperpolarizing steps -40 pA, -20 pA increments"
 
 
 def charging_recording(
@@ -39,7 +40,13 @@ def charging_recording(
         response = np.where(t < onset, 0.0, np.where(on, rise, rise[on][-1] * fall))
         voltage = -0.068 + 150e6 * amp * response + rng.normal(0.0, 1e-4, n_samples)
         sweeps.append(Sweep(k, voltage, current if with_current else None))
-    metadata = {"cell_id": CELL_ID, "date": DATE, "temperature_C": 32.0, "lab": LAB}
+    metadata = {
+        "cell_id": CELL_ID,
+        "date": DATE,
+        "temperature_C": 32.0,
+        "lab": LAB,
+        "protocol": PROTOCOL,
+    }
     return Recording(sweeps, rate_hz, metadata=metadata)
 
 

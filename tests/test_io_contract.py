@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from io_fixtures import CELL_ID, DATE, charging_recording
+from io_fixtures import CELL_ID, DATE, PROTOCOL, charging_recording
 from numpy.testing import assert_allclose
 
 from passivefit.io import Recording, load, save
@@ -106,6 +106,7 @@ class TestNWBContract(ReaderContract):
         "date": DATE,
         "temperature_C": 32.0,
         "lab": "Lindqvist-Okafor Lab of Dendritic Physiology",
+        "protocol": PROTOCOL,
     }
 
     def voltage_tolerance(self, written, path):
@@ -128,6 +129,7 @@ class TestCSVContract(ReaderContract):
         "date": DATE,
         "temperature_C": 32.0,
         "lab": "Lindqvist-Okafor Lab of Dendritic Physiology",
+        "protocol": PROTOCOL,
     }
 
     def voltage_tolerance(self, written, path):

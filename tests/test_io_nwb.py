@@ -121,6 +121,7 @@ def test_metadata_from_the_file(tmp_path):
         lab="Lindqvist-Okafor Lab of Dendritic Physiology",
         institution="Invented Institute",
         notes="Bath temperature: 31.5 C, slice 2",
+        protocol="steps -50..+10 pA",
         subject=Subject(subject_id="mouse-17", species="Mus musculus"),
     )
     nwb.add_acquisition(
@@ -137,6 +138,7 @@ def test_metadata_from_the_file(tmp_path):
     assert meta["cell_id"] == "LOL-2026-11-05-c3"  # no electrode cell_id: the identifier
     assert meta["date"] == "2026-11-05T09:30:00+00:00"
     assert meta["temperature_C"] == 31.5
+    assert meta["protocol"] == "steps -50..+10 pA"
     assert (meta["lab"], meta["institution"]) == (
         "Lindqvist-Okafor Lab of Dendritic Physiology",
         "Invented Institute",

@@ -137,6 +137,7 @@ def _metadata(nwb: Any) -> dict:
         "lab": nwb.lab,
         "institution": nwb.institution,
         "electrode": getattr(electrode, "description", None),
+        "protocol": nwb.protocol,
         "notes": nwb.notes,
     }
     subject = nwb.subject
@@ -175,7 +176,7 @@ def read_nwb(path: str | Path) -> Recording:
     Recording
         One sweep per current-clamp response (V), with the paired stimulus (A) or
         None. Metadata: `cell_id`, `identifier`, `date` (ISO), `session_description`,
-        `lab`, `institution`, `electrode`, `subject_id`, `species`, `notes`,
+        `lab`, `institution`, `protocol`, `electrode`, `subject_id`, `species`, `notes`,
         `temperature_C` (from ``temperature_C: 32`` in the notes).
 
     Raises
@@ -258,6 +259,7 @@ def _new_file(metadata: dict) -> Any:
         lab=metadata.get("lab"),
         institution=metadata.get("institution"),
         notes=_notes(metadata),
+        protocol=str(metadata["protocol"]) if metadata.get("protocol") else None,
         subject=subject,
     )
 
@@ -271,7 +273,8 @@ def write_nwb(recording: Recording, path: str | Path) -> None:
     intracellular-recordings table; all sweeps form one sequential recording.
     Metadata written: `cell_id` (electrode cell id), `date` (session start; naive
     dates are taken as UTC), `lab`, `institution`, `session_description`,
-    `subject_id`, `species`, `temperature_C` (in the notes).
+    `protocol`, `electrode`, `subject_id`, `species`, `notes`, `temperature_C` (in
+    the notes). Other keys have no NWB field and are not written.
 
     Parameters
     ----------
