@@ -276,6 +276,20 @@ def peel(
         Bad input, or too few samples above the noise for a stage.
     """
     t, y, w = check_samples(t, y, weight, "peel")
+    return peel_checked(t, y, w, y_inf, n_components, noise_sd, snr, late_start)
+
+
+def peel_checked(
+    t: np.ndarray,
+    y: np.ndarray,
+    w: np.ndarray,
+    y_inf: float | None,
+    n_components: int,
+    noise_sd: float | None = None,
+    snr: float = 3.0,
+    late_start: float = 0.3,
+) -> Peel:
+    """:func:`peel` on samples already validated by :func:`check_samples`."""
     if n_components < 1:
         raise ValueError(f"`n_components` must be at least 1, got {n_components}")
     y_inf = estimate_asymptote(t, y, w) if y_inf is None else float(y_inf)
