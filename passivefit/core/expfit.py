@@ -38,6 +38,7 @@ _MIN_EXTRA_POINTS = 3  # points required beyond the number of free parameters
 _MAX_EXP_ARG = 700.0  # exp() argument clip: exp(700) ~ 1e304 < float64 max
 _SPREAD_STARTS = 2  # extra, log-spread starting points tried after a failed fit
 _RANK_TOL = 1e-7  # relative singular value below which a design column is dropped
+_FILL_RATIO = 8.0  # tau_n / tau_(n+1) assumed for starts peeling could not give
 _XTOL = 1e-10  # stop when no log tau moves more than this
 _SE_FRACTION = 1e-2  # ... or than this fraction of its standard error
 _FTOL = 1e-13  # ... or the cost falls by less than this fraction
@@ -276,14 +277,19 @@ def _theta_bounds(prob: _Projected, checked: list[tuple], tau_bounds) -> tuple[f
 
 
 def _peel_init(checked: list[tuple], n_components: int) -> np.ndarray | None:
-    """Peel taus of the segment with the largest swing (the next one if that fails)."""
-    order = np.argsort([-abs(float(y[0] - y[-1])) for _, y, _, _ in checked])
-    for s in order:
-        t, y, w, off = checked[s]
+    """Starting taus from peeling the segment with the largest swing.
+
+    When the noise leaves too little of the fast part for all the lines, peel
+    fewer and put each missing tau a factor ``_FILL_RATIO`` below the last one.
+    """
+    t, y, w, off = max(checked, key=lambda c: abs(float(c[1][0] - c[1][-1])))
+    for n in range(n_components, 0, -1):
         try:
-            return peel_checked(t, y, w, off, n_components).taus
+            taus = peel_checked(t, y, w, off, n).taus
         except ValueError:
             continue
+        fill = taus[-1] / _FILL_RATIO ** np.arange(1, n_components - n + 1)
+        return np.concatenate([taus, fill])
     return None
 
 
