@@ -303,3 +303,16 @@ def test_result_type():
     assert isinstance(fit, ExpFit)
     with pytest.raises(AttributeError):
         fit.rss = 0.0  # frozen
+
+
+def test_crlb_two_segments_and_binned_sigma():
+    # a bin of n samples has sd sigma/sqrt(n): binning the whole record into pairs
+    # (model nearly linear over a pair) must give almost the same bound
+    t = np.arange(0.0, 0.1, 1e-4)
+    single = crlb_taus(t, 1e-3, [0.02], [5e-3])
+    t_pairs = t.reshape(-1, 2).mean(axis=1)
+    binned = crlb_taus(t_pairs, np.full(t_pairs.size, 1e-3 / np.sqrt(2)), [0.02], [5e-3])
+    assert binned[0] == pytest.approx(single[0], rel=1e-3)
+    # two identical segments with free offsets: the bound shrinks by sqrt(2)
+    both = crlb_taus([t, t], 1e-3, [0.02], [[5e-3], [-5e-3]])
+    assert both[0] == pytest.approx(single[0] / np.sqrt(2), rel=1e-9)

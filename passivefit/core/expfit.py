@@ -627,6 +627,19 @@ def fit_start_scan(
     before it in every segment. Each fit starts from the previous successful one.
     A start that leaves too few points gives NaN.
 
+    Parameters
+    ----------
+    segments : sequence of Segment
+        Whole transients, ``t`` in s from each edge (decimated tails are fine).
+    starts_s : sequence of float
+        Fit start times (s from the edge), usually increasing.
+    n_components : int
+        Number of exponentials.
+    tau_init : sequence of float or None
+        Starting taus (s) of the first fit; ``None`` peels.
+    tau_bounds : (float, float)
+        As for :func:`fit_exponentials`.
+
     Returns
     -------
     dict of numpy.ndarray
@@ -707,9 +720,14 @@ def crlb_taus(
         )
     k = taus.size
     n_lin = k + (not offset_known)
+    if np.ndim(sigma) == 0:
+        sds = [float(sigma)] * len(ts)
+    elif len(ts) == 1 and np.ndim(sigma) == 1:
+        sds = [np.asarray(sigma, float)]
+    else:
+        sds = [np.asarray(x, float) for x in sigma]
     fisher = np.zeros((k + len(ts) * n_lin,) * 2)
-    for s, ts_ in enumerate(ts):
-        sd = sigma if np.ndim(sigma) == 0 else np.asarray(sigma[s] if len(ts) > 1 else sigma)
+    for s, (ts_, sd) in enumerate(zip(ts, sds, strict=True)):
         e = np.exp(-ts_[:, None] / taus)
         cols = [amps[s] * ts_[:, None] / taus**2 * e, e]
         if not offset_known:
@@ -717,6 +735,6 @@ def crlb_taus(
         jac = np.zeros((ts_.size, fisher.shape[0]))
         jac[:, :k] = cols[0]
         jac[:, k + s * n_lin : k + (s + 1) * n_lin] = np.hstack(cols[1:])
-        jw = jac / np.broadcast_to(np.asarray(sd, float), ts_.shape)[:, None]
+        jw = jac / np.broadcast_to(sd, ts_.shape)[:, None]
         fisher += jw.T @ jw
     return np.sqrt(np.diag(np.linalg.inv(fisher))[:k])
