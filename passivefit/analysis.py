@@ -427,10 +427,19 @@ def residual(v: np.ndarray, fit, seg: Segment, fs: float) -> tuple[np.ndarray, n
 
 
 def _event_in(resid: np.ndarray, fs: float) -> float:
-    """Largest excursion of the 1-ms-smoothed residual, in robust sds of itself."""
-    resid = steady.smooth(resid, max(1, int(1e-3 * fs)))
-    spread = 1.4826 * np.median(np.abs(resid - np.median(resid)))
-    return float(np.max(np.abs(resid - np.median(resid))) / max(spread, 1e-9))
+    """Largest fast excursion of the residual, in robust sds of itself.
+
+    The residual smoothed over 1 ms minus its 25-ms running mean: events (ms rise,
+    tens of ms decay) stand out, slow misfit such as sag does not. The first 10 ms are
+    left out: misfit of the fast components lives there (see the residual-structure flag).
+    """
+    resid = resid[int(10e-3 * fs):]
+    if resid.size < int(30e-3 * fs):
+        return 0.0
+    fast = steady.smooth(resid, max(1, int(1e-3 * fs))) - steady.smooth(resid, int(25e-3 * fs))
+    centred = fast - np.median(fast)
+    spread = 1.4826 * np.median(np.abs(centred))
+    return float(np.max(np.abs(centred)) / max(spread, 1e-9))
 
 
 def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
@@ -750,6 +759,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         fits[:] = [_corrected(f, bridge) for f in fits]
         used = [f for f in fits if f.accepted]
     _input_resistance(used, cell, extras, flags)
+    _sag(used, cell, flags)
     extras["average"] = avg
     if fit is None:
         return cell, extras
@@ -799,7 +809,6 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     if tau1_ok:
         _scan_drift(scan, flags)
     extras["peel"] = _peel(g_ref, fs, fit, n)
-    _sag(used, cell, flags)
     _cable(cell, fit, g_ref, kind, tau1_ok, boot, flags)
     return cell, extras
 
@@ -945,14 +954,23 @@ def _cable(cell: dict, fit, g: GroupAverage, kind: str, tau1_ok: bool,
     amps = _onset_amplitudes(fit, g)
     step = g.step
     r_in = cell["r_in_MOhm"] * MOHM if cell["r_in_MOhm"] and cell["r_in_MOhm"] > 0 else None
+    def attempt(code: str, fn, *args):
+        """fn(*args), or None with a flag saying why the cable model has no answer."""
+        try:
+            return fn(*args)
+        except cable.CableFitError as exc:
+            flags.append(Flag(code, str(exc)))
+            return None
+
     if r_in:
         cell["c_tau_pF"] = _num(cable.c_tau(tau0, r_in), PF, 5)
     if kind == "step":
-        cell["c_total_pF"] = _num(cable.c_total_step(step.amplitude_A, tau0, amps[0]), PF, 5)
+        c_total = attempt("cable.c_total", cable.c_total_step, step.amplitude_A, tau0, amps[0])
     else:
         # decay after a square pulse: C0 = I·τ0·(1 − e^(−D/τ0))/C_total (REFERENCES.md §1)
         charge = step.amplitude_A * tau0 * -np.expm1(-step.duration_s / tau0)
-        cell["c_total_pF"] = _num(cable.c_total_pulse(charge, amps[0]), PF, 5)
+        c_total = attempt("cable.c_total", cable.c_total_pulse, charge, amps[0])
+    cell["c_total_pF"] = _num(c_total, PF, 5)
     if cell["c_tau_pF"] and cell["c_total_pF"]:
         cell["c_ratio"] = _num(cell["c_tau_pF"] / cell["c_total_pF"], 1.0, 4)
     if not tau1_ok:
@@ -965,11 +983,9 @@ def _cable(cell: dict, fit, g: GroupAverage, kind: str, tau1_ok: bool,
         L, rho = estimate
         cell["L_bs"], cell["rho"] = _num(L, 1.0, 5), _num(rho, 1.0, 5)
         if kind == "step" and r_in:
-            try:
-                rho_amp = cable.rho_from_amplitudes_step(r_in * step.amplitude_A, amps[0], L)
-                cell["rho_amplitude"] = _num(rho_amp, 1.0, 4)
-            except cable.CableFitError as exc:
-                flags.append(Flag("cable.rho_amplitude", str(exc)))
+            cell["rho_amplitude"] = _num(attempt("cable.rho_amplitude",
+                                                 cable.rho_from_amplitudes_step,
+                                                 r_in * step.amplitude_A, amps[0], L), 1.0, 4)
     if boot is not None:
         samples = [_ballstick(cable, t0, t1, r, kind, step.duration_s, None)
                    for t0, t1, r in zip(boot["tau0"], boot["tau1"], boot["ratio"], strict=True)]
