@@ -439,6 +439,7 @@ def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool)
     cov = np.zeros((jac.shape[1],) * 2)
     cov[np.ix_(free, free)] = sigma2 * np.linalg.pinv(jac[:, free].T @ jac[:, free])
     var = np.diag(cov)
+    var = np.where(var >= 0, var, np.nan)  # round-off in a near-singular problem: unknown
     taus = np.exp(theta) * prob.scale
     tau_se = taus * np.sqrt(var[:k])
     coef_se = np.sqrt(var[k:]).reshape(-1, n_c)
