@@ -65,6 +65,23 @@ class Event:
             callback(*args)
 
 
+# ----------------------------------------------------------------------------- files
+def expand_paths(paths) -> list[Path]:
+    """Files as given; folders replaced by the recordings in them (sorted by name)."""
+    from passivefit.io import supported_extensions
+
+    extensions = set(supported_extensions())
+    files: list[Path] = []
+    for path in (Path(p) for p in paths):
+        if path.is_dir():
+            files.extend(sorted(p for p in path.iterdir() if p.is_file()
+                                and p.suffix.lower() in extensions
+                                and not p.name.endswith(("_sweeps.csv", "_sweeps.tsv"))))
+        else:
+            files.append(path)
+    return files
+
+
 # ----------------------------------------------------------------------------- review file
 def review_path(recording_path: str | os.PathLike, sha256: str = "") -> Path:
     """Where the review of a recording is kept.
@@ -78,7 +95,8 @@ def review_path(recording_path: str | os.PathLike, sha256: str = "") -> Path:
     if os.access(path.parent, os.W_OK) and not _is_sample_folder(path.parent):
         return beside
     state = Path(os.environ.get("XDG_STATE_HOME", Path.home() / ".local" / "state"))
-    return state / "passivefit" / "reviews" / f"{path.name}.{sha256[:12] or 'nohash'}{REVIEW_SUFFIX}"
+    name = f"{path.name}.{sha256[:12] or 'nohash'}{REVIEW_SUFFIX}"
+    return state / "passivefit" / "reviews" / name
 
 
 def _is_sample_folder(folder: Path) -> bool:

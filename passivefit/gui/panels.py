@@ -1,0 +1,449 @@
+"""Panels of the review window: the verdict strip, cell values, notes, windows, sweeps, help.
+
+Each panel reads the review state (or a result) and turns a person's edits into calls
+on the state; none of them computes anything.
+"""
+
+from __future__ import annotations
+
+from PySide6 import QtCore, QtGui, QtWidgets
+
+from passivefit.commands.analyze import CELL_ROWS
+from passivefit.gui import theme
+
+Qt = QtCore.Qt
+
+
+def card(title: str, tools: QtWidgets.QWidget | None = None
+         ) -> tuple[QtWidgets.QFrame, QtWidgets.QVBoxLayout]:
+    """A white rounded panel with a small grey title (and `tools` at its right end).
+
+    Returns the panel and the layout to fill.
+    """
+    frame = QtWidgets.QFrame()
+    frame.setObjectName("card")
+    layout = QtWidgets.QVBoxLayout(frame)
+    layout.setContentsMargins(10, 6, 10, 8)
+    layout.setSpacing(4)
+    label = QtWidgets.QLabel(title.upper())
+    label.setObjectName("cardTitle")
+    if tools is None:
+        layout.addWidget(label)
+    else:
+        row = QtWidgets.QHBoxLayout()
+        row.addWidget(label)
+        row.addStretch(1)
+        row.addWidget(tools)
+        layout.addLayout(row)
+    return frame, layout
+
+
+def fmt(x, digits: int = 4) -> str:
+    return "—" if x is None else f"{x:.{digits}g}"
+
+
+# ----------------------------------------------------------------------------- header
+class Header(QtWidgets.QWidget):
+    """File name, what the file is, where it sits in the list, and a one-phrase verdict."""
+
+    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.name = QtWidgets.QLabel("no recording open")
+        self.name.setObjectName("fileName")
+        self.meta = QtWidgets.QLabel("")
+        self.meta.setObjectName("fileMeta")
+        for label in (self.name, self.meta):
+            label.setSizePolicy(QtWidgets.QSizePolicy.Policy.Ignored,
+                                QtWidgets.QSizePolicy.Policy.Preferred)
+        self.verdict = QtWidgets.QLabel("")
+        self.verdict.setObjectName("verdict")
+        text = QtWidgets.QVBoxLayout()
+        text.setSpacing(0)
+        text.addWidget(self.name)
+        text.addWidget(self.meta)
+        layout = QtWidgets.QHBoxLayout(self)
+        layout.setContentsMargins(4, 0, 4, 0)
+        layout.addLayout(text, 1)
+        layout.addWidget(self.verdict, 0, Qt.AlignmentFlag.AlignVCenter)
+
+    def show_recording(self, state, position: int, count: int) -> None:
+        rec = state.recording
+        md = rec.metadata or {}
+        name = md.get("cell_id") or ""
+        parts = [p for p in (name, md.get("region"), md.get("cell_type"),
+                             str(md.get("date", ""))[:10]) if p]
+        parts.append(f"{len(rec.sweeps)} sweeps at {rec.sample_rate_hz / 1e3:g} kHz")
+        if md.get("simulated") in (True, "True", "true") or "invented" in str(md.get("lab", "")):
+            parts.append("simulated")
+        if count > 1:
+            parts.append(f"recording {position + 1} of {count}")
+        self.name.setText(QtCore.QFileInfo(rec.path).fileName())
+        self.meta.setText("  ·  ".join(parts))
+
+    def show_verdict(self, result, busy: bool) -> None:
+        if result is None or busy:
+            self._set("busy", "analysing…")
+            return
+        used = result.cell.values.get("n_sweeps_used") or 0
+        if used == 0:
+            self._set("none", "no usable sweeps")
+        elif result.flags:
+            n = len(result.flags)
+            self._set("notes", f"{n} note{'s' if n > 1 else ''} to read · {used} sweeps used")
+        else:
+            self._set("clean", f"nothing unusual · {used} sweeps used")
+
+    def _set(self, kind: str, text: str) -> None:
+        back, fore = theme.VERDICT[kind]
+        self.verdict.setStyleSheet(f"background: {back}; color: {fore};")
+        self.verdict.setText(text)
+        self.verdict_kind = kind
+
+
+# ----------------------------------------------------------------------------- cell
+class CellCard(QtWidgets.QFrame):
+    """The cell's values with their 95 % CIs and units, two columns of quantities."""
+
+    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        frame, layout = card("Cell")
+        outer = QtWidgets.QVBoxLayout(self)
+        outer.setContentsMargins(0, 0, 0, 0)
+        outer.addWidget(frame)
+        grid = QtWidgets.QGridLayout()
+        grid.setHorizontalSpacing(8)
+        grid.setVerticalSpacing(3)
+        layout.addLayout(grid)
+        self.values: dict[str, QtWidgets.QLabel] = {}
+        rows = (len(CELL_ROWS) + 1) // 2
+        for k, (label, key, _ci, unit) in enumerate(CELL_ROWS):
+            row, col = k % rows, (k // rows) * 3
+            quantity = QtWidgets.QLabel(label)
+            quantity.setObjectName("quantity")
+            value = QtWidgets.QLabel("—")
+            value.setObjectName("value")
+            value.setAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
+            value.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+            unit_label = QtWidgets.QLabel(unit)
+            unit_label.setObjectName("unit")
+            grid.addWidget(quantity, row, col)
+            grid.addWidget(value, row, col + 1)
+            grid.addWidget(unit_label, row, col + 2)
+            self.values[key] = value
+        grid.setColumnStretch(1, 1)
+        grid.setColumnStretch(4, 1)
+        grid.setColumnMinimumWidth(2, 26)
+        self.footer = QtWidgets.QLabel("")
+        self.footer.setObjectName("unit")
+        self.footer.setWordWrap(True)
+        layout.addWidget(self.footer)
+
+    def show_result(self, result, busy: bool) -> None:
+        cell = result.cell.to_dict() if result is not None else {}
+        for _label, key, ci, _unit in CELL_ROWS:
+            text = fmt(cell.get(key))
+            if ci and cell.get(ci) is not None and cell.get(key) is not None:
+                text += f" ± {fmt(cell[ci], 2)}"
+            self.values[key].setText(text)
+        if result is None:
+            self.footer.setText("")
+            return
+        used, total = cell.get("n_sweeps_used") or 0, len(result.sweeps)
+        bits = [f"{used} of {total} sweeps used"]
+        if cell.get("ci_method"):
+            bits.append(f"± = 95 % CI ({cell['ci_method']})")
+        if cell.get("r_in_method"):
+            bits.append(f"R_in by {cell['r_in_method']}")
+        if busy:
+            bits.append("updating…")
+        self.footer.setText(" · ".join(bits))
+
+
+# ----------------------------------------------------------------------------- notes
+class NotesPanel(QtWidgets.QFrame):
+    """The analysis's quality flags, in plain words."""
+
+    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        frame, layout = card("Notes")
+        outer = QtWidgets.QVBoxLayout(self)
+        outer.setContentsMargins(0, 0, 0, 0)
+        outer.addWidget(frame)
+        self.text = QtWidgets.QLabel("")
+        self.text.setObjectName("notes")
+        self.text.setWordWrap(True)
+        self.text.setTextFormat(Qt.TextFormat.RichText)
+        self.text.setAlignment(Qt.AlignmentFlag.AlignTop | Qt.AlignmentFlag.AlignLeft)
+        scroll = QtWidgets.QScrollArea()
+        scroll.setWidgetResizable(True)
+        scroll.setFrameShape(QtWidgets.QFrame.Shape.NoFrame)
+        scroll.setWidget(self.text)
+        scroll.setStyleSheet(f"background: {theme.CARD};")
+        layout.addWidget(scroll)
+
+    def show_result(self, result) -> None:
+        if result is None:
+            self.text.setText("")
+            return
+        if not result.flags:
+            self.text.setText(f"<span style='color:{theme.MUTED}'>Nothing unusual: the fits "
+                              "follow the data and the cell behaves passively.</span>")
+            return
+        items = []
+        for flag in result.flags:
+            message = flag.message[0].upper() + flag.message[1:]
+            value = "" if flag.value is None else f" <span style='color:{theme.MUTED}'>" \
+                                                  f"({flag.value:.3g})</span>"
+            items.append(f"<p style='margin:0 0 5px 0'>• {message}{value}</p>")
+        self.text.setText("".join(items))
+
+
+# ----------------------------------------------------------------------------- windows
+class WindowsBar(QtWidgets.QFrame):
+    """Start and end (ms from the step onset) of each window, to read and to type.
+
+    Emits ``edited(name, start_ms, end_ms)`` when a person types a value. The scope
+    check box and the reset button sit in the trace card's title row (``tools``).
+    """
+
+    edited = QtCore.Signal(str, float, float)
+    reset = QtCore.Signal()
+
+    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        layout = QtWidgets.QHBoxLayout(self)
+        layout.setContentsMargins(4, 4, 4, 2)
+        layout.setSpacing(5)
+        lead = QtWidgets.QLabel("windows, ms from the step:")
+        lead.setObjectName("unit")
+        layout.addWidget(lead)
+        self.boxes: dict[str, tuple[QtWidgets.QDoubleSpinBox, QtWidgets.QDoubleSpinBox]] = {}
+        for name in ("baseline", "steady", "fit"):
+            layout.addSpacing(8)
+            dot = QtWidgets.QLabel("■")
+            dot.setStyleSheet(f"color: {theme.REGION_LINE[name]};")
+            layout.addWidget(dot)
+            layout.addWidget(QtWidgets.QLabel(name))
+            pair = (self._box(name), self._box(name))
+            layout.addWidget(pair[0])
+            layout.addWidget(QtWidgets.QLabel("–"))
+            layout.addWidget(pair[1])
+            self.boxes[name] = pair
+        layout.addStretch(1)
+        self.only_this = QtWidgets.QCheckBox("this sweep only")
+        self.only_this.setToolTip("Window edits apply to the sweep on screen only (W)")
+        self.only_this.setFocusPolicy(Qt.FocusPolicy.NoFocus)
+        self.reset_button = QtWidgets.QPushButton("automatic windows")
+        self.reset_button.setToolTip("Every window back to the automatic choice")
+        self.reset_button.setFocusPolicy(Qt.FocusPolicy.NoFocus)
+        self.reset_button.clicked.connect(self.reset)
+        self.tools = QtWidgets.QWidget()
+        tools = QtWidgets.QHBoxLayout(self.tools)
+        tools.setContentsMargins(0, 0, 0, 0)
+        tools.addWidget(self.only_this)
+        tools.addWidget(self.reset_button)
+
+    def _box(self, name: str) -> QtWidgets.QDoubleSpinBox:
+        box = QtWidgets.QDoubleSpinBox()
+        box.setRange(-9999.9, 9999.9)
+        box.setDecimals(1)
+        box.setSingleStep(0.5)
+        box.setKeyboardTracking(False)
+        box.setButtonSymbols(QtWidgets.QAbstractSpinBox.ButtonSymbols.NoButtons)
+        box.setAlignment(Qt.AlignmentFlag.AlignRight)
+        box.setFixedWidth(64)
+        box.valueChanged.connect(lambda _v, n=name: self._typed(n))
+        return box
+
+    def _typed(self, name: str) -> None:
+        start, end = (b.value() for b in self.boxes[name])
+        if end > start:
+            self.edited.emit(name, start, end)
+
+    def show_windows(self, spans: dict) -> None:
+        """Show each window's (start, end) in ms, or disable it when it is not used."""
+        for name, boxes in self.boxes.items():
+            span = spans.get(name)
+            for box, value in zip(boxes, span or (0.0, 0.0), strict=True):
+                box.blockSignals(True)
+                box.setValue(value)
+                box.setEnabled(span is not None)
+                box.blockSignals(False)
+
+
+# ----------------------------------------------------------------------------- sweeps
+SWEEP_COLUMNS = ("sweep", "step\npA", "V_rest\nmV", "R_in\nMΩ", "τ0\nms", "τ1\nms",
+                 "rmse\nmV", "kept")
+
+
+class SweepTable(QtWidgets.QTableWidget):
+    """One row per sweep; selecting a row shows that sweep (``picked(index)``)."""
+
+    picked = QtCore.Signal(int)
+
+    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(0, len(SWEEP_COLUMNS), parent)
+        self.setHorizontalHeaderLabels(SWEEP_COLUMNS)
+        self.verticalHeader().setVisible(False)
+        self.setSelectionBehavior(QtWidgets.QAbstractItemView.SelectionBehavior.SelectRows)
+        self.setSelectionMode(QtWidgets.QAbstractItemView.SelectionMode.SingleSelection)
+        self.setEditTriggers(QtWidgets.QAbstractItemView.EditTrigger.NoEditTriggers)
+        self.setShowGrid(False)
+        self.setAlternatingRowColors(False)
+        self.verticalHeader().setDefaultSectionSize(22)
+        header = self.horizontalHeader()
+        header.setSectionResizeMode(QtWidgets.QHeaderView.ResizeMode.ResizeToContents)
+        header.setSectionResizeMode(len(SWEEP_COLUMNS) - 1,
+                                    QtWidgets.QHeaderView.ResizeMode.Stretch)
+        self._rows: dict[int, int] = {}
+        self.itemSelectionChanged.connect(self._selection)
+        self._quiet = False
+
+    def _selection(self) -> None:
+        if self._quiet:
+            return
+        rows = {i.row() for i in self.selectedIndexes()}
+        if rows:
+            index = next(k for k, r in self._rows.items() if r == min(rows))
+            self.picked.emit(index)
+
+    def show_state(self, state) -> None:
+        """Fill every row from the state (numbers from the newest fit of each sweep)."""
+        self._quiet = True
+        self.setRowCount(len(state.indices))
+        self._rows = {index: row for row, index in enumerate(state.indices)}
+        for index in state.indices:
+            self.show_row(state, index)
+        self._quiet = False
+        self.select(state.current)
+
+    def show_row(self, state, index: int) -> None:
+        row = self._rows.get(index)
+        if row is None:
+            return
+        fit = state.sweep_fit(index)
+        d = fit.to_dict() if fit is not None else {"index": index}
+        status = state.status(index)
+        cells = [str(index), fmt(d.get("step_pA")), fmt(d.get("v_rest_mV")),
+                 fmt(d.get("r_in_MOhm")), fmt(d.get("tau0_ms")), fmt(d.get("tau1_ms"), 3),
+                 fmt(d.get("rmse_mV"), 2), _status_text(status)]
+        back = None
+        if status is not None and not status.accepted:
+            back = QtGui.QColor(theme.ROW_REJECTED)
+        elif status is not None and status.by_hand:
+            back = QtGui.QColor(theme.ROW_BY_HAND)
+        for col, text in enumerate(cells):
+            item = QtWidgets.QTableWidgetItem(text)
+            last = col == len(cells) - 1
+            align = Qt.AlignmentFlag.AlignLeft if last else Qt.AlignmentFlag.AlignRight
+            item.setTextAlignment(align | Qt.AlignmentFlag.AlignVCenter)
+            if back is not None:
+                item.setBackground(back)
+            if status is not None and not status.accepted:
+                item.setForeground(QtGui.QColor(theme.MUTED))
+                item.setToolTip(status.reason)
+            self.setItem(row, col, item)
+
+    def select(self, index: int) -> None:
+        row = self._rows.get(index)
+        if row is None:
+            return
+        self._quiet = True
+        self.selectRow(row)
+        self.scrollToItem(self.item(row, 0))
+        self._quiet = False
+
+    def status_text(self, index: int) -> str:
+        """The text of a sweep's "kept" cell (for tests and screen readers)."""
+        return self.item(self._rows[index], len(SWEEP_COLUMNS) - 1).text()
+
+
+def _status_text(status) -> str:
+    if status is None:
+        return "…"
+    return ("yes" if status.accepted else "no") + (" (you)" if status.by_hand else "")
+
+
+def status_sentence(index: int, status) -> str:
+    """One line about a sweep's fate, e.g. "Sweep 4 is left out (you): noisy baseline"."""
+    if status is None:
+        return f"Sweep {index}: not analysed yet"
+    who = "by you" if status.by_hand else "by the automatic tests"
+    if status.accepted:
+        return f"Sweep {index} is kept ({who})"
+    return f"Sweep {index} is left out {who}: {status.reason}"
+
+
+# ----------------------------------------------------------------------------- help
+SHORTCUTS = (
+    ("→  or  J", "next sweep"),
+    ("←  or  K", "previous sweep"),
+    ("A", "accept the sweep"),
+    ("R", "reject the sweep (asks a reason)"),
+    ("C", "clear the decision (automatic tests decide)"),
+    ("W", "window edits: this sweep only / all sweeps"),
+    ("F5", "re-run the analysis"),
+    ("Z", "zoom out to all data"),
+    ("Ctrl+Z / Ctrl+Shift+Z", "undo / redo"),
+    ("N  or  Page Down", "next recording"),
+    ("P  or  Page Up", "previous recording"),
+    ("Ctrl+O / Ctrl+Shift+O", "open files / a folder"),
+    ("Ctrl+E", "export a parameter sheet"),
+    ("Ctrl+D", "add the cell to a database"),
+    ("F1  or  ?", "show / hide this list"),
+)
+
+
+class HelpOverlay(QtWidgets.QWidget):
+    """A dimmed layer over the window listing every shortcut; any key or click closes it."""
+
+    def __init__(self, parent: QtWidgets.QWidget) -> None:
+        super().__init__(parent)
+        self.setAttribute(Qt.WidgetAttribute.WA_StyledBackground, True)
+        self.setStyleSheet("HelpOverlay { background: rgba(24, 28, 34, 150); }")
+        box = QtWidgets.QFrame(self)
+        box.setObjectName("helpCard")
+        grid = QtWidgets.QGridLayout(box)
+        grid.setContentsMargins(28, 22, 28, 22)
+        grid.setHorizontalSpacing(18)
+        grid.setVerticalSpacing(7)
+        title = QtWidgets.QLabel("Keys for reviewing")
+        title.setObjectName("fileName")
+        grid.addWidget(title, 0, 0, 1, 2)
+        for row, (keys, what) in enumerate(SHORTCUTS, start=1):
+            key = QtWidgets.QLabel(keys)
+            key.setObjectName("key")
+            grid.addWidget(key, row, 0, Qt.AlignmentFlag.AlignRight)
+            grid.addWidget(QtWidgets.QLabel(what), row, 1)
+        hint = QtWidgets.QLabel("Drag a shaded window on the traces, or type its edges below "
+                                "them; the sweep refits as you move.\nEvery change is saved "
+                                "beside the recording at once.  Esc closes this list.")
+        hint.setObjectName("unit")
+        grid.addWidget(hint, len(SHORTCUTS) + 1, 0, 1, 2)
+        layout = QtWidgets.QVBoxLayout(self)
+        layout.addStretch(1)
+        row = QtWidgets.QHBoxLayout()
+        row.addStretch(1)
+        row.addWidget(box)
+        row.addStretch(1)
+        layout.addLayout(row)
+        layout.addStretch(1)
+        self.hide()
+
+    def toggle(self) -> None:
+        if self.isVisible():
+            self.hide()
+        else:
+            self.setGeometry(self.parentWidget().rect())
+            self.raise_()
+            self.show()
+            self.setFocus()
+
+    def mousePressEvent(self, event: QtGui.QMouseEvent) -> None:  # noqa: N802 (Qt name)
+        self.hide()
+
+    def keyPressEvent(self, event: QtGui.QKeyEvent) -> None:  # noqa: N802 (Qt name)
+        if event.key() in (Qt.Key.Key_Escape, Qt.Key.Key_F1, Qt.Key.Key_Question):
+            self.hide()
+        else:
+            super().keyPressEvent(event)

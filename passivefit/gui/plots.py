@@ -1,0 +1,354 @@
+"""The plots of the review window (pyqtgraph): traces with draggable windows and residuals,
+the semilog view with the peel lines, the fit-start scan and the V–I relation.
+
+Views only draw: they read a :class:`~passivefit.gui.state.ReviewState` or a
+``RecordingResult`` and report window drags as signals; they never fit anything.
+Axes are in display units (ms, mV, pA).
+"""
+
+from __future__ import annotations
+
+from functools import partial
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6 import QtCore, QtWidgets
+
+from passivefit.gui import theme
+
+MS, MV, PA = 1e-3, 1e-3, 1e-12
+STAGE_COLOURS = (theme.TEAL, theme.TERRACOTTA, "#7a5ea8")
+MAX_SEMILOG_POINTS = 500
+
+
+def new_plot(title: str = "", x_label: str = "", y_label: str = "") -> pg.PlotWidget:
+    """A calm, white plot with our axes and a faint grid."""
+    widget = pg.PlotWidget(background=theme.CARD)
+    item = widget.getPlotItem()
+    item.showGrid(x=True, y=True, alpha=0.10)
+    item.hideButtons()
+    for side in ("left", "bottom"):
+        axis = item.getAxis(side)
+        axis.setPen(pg.mkPen(theme.RULE))
+        axis.setTextPen(pg.mkPen(theme.INK))
+        axis.enableAutoSIPrefix(False)
+    if x_label:
+        item.setLabel("bottom", x_label, color=theme.MUTED)
+    if y_label:
+        item.setLabel("left", y_label, color=theme.MUTED)
+    if title:
+        item.setTitle(title, color=theme.MUTED, size="9pt")
+    return widget
+
+
+def set_title(widget: pg.PlotWidget, text: str) -> None:
+    widget.getPlotItem().setTitle(text, color=theme.MUTED, size="9pt")
+
+
+def _note(widget: pg.PlotWidget, text: str) -> pg.TextItem:
+    """A grey centred message inside an empty plot."""
+    item = pg.TextItem(text, color=theme.MUTED, anchor=(0.5, 0.5))
+    widget.addItem(item, ignoreBounds=True)
+    item.setPos(0.5, 0.5)
+    widget.getPlotItem().getViewBox().setRange(xRange=(0, 1), yRange=(0, 1), padding=0)
+    return item
+
+
+# ----------------------------------------------------------------------------- traces
+class TraceView(QtWidgets.QWidget):
+    """All sweeps faint, the sweep on screen bold with its fit, windows to drag, residuals.
+
+    Signals carry a window name (``baseline``, ``steady``, ``fit``) and its start and
+    end in ms from the step onset.
+    """
+
+    region_moved = QtCore.Signal(str, float, float)
+    region_finished = QtCore.Signal(str, float, float)
+
+    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.plot = new_plot(y_label="membrane potential (mV)")
+        self.resid = new_plot(x_label="time (ms)", y_label="residual (mV)")
+        self.resid.setXLink(self.plot)
+        self.resid.setFixedHeight(118)
+        self.plot.getPlotItem().getAxis("left").setWidth(62)
+        self.resid.getPlotItem().getAxis("left").setWidth(62)
+        layout = QtWidgets.QVBoxLayout(self)
+        layout.setContentsMargins(0, 0, 0, 0)
+        layout.setSpacing(0)
+        layout.addWidget(self.plot, 1)
+        layout.addWidget(self.resid)
+
+        self._faint: dict[int, pg.PlotDataItem] = {}
+        self._bold = self.plot.plot(pen=pg.mkPen(theme.TEAL, width=1.6))
+        self._bold.setZValue(5)
+        self._model = [self.plot.plot(pen=pg.mkPen(theme.TERRACOTTA, width=2.4))
+                       for _ in range(2)]
+        for curve in self._model:
+            curve.setZValue(6)
+        dash = pg.mkPen(theme.EDGE, width=1, style=QtCore.Qt.PenStyle.DashLine)
+        self._edges = [pg.InfiniteLine(angle=90, movable=False, pen=dash) for _ in range(2)]
+        for line in self._edges:
+            self.plot.addItem(line)
+        self.regions: dict[str, pg.LinearRegionItem] = {}
+        for name, tint in theme.REGION_TINT.items():
+            self.regions[name] = self._make_region(name, tint)
+        self._resid_curve = self.resid.plot(pen=pg.mkPen(theme.TERRACOTTA, width=1))
+        self.resid.addItem(pg.InfiniteLine(angle=0, pos=0.0, pen=pg.mkPen(theme.EDGE)))
+        self._onset_ms = 0.0
+        self._updating = False
+        self._v: np.ndarray | None = None
+        self._fs = 1.0
+        self.redraws = 0   # counts fit redraws (for the benchmark and tests)
+
+    def _make_region(self, name: str, tint) -> pg.LinearRegionItem:
+        movable = name != "fit_off"
+        line_pen = pg.mkPen(theme.REGION_LINE[name], width=1.2)
+        hover = pg.mkBrush(*tint[:3], min(255, tint[3] + 40))
+        region = pg.LinearRegionItem(brush=pg.mkBrush(*tint), pen=line_pen,
+                                     hoverBrush=hover if movable else None, movable=movable)
+        region.setZValue(-10)
+        for line in region.lines:
+            line.setHoverPen(pg.mkPen(theme.REGION_LINE[name], width=3))
+        pg.InfLineLabel(region.lines[0], text=theme.REGION_LABEL[name], position=0.97,
+                        anchors=[(0, 0), (0, 0)], color=theme.REGION_LINE[name])
+        if movable:
+            region.sigRegionChanged.connect(partial(self._on_region, name, False))
+            region.sigRegionChangeFinished.connect(partial(self._on_region, name, True))
+        self.plot.addItem(region)
+        return region
+
+    def _on_region(self, name: str, finished: bool, region: pg.LinearRegionItem) -> None:
+        if self._updating:
+            return
+        lo, hi = region.getRegion()
+        signal = self.region_finished if finished else self.region_moved
+        signal.emit(name, lo - self._onset_ms, hi - self._onset_ms)
+
+    @property
+    def dragging(self) -> bool:
+        return any(r.moving or any(line.moving for line in r.lines)
+                   for r in self.regions.values())
+
+    # ------------------------------------------------------------------ drawing
+    def set_recording(self, state) -> None:
+        """Draw every sweep faint (once per recording) and zoom to them."""
+        for item in self._faint.values():
+            self.plot.removeItem(item)
+        self._faint.clear()
+        self._fs = state.fs
+        for index in state.indices:
+            v = state.voltage(index)
+            item = self.plot.plot(np.arange(v.size) / state.fs / MS, v / MV,
+                                  pen=pg.mkPen(theme.FAINT, width=1))
+            item.setDownsampling(auto=True, method="peak")
+            item.setClipToView(True)
+            self._faint[index] = item
+        self._bold.setDownsampling(auto=True, method="peak")
+        self._bold.setClipToView(True)
+        self.show_sweep(state)
+        self.plot.getPlotItem().getViewBox().autoRange(padding=0.04)
+        self.resid.getPlotItem().getViewBox().enableAutoRange(axis="y")
+
+    def set_statuses(self, state) -> None:
+        """Rejected sweeps faint rose, the others faint slate."""
+        for index, item in self._faint.items():
+            status = state.status(index)
+            colour = theme.FAINT_OUT if status is not None and not status.accepted else theme.FAINT
+            item.setPen(pg.mkPen(colour, width=1))
+
+    def show_sweep(self, state) -> None:
+        """The sweep on screen: bold trace, step edges, windows, fit and residuals."""
+        index = state.current
+        v = state.voltage(index)
+        self._v = v
+        self._bold.setData(np.arange(v.size) / state.fs / MS, v / MV)
+        step = state.steps.get(index)
+        for line, edge in zip(self._edges, (step.onset, step.offset) if step else (), strict=False):
+            line.setValue(edge / state.fs / MS)
+        for line in self._edges:
+            line.setVisible(step is not None)
+        if step is None:
+            for region in self.regions.values():
+                region.setVisible(False)
+            self.show_fit(None)
+            return
+        self._onset_ms = step.onset_s / MS
+        offset_ms, end_ms = step.offset / state.fs / MS, v.size / state.fs / MS
+        during = (self._onset_ms, offset_ms)
+        bounds = {"baseline": (0.0, self._onset_ms), "steady": during,
+                  "fit": during if step.kind == "step" else (offset_ms, end_ms)}
+        if not self.dragging:
+            self._updating = True
+            try:
+                for name in ("baseline", "steady", "fit"):
+                    span = state.window_ms(name)
+                    region = self.regions[name]
+                    region.setVisible(span is not None)
+                    if span is not None:
+                        region.setBounds(bounds[name])
+                        region.setRegion((span[0] + self._onset_ms, span[1] + self._onset_ms))
+            finally:
+                self._updating = False
+        self.show_fit(state.sweep_fit())
+
+    def show_fit(self, fit) -> None:
+        """Draw a sweep's fitted model, its decay window and the residuals."""
+        curves = fit.model_curves() if fit is not None else []
+        for k, item in enumerate(self._model):
+            if k < len(curves):
+                t, y = curves[k]
+                item.setData(t / MS, y / MV)
+            else:
+                item.setData([], [])
+        decay = fit.windows_s.get("fit_off") if fit is not None and "fit" in fit.windows_s else None
+        self.regions["fit_off"].setVisible(decay is not None)
+        if decay is not None:
+            self.regions["fit_off"].setRegion((decay[0] / MS, decay[1] / MS))
+        self._resid_curve.setData(*self._residuals(fit))
+        self.redraws += 1
+
+    def _residuals(self, fit) -> tuple[np.ndarray, np.ndarray]:
+        if fit is None or fit.fit is None or self._v is None:
+            return np.empty(0), np.empty(0)
+        ts, rs = [], []
+        for seg in fit.segments:
+            a = int(round(seg.start_s * self._fs))
+            b = min(int(round(seg.end_s * self._fs)) + 1, self._v.size)
+            t = np.arange(a, b) / self._fs
+            ts += [t / MS, [np.nan]]
+            rs += [(self._v[a:b] - fit.fit.evaluate(seg.index, t - seg.edge_s)) / MV, [np.nan]]
+        return np.concatenate(ts), np.concatenate(rs)
+
+    def fit_view(self) -> None:
+        """Zoom out to show every sweep."""
+        self.plot.getPlotItem().getViewBox().autoRange(padding=0.04)
+
+
+# ----------------------------------------------------------------------------- semilog
+class SemilogView(QtWidgets.QWidget):
+    """|V − V∞| of the cell average on a log axis, with the straight peel lines."""
+
+    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.plot = new_plot("Semilog", "time from the step edge (ms)", "|V − V∞| (mV)")
+        self.plot.setLogMode(x=False, y=True)
+        layout = QtWidgets.QVBoxLayout(self)
+        layout.setContentsMargins(0, 0, 0, 0)
+        layout.addWidget(self.plot)
+
+    def show_result(self, result) -> None:
+        self.plot.clear()
+        self.plot.setLogMode(x=False, y=True)
+        peel = result.peel if result is not None else None
+        if peel is None or not peel.residual_log:
+            set_title(self.plot, "Semilog")
+            self.plot.setLogMode(x=False, y=False)
+            _note(self.plot, "no semilog view: the transient could not be peeled")
+            return
+        group = result.groups[result.reference_group or 0]
+        set_title(self.plot, f"peel of the {group.amplitude_A / PA:+.0f} pA average")
+        t_end = min(float(peel.residual_log[0][0][-1]), 1.25 * peel.lines[0].t_end)
+        lo, hi = np.inf, 0.0
+        for stage, (t, log_a) in enumerate(peel.residual_log):
+            keep = _spread_indices(int(np.searchsorted(t, t_end)), MAX_SEMILOG_POINTS)
+            y = np.exp(log_a[keep]) / MV
+            colour = STAGE_COLOURS[stage % len(STAGE_COLOURS)]
+            self.plot.plot(t[keep] / MS, y, pen=None, symbol="o", symbolSize=3,
+                           symbolPen=None, symbolBrush=pg.mkBrush(colour))
+            hi = max(hi, float(np.max(y)))
+        for stage, line in enumerate(peel.lines):
+            span = t_end if stage == 0 else min(t_end, 2.5 * line.t_end)
+            t = np.linspace(0.0, span, 200)
+            y = np.exp(line.intercept_log + line.slope * t) / MV
+            colour = STAGE_COLOURS[stage % len(STAGE_COLOURS)]
+            self.plot.plot(t / MS, y, pen=pg.mkPen(colour, width=2),
+                           name=f"peel τ{stage} ≈ {-1 / line.slope / MS:.3g} ms")
+        lo = max(peel.noise_sd / MV * 0.5, hi * 1e-4)
+        self.plot.setYRange(np.log10(lo), np.log10(hi * 1.6), padding=0)
+        self.plot.setXRange(0, t_end / MS, padding=0.02)
+        legend = self.plot.getPlotItem().addLegend(offset=(-8, 8), labelTextColor=theme.INK)
+        for curve in self.plot.getPlotItem().listDataItems():
+            if curve.name():
+                legend.addItem(curve, curve.name())
+
+
+def _spread_indices(n: int, most: int) -> np.ndarray:
+    """At most `most` indices into n samples, dense early and sparse late (log spacing)."""
+    if n <= most:
+        return np.arange(n)
+    return np.unique(np.geomspace(1, n, most).astype(int) - 1)
+
+
+# ----------------------------------------------------------------------------- scan
+class ScanView(QtWidgets.QWidget):
+    """τ0 and τ1 of the cell average refitted from later and later fit starts, with CIs."""
+
+    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.tau0 = new_plot("", "", "τ0 (ms)")
+        self.tau1 = new_plot("", "fit start after the edge (ms)", "τ1 (ms)")
+        self.tau1.setXLink(self.tau0)
+        for plot in (self.tau0, self.tau1):
+            plot.getPlotItem().getAxis("left").setWidth(48)
+        layout = QtWidgets.QVBoxLayout(self)
+        layout.setContentsMargins(0, 0, 0, 0)
+        layout.setSpacing(0)
+        layout.addWidget(self.tau0)
+        layout.addWidget(self.tau1)
+
+    def show_result(self, result) -> None:
+        scan = result.scan if result is not None else None
+        for plot, key, cell_key in ((self.tau0, "tau0", "tau0_ms"), (self.tau1, "tau1", "tau1_ms")):
+            plot.clear()
+            if scan is None or not np.any(np.isfinite(scan[f"{key}_s"])):
+                _note(plot, f"no {key.replace('tau', 'τ')} scan")
+                continue
+            x = scan["start_s"] / MS
+            y = scan[f"{key}_s"] / MS
+            ci = np.nan_to_num(scan[f"{key}_ci95_s"] / MS, nan=0.0, posinf=0.0)
+            ok = np.isfinite(y)
+            colour = theme.TEAL if key == "tau0" else theme.TERRACOTTA
+            plot.addItem(pg.ErrorBarItem(x=x[ok], y=y[ok], height=2 * ci[ok], beam=0.06,
+                                         pen=pg.mkPen(colour, width=1)))
+            plot.plot(x[ok], y[ok], pen=pg.mkPen(colour, width=1), symbol="o", symbolSize=5,
+                      symbolPen=None, symbolBrush=pg.mkBrush(colour))
+            value = result.cell.values.get(cell_key)
+            if value is not None:
+                plot.addItem(pg.InfiniteLine(angle=0, pos=value, pen=pg.mkPen(
+                    theme.EDGE, style=QtCore.Qt.PenStyle.DashLine)))
+            plot.getPlotItem().getViewBox().autoRange(padding=0.12)
+
+
+# ----------------------------------------------------------------------------- V–I
+class VIView(QtWidgets.QWidget):
+    """Steady-state deflection against step current, with the regression line."""
+
+    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.plot = new_plot("V–I", "step current (pA)", "ΔV steady (mV)")
+        self.plot.getPlotItem().getAxis("left").setWidth(48)
+        layout = QtWidgets.QVBoxLayout(self)
+        layout.setContentsMargins(0, 0, 0, 0)
+        layout.addWidget(self.plot)
+
+    def show_result(self, result) -> None:
+        self.plot.clear()
+        vi = result.vi if result is not None else None
+        if vi is None:
+            set_title(self.plot, "V–I")
+            _note(self.plot, "no steady state (brief pulses): no V–I relation")
+            return
+        i_pa, dv_mv = vi["current_A"] / PA, vi["dv_V"] / MV
+        self.plot.plot(i_pa, dv_mv, pen=None, symbol="o", symbolSize=7, symbolPen=None,
+                       symbolBrush=pg.mkBrush(theme.TEAL))
+        slope = vi.get("slope")
+        if slope is not None:
+            x = np.array([min(0.0, i_pa.min()), max(0.0, i_pa.max())])
+            self.plot.plot(x, (slope.slope_ohm * x * PA + slope.intercept_V) / MV,
+                           pen=pg.mkPen(theme.TERRACOTTA, width=1.6))
+            set_title(self.plot, f"V–I · slope {slope.slope_ohm / 1e6:.4g} MΩ, "
+                                 f"r² {slope.r2:.4f}")
+        else:
+            set_title(self.plot, "V–I · one amplitude: R_in is ΔV/ΔI")
+        self.plot.getPlotItem().getViewBox().autoRange(padding=0.1)

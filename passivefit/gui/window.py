@@ -1,0 +1,610 @@
+"""The review window: traces and fits on the left, the cell and its sweeps on the right.
+
+The window owns one :class:`~passivefit.gui.state.ReviewState` at a time (the
+recording on screen) and a list of recordings to step through. Widgets call the
+state; the state's events redraw the widgets; the cell analysis runs in a worker
+thread (:class:`~passivefit.gui.worker.AnalysisRunner`) so the window never freezes.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+from dataclasses import replace
+from pathlib import Path
+
+from PySide6 import QtCore, QtGui, QtWidgets
+
+from passivefit.analysis import Settings
+from passivefit.gui import theme
+from passivefit.gui.panels import (
+    CellCard,
+    Header,
+    HelpOverlay,
+    NotesPanel,
+    SweepTable,
+    WindowsBar,
+    card,
+    status_sentence,
+)
+from passivefit.gui.plots import ScanView, SemilogView, TraceView, VIView
+from passivefit.gui.state import WINDOW_NAMES, ReviewState, expand_paths
+from passivefit.gui.worker import AnalysisRunner
+from passivefit.io.recording import LoadError, StepSpec
+
+Qt = QtCore.Qt
+MAX_RECENT = 10
+REJECT_REASONS = ("noisy baseline", "spontaneous event", "unstable access or drift",
+                  "action potential", "artefact in the fit window")
+SHEET_FILTER = "Excel workbook (*.xlsx);;CSV tables (*.csv);;JSON (*.json)"
+
+
+class ReviewWindow(QtWidgets.QMainWindow):
+    """Review recordings one by one: check fits, move windows, keep or reject sweeps.
+
+    Parameters
+    ----------
+    settings : Settings, optional
+        Settings for recordings that have no saved review yet.
+    store : QSettings, optional
+        Where recent files and the database path are remembered.
+    interactive : bool
+        False: never open a dialog (snapshots, tests); problems go to the status bar.
+    synchronous : bool
+        True: analyse in the UI thread (snapshots); False: in a worker thread.
+    autosave : bool
+        Write the review file after every change.
+    """
+
+    def __init__(self, settings: Settings | None = None, *, store: QtCore.QSettings | None = None,
+                 interactive: bool = True, synchronous: bool = False,
+                 autosave: bool = True) -> None:
+        super().__init__()
+        self.base_settings = settings or Settings()
+        self.store = store or QtCore.QSettings("passivefit", "passivefit")
+        self.interactive, self.synchronous, self.autosave = interactive, synchronous, autosave
+        self.paths: list[Path] = []
+        self.position = -1
+        self.state: ReviewState | None = None
+        self.last_error = ""
+        self._previewed = False
+        self.runner = AnalysisRunner(self)
+        self.runner.finished.connect(self._analysis_done)
+        self.runner.failed.connect(self._analysis_failed)
+        self.runner.busy_changed.connect(self._busy)
+        self.setWindowTitle("passivefit · review")
+        self.setStyleSheet(theme.STYLE_SHEET)
+        self.setAcceptDrops(True)
+        self._build()
+        self._menus()
+        self._shortcuts()
+        self.resize(1400, 900)
+
+    # ------------------------------------------------------------------ layout
+    def _build(self) -> None:
+        central = QtWidgets.QWidget()
+        central.setObjectName("central")
+        self.setCentralWidget(central)
+        self.header = Header()
+        self.trace = TraceView()
+        self.windows_bar = WindowsBar()
+        trace_card, trace_layout = card("Traces · sweep on screen in teal, fit in terracotta",
+                                        self.windows_bar.tools)
+        trace_layout.addWidget(self.trace, 1)
+        trace_layout.addWidget(self.windows_bar)
+
+        self.semilog, self.scan, self.vi = SemilogView(), ScanView(), VIView()
+        lower = QtWidgets.QWidget()
+        lower_layout = QtWidgets.QHBoxLayout(lower)
+        lower_layout.setContentsMargins(0, 0, 0, 0)
+        lower_layout.setSpacing(8)
+        for title, view in (("Semilog view", self.semilog), ("Fit-start scan", self.scan),
+                            ("Input resistance", self.vi)):
+            frame, layout = card(title)
+            layout.addWidget(view)
+            lower_layout.addWidget(frame, 1)
+
+        left_split = QtWidgets.QSplitter(Qt.Orientation.Vertical)
+        left_split.addWidget(trace_card)
+        left_split.addWidget(lower)
+        left_split.setSizes([560, 260])
+        left_split.setChildrenCollapsible(False)
+        left = QtWidgets.QWidget()
+        left_layout = QtWidgets.QVBoxLayout(left)
+        left_layout.setContentsMargins(0, 0, 0, 0)
+        left_layout.addWidget(self.header)
+        left_layout.addWidget(left_split, 1)
+
+        self.cell = CellCard()
+        self.notes = NotesPanel()
+        self.table = SweepTable()
+        sweeps_card, sweeps_layout = card("Sweeps")
+        sweeps_layout.addWidget(self.table, 1)
+        self.sweep_line = QtWidgets.QLabel("")
+        self.sweep_line.setObjectName("unit")
+        self.sweep_line.setWordWrap(True)
+        sweeps_layout.addWidget(self.sweep_line)
+        buttons = QtWidgets.QHBoxLayout()
+        for text, tip, slot in (("Accept  A", "Keep this sweep in the cell values",
+                                 lambda: self.decide(True)),
+                                ("Reject  R", "Leave this sweep out (asks a reason)",
+                                 lambda: self.decide(False)),
+                                ("Automatic  C", "Let the automatic tests decide",
+                                 lambda: self.decide(None))):
+            button = QtWidgets.QPushButton(text)
+            button.setToolTip(tip)
+            button.setFocusPolicy(Qt.FocusPolicy.NoFocus)
+            button.clicked.connect(slot)
+            buttons.addWidget(button)
+        sweeps_layout.addLayout(buttons)
+        right_split = QtWidgets.QSplitter(Qt.Orientation.Vertical)
+        for widget in (self.cell, self.notes, sweeps_card):
+            right_split.addWidget(widget)
+        right_split.setSizes([250, 150, 420])
+        right_split.setChildrenCollapsible(False)
+
+        split = QtWidgets.QSplitter(Qt.Orientation.Horizontal)
+        split.addWidget(left)
+        split.addWidget(right_split)
+        split.setSizes([960, 420])
+        split.setChildrenCollapsible(False)
+        outer = QtWidgets.QVBoxLayout(central)
+        outer.setContentsMargins(8, 6, 8, 2)
+        outer.addWidget(split)
+
+        self.progress = QtWidgets.QProgressBar()
+        self.progress.setRange(0, 0)
+        self.progress.setFixedWidth(110)
+        self.progress.setFixedHeight(12)
+        self.progress.setTextVisible(False)
+        self.progress.hide()
+        self.busy_label = QtWidgets.QLabel("")
+        self.statusBar().addPermanentWidget(self.busy_label)
+        self.statusBar().addPermanentWidget(self.progress)
+        self.statusBar().addPermanentWidget(QtWidgets.QLabel("F1: keys"))
+        self.help = HelpOverlay(central)
+
+        self.trace.region_moved.connect(self._preview_window)
+        self.trace.region_finished.connect(self._keep_window)
+        self.windows_bar.edited.connect(self._keep_window)
+        self.windows_bar.reset.connect(self._reset_windows)
+        self.table.picked.connect(self._pick_sweep)
+
+    def _menus(self) -> None:
+        bar = self.menuBar()
+        file_menu = bar.addMenu("&File")
+        self._action(file_menu, "Open recordings…", "Ctrl+O", self._ask_open)
+        self._action(file_menu, "Open a folder…", "Ctrl+Shift+O", self._ask_open_folder)
+        self.recent_menu = file_menu.addMenu("Open recent")
+        self.recent_menu.aboutToShow.connect(self._fill_recent)
+        file_menu.addSeparator()
+        self._action(file_menu, "Export parameter sheet…", "Ctrl+E", self._ask_export)
+        if importlib.util.find_spec("passivefit.export.report") is not None:
+            self._action(file_menu, "Export PDF report…", "Ctrl+P", self._ask_report)
+        self._action(file_menu, "Add cell to database…", "Ctrl+D", self._ask_database)
+        file_menu.addSeparator()
+        self._action(file_menu, "Quit", "Ctrl+Q", self.close)
+        edit = bar.addMenu("&Edit")
+        self.undo_action = self._action(edit, "Undo", "Ctrl+Z", self.undo)
+        self.redo_action = self._action(edit, "Redo", "Ctrl+Shift+Z", self.redo)
+        edit.addSeparator()
+        self._action(edit, "Windows back to automatic", "", self._reset_windows)
+        review = bar.addMenu("&Review")
+        self._action(review, "Next sweep", "Right", lambda: self.step_sweep(1))
+        self._action(review, "Previous sweep", "Left", lambda: self.step_sweep(-1))
+        self._action(review, "Accept sweep", "A", lambda: self.decide(True))
+        self._action(review, "Reject sweep…", "R", lambda: self.decide(False))
+        self._action(review, "Clear decision", "C", lambda: self.decide(None))
+        self._action(review, "Re-run the analysis", "F5", self.refit)
+        review.addSeparator()
+        self._action(review, "Next recording", "PgDown", lambda: self.step_recording(1))
+        self._action(review, "Previous recording", "PgUp", lambda: self.step_recording(-1))
+        help_menu = bar.addMenu("&Help")
+        self._action(help_menu, "Keys for reviewing", "F1", self.help.toggle)
+
+    def _action(self, menu: QtWidgets.QMenu, text: str, keys: str, slot) -> QtGui.QAction:
+        action = QtGui.QAction(text, self)
+        if keys:
+            action.setShortcut(QtGui.QKeySequence(keys))
+        action.triggered.connect(slot)
+        menu.addAction(action)
+        return action
+
+    def _shortcuts(self) -> None:
+        extra = (("J", lambda: self.step_sweep(1)), ("K", lambda: self.step_sweep(-1)),
+                 ("N", lambda: self.step_recording(1)), ("P", lambda: self.step_recording(-1)),
+                 ("Ctrl+Y", self.redo), ("Ctrl+R", self.refit), ("?", self.help.toggle),
+                 ("Z", self.trace.fit_view), ("W", self.windows_bar.only_this.toggle),
+                 ("Esc", self.help.hide))
+        for keys, slot in extra:
+            QtGui.QShortcut(QtGui.QKeySequence(keys), self, slot)
+
+    # ------------------------------------------------------------------ opening
+    def open_paths(self, paths) -> bool:
+        """Open files (folders are searched for recordings); show the first one."""
+        files = expand_paths(paths)
+        if not files:
+            self._problem("no recordings found there (passivefit reads .abf, .nwb, .csv, .tsv)")
+            return False
+        self.paths = files
+        return self.open_position(0)
+
+    def open_position(self, position: int) -> bool:
+        """Show recording number `position` of the list (saving happens on every change)."""
+        if not 0 <= position < len(self.paths):
+            return False
+        path = self.paths[position]
+        try:
+            state = self._make_state(path)
+        except (LoadError, ValueError) as exc:
+            self._problem(str(exc))
+            return False
+        if state is None:
+            return False
+        self.position = position
+        self._attach(state)
+        self._remember(path)
+        return True
+
+    def _make_state(self, path: Path) -> ReviewState | None:
+        from passivefit.io import load
+
+        recording = load(path)
+        try:
+            return ReviewState(recording, self.base_settings, autosave=self.autosave)
+        except LoadError as exc:
+            if self.base_settings.step is not None or not self.interactive:
+                raise
+            step = self._ask_step(path, exc.reason)
+            if step is None:
+                return None
+            return ReviewState(recording, replace(self.base_settings, step=step),
+                               autosave=self.autosave)
+
+    def _attach(self, state: ReviewState) -> None:
+        if self.state is not None:
+            self.runner.wait()
+        self.state = state
+        state.current_changed.connect(self._on_current)
+        state.sweep_refitted.connect(self._on_refit)
+        state.settings_changed.connect(self._on_settings)
+        state.analysis_needed.connect(self._on_analysis_needed)
+        state.result_changed.connect(self._on_result)
+        state.saved.connect(lambda p: self.statusBar().showMessage(f"review saved · {p.name}",
+                                                                   4000))
+        self.setWindowTitle(f"passivefit · review — {Path(state.recording.path).name}")
+        self.header.show_recording(state, self.position, len(self.paths))
+        self.trace.set_recording(state)
+        self.table.show_state(state)
+        if state.steps.get(state.current) is not None:
+            state.refit_sweep()
+        self._show_windows()
+        self.cell.show_result(None, True)
+        for view in (self.notes, self.semilog, self.scan, self.vi):
+            view.show_result(None)
+        self.header.show_verdict(None, True)
+        self._update_undo()
+        note = "review restored from " + state.review_file.name if state.restored else \
+            state.restore_note
+        if note:
+            self.statusBar().showMessage(note, 8000)
+        self._on_analysis_needed(state.settings)
+
+    # ------------------------------------------------------------------ state events
+    def _on_current(self, index: int) -> None:
+        self.trace.show_sweep(self.state)
+        self.table.select(index)
+        self._show_windows()
+
+    def _on_refit(self, fit) -> None:
+        if fit.index == self.state.current:
+            self.trace.show_fit(fit)
+            self._show_windows()
+        self.table.show_row(self.state, fit.index)
+
+    def _on_settings(self, _settings) -> None:
+        self.table.show_state(self.state)
+        self.trace.set_statuses(self.state)
+        self.trace.show_sweep(self.state)
+        self.header.show_verdict(self.state.result, True)
+        self._update_undo()
+
+    def _on_analysis_needed(self, settings) -> None:
+        if self.synchronous:
+            self.state.run_analysis()
+        else:
+            self.runner.request(self.state, settings)
+
+    def _on_result(self, result) -> None:
+        busy = self.runner.busy
+        self.trace.set_statuses(self.state)
+        self.trace.show_sweep(self.state)
+        self.table.show_state(self.state)
+        self.cell.show_result(result, busy)
+        self.notes.show_result(result)
+        self.semilog.show_result(result)
+        self.scan.show_result(result)
+        self.vi.show_result(result)
+        self.header.show_verdict(result, busy)
+        self._show_windows()
+
+    def _analysis_done(self, owner, result) -> None:
+        if owner is self.state:
+            owner.accept_result(result)
+
+    def _analysis_failed(self, owner, message: str) -> None:
+        if owner is self.state:
+            self._problem(f"the analysis failed: {message}")
+
+    def _busy(self, busy: bool) -> None:
+        self.progress.setVisible(busy)
+        self.busy_label.setText("analysing the cell…" if busy else "")
+        if self.state is not None and not busy:
+            self.header.show_verdict(self.state.result, False)
+            self.cell.show_result(self.state.result, False)
+
+    @property
+    def idle(self) -> bool:
+        """No analysis running or waiting and the result matches the settings."""
+        return not self.runner.busy and (self.state is None or self.state.up_to_date)
+
+    # ------------------------------------------------------------------ editing
+    def _preview_window(self, name: str, start_ms: float, end_ms: float) -> None:
+        if self.state is None or not end_ms > start_ms:
+            return
+        self._previewed = True
+        self.state.preview_window(name, (start_ms, end_ms),
+                                  this_sweep_only=self.windows_bar.only_this.isChecked())
+
+    def _keep_window(self, name: str, start_ms: float, end_ms: float) -> None:
+        if self.state is None or not end_ms > start_ms:
+            return
+        shown = self.state.window_ms(name)
+        unchanged = shown is not None and max(abs(shown[0] - start_ms),
+                                              abs(shown[1] - end_ms)) < 1e-6
+        if unchanged and not self._previewed:
+            return    # a click on a window without moving it
+        self._previewed = False
+        self.state.set_window(name, (start_ms, end_ms),
+                              this_sweep_only=self.windows_bar.only_this.isChecked())
+
+    def _reset_windows(self) -> None:
+        if self.state is not None:
+            self.state.reset_windows()
+
+    def _show_windows(self) -> None:
+        """The windows of the sweep on screen in the spin boxes, and its fate in words."""
+        if self.state is not None:
+            self.windows_bar.show_windows({n: self.state.window_ms(n) for n in WINDOW_NAMES})
+            index = self.state.current
+            self.sweep_line.setText(status_sentence(index, self.state.status(index)))
+
+    def _pick_sweep(self, index: int) -> None:
+        if self.state is not None:
+            self.state.go_to(index)
+
+    def step_sweep(self, delta: int) -> None:
+        if self.state is not None:
+            self.state.step_sweep(delta)
+
+    def step_recording(self, delta: int) -> None:
+        self.open_position(self.position + delta)
+
+    def decide(self, accepted: bool | None, reason: str | None = None) -> None:
+        """Accept, reject (asking a reason unless given) or clear the sweep on screen."""
+        if self.state is None:
+            return
+        if accepted is False and reason is None:
+            reason = self._ask_reason()
+            if reason is None:
+                return
+        self.state.set_decision(None, accepted, reason or "")
+        if accepted is not None:
+            self.state.step_sweep(1)
+
+    def refit(self) -> None:
+        if self.state is not None:
+            self._on_analysis_needed(self.state.settings)
+
+    def undo(self) -> None:
+        if self.state is not None and not self.state.undo():
+            self.statusBar().showMessage("nothing to undo", 3000)
+
+    def redo(self) -> None:
+        if self.state is not None and not self.state.redo():
+            self.statusBar().showMessage("nothing to redo", 3000)
+
+    def _update_undo(self) -> None:
+        self.undo_action.setEnabled(self.state is not None and self.state.can_undo)
+        self.redo_action.setEnabled(self.state is not None and self.state.can_redo)
+
+    # ------------------------------------------------------------------ output
+    def current_result(self):
+        """The analysis for the current settings (computed now if the worker is behind)."""
+        if self.state is None:
+            raise ValueError("no recording is open")
+        if not self.state.up_to_date:
+            self.runner.wait()
+            if not self.state.up_to_date:
+                self.state.run_analysis()
+        return self.state.result
+
+    def export_sheet(self, path: str | Path) -> list[Path]:
+        """Write the cell and its sweeps to a CSV, XLSX or JSON parameter sheet."""
+        from passivefit.export.sheets import write_sheet
+
+        result = self.current_result()
+        written = write_sheet([result.to_dict()], path, annotations=[self._annotations()])
+        self.statusBar().showMessage("wrote " + ", ".join(p.name for p in written), 6000)
+        return written
+
+    def add_to_database(self, target: str) -> str:
+        """Store the reviewed analysis in a cell database (SQLite path or URL)."""
+        from passivefit.store.database import open_database
+
+        database = open_database(target, create=True)
+        try:
+            outcome = database.store(self.current_result().to_dict(),
+                                     cell_metadata=self._cell_metadata())
+        finally:
+            database.close()
+        message = (f"stored in {target} (analysis {outcome.analysis_id}, revision "
+                   f"{outcome.revision})" if outcome.status == "stored" else
+                   f"already in {target} with these settings (analysis {outcome.analysis_id})")
+        self.statusBar().showMessage(message, 8000)
+        return outcome.status
+
+    def _cell_metadata(self) -> dict:
+        from passivefit.batch import METADATA_COLUMNS
+
+        md = self.state.recording.metadata or {}
+        return {k: md[k] for k in METADATA_COLUMNS[1:] if isinstance(md.get(k), str | int | float)}
+
+    def _annotations(self) -> dict:
+        return {**self._cell_metadata(), "review_file": str(self.state.review_file)}
+
+    def snapshot(self, path: str | Path) -> Path:
+        """Render the window (at its present size) to a PNG file."""
+        QtWidgets.QApplication.processEvents()
+        if not self.grab().save(str(path)):
+            raise OSError(f"{path}: could not write the PNG")
+        return Path(path)
+
+    # ------------------------------------------------------------------ dialogs
+    def _problem(self, message: str) -> None:
+        self.last_error = message
+        self.statusBar().showMessage(message, 15000)
+        if self.interactive:
+            QtWidgets.QMessageBox.warning(self, "passivefit", message)
+
+    def _ask_reason(self) -> str | None:
+        if not self.interactive:
+            return "rejected in review"
+        text, ok = QtWidgets.QInputDialog.getItem(
+            self, f"Reject sweep {self.state.current}", "Why leave this sweep out?",
+            REJECT_REASONS, 0, True)
+        return text.strip() or "rejected in review" if ok else None
+
+    def _ask_step(self, path: Path, reason: str) -> StepSpec | None:
+        dialog = StepDialog(path, reason, self)
+        return dialog.step() if dialog.exec() else None
+
+    def _ask_open(self) -> None:
+        from passivefit.io import supported_extensions
+
+        pattern = " ".join(f"*{e}" for e in supported_extensions())
+        files, _ = QtWidgets.QFileDialog.getOpenFileNames(
+            self, "Open recordings", self._last_folder(), f"Recordings ({pattern})")
+        if files:
+            self.open_paths(files)
+
+    def _ask_open_folder(self) -> None:
+        folder = QtWidgets.QFileDialog.getExistingDirectory(self, "Open a folder of recordings",
+                                                            self._last_folder())
+        if folder:
+            self.open_paths([folder])
+
+    def _ask_export(self) -> None:
+        if self.state is None:
+            return
+        stem = Path(self.state.recording.path).with_suffix("")
+        path, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Export parameter sheet",
+                                                        f"{stem}_passivefit.xlsx", SHEET_FILTER)
+        if path:
+            try:
+                self.export_sheet(path)
+            except (OSError, ValueError) as exc:
+                self._problem(str(exc))
+
+    def _ask_report(self) -> None:
+        self._problem("the PDF report is not wired into this window yet")
+
+    def _ask_database(self) -> None:
+        if self.state is None:
+            return
+        target = self.store.value("database", "")
+        if not target:
+            target, _ = QtWidgets.QFileDialog.getSaveFileName(
+                self, "Cell database (SQLite file)", str(Path.home() / "cells.sqlite"),
+                "SQLite database (*.sqlite *.db)", options=(
+                    QtWidgets.QFileDialog.Option.DontConfirmOverwrite))
+            if not target:
+                return
+            self.store.setValue("database", target)
+        try:
+            self.add_to_database(target)
+        except ValueError as exc:
+            self._problem(str(exc))
+
+    # ------------------------------------------------------------------ recent files
+    def _remember(self, path: Path) -> None:
+        recent = [str(Path(path).resolve())]
+        recent += [p for p in self.recent_files() if p != recent[0]]
+        self.store.setValue("recent", recent[:MAX_RECENT])
+
+    def recent_files(self) -> list[str]:
+        value = self.store.value("recent", [])
+        return [value] if isinstance(value, str) else list(value or [])
+
+    def _fill_recent(self) -> None:
+        self.recent_menu.clear()
+        for path in self.recent_files():
+            action = self.recent_menu.addAction(path)
+            action.triggered.connect(lambda _=False, p=path: self.open_paths([p]))
+        if not self.recent_menu.actions():
+            self.recent_menu.addAction("(none yet)").setEnabled(False)
+
+    def _last_folder(self) -> str:
+        recent = self.recent_files()
+        return str(Path(recent[0]).parent) if recent else str(Path.home())
+
+    # ------------------------------------------------------------------ Qt events
+    def dragEnterEvent(self, event: QtGui.QDragEnterEvent) -> None:  # noqa: N802 (Qt name)
+        if event.mimeData().hasUrls():
+            event.acceptProposedAction()
+
+    def dropEvent(self, event: QtGui.QDropEvent) -> None:  # noqa: N802 (Qt name)
+        paths = [u.toLocalFile() for u in event.mimeData().urls() if u.isLocalFile()]
+        if paths:
+            event.acceptProposedAction()
+            self.open_paths(paths)
+
+    def resizeEvent(self, event: QtGui.QResizeEvent) -> None:  # noqa: N802 (Qt name)
+        super().resizeEvent(event)
+        if self.help.isVisible():
+            self.help.setGeometry(self.centralWidget().rect())
+
+    def closeEvent(self, event: QtGui.QCloseEvent) -> None:  # noqa: N802 (Qt name)
+        self.runner.wait()
+        super().closeEvent(event)
+
+
+class StepDialog(QtWidgets.QDialog):
+    """Ask for the current step of a file that carries no command waveform."""
+
+    def __init__(self, path: Path, reason: str, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.setWindowTitle("The current step")
+        form = QtWidgets.QFormLayout(self)
+        text = QtWidgets.QLabel(f"{path.name}: {reason}\n\nDescribe the step of the first "
+                                "sweep; it is saved with the review.")
+        text.setWordWrap(True)
+        form.addRow(text)
+        self.boxes = []
+        for label, value, low in (("onset (ms)", 100.0, 0.0), ("duration (ms)", 300.0, 0.01),
+                                  ("amplitude (pA)", -40.0, -1e5),
+                                  ("increment per sweep (pA)", 0.0, -1e5)):
+            box = QtWidgets.QDoubleSpinBox()
+            box.setRange(low, 1e5)
+            box.setDecimals(2)
+            box.setValue(value)
+            form.addRow(label, box)
+            self.boxes.append(box)
+        buttons = QtWidgets.QDialogButtonBox(QtWidgets.QDialogButtonBox.StandardButton.Ok
+                                             | QtWidgets.QDialogButtonBox.StandardButton.Cancel)
+        buttons.accepted.connect(self.accept)
+        buttons.rejected.connect(self.reject)
+        form.addRow(buttons)
+
+    def step(self) -> StepSpec:
+        on, dur, amp, inc = (b.value() for b in self.boxes)
+        return StepSpec(on * 1e-3, dur * 1e-3, amp * 1e-12, inc * 1e-12)
