@@ -204,7 +204,10 @@ class SweepFit:
     flags: tuple[Flag, ...] = ()
 
     def tau(self, n: int) -> float | None:
-        return self.taus_s[n] if n < len(self.taus_s) else None
+        """τn in s; None when not fitted or not resolved (95 % CI wider than the value)."""
+        if n >= len(self.taus_s) or self.fit is None:
+            return None
+        return None if not self.fit.tau_ci95[n] < self.taus_s[n] else self.taus_s[n]
 
     def amp(self, n: int) -> float | None:
         return self.amps_V[n] if n < len(self.amps_V) else None
@@ -329,6 +332,7 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
 
 
 # --------------------------------------------------------------------------- windows
+SPIKE_V = -0.010          # a sweep reaching this potential fired an action potential
 GUARD_S = 0.5e-3         # keep windows this far from step edges
 MIN_FIT_START_S = 0.3e-3  # earliest automatic fit start after an edge
 KEEP_FULL_S, BIN_FACTOR = 8e-3, 1.04  # fit samples at full rate up to 8 ms, then 4 % bins
@@ -443,9 +447,25 @@ def _event_in(resid: np.ndarray, fs: float) -> float:
     return float(np.max(np.abs(centred)) / max(spread, 1e-9))
 
 
-def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
+def baseline_only(v: np.ndarray, step: Step | None, index: int, fs: float,
                   settings: Settings) -> SweepFit:
-    """Baseline, steady state, fitted transients and tests of one sweep."""
+    """A sweep with its step and baseline only, unfitted: enough to pool sweeps."""
+    if step is None:
+        return SweepFit(index, False, "no step in this sweep", None)
+    wins = resolve_windows(step, v.size, fs, settings.windows_for(index), MIN_FIT_START_S)
+    b0, b1 = (_index(t, fs, v.size) for t in wins["baseline"])
+    if b1 - b0 < 10:
+        return SweepFit(index, False, "no baseline before the step", step)
+    return SweepFit(index, np.max(v) < SPIKE_V, None, step, v_rest_V=steady.robust_level(v[b0:b1]))
+
+
+def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
+                  settings: Settings, tau_init: tuple[float, ...] | None = None) -> SweepFit:
+    """Baseline, steady state, fitted transients and tests of one sweep.
+
+    `tau_init` (s), from a fit of the combined sweeps, starts the fit there and fixes the
+    number of components (at most two: single sweeps rarely resolve a third).
+    """
     if step is None:
         return SweepFit(index, False, "no step in this sweep", None)
     flags: list[Flag] = []
@@ -468,8 +488,10 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         segs, records = _segments(v, fs, step, wins)
         if not segs:
             raise ValueError("the fit window holds too few samples")
-        # single sweeps rarely resolve a third component: "auto" stops at two here
-        fit = _fit(segs, settings.components, max_components=2)
+        if tau_init is not None and settings.components == "auto":
+            fit = _fit(segs, str(min(len(tau_init), 2)), tau_init=tau_init[:2])
+        else:  # single sweeps rarely resolve a third component: "auto" stops at two here
+            fit = _fit(segs, settings.components, max_components=2)
         if not fit.success:
             raise ValueError(fit.message)
     except (ValueError, np.linalg.LinAlgError, RuntimeError) as exc:
@@ -504,7 +526,7 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
     accepted, reason = True, None
     if fit_error:
         accepted, reason = False, fit_error
-    elif np.max(v) > -0.010:
+    elif np.max(v) >= SPIKE_V:
         accepted, reason = False, f"action potential (peak {np.max(v) / MV:.0f} mV)"
     elif fit is not None:
         resids = [residual(v, fit, r, fs)[1] for r in records]
@@ -712,17 +734,11 @@ def analyze(recording: Recording, settings: Settings | None = None) -> Recording
                         f"the file has sweeps 0-{len(recording.sweeps) - 1}")
     voltages = {s.index: s.voltage for s, _ in chosen}
 
-    def fit_all(effective: Settings) -> list[SweepFit]:
-        fits = [analyze_sweep(s.voltage, st, s.index, fs, effective) for s, st in chosen]
-        return apply_decisions(reject_outliers(fits), effective)
-
-    fits = fit_all(settings)
-    effective = settings
-    if settings.fit_start_ms is None:
-        start = choose_fit_start(fits, voltages, fs, settings)
-        if start is not None:
-            effective = replace(settings, fit_start_ms=start / MS)
-            fits = fit_all(effective)
+    screened = [baseline_only(s.voltage, st, s.index, fs, settings) for s, st in chosen]
+    start, tau_init = first_look(screened, voltages, fs, settings)
+    effective = settings if start is None else replace(settings, fit_start_ms=start / MS)
+    fits = [analyze_sweep(s.voltage, st, s.index, fs, effective, tau_init) for s, st in chosen]
+    fits = apply_decisions(reject_outliers(fits), effective)
     cell, extras = summarize_cell(fits, voltages, fs, effective)
     cell["fit_start_ms"] = _num(extras["average"].windows_s.get(
         "fit", extras["average"].windows_s.get("fit_off", (np.nan,)))[0]
@@ -746,25 +762,28 @@ def _edge_s(g: GroupAverage) -> float:
 START_TAU1 = 0.8
 
 
-def choose_fit_start(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
-                     settings: Settings) -> float | None:
-    """Automatic fit start (s after the edge): after the artefact and after 0.8 τ1.
+def first_look(screened: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
+               settings: Settings) -> tuple[float | None, tuple[float, ...] | None]:
+    """Fit start (s after the edge, None = as set) and start values for the sweep fits.
 
-    A first fit of the combined response from the end of the artefact gives τ1; the
-    start moves to START_TAU1·τ1 when that is later (capped at 5 ms).
+    A first fit of all sweeps combined, from the end of the artefact, gives τ1; for steps
+    the automatic start moves to START_TAU1·τ1 when that is later (capped at 5 ms).
     """
-    pool = sweep_pool(fits, voltages)
-    if pool is None or settings.components == "1" or pool.step.kind == "pulse":
-        return None  # pulses weight τ1 strongly: 2–3 components fit well from the artefact
+    pool = sweep_pool(screened, voltages)
+    if pool is None:
+        return None, None
     avg = _average(pool.step, list(pool.indices), pool.combine(), fs, settings)
     try:
         fit, avg = fit_average(avg, fs, settings.components)
     except (ValueError, np.linalg.LinAlgError, RuntimeError):
-        return None
+        return None, None
+    if not fit.success:
+        return None, None
+    taus = tuple(float(t) for t in fit.taus)
+    if settings.fit_start_ms is not None or pool.step.kind == "pulse" or len(taus) < 2:
+        return None, taus  # pulses weight τ1 strongly: fit from the artefact on
     artefact = avg.segments[0].start_s - _edge_s(avg)
-    if not fit.success or len(fit.taus) < 2:
-        return artefact
-    return float(np.clip(START_TAU1 * fit.taus[1], artefact, 5e-3))
+    return float(np.clip(START_TAU1 * taus[1], artefact, 5e-3)), taus
 
 
 def _empty_cell() -> dict:

@@ -32,11 +32,15 @@ def noise_sd(v: np.ndarray) -> float:
 
 def smooth(v: np.ndarray, width: int) -> np.ndarray:
     """Moving average over `width` samples (same length; edges use shorter windows)."""
-    width = max(1, int(width))
+    v = np.asarray(v, dtype=np.float64)
+    width = max(1, min(int(width), v.size))
     if width == 1:
-        return np.asarray(v, dtype=np.float64)
-    kernel = np.ones(width)
-    return np.convolve(v, kernel, "same") / np.convolve(np.ones(len(v)), kernel, "same")
+        return v
+    csum = np.concatenate(([0.0], np.cumsum(v)))
+    centre = np.arange(v.size)
+    lo = np.clip(centre - width // 2, 0, v.size)
+    hi = np.clip(centre - width // 2 + width, 0, v.size)
+    return (csum[hi] - csum[lo]) / (hi - lo)
 
 
 def sag_ratio(step_trace: np.ndarray, v_base: float, v_steady: float, width: int,
