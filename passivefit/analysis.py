@@ -210,7 +210,13 @@ class SweepFit:
         return None if not self.fit.tau_ci95[n] < self.taus_s[n] else self.taus_s[n]
 
     def amp(self, n: int) -> float | None:
-        return self.amps_V[n] if n < len(self.amps_V) else None
+        """Amplitude of component n in V; None when its τ is not resolved."""
+        return self.amps_V[n] if self.tau(n) is not None else None
+
+    @property
+    def resolved(self) -> bool:
+        """Whether every fitted time constant is resolved."""
+        return all(self.tau(n) is not None for n in range(len(self.taus_s)))
 
     def model_curves(self) -> list[tuple[np.ndarray, np.ndarray]]:
         """(time in s, fitted voltage in V) over each fit segment, for drawing."""
@@ -230,7 +236,7 @@ class SweepFit:
             "c0_mV": _num(self.amp(0), MV),
             "c1_mV": _num(self.amp(1), MV),
             "rmse_mV": _num(self.rmse_V, MV),
-            "bridge_MOhm": _num(self.bridge_ohm, MOHM),
+            "bridge_MOhm": _num(self.bridge_ohm if self.resolved else None, MOHM),
             "sag_ratio": _num(self.sag, 1.0, 4),
             "n_components": len(self.taus_s),
             "flags": [f.to_dict() for f in self.flags],
