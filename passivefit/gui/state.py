@@ -448,6 +448,11 @@ class ReviewState:
         self.analysis_needed.emit(settings)
 
     # ------------------------------------------------------------------ saving
+    def save_position(self) -> None:
+        """Save the sweep on screen too, when this recording has a review file already."""
+        if self.autosave and self.review_file.exists():
+            self.save()
+
     def save(self, path: str | os.PathLike | None = None) -> Path:
         """Write the review file (atomically); returns its path."""
         written = write_review(path or self.review_file,

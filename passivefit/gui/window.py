@@ -263,6 +263,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
     def _attach(self, state: ReviewState) -> None:
         if self.state is not None:
             self.runner.wait()
+            self.state.save_position()
         self.state = state
         state.current_changed.connect(self._on_current)
         state.sweep_refitted.connect(self._on_refit)
@@ -575,6 +576,8 @@ class ReviewWindow(QtWidgets.QMainWindow):
 
     def closeEvent(self, event: QtGui.QCloseEvent) -> None:  # noqa: N802 (Qt name)
         self.runner.wait()
+        if self.state is not None:
+            self.state.save_position()
         super().closeEvent(event)
 
 
