@@ -203,3 +203,75 @@ def test_settings_hash_matches_the_settings_object():
 def test_flags_text_accepts_objects_and_codes():
     assert flags_text([{"code": "A", "message": "m"}, "B", {"code": "C"}]) == "A: m; B; C"
     assert flags_text([]) == ""
+
+
+# ---------------------------------------------------------------------------- PDF report
+def _pdf_pages(path) -> int:
+    import re
+
+    return len(re.findall(rb"/Type /Page[^s]", path.read_bytes()))
+
+
+@pytest.fixture(scope="module")
+def analysed_cell():
+    from passivefit.analysis import Settings, analyze
+    from passivefit.simulate import BallStick, StepProtocol, simulate_recording
+
+    cell = BallStick.from_electrotonic(0.024, 0.95, 2.0, 140e6)
+    recording, _ = simulate_recording(
+        cell, protocol=StepProtocol(0.05, 0.25, (-50e-12, -30e-12, -10e-12, 10e-12)),
+        sample_rate_hz=10_000, sweep_duration_s=0.4, n_sweeps=8, filter_hz=2_000, seed=7,
+        cell_id="LOL-2026-11-12-c3", metadata={"region": "CA3", "cell_type": "pyramidal"})
+    return recording, analyze(recording, Settings())
+
+
+def test_report_pages_per_cell(tmp_path, analysed_cell):
+    from passivefit.export.report import write_report
+
+    path = write_report([analysed_cell, analysed_cell], tmp_path / "cells.pdf")
+    assert path.read_bytes()[:5] == b"%PDF-"
+    assert _pdf_pages(path) == 4  # figures + values page, for each of the two cells
+
+
+def test_report_without_a_cell_fit_still_renders(tmp_path, analysed_cell):
+    from passivefit.analysis import Settings, analyze
+    from passivefit.export.report import write_report
+
+    recording, _ = analysed_cell
+    everything_rejected = Settings(decisions=tuple((s.index, False, "test: reviewer rejected")
+                                                   for s in recording.sweeps))
+    result = analyze(recording, everything_rejected)
+    assert result.cell_fit is None and result.to_dict()["cell"]["tau0_ms"] is None
+    path = write_report([(recording, result)], tmp_path / "empty.pdf")
+    assert _pdf_pages(path) == 2
+
+
+def test_report_text_flows_onto_more_pages(tmp_path, analysed_cell, monkeypatch):
+    from passivefit.export import report
+
+    recording, result = analysed_cell
+    data = result.to_dict()
+    data["flags"] = [{"code": f"test.flag{k}", "message": "a long reason " * 8, "value": k}
+                     for k in range(60)]
+    monkeypatch.setattr(type(result), "to_dict", lambda self: data)
+    path = report.write_report([(recording, result)], tmp_path / "long.pdf")
+    assert _pdf_pages(path) >= 3  # nothing is cut off at the page bottom
+    lines = report._flag_lines(data)
+    assert lines[5].startswith("[test.flag5] a long reason") and lines[5].endswith("(value 5)")
+
+
+def test_report_values_show_ci_and_missing_values():
+    from passivefit.export.report import _value_rows
+
+    cell = example_result()["cell"] | {"tau0_ci95_ms": 0.41, "rho": None}
+    rows = {label: (text, unit) for label, text, unit in _value_rows(cell)}
+    assert rows["Membrane time constant τ0"] == ("22 ± 0.41", "ms")
+    assert rows["ρ, ball-and-stick"][0] == "— (not estimable: see flags)"
+    assert rows["Input resistance R_in"] == ("113", "MΩ")
+
+
+def test_report_needs_a_pdf_name(tmp_path, analysed_cell):
+    from passivefit.export.report import write_report
+
+    with pytest.raises(ValueError, match=r"the report is a PDF; give a file ending in \.pdf"):
+        write_report([analysed_cell], tmp_path / "cells.png")

@@ -1,0 +1,432 @@
+"""Per-cell PDF report: the fits over the traces, diagnostics, the numbers and their limits.
+
+Per recording, one A4 page of figures and one or more pages of text:
+
+1. the sweeps with their fitted curves; the combined response with the cell fit;
+   the semilog (peel) view; the residuals of the cell fit; the V–I relation; and
+   τ0, τ1 against the fit start (they should reach a plateau);
+2. the cell values with their 95 % intervals, the flags, the sweeps table, the
+   provenance (file hash, version, settings) and the cautions that go with
+   cable-theory estimates.
+
+Reads the arrays of `passivefit.analysis.RecordingResult` (model curves, peel lines,
+fit-start scan, V–I points) and the recording's traces; the numbers on page 2 come
+from ``RecordingResult.to_dict()``, the same object the sheets and database hold.
+"""
+
+from __future__ import annotations
+
+import json
+import textwrap
+from collections.abc import Mapping, Sequence
+from datetime import UTC, datetime
+from pathlib import Path
+
+from passivefit.export.provenance import result_settings_hash
+
+MS, MV, PA = 1e-3, 1e-3, 1e-12
+A4_PORTRAIT = (8.27, 11.69)
+RASTER_DPI = 150  # dense traces are embedded as images at this resolution; text stays vector
+FIT_COLOUR, DATA_COLOUR, REJECT_COLOUR, MODE_COLOURS = (
+    "#c0392b", "#3b4a5a", "#e6a3a3", ("#1f6f8b", "#d4881e", "#5c8a3a"))
+
+# (label, value key, CI key, unit) of the values table, in DESIGN.md order.
+VALUE_ROWS = (
+    ("Resting potential V_rest", "v_rest_mV", None, "mV"),
+    ("Input resistance R_in", "r_in_MOhm", None, "MΩ"),
+    ("Membrane time constant τ0", "tau0_ms", "tau0_ci95_ms", "ms"),
+    ("First equalizing τ1", "tau1_ms", "tau1_ci95_ms", "ms"),
+    ("Amplitude C0", "c0_mV", None, "mV"),
+    ("Amplitude C1", "c1_mV", None, "mV"),
+    ("L, equivalent cylinder", "L_cyl", "L_cyl_ci95", ""),
+    ("L, ball-and-stick", "L_bs", "L_ci95", ""),
+    ("ρ, ball-and-stick", "rho", "rho_ci95", ""),
+    ("C = τ0/R_in", "c_tau_pF", None, "pF"),
+    ("C total (cable-corrected)", "c_total_pF", None, "pF"),
+    ("Sag ratio (steady/peak)", "sag_ratio", None, ""),
+    ("Sweeps used", "n_sweeps_used", None, ""),
+)
+
+CAUTIONS = """\
+How to read these numbers. τ0, τ1, L, ρ and the capacitances rest on assumptions that a \
+real neuron meets only in part:
+• A passive, uniform membrane: the same specific resistance and capacitance everywhere and \
+no voltage-dependent conductance active over the range of the responses. Check the sag \
+ratio, the straightness of the V–I relation and the agreement of depolarizing and \
+hyperpolarizing steps. An h-type sag or other active current shortens the apparent τ0 and \
+lowers R_in.
+• Small, linear responses (a few mV) from a stable resting potential.
+• A cell that reduces to an equivalent cylinder (L_cyl) or to a soma plus one cylinder with \
+a sealed end (ball-and-stick: L_bs, ρ). Tapering, branches of unequal length and \
+non-uniform membrane break that reduction: τ1 then mixes several modes and L is an index of \
+electrotonic spread, not an anatomical length.
+• How violations bias the cable values: a somatic shunt (seal leak, damage at the electrode) \
+shortens τ0 below the membrane time constant, which lowers τ0/τ1 and inflates L and ρ; a \
+fit started inside the electrode artefact or before faster modes have died out biases τ1 \
+low and so L low (the fit-start scan should show a plateau). A bridge-balance error biases \
+R_in but not the time constants. τ0/R_in underestimates the total capacitance of a \
+non-isopotential cell; the cable-corrected value assumes a uniform τm.
+For research use only; not for clinical or diagnostic use."""
+
+
+def write_report(cells: Sequence[tuple], path: str | Path, *,
+                 analysed_at: datetime | None = None) -> Path:
+    """Write the PDF report of one or more analysed recordings.
+
+    Parameters
+    ----------
+    cells : sequence of (Recording, RecordingResult)
+        Each recording with the result of `passivefit.analysis.analyze` on it.
+    path : str or Path
+        The ``.pdf`` file to write (replaced if it exists).
+    analysed_at : datetime, optional
+        Time shown in the provenance block; default: now (UTC).
+
+    Returns
+    -------
+    Path
+        The written file.
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    from matplotlib.backends.backend_pdf import PdfPages
+
+    path = Path(path)
+    if path.suffix.lower() != ".pdf":
+        raise ValueError(f"{path}: the report is a PDF; give a file ending in .pdf")
+    when = analysed_at or datetime.now(UTC)
+    with plt.rc_context({"font.size": 7.5, "axes.titlesize": 8.5, "axes.labelsize": 7.5,
+                         "xtick.labelsize": 7, "ytick.labelsize": 7, "legend.fontsize": 6.5,
+                         "pdf.fonttype": 42}), PdfPages(path) as pdf:
+        for recording, result in cells:
+            data = result.to_dict()
+            fig = _figure_page(recording, result, data)
+            pdf.savefig(fig, dpi=RASTER_DPI)
+            plt.close(fig)
+            _numbers_pages(pdf, recording, data, when)
+        info = pdf.infodict()
+        info["Title"] = "passivefit report"
+        info["Creator"] = f"passivefit {cells[0][1].to_dict()['passivefit_version']}" if cells \
+            else "passivefit"
+    return path
+
+
+# ---------------------------------------------------------------------------- page 1
+def _figure_page(recording, result, data: dict):
+    import matplotlib.pyplot as plt
+
+    fig = plt.figure(figsize=A4_PORTRAIT)
+    grid = fig.add_gridspec(4, 2, left=0.09, right=0.97, top=0.92, bottom=0.05, hspace=0.55,
+                            wspace=0.28, height_ratios=[1.15, 1, 1, 1])
+    _header(fig, recording, data, "fits and diagnostics")
+    _draw_sweeps(fig.add_subplot(grid[0, :]), recording, result)
+    _draw_average(fig.add_subplot(grid[1, 0]), result, recording.sample_rate_hz)
+    _draw_semilog(fig.add_subplot(grid[1, 1]), result, recording.sample_rate_hz)
+    _draw_residuals(fig.add_subplot(grid[2, 0]), result, recording.sample_rate_hz)
+    _draw_vi(fig.add_subplot(grid[2, 1]), result)
+    _draw_scan(fig.add_subplot(grid[3, 0]), fig.add_subplot(grid[3, 1]), result, data)
+    return fig
+
+
+def _header(fig, recording, data: dict, what: str) -> None:
+    meta = recording.metadata or {}
+    name = meta.get("cell_id") or Path(data["source"]["path"]).stem
+    fig.text(0.09, 0.965, f"{name} — {what}", fontsize=12, weight="bold")
+    details = [Path(data["source"]["path"]).name, f"{data['source']['format']}",
+               f"{data['source']['sweep_count']} sweeps", f"{recording.sample_rate_hz:g} Hz"]
+    if meta.get("date"):
+        details.append(str(meta["date"])[:10])  # NWB gives a full session start time
+    details += [str(meta[k]) for k in ("region", "cell_type") if meta.get(k)]
+    if meta.get("temperature_C") is not None:
+        details.append(f"{meta['temperature_C']} °C")
+    fig.text(0.09, 0.945, textwrap.shorten(" · ".join(map(str, details)), 150), fontsize=8,
+             color="#444444")
+
+
+def _unavailable(ax, why: str) -> None:
+    ax.text(0.5, 0.5, textwrap.fill(why, 45), ha="center", va="center", transform=ax.transAxes,
+            color="#777777")
+    ax.set_xticks([])
+    ax.set_yticks([])
+
+
+def _window(result, fs: float, n: int) -> tuple[int, int]:
+    """Sample range to show: from before the first fit segment to after the last one."""
+    segments = [s for f in result.sweeps for s in f.segments]
+    if not segments:
+        return 0, n
+    first = min(s.edge_s for s in segments)
+    last = max(s.end_s for s in segments)
+    pad = 0.1 * (last - first)
+    return max(0, int((first - pad) * fs)), min(n, int((last + pad) * fs) + 1)
+
+
+def _draw_sweeps(ax, recording, result) -> None:
+    import numpy as np
+
+    fs = recording.sample_rate_hz
+    fits = {f.index: f for f in result.sweeps}
+    a, b = _window(result, fs, max(s.n_samples for s in recording.sweeps))
+    for sweep in recording.sweeps:
+        fit = fits.get(sweep.index)
+        if fit is None:
+            continue
+        t = np.arange(a, min(b, sweep.n_samples)) / fs
+        colour = DATA_COLOUR if fit.accepted else REJECT_COLOUR
+        ax.plot(t / MS, sweep.voltage[a:b] / MV, color=colour, lw=0.4, alpha=0.7,
+                rasterized=True)
+        for tc, vc in fit.model_curves():
+            ax.plot(tc / MS, vc / MV, color=FIT_COLOUR, lw=0.8)
+    ax.plot([], [], color=DATA_COLOUR, lw=0.8, label="accepted sweeps")
+    if any(not f.accepted for f in result.sweeps):
+        ax.plot([], [], color=REJECT_COLOUR, lw=0.8, label="rejected sweeps")
+    ax.plot([], [], color=FIT_COLOUR, lw=0.8, label="per-sweep fits")
+    ax.legend(loc="best", frameon=False, ncol=3)
+    ax.set_title("Sweeps and their fits")
+    ax.set_xlabel("time (ms)")
+    ax.set_ylabel("V (mV)")
+
+
+def _draw_average(ax, result, fs: float) -> None:
+    import numpy as np
+
+    g, fit = result.average, result.cell_fit
+    if g is None or fit is None:
+        _unavailable(ax, "no cell fit: see the flags")
+        return
+    a, b = _window(result, fs, g.v_V.size)
+    t = np.arange(a, b) / fs
+    ax.plot(t / MS, g.v_V[a:b] / MV, color=DATA_COLOUR, lw=0.5, label="combined response",
+            rasterized=True)
+    for k, (tc, vc) in enumerate(g.model_curves(fit)):
+        ax.plot(tc / MS, vc / MV, color=FIT_COLOUR, lw=1.0, label="cell fit" if k == 0 else None)
+    ax.set_title(f"Combined response ({len(g.sweep_indices)} sweeps, "
+                 f"{g.amplitude_A / PA:.4g} pA)")
+    ax.set_xlabel("time (ms)")
+    ax.set_ylabel("V (mV)")
+    ax.legend(loc="best", frameon=False)
+
+
+def _draw_semilog(ax, result, fs: float) -> None:
+    import numpy as np
+
+    g, fit, peel = result.average, result.cell_fit, result.peel
+    if g is None or fit is None or not g.segments:
+        _unavailable(ax, "no cell fit: nothing to peel")
+        return
+    seg = g.segments[0]
+    span = seg.samples(fs)
+    t = np.arange(span.start, span.stop) / fs - seg.edge_s
+    distance = np.abs(g.v_V[span] - fit.offsets[seg.index])
+    floor = max(float(np.median(distance)) * 1e-2, 1e-7)
+    keep = distance > floor
+    ax.semilogy(t[keep] / MS, distance[keep] / MV, ".", ms=1.2, color=DATA_COLOUR,
+                label="|V − V∞|", rasterized=True)
+    for k, (tau, amp) in enumerate(zip(fit.taus, fit.amplitudes[seg.index], strict=True)):
+        line = np.abs(amp) * np.exp(-t / tau)
+        ax.semilogy(t / MS, line / MV, color=MODE_COLOURS[k % 3], lw=1.0,
+                    label=f"fit τ{k} = {tau / MS:.3g} ms")
+    if peel is not None:
+        for k, line in enumerate(peel.lines):
+            tl = np.linspace(0.0, line.t_end, 50)
+            ax.semilogy(tl / MS, np.exp(line.intercept_log + line.slope * tl) / MV, "--",
+                        color=MODE_COLOURS[k % 3], lw=0.8,
+                        label=f"peel line {k} (τ {-1 / line.slope / MS:.3g} ms)")
+    top = float(distance.max())
+    ax.set_ylim(max(floor, top * 1e-3) / MV, top * 2 / MV)
+    ax.set_xlim(0.0, min(t.max(), 6.0 * fit.taus[0]) / MS)  # beyond ~6 τ0 only noise is left
+    ax.set_title("Semilog view of the first transient")
+    ax.set_xlabel("time from the step edge (ms)")
+    ax.set_ylabel("|V − V∞| (mV)")
+    ax.legend(loc="upper right", frameon=False)
+
+
+def _draw_residuals(ax, result, fs: float) -> None:
+    import numpy as np
+
+    from passivefit.analysis import residual
+
+    g, fit = result.average, result.cell_fit
+    if g is None or fit is None or not g.segments:
+        _unavailable(ax, "no cell fit: no residuals")
+        return
+    names = ("charging", "decay") if g.step.kind == "step" else ("decay",)
+    for k, seg in enumerate(g.segments):
+        t, r = residual(g.v_V, fit, seg, fs)
+        ax.plot((t - seg.edge_s) / MS, r / MV, lw=0.4, color=MODE_COLOURS[k % 3],
+                label=names[k] if k < len(names) else f"segment {k}", rasterized=True)
+    ax.axhline(0.0, color="black", lw=0.6)
+    rmse = float(np.sqrt(np.mean(np.concatenate(
+        [residual(g.v_V, fit, s, fs)[1] for s in g.segments]) ** 2)))
+    ax.set_title(f"Residuals of the cell fit (rms {rmse / MV:.3g} mV)")
+    ax.set_xlabel("time from the step edge (ms)")
+    ax.set_ylabel("data − fit (mV)")
+    ax.legend(loc="upper right", frameon=False)
+
+
+def _draw_vi(ax, result) -> None:
+    import numpy as np
+
+    vi = result.vi
+    if not vi or len(vi.get("current_A", ())) == 0:
+        _unavailable(ax, "no steady-state deflections (brief pulses): no V–I relation")
+        return
+    i, dv = np.asarray(vi["current_A"]), np.asarray(vi["dv_V"])
+    ax.plot(i / PA, dv / MV, "o", ms=3, color=DATA_COLOUR, label="steady-state ΔV per sweep")
+    line = vi.get("slope")
+    if line is not None:
+        span = np.linspace(min(i.min(), 0.0), max(i.max(), 0.0), 20)
+        ax.plot(span / PA, (line.slope_ohm * span + line.intercept_V) / MV, color=FIT_COLOUR,
+                lw=1.0, label=f"slope {line.slope_ohm / 1e6:.4g} MΩ (r² {line.r2:.4f})")
+        ax.set_title("V–I relation (R_in = slope)")
+    else:
+        ax.set_title("V–I points (fewer than 3 step amplitudes)")
+    ax.axhline(0, color="#999999", lw=0.5)
+    ax.axvline(0, color="#999999", lw=0.5)
+    ax.set_xlabel("step current (pA)")
+    ax.set_ylabel("ΔV (mV)")
+    ax.legend(loc="best", frameon=False)
+
+
+def _draw_scan(ax0, ax1, result, data: dict) -> None:
+    import numpy as np
+
+    scan = result.scan
+    if not scan or np.all(~np.isfinite(scan["tau0_s"])):
+        _unavailable(ax0, "no fit-start scan")
+        _unavailable(ax1, "no fit-start scan")
+        return
+    start = np.asarray(scan["start_s"]) / MS
+    for ax, key, name, chosen in ((ax0, "tau0", "τ0", data["cell"].get("tau0_ms")),
+                                  (ax1, "tau1", "τ1", data["cell"].get("tau1_ms"))):
+        value = np.asarray(scan[f"{key}_s"]) / MS
+        ci = np.asarray(scan[f"{key}_ci95_s"]) / MS
+        if not np.any(np.isfinite(value)):
+            _unavailable(ax, f"{name} not resolved at any fit start")
+            continue
+        ax.errorbar(start, value, yerr=np.where(np.isfinite(ci), ci, 0.0), fmt="o-", ms=3,
+                    lw=0.8, capsize=2, color=MODE_COLOURS[0 if key == "tau0" else 1])
+        if chosen is not None:
+            ax.axhline(chosen, color=FIT_COLOUR, lw=0.7, ls="--", label=f"reported {chosen:.4g}")
+            ax.legend(loc="best", frameon=False)
+        ax.set_title(f"{name} against fit start (should plateau)")
+        ax.set_xlabel("fit start after the step edge (ms)")
+        ax.set_ylabel(f"{name} (ms)")
+
+
+# ---------------------------------------------------------------------------- page 2
+LINE = 0.0125  # figure-height fraction per text line at 7.5 pt on A4
+TOP, BOTTOM, LEFT = 0.915, 0.035, 0.06
+
+
+class _TextPages:
+    """Lines of text laid out down A4 pages; a full page is saved and a new one begun."""
+
+    def __init__(self, pdf, recording, data: dict) -> None:
+        self.pdf, self.recording, self.data = pdf, recording, data
+        self.fig, self.y = None, TOP
+
+    def _new_page(self) -> None:
+        import matplotlib.pyplot as plt
+
+        self.close()
+        self.fig = plt.figure(figsize=A4_PORTRAIT)
+        _header(self.fig, self.recording, self.data, "values, flags and provenance")
+        self.y = TOP
+
+    def row(self, cells: Sequence[tuple[float, str]], step: float = LINE, **style) -> None:
+        if self.fig is None or self.y - step < BOTTOM:
+            self._new_page()
+        for x, text in cells:
+            self.fig.text(x, self.y, text, **style)
+        self.y -= step
+
+    def title(self, text: str) -> None:
+        if self.fig is not None and self.y - 4 * LINE < BOTTOM:
+            self._new_page()  # keep a title with the lines after it
+        self.row([(LEFT, text)], step=0.018, fontsize=10, weight="bold")
+
+    def paragraphs(self, paragraphs: Sequence[str], width: int) -> None:
+        for paragraph in paragraphs:
+            for line in textwrap.wrap(paragraph, width, subsequent_indent="  ") or [""]:
+                self.row([(LEFT, line)])
+        self.y -= 0.008
+
+    def close(self) -> None:
+        import matplotlib.pyplot as plt
+
+        if self.fig is not None:
+            self.pdf.savefig(self.fig)
+            plt.close(self.fig)
+            self.fig = None
+
+
+def _numbers_pages(pdf, recording, data: dict, when: datetime) -> None:
+    pages = _TextPages(pdf, recording, data)
+    pages.title("Cell values")
+    pages.row([(LEFT, "quantity"), (0.45, "value ± 95 % CI half-width"), (0.75, "unit")],
+              weight="bold")
+    for label, text, unit in _value_rows(data["cell"]):
+        pages.row([(LEFT, label), (0.45, text), (0.75, unit)])
+    pages.y -= 0.008
+    pages.title("Flags")
+    pages.paragraphs(_flag_lines(data), width=118)
+    pages.title("Sweeps")
+    for line in _sweep_lines(data["sweeps"]):
+        pages.row([(LEFT, line)], step=0.0108, family="monospace", fontsize=6.5)
+    pages.y -= 0.008
+    pages.title("Provenance")
+    pages.paragraphs(_provenance_lines(data, when), width=118)
+    pages.title("Cautions")
+    pages.paragraphs(CAUTIONS.split("\n"), width=122)
+    pages.close()
+
+
+def _value_rows(cell: Mapping) -> list[tuple[str, str, str]]:
+    rows = []
+    for label, key, ci_key, unit in VALUE_ROWS:
+        value = cell.get(key)
+        text = "— (not estimable: see flags)" if value is None else _fmt(value)
+        if value is not None and ci_key and cell.get(ci_key) is not None:
+            text += f" ± {_fmt(cell[ci_key], 2)}"
+        rows.append((label, text, unit))
+    return rows
+
+
+def _fmt(value, digits: int = 4) -> str:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        return str(value)
+    return f"{value:.{digits}g}"
+
+
+def _flag_lines(data: dict) -> list[str]:
+    lines = []
+    for flag in data.get("flags", ()):
+        value = flag.get("value")
+        extra = f" (value {_fmt(value, 3)})" if value is not None else ""
+        lines.append(f"[{flag['code']}] {flag['message']}{extra}")
+    return lines or ["none"]
+
+
+def _sweep_lines(sweeps: Sequence[Mapping]) -> list[str]:
+    lines = [f"{'#':>3} {'step pA':>8} {'V_rest mV':>9} {'R_in MΩ':>8} {'τ0 ms':>7} "
+             f"{'τ1 ms':>7} {'rmse mV':>8}  status"]
+    for s in sweeps:
+        status = "ok" if s["accepted"] else f"rejected: {s.get('reject_reason') or ''}"
+        cells = [_fmt(s.get(k)) if s.get(k) is not None else "—"
+                 for k in ("step_pA", "v_rest_mV", "r_in_MOhm", "tau0_ms", "tau1_ms",
+                           "rmse_mV")]
+        lines.append(f"{s['index']:>3} {cells[0]:>8} {cells[1]:>9} {cells[2]:>8} {cells[3]:>7} "
+                     f"{cells[4]:>7} {cells[5]:>8}  {textwrap.shorten(status, 60)}")
+    return lines
+
+
+def _provenance_lines(data: dict, when: datetime) -> list[str]:
+    source = data["source"]
+    settings = json.dumps(data["settings"], sort_keys=True, separators=(", ", ": "))
+    return [f"file: {source['path']}", f"sha256: {source['sha256']}",
+            f"format: {source['format']}, {source['sweep_count']} sweeps",
+            f"passivefit {data['passivefit_version']}, settings hash {result_settings_hash(data)}",
+            f"analysed at: {when.isoformat(timespec='seconds')}", f"settings: {settings}"]
