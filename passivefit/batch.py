@@ -52,6 +52,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--metadata", metavar="FILE.csv",
                    help="cell metadata: a `file` column plus any of " + ", ".join(
                        METADATA_COLUMNS[1:]))
+    p.add_argument("--reports", metavar="DIR",
+                   help="also write a PDF report per analysed recording into DIR "
+                        "(<file stem>-<hash prefix>.pdf; slower)")
     p.add_argument("--reanalyse", action="store_true",
                    help="analyse files already in the database again and store a new "
                         "revision (earlier analyses are kept)")
@@ -208,20 +211,33 @@ class FileOutcome:
     error: str | None = None
 
 
-def analyse_file(path: str, settings) -> FileOutcome:
-    """Load and analyse one file (runs in a worker process); never raises."""
+def analyse_file(path: str, settings, reports: str | None = None) -> FileOutcome:
+    """Load and analyse one file (runs in a worker process); never raises.
+
+    With `reports` (a folder), the worker also writes the recording's PDF report
+    there: the arrays it needs never leave the worker.
+    """
     try:
         from passivefit.analysis import analyze
         from passivefit.io import load
         from passivefit.io.recording import LoadError
 
         recording = load(path)
-        result = analyze(recording, settings).to_dict()
-        return FileOutcome(path, result, _plain_metadata(recording.metadata))
+        analysis = analyze(recording, settings)
+        if reports:
+            from passivefit.export.report import write_report
+
+            write_report([(recording, analysis)], report_path(reports, recording))
+        return FileOutcome(path, analysis.to_dict(), _plain_metadata(recording.metadata))
     except LoadError as exc:
         return FileOutcome(path, error=exc.reason)
     except Exception as exc:  # noqa: BLE001 - a bad file must not stop the batch
         return FileOutcome(path, error=f"analysis failed ({type(exc).__name__}: {exc})")
+
+
+def report_path(folder: str, recording) -> Path:
+    """``<folder>/<file stem>-<first 8 hex of sha256>.pdf`` (unique per content)."""
+    return Path(folder) / f"{Path(recording.path).stem}-{recording.sha256[:8]}.pdf"
 
 
 def _plain_metadata(metadata: dict) -> dict:
@@ -282,6 +298,8 @@ def run(args: argparse.Namespace) -> int:
     if args.sheet and Path(args.sheet).suffix.lower() not in SHEET_SUFFIXES:
         raise UsageError(f"`--sheet` {args.sheet}: use one of {', '.join(SHEET_SUFFIXES)}")
     metadata = read_metadata(args.metadata) if args.metadata else MetadataTable()
+    if args.reports and not Path(args.reports).is_dir():
+        raise UsageError(f"`--reports` {args.reports}: no such folder; create it first")
     files = find_recordings(args.paths, _excluded_paths(args))
     try:
         database = open_database(args.db, create=True)
@@ -289,7 +307,8 @@ def run(args: argparse.Namespace) -> int:
         raise UsageError(str(exc)) from None
     started = time.perf_counter()
     try:
-        summary = _run_files(files, settings, database, metadata, workers, args.reanalyse)
+        summary = _run_files(files, settings, database, metadata, workers, args.reanalyse,
+                             args.reports)
         if args.sheet:
             _write_sheet(database, summary.hashes, args.sheet)
     finally:
@@ -305,7 +324,7 @@ def _default_workers() -> int:
 
 
 def _run_files(files: list[Path], settings, database, metadata: MetadataTable, workers: int,
-               reanalyse: bool) -> BatchSummary:
+               reanalyse: bool, reports: str | None) -> BatchSummary:
     from passivefit import __version__
     from passivefit.io.recording import file_sha256
 
@@ -332,14 +351,14 @@ def _run_files(files: list[Path], settings, database, metadata: MetadataTable, w
             todo.append(path)
         seen.setdefault(sha, path)
     try:
-        for outcome in _analyse_all(todo, settings, workers):
+        for outcome in _analyse_all(todo, settings, workers, reports):
             _store_outcome(outcome, database, metadata, digest, reanalyse, summary, progress)
     finally:
         progress.finish()
     return summary
 
 
-def _analyse_all(paths: list[Path], settings, workers: int):
+def _analyse_all(paths: list[Path], settings, workers: int, reports: str | None):
     """Yield a FileOutcome for every path, analysing up to `2 × workers` at once.
 
     A worker process that dies (out of memory, a crash in a library) fails the files
@@ -358,7 +377,7 @@ def _analyse_all(paths: list[Path], settings, workers: int):
             while queue or running:
                 while queue and len(running) < 2 * workers:
                     path = queue.pop()
-                    running[pool.submit(analyse_file, path, settings)] = path
+                    running[pool.submit(analyse_file, path, settings, reports)] = path
                 finished, _ = wait(running, return_when=FIRST_COMPLETED)
                 for future in finished:
                     path = running.pop(future)

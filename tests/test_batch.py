@@ -286,3 +286,19 @@ def test_progress_is_one_rewritten_line_on_a_terminal(capsys):
     assert "4/4 stored 2, skipped 1, failed 1" in text.split("\r")[-1]
     assert "[########################]" in text
     assert capsys.readouterr().out == ""  # no per-file lines when the bar is shown
+
+
+def test_batch_writes_a_report_per_analysed_recording(lab, tmp_path, run_batch):
+    from passivefit.io.recording import file_sha256
+
+    folder, cells = lab
+    reports = tmp_path / "reports"
+    reports.mkdir()
+    picked = [str(p) for p, _ in cells[:2]]
+    assert run_batch(["batch", *picked, "--db", str(tmp_path / "r.db"), "--reports",
+                      str(reports)]) == 0
+    expected = {f"{Path(p).stem}-{file_sha256(p)[:8]}.pdf" for p in picked}
+    assert {p.name for p in reports.iterdir()} == expected
+    assert all(p.read_bytes()[:5] == b"%PDF-" for p in reports.iterdir())
+    assert run_batch(["batch", picked[0], "--db", str(tmp_path / "r.db"), "--reports",
+                      str(tmp_path / "missing")]) == 2
