@@ -377,8 +377,9 @@ def _check(segments: Sequence[CableSegment], delay_s: float) -> _Problem:
                 f"{label}: the first sample (t = {t[0]:.3g} s) is not after the edge plus "
                 f"`delay_s` ({delay_s:.3g} s); start the fit later (e.g. 0.3 ms after the edge)"
             )
-        if t.size < 2 + (seg.offset is None) + _MIN_EXTRA_POINTS:
-            raise ValueError(f"{label}: {t.size} samples are too few; pass at least 6")
+        need = 2 + (seg.offset is None) + _MIN_EXTRA_POINTS
+        if t.size < need:
+            raise ValueError(f"{label}: {t.size} samples are too few; pass at least {need}")
         kinds.append(seg.kind)
         durations.append(math.inf if seg.duration_s is None else float(seg.duration_s))
         fixed.append(0.0 if seg.offset is None else float(seg.offset))
