@@ -23,8 +23,14 @@ offset, relative to the baseline, is the instantaneous (bridge) jump.
 
 Fitting is by variable projection (Golub & Pereyra 2003, Inverse Problems 19:R1): for each
 trial (log tau0, log L, log rho) the offsets and scales enter linearly and are solved by
-least squares; :func:`scipy.optimize.least_squares` searches the three nonlinear parameters.
+least squares; :func:`scipy.optimize.least_squares` searches the three nonlinear parameters
+with the Golub–Pereyra Jacobian of the projected residual (sums over the samples analytic,
+the per-mode rates and amplitudes differentiated by central differences). The eigenvalue
+roots are found for all modes at once by Newton's method, warm-started from the last ones.
 Segments may share a scale (``group``), e.g. the onset and the decay of the same step.
+Binned data (``expfit.decimate_tail``) are modelled as exact bin means when the sampling
+interval is given, and a known delay of the recording (a filter's group delay) shifts the
+model in time.
 
 The sum is truncated where it has converged for the fitted times: every mode with
 ``t_min/tau_n < 30`` is kept (the others are below e^-30 of their amplitude); at t = 0 the
