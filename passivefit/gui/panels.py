@@ -122,6 +122,7 @@ class CellCard(QtWidgets.QFrame):
             quantity.setObjectName("quantity")
             value = QtWidgets.QLabel("—")
             value.setObjectName("value")
+            value.setTextFormat(Qt.TextFormat.RichText)
             value.setAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
             value.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
             unit_label = QtWidgets.QLabel(unit)
@@ -143,7 +144,8 @@ class CellCard(QtWidgets.QFrame):
         for _label, key, ci, _unit in CELL_ROWS:
             text = fmt(cell.get(key))
             if ci and cell.get(ci) is not None and cell.get(key) is not None:
-                text += f" ± {fmt(cell[ci], 2)}"
+                text += (f"<span style='font-weight:400; font-size:9pt; color:{theme.MUTED}'>"
+                         f" ± {fmt(cell[ci], 2)}</span>")
             self.values[key].setText(text)
         if result is None:
             self.footer.setText("")
@@ -214,7 +216,7 @@ class WindowsBar(QtWidgets.QFrame):
         layout = QtWidgets.QHBoxLayout(self)
         layout.setContentsMargins(4, 4, 4, 2)
         layout.setSpacing(5)
-        lead = QtWidgets.QLabel("windows, ms from the step:")
+        lead = QtWidgets.QLabel("ms from the step:")
         lead.setObjectName("unit")
         layout.addWidget(lead)
         self.boxes: dict[str, tuple[QtWidgets.QDoubleSpinBox, QtWidgets.QDoubleSpinBox]] = {}

@@ -110,7 +110,10 @@ class TraceView(QtWidgets.QWidget):
         region.setZValue(-10)
         for line in region.lines:
             line.setHoverPen(pg.mkPen(theme.REGION_LINE[name], width=3))
-        pg.InfLineLabel(region.lines[0], text=theme.REGION_LABEL[name], position=0.97,
+        # the steady-state label sits lower: its window is narrow and the decay fit's
+        # label may start right after it
+        pg.InfLineLabel(region.lines[0], text=theme.REGION_LABEL[name],
+                        position=0.90 if name == "steady" else 0.97,
                         anchors=[(0, 0), (0, 0)], color=theme.REGION_LINE[name])
         if movable:
             region.sigRegionChanged.connect(partial(self._on_region, name, False))
@@ -233,12 +236,15 @@ class SemilogView(QtWidgets.QWidget):
         super().__init__(parent)
         self.plot = new_plot("Semilog", "time from the step edge (ms)", "|V − V∞| (mV)")
         self.plot.setLogMode(x=False, y=True)
+        self.legend = self.plot.getPlotItem().addLegend(offset=(-8, 8),
+                                                        labelTextColor=theme.INK)
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
         layout.addWidget(self.plot)
 
     def show_result(self, result) -> None:
         self.plot.clear()
+        self.legend.clear()
         self.plot.setLogMode(x=False, y=True)
         peel = result.peel if result is not None else None
         if peel is None or not peel.residual_log:
@@ -267,10 +273,6 @@ class SemilogView(QtWidgets.QWidget):
         lo = max(peel.noise_sd / MV * 0.5, hi * 1e-4)
         self.plot.setYRange(np.log10(lo), np.log10(hi * 1.6), padding=0)
         self.plot.setXRange(0, t_end / MS, padding=0.02)
-        legend = self.plot.getPlotItem().addLegend(offset=(-8, 8), labelTextColor=theme.INK)
-        for curve in self.plot.getPlotItem().listDataItems():
-            if curve.name():
-                legend.addItem(curve, curve.name())
 
 
 def _spread_indices(n: int, most: int) -> np.ndarray:
@@ -288,7 +290,6 @@ class ScanView(QtWidgets.QWidget):
         super().__init__(parent)
         self.tau0 = new_plot("", "", "τ0 (ms)")
         self.tau1 = new_plot("", "fit start after the edge (ms)", "τ1 (ms)")
-        self.tau1.setXLink(self.tau0)
         for plot in (self.tau0, self.tau1):
             plot.getPlotItem().getAxis("left").setWidth(48)
         layout = QtWidgets.QVBoxLayout(self)
@@ -318,6 +319,7 @@ class ScanView(QtWidgets.QWidget):
                 plot.addItem(pg.InfiniteLine(angle=0, pos=value, pen=pg.mkPen(
                     theme.EDGE, style=QtCore.Qt.PenStyle.DashLine)))
             plot.getPlotItem().getViewBox().autoRange(padding=0.12)
+            plot.setXRange(x[0], x[-1], padding=0.08)
 
 
 # ----------------------------------------------------------------------------- V–I
@@ -343,12 +345,14 @@ class VIView(QtWidgets.QWidget):
         self.plot.plot(i_pa, dv_mv, pen=None, symbol="o", symbolSize=7, symbolPen=None,
                        symbolBrush=pg.mkBrush(theme.TEAL))
         slope = vi.get("slope")
+        x = np.array([min(0.0, i_pa.min()), max(0.0, i_pa.max())])
         if slope is not None:
-            x = np.array([min(0.0, i_pa.min()), max(0.0, i_pa.max())])
-            self.plot.plot(x, (slope.slope_ohm * x * PA + slope.intercept_V) / MV,
-                           pen=pg.mkPen(theme.TERRACOTTA, width=1.6))
+            line = (slope.slope_ohm * x * PA + slope.intercept_V) / MV
             set_title(self.plot, f"V–I · slope {slope.slope_ohm / 1e6:.4g} MΩ, "
                                  f"r² {slope.r2:.4f}")
-        else:
-            set_title(self.plot, "V–I · one amplitude: R_in is ΔV/ΔI")
+        else:   # one amplitude: the line through the origin is ΔV/ΔI
+            r_in = float(np.sum(vi["dv_V"] * vi["current_A"]) / np.sum(vi["current_A"] ** 2))
+            line = r_in * x * PA / MV
+            set_title(self.plot, f"one amplitude · ΔV/ΔI {r_in / 1e6:.4g} MΩ")
+        self.plot.plot(x, line, pen=pg.mkPen(theme.TERRACOTTA, width=1.6))
         self.plot.getPlotItem().getViewBox().autoRange(padding=0.1)

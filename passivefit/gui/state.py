@@ -42,6 +42,7 @@ REVIEW_VERSION = 1
 REVIEW_SUFFIX = ".passivefit-review.json"
 WINDOW_NAMES = ("baseline", "steady", "fit")
 MAX_UNDO = 200
+WINDOW_DECIMALS = 3   # windows are kept to 1 µs (in ms), a drag gives no more
 
 
 class ReviewFileError(ValueError):
@@ -179,7 +180,7 @@ def with_window(windows: Windows, name: str, span_ms: tuple[float, float] | None
     if name not in WINDOW_NAMES:
         raise ValueError(f"unknown window {name!r}; use one of {', '.join(WINDOW_NAMES)}")
     if span_ms is not None:
-        start, end = (float(x) for x in span_ms)
+        start, end = (round(float(x), WINDOW_DECIMALS) for x in span_ms)
         if not end > start:
             raise ValueError(f"the {name} window must end after it starts ({start:g} to "
                              f"{end:g} ms)")

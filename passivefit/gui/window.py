@@ -238,6 +238,9 @@ class ReviewWindow(QtWidgets.QMainWindow):
         except (LoadError, ValueError) as exc:
             self._problem(str(exc))
             return False
+        except Exception as exc:  # noqa: BLE001 - a reader's bug must not close the window
+            self._problem(f"{path}: could not be opened ({type(exc).__name__}: {exc})")
+            return False
         if state is None:
             return False
         self.position = position
@@ -251,10 +254,10 @@ class ReviewWindow(QtWidgets.QMainWindow):
         recording = load(path)
         try:
             return ReviewState(recording, self.base_settings, autosave=self.autosave)
-        except LoadError as exc:
+        except LoadError:
             if self.base_settings.step is not None or not self.interactive:
                 raise
-            step = self._ask_step(path, exc.reason)
+            step = self._ask_step(path)
             if step is None:
                 return None
             return ReviewState(recording, replace(self.base_settings, step=step),
@@ -485,8 +488,8 @@ class ReviewWindow(QtWidgets.QMainWindow):
             REJECT_REASONS, 0, True)
         return text.strip() or "rejected in review" if ok else None
 
-    def _ask_step(self, path: Path, reason: str) -> StepSpec | None:
-        dialog = StepDialog(path, reason, self)
+    def _ask_step(self, path: Path) -> StepSpec | None:
+        dialog = StepDialog(path, self)
         return dialog.step() if dialog.exec() else None
 
     def _ask_open(self) -> None:
@@ -584,17 +587,18 @@ class ReviewWindow(QtWidgets.QMainWindow):
 class StepDialog(QtWidgets.QDialog):
     """Ask for the current step of a file that carries no command waveform."""
 
-    def __init__(self, path: Path, reason: str, parent: QtWidgets.QWidget | None = None) -> None:
+    def __init__(self, path: Path, parent: QtWidgets.QWidget | None = None) -> None:
         super().__init__(parent)
         self.setWindowTitle("The current step")
         form = QtWidgets.QFormLayout(self)
-        text = QtWidgets.QLabel(f"{path.name}: {reason}\n\nDescribe the step of the first "
-                                "sweep; it is saved with the review.")
+        text = QtWidgets.QLabel(f"{path.name} carries no command or current waveform, so "
+                                "passivefit cannot see the current step.\n\nDescribe the step "
+                                "of the first sweep; it is saved with the review.")
         text.setWordWrap(True)
         form.addRow(text)
         self.boxes = []
         for label, value, low in (("onset (ms)", 100.0, 0.0), ("duration (ms)", 300.0, 0.01),
-                                  ("amplitude (pA)", -40.0, -1e5),
+                                  ("amplitude (pA)", -50.0, -1e5),
                                   ("increment per sweep (pA)", 0.0, -1e5)):
             box = QtWidgets.QDoubleSpinBox()
             box.setRange(low, 1e5)
