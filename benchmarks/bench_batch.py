@@ -22,9 +22,6 @@ import time
 from pathlib import Path
 
 TARGET_SWEEPS_PER_S = 200.0
-RUNNER = ("import sys\nfrom passivefit import cli\n"
-          "cli.COMMANDS = [c for c in cli.COMMANDS if c[0] in ('batch', 'db')]\n"
-          "sys.exit(cli.main(sys.argv[1:]))\n")
 
 
 def write_recordings(folder: Path, n_files: int, n_sweeps: int) -> list[Path]:
@@ -68,7 +65,7 @@ def run_batch(folder: Path, db: Path, workers: int) -> tuple[float, int, str]:
     """Wall time in s, peak summed RSS in KiB and stdout of one batch run."""
     db.unlink(missing_ok=True)
     start = time.perf_counter()
-    proc = subprocess.Popen([sys.executable, "-c", RUNNER, "batch", str(folder), "--db",
+    proc = subprocess.Popen([sys.executable, "-m", "passivefit.cli", "batch", str(folder), "--db",
                              str(db), "--workers", str(workers)],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     peak = 0

@@ -18,11 +18,7 @@ from passivefit.store.database import open_database
 from passivefit.store.models import AnalysisRow, CellRow, RecordingRow, SweepRow
 
 N_FILES = 8
-# Only the commands under test are registered, so these tests do not depend on the
-# imports of unrelated commands (the GUI).
-RUNNER = ("import sys\nfrom passivefit import cli\n"
-          "cli.COMMANDS = [c for c in cli.COMMANDS if c[0] in ('batch', 'db')]\n"
-          "sys.exit(cli.main(sys.argv[1:]))\n")
+CLI = [sys.executable, "-m", "passivefit.cli"]
 
 
 def _write_cells(folder: Path, n: int, first: int = 0) -> list[tuple[Path, dict]]:
@@ -52,8 +48,7 @@ def lab(tmp_path_factory):
 
 
 @pytest.fixture
-def run_batch(monkeypatch):
-    monkeypatch.setattr(cli, "COMMANDS", [c for c in cli.COMMANDS if c[0] in ("batch", "db")])
+def run_batch():
     return cli.main
 
 
@@ -205,7 +200,7 @@ def test_bad_usage_exits_2(tmp_path, run_batch, capsys):
 
 
 def _start_batch(args: list[str]) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-c", RUNNER, "batch", *args],
+    return subprocess.Popen([*CLI, "batch", *args],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                             start_new_session=True)
 
@@ -241,7 +236,7 @@ def test_kill_9_mid_batch_then_rerun_completes_without_duplicates(tmp_path):
     assert _count(url, SweepRow) == 4 * after_kill
     assert _count(url, RecordingRow) == after_kill == _count(url, CellRow)
 
-    rerun = subprocess.run([sys.executable, "-c", RUNNER, "batch", str(folder), "--db", url],
+    rerun = subprocess.run([*CLI, "batch", str(folder), "--db", url],
                            capture_output=True, text=True, timeout=300)
     assert rerun.returncode == 0, rerun.stderr
     assert f"{16 - after_kill} analysed" in rerun.stdout and f"{after_kill} skipped" in rerun.stdout
@@ -288,6 +283,7 @@ def test_progress_is_one_rewritten_line_on_a_terminal(capsys):
     assert capsys.readouterr().out == ""  # no per-file lines when the bar is shown
 
 
+@pytest.mark.slow
 def test_batch_writes_a_report_per_analysed_recording(lab, tmp_path, run_batch):
     from passivefit.io.recording import file_sha256
 
