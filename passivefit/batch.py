@@ -78,9 +78,10 @@ class MetadataTable:
         self.used.add(row["file"])
         return {k: v for k, v in row.items() if k != "file"}
 
-    def unused(self) -> list[str]:
+    def unused(self) -> int:
+        """Number of rows that matched none of the files seen so far."""
         listed = {row["file"] for row in (*self.by_path.values(), *self.by_name.values())}
-        return sorted(listed - self.used)
+        return len(listed - self.used)
 
 
 def read_metadata(path: str) -> MetadataTable:
@@ -344,6 +345,9 @@ def _run_files(files: list[Path], settings, database, metadata: MetadataTable, w
         if sha in seen or sha in done:
             why = (f"same content as {seen[sha]}" if sha in seen
                    else "already analysed with these settings")
+            notes = metadata.lookup(path)
+            if notes and sha not in seen and database.update_cell_metadata(sha, notes):
+                why += "; cell metadata applied"
             summary.skipped.append(str(path))
             summary.hashes.append(sha)
             progress.update("skipped", str(path), why)
@@ -436,8 +440,9 @@ def _report(summary: BatchSummary, metadata: MetadataTable, seconds: float) -> N
     rate = f", {summary.sweeps / seconds:.0f} sweeps/s" if summary.sweeps and seconds > 0 else ""
     print(f"batch: {total} files: {len(summary.stored)} analysed ({summary.sweeps} sweeps), "
           f"{len(summary.skipped)} skipped, {len(summary.failed)} failed in {seconds:.1f} s{rate}")
-    for name in metadata.unused():
-        print(f"note: the metadata row for {name!r} matched no recording", file=sys.stderr)
+    if metadata.unused():
+        print(f"note: {metadata.unused()} metadata rows matched none of these files",
+              file=sys.stderr)
     if summary.failed:
         print("failed files:", file=sys.stderr)
         for path, reason in summary.failed:

@@ -165,6 +165,15 @@ def test_metadata_csv_fills_the_cells(lab, tmp_path, run_batch):
     assert by_id["LOL-cell-0"]["notes"] == "seal 2 GΩ, ok"
     assert by_id["LOL-cell-0"]["date"] == "2026-11-03"  # from the file: CSV left it out
 
+    # A corrected metadata sheet on a rerun updates the cells, not the analyses.
+    meta.write_text(meta.read_text().replace(",dentate gyrus,", ",DG,"))
+    assert run_batch(["batch", str(folder), "--db", url, "--metadata", str(meta)]) == 0
+    db = open_database(url, create=False)
+    regions = {r.cell["cell_id"]: r.cell["region"] for r in db.current_analyses()}
+    db.close()
+    assert regions["LOL-cell-0"] == "DG" and regions["LOL-cell-1"] == "CA1"
+    assert _count(url, AnalysisRow) == N_FILES and _count(url, CellRow) == N_FILES
+
 
 @pytest.mark.parametrize("content, message", [
     ("file,cell_id,colour\nx.csv,c1,red\n", "unknown column(s) 'colour'"),

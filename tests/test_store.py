@@ -173,6 +173,17 @@ def test_cell_metadata_updates_only_given_values(db):
     assert {r.cell["date"] for r in rows} == {"2026-11-03"}  # NWB-style time cut to the date
 
 
+def test_metadata_of_a_stored_recording_can_be_corrected(db):
+    result = example_result()
+    db.store(result, cell_metadata={"region": "CA3"})
+    assert db.update_cell_metadata(result["source"]["sha256"], {"region": "CA1", "notes": None})
+    assert db.update_cell_metadata(result["source"]["sha256"], {"cell_id": "LOL-renamed"})
+    assert not db.update_cell_metadata("0" * 64, {"region": "CA1"})
+    (row,) = db.current_analyses()
+    assert row.cell["cell_id"] == "LOL-renamed"
+    assert _count(db, AnalysisRow) == 1  # analyses untouched
+
+
 def test_non_finite_values_are_stored_as_null(db):
     result = example_result()
     result["cell"]["rho"] = math.nan

@@ -266,6 +266,30 @@ class Database:
                     raise
         raise AssertionError("unreachable")
 
+    def update_cell_metadata(self, sha256: str, cell_metadata: Mapping) -> bool:
+        """Apply metadata to the cell of an already stored recording (one transaction).
+
+        A ``cell_id`` moves the recording to that cell (made if new); other given
+        values update the cell, missing ones leave it as it is. Analyses are not
+        touched. Returns False when no recording has this hash.
+        """
+        for attempt in range(_WRITE_ATTEMPTS):
+            try:
+                with Session(self.engine) as session, session.begin():
+                    recording = session.scalars(
+                        select(RecordingRow).where(RecordingRow.sha256 == sha256)).one_or_none()
+                    if recording is None:
+                        return False
+                    current = recording.cell.cell_id if recording.cell else None
+                    recording.cell = _upsert_cell(session, {"cell_id": current, **{
+                        k: v for k, v in cell_metadata.items() if v is not None}},
+                        recording.path)
+                    return True
+            except IntegrityError:
+                if attempt == _WRITE_ATTEMPTS - 1:
+                    raise
+        raise AssertionError("unreachable")
+
     def _store_once(self, session: Session, result: Mapping, metadata: Mapping, digest: str,
                     if_exists: str, when: datetime) -> StoreOutcome:
         source = result["source"]
