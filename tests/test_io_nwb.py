@@ -1,18 +1,29 @@
-"""NWB files written by other tools: table slices, plain pairs, scaling, metadata."""
+"""NWB files written by other tools: table slices, plain pairs, scaling, metadata;
+the h5py reader gives what the pynwb reader gives, and hands unusual files to it."""
 
 from __future__ import annotations
 
 import datetime as dt
+import subprocess
+import sys
 
 import h5py
 import numpy as np
 import pytest
-from numpy.testing import assert_allclose
+from io_fixtures import charging_recording
+from numpy.testing import assert_allclose, assert_array_equal
 from pynwb import NWBHDF5IO, NWBFile
 from pynwb.file import Subject
-from pynwb.icephys import CurrentClampSeries, CurrentClampStimulusSeries, VoltageClampSeries
+from pynwb.icephys import (
+    CurrentClampSeries,
+    CurrentClampStimulusSeries,
+    IZeroClampSeries,
+    VoltageClampSeries,
+)
 
-from passivefit.io import LoadError, load
+from passivefit.io import LoadError, Recording, load, save
+from passivefit.io import nwb as nwb_reader
+from passivefit.io.nwb import read_nwb_hdf5, read_nwb_pynwb
 
 RATE = 10_000.0
 N = 1500
@@ -40,8 +51,8 @@ def _ramp(k):
     return np.linspace(0, 1, N) + k
 
 
-def test_pairs_by_sweep_number_with_conversion_and_offset(tmp_path):
-    # no intracellular_recordings table: acquisition + stimulus paired by sweep_number
+def _pairs_file(path):
+    """No intracellular_recordings table: acquisition + stimulus paired by sweep_number."""
     nwb, electrode = _file()
     for k in (1, 0):  # stored out of order
         counts = (np.arange(N) % 50 + 100 * k).astype(np.int16)
@@ -68,14 +79,19 @@ def test_pairs_by_sweep_number_with_conversion_and_offset(tmp_path):
                 sweep_number=np.uint32(k),
             )
         )
-    rec = load(_write(nwb, tmp_path / "pairs.nwb"))
+    return _write(nwb, path)
+
+
+def test_pairs_by_sweep_number_with_conversion_and_offset(tmp_path):
+    rec = load(_pairs_file(tmp_path / "pairs.nwb"))
     assert rec.sample_rate_hz == RATE
     assert_allclose(rec.sweeps[0].voltage, (np.arange(N) % 50) * 1e-4 - 0.07)
     assert_allclose(rec.sweeps[1].voltage, (np.arange(N) % 50 + 100) * 1e-4 - 0.07)
     assert_allclose(rec.sweeps[1].current, -31e-12)
 
 
-def test_table_rows_slice_one_long_series(tmp_path):
+def _slices_file(path):
+    """Two table rows cut from one long response and one long stimulus series."""
     nwb, electrode = _file()
     long_v = np.concatenate([_ramp(0), _ramp(5)]) * 1e-3
     long_i = np.concatenate([np.full(N, -20.0), np.full(N, -40.0)]) * 1e-12
@@ -95,7 +111,11 @@ def test_table_rows_slice_one_long_series(tmp_path):
             stimulus_start_index=k * N,
             stimulus_index_count=N,
         )
-    rec = load(_write(nwb, tmp_path / "slices.nwb"))
+    return _write(nwb, path)
+
+
+def test_table_rows_slice_one_long_series(tmp_path):
+    rec = load(_slices_file(tmp_path / "slices.nwb"))
     assert len(rec.sweeps) == 2
     assert_allclose(rec.sweeps[1].voltage, _ramp(5) * 1e-3)
     assert_allclose(rec.sweeps[1].current, -40e-12)
@@ -116,7 +136,7 @@ def test_voltage_clamp_rows_are_skipped(tmp_path):
         load(_write(nwb, tmp_path / "vc.nwb"))
 
 
-def test_metadata_from_the_file(tmp_path):
+def _metadata_file(path):
     nwb, electrode = _file(
         lab="Lindqvist-Okafor Lab of Dendritic Physiology",
         institution="Invented Institute",
@@ -134,7 +154,11 @@ def test_metadata_from_the_file(tmp_path):
             sweep_number=np.uint32(0),
         )
     )
-    meta = load(_write(nwb, tmp_path / "meta.nwb")).metadata
+    return _write(nwb, path)
+
+
+def test_metadata_from_the_file(tmp_path):
+    meta = load(_metadata_file(tmp_path / "meta.nwb")).metadata
     assert meta["cell_id"] == "LOL-2026-11-05-c3"  # no electrode cell_id: the identifier
     assert meta["date"] == "2026-11-05T09:30:00+00:00"
     assert meta["temperature_C"] == 31.5
@@ -158,7 +182,8 @@ def test_hdf5_that_is_not_nwb(tmp_path):
         load(path)
 
 
-def test_timestamps_instead_of_rate(tmp_path):
+def _timestamps_file(path):
+    """A CurrentClampSeries sampled by timestamps instead of a rate."""
     nwb, electrode = _file()
     nwb.add_acquisition(
         CurrentClampSeries(
@@ -170,4 +195,147 @@ def test_timestamps_instead_of_rate(tmp_path):
             sweep_number=np.uint32(0),
         )
     )
-    assert load(_write(nwb, tmp_path / "ts.nwb")).sample_rate_hz == 8000.0
+    return _write(nwb, path)
+
+
+def test_timestamps_instead_of_rate(tmp_path):
+    assert load(_timestamps_file(tmp_path / "ts.nwb")).sample_rate_hz == 8000.0
+
+
+# ---------------------------------------------------------------- h5py reader == pynwb reader
+
+
+def _saved(path, **kwargs):
+    """A file as `save` writes it (the reader-contract files): table layout."""
+    return save(charging_recording(n_sweeps=3, n_samples=3000, **kwargs), path)
+
+
+def _mixed_table_file(path):
+    """Table rows of voltage clamp, I=0 clamp and current clamp: only the last is a sweep."""
+    nwb, electrode = _file()
+    common = {"electrode": electrode, "gain": 1.0, "rate": RATE, "sweep_number": np.uint32(0)}
+    vc = VoltageClampSeries(name="vc", data=_ramp(0) * 1e-12, **common)
+    izero = IZeroClampSeries(name="i0", data=_ramp(1) * 1e-3, **common)
+    cc = CurrentClampSeries(name="cc", data=_ramp(2) * 1e-3, **common)
+    step = CurrentClampStimulusSeries(name="step", data=np.full(N, -25e-12), **common)
+    nwb.add_intracellular_recording(electrode=electrode, response=vc)
+    nwb.add_intracellular_recording(electrode=electrode, response=izero)
+    nwb.add_intracellular_recording(electrode=electrode, response=cc, stimulus=step)
+    return _write(nwb, path)
+
+
+def _float32_conversion_file(path):
+    """Pairs whose conversion and offset are stored as float32, as some writers do."""
+    _pairs_file(path)
+    with h5py.File(path, "r+") as f:
+        for name in ("acquisition/v0/data", "acquisition/v1/data"):
+            attrs = f[name].attrs
+            attrs["conversion"] = np.float32(attrs["conversion"])
+            attrs["offset"] = np.float32(attrs["offset"])
+    return path
+
+
+SAME_READING = {
+    "saved, table + stimulus, 20 kHz": lambda p: _saved(p),
+    "saved, table + stimulus, 22.05 kHz": lambda p: _saved(p, rate_hz=22_050.0),
+    "saved, table, no stimulus": lambda p: _saved(p, with_current=False),
+    "acquisition/stimulus pairs, int16 + offset": _pairs_file,
+    "acquisition only, full metadata": _metadata_file,
+    "table slices of one long series": _slices_file,
+    "table with voltage-clamp and I=0 rows": _mixed_table_file,
+    "float32 conversion and offset": _float32_conversion_file,
+}
+
+
+def _assert_same_recording(direct: Recording, reference: Recording) -> None:
+    assert direct.sample_rate_hz == reference.sample_rate_hz
+    assert direct.metadata == reference.metadata
+    assert [s.index for s in direct.sweeps] == [s.index for s in reference.sweeps]
+    for a, b in zip(direct.sweeps, reference.sweeps, strict=True):
+        assert_array_equal(a.voltage, b.voltage)  # bit for bit
+        assert (a.current is None) == (b.current is None)
+        if b.current is not None:
+            assert_array_equal(a.current, b.current)
+
+
+@pytest.mark.parametrize("build", SAME_READING.values(), ids=SAME_READING.keys())
+def test_h5py_reader_gives_what_pynwb_gives(tmp_path, build):
+    path = build(tmp_path / "cell.nwb")
+    direct = read_nwb_hdf5(path)
+    assert direct is not None, "the h5py reader declined a common layout"
+    _assert_same_recording(direct, read_nwb_pynwb(path))
+
+
+def test_h5py_reader_keeps_the_written_values(tmp_path):
+    # independent of both readers: what `save` was given, within float32 storage
+    original = charging_recording(n_sweeps=2, n_samples=3000)
+    direct = read_nwb_hdf5(save(original, tmp_path / "cell.nwb"))
+    for a, b in zip(original.sweeps, direct.sweeps, strict=True):
+        assert_allclose(b.voltage, a.voltage, rtol=1e-6, atol=0)
+        assert_allclose(b.current, a.current, rtol=1e-6, atol=1e-24)
+    assert direct.metadata["cell_id"] == "LOL-2026-11-03-c1"
+
+
+def _count_pynwb_reads(monkeypatch) -> list:
+    """Calls of the pynwb reader from here on (it still reads)."""
+    calls: list = []
+    read = nwb_reader.read_nwb_pynwb
+
+    def spy(path):
+        calls.append(path)
+        return read(path)
+
+    monkeypatch.setattr(nwb_reader, "read_nwb_pynwb", spy)
+    return calls
+
+
+def _two_electrodes_file(path):
+    nwb, electrode = _file()
+    nwb.create_icephys_electrode(name="e1", description="second", device=electrode.device)
+    nwb.add_acquisition(
+        CurrentClampSeries(
+            name="v0", data=_ramp(0) * 1e-3, electrode=electrode, gain=1.0, rate=RATE
+        )
+    )
+    return _write(nwb, path)
+
+
+@pytest.mark.parametrize(
+    "build", [_timestamps_file, _two_electrodes_file], ids=["timestamps", "two electrodes"]
+)
+def test_unusual_files_fall_back_to_pynwb(tmp_path, monkeypatch, build):
+    path = build(tmp_path / "unusual.nwb")
+    assert read_nwb_hdf5(path) is None
+    calls = _count_pynwb_reads(monkeypatch)
+    rec = load(path)
+    assert calls == [path]
+    _assert_same_recording(rec, read_nwb_pynwb(path))
+
+
+def test_common_file_is_read_without_pynwb(tmp_path, monkeypatch):
+    path = _saved(tmp_path / "cell.nwb")
+    calls = _count_pynwb_reads(monkeypatch)
+    assert len(load(path).sweeps) == 3
+    assert calls == []
+
+
+def test_mismatched_stimulus_keeps_the_pynwb_error(tmp_path):
+    nwb, electrode = _file()
+    common = {"electrode": electrode, "gain": 1.0, "rate": RATE, "sweep_number": np.uint32(0)}
+    nwb.add_acquisition(CurrentClampSeries(name="v0", data=_ramp(0) * 1e-3, **common))
+    nwb.add_stimulus(CurrentClampStimulusSeries(name="i0", data=np.zeros(N - 10), **common))
+    path = _write(nwb, tmp_path / "mismatch.nwb")
+    assert read_nwb_hdf5(path) is None
+    with pytest.raises(LoadError, match=r"sweep 0: stimulus has 1490 samples, response 1500"):
+        load(path)
+
+
+def test_loading_a_plain_icephys_file_does_not_import_pynwb(tmp_path):
+    path = _saved(tmp_path / "cell.nwb")
+    code = (
+        "import sys; from passivefit.io import load; rec = load(sys.argv[1]); "
+        "assert len(rec.sweeps) == 3, rec; "
+        "heavy = [m for m in ('pynwb', 'hdmf') if m in sys.modules]; "
+        "assert not heavy, heavy"
+    )
+    subprocess.run([sys.executable, "-c", code, str(path)], check=True)

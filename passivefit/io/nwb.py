@@ -1,4 +1,4 @@
-"""NWB 2 intracellular electrophysiology (icephys) files, read and written with pynwb.
+"""NWB 2 intracellular electrophysiology (icephys) files.
 
 Reading takes the current-clamp sweeps of the `intracellular_recordings` table, or,
 in files without that table, pairs `acquisition` responses with `stimulus` series by
@@ -6,7 +6,12 @@ sweep number. Writing fills the icephys tables (electrode, one stimulus and one
 response series per sweep, intracellular recordings, simultaneous and sequential
 recordings) so other NWB tools see a complete file.
 
-pynwb is imported only when an NWB file is opened or written.
+Two readers give the same `Recording`: `read_nwb_hdf5` reads the common icephys
+layouts straight from the HDF5 groups with h5py (no pynwb import, no object mapping:
+about a second faster), and `read_nwb_pynwb` reads any NWB file through pynwb.
+`read_nwb` tries the first and falls back to the second for anything it does not
+recognise and for every damaged file, so all error messages come from pynwb's path.
+pynwb is imported only when a file needs it or is written.
 """
 
 from __future__ import annotations
@@ -163,8 +168,8 @@ def _check_signature(path: Path) -> None:
         )
 
 
-def read_nwb(path: str | Path) -> Recording:
-    """Read the current-clamp sweeps of an NWB 2 file.
+def read_nwb_pynwb(path: str | Path) -> Recording:
+    """Read the current-clamp sweeps of an NWB 2 file through pynwb (any layout).
 
     Parameters
     ----------
@@ -182,10 +187,9 @@ def read_nwb(path: str | Path) -> Recording:
     Raises
     ------
     LoadError
-        Not HDF5, truncated, HDF5 but not NWB, damaged, or no current-clamp sweeps.
+        Truncated, HDF5 but not NWB, damaged, or no current-clamp sweeps.
     """
     path = Path(path)
-    _check_signature(path)
     from pynwb import NWBHDF5IO
     from pynwb.icephys import CurrentClampSeries, IZeroClampSeries
 
@@ -220,6 +224,294 @@ def read_nwb(path: str | Path) -> Recording:
             path, f"HDF5 but not a readable NWB file ({_reason(err)}); export it as NWB 2"
         ) from None
     return Recording(sweeps, rate, path=str(path), format="nwb", metadata=metadata)
+
+
+# ---------------------------------------------------------------- reading with h5py only
+
+_DIRECT_NAMESPACES = frozenset({"core", "hdmf-common", "hdmf-experimental"})
+_HDMF_NAMESPACES = frozenset({"hdmf-common", "hdmf-experimental"})
+# the only core types that are CurrentClampSeries (IZeroClampSeries is skipped as in pynwb)
+_RESPONSE_TYPE = "CurrentClampSeries"
+_STIMULUS_TYPE = "CurrentClampStimulusSeries"
+_ICEPHYS = "general/intracellular_ephys"
+# ISO 8601 with seconds and a zone: read alike by datetime and by pynwb's date parser
+_ISO_WITH_ZONE = re.compile(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(\.\d{1,6})?(Z|[+-]\d\d:\d\d)")
+
+
+class _Unfamiliar(Exception):
+    """The file holds something the h5py reader does not handle; pynwb reads it."""
+
+
+def _type_of(obj: Any) -> str:
+    """neurodata_type of a core object; '' for an hdmf-common one (never a series)."""
+    namespace = obj.attrs.get("namespace")
+    if namespace == "core":
+        return str(obj.attrs["neurodata_type"])
+    if namespace in _HDMF_NAMESPACES:
+        return ""
+    raise _Unfamiliar(f"{obj.name}: namespace {namespace!r}")
+
+
+def _text(group: Any, name: str) -> str | None:
+    """A scalar text dataset as str (UTF-8, as pynwb decodes it), None when absent."""
+    if name not in group:
+        return None
+    value = group[name][()]
+    if isinstance(value, bytes):
+        return value.decode("utf-8")
+    if isinstance(value, str):
+        return value
+    raise _Unfamiliar(f"{group.name}/{name} is not text")
+
+
+def _direct_samples(series: Any, unit: str, start: int, count: int | None) -> np.ndarray:
+    """Samples in SI units exactly as `_si` computes them from pynwb's series."""
+    data = series["data"]
+    if data.ndim != 1 or data.attrs.get("unit") != unit:
+        raise _Unfamiliar(f"{data.name}: shape {data.shape}, unit {data.attrs.get('unit')!r}")
+    stop = None if count is None or count < 0 else start + count
+    raw = np.array(data[start:stop], dtype=np.float64)
+    offset = float(data.attrs.get("offset", 0.0) or 0.0)
+    return raw * float(data.attrs.get("conversion", 1.0)) + offset
+
+
+def _direct_rate(series: Any) -> float:
+    if "timestamps" in series or "rate" not in series["starting_time"].attrs:
+        raise _Unfamiliar(f"{series.name}: no fixed rate")
+    return whole_hz(float(series["starting_time"].attrs["rate"]))
+
+
+def _references(table: Any, category: str, column: str) -> np.ndarray | None:
+    """The (idx_start, count, timeseries) rows of one table column, None when absent."""
+    group = table[category]
+    listed = column in [str(name) for name in group.attrs.get("colnames", [])]
+    if listed != (column in group):
+        raise _Unfamiliar(f"{group.name}: column {column} stored and listed differ")
+    if not listed:
+        return None
+    rows = group[column][()]
+    if rows.dtype.names != ("idx_start", "count", "timeseries"):
+        raise _Unfamiliar(f"{group.name}/{column}: fields {rows.dtype.names}")
+    return rows
+
+
+def _direct_table_pairs(f: Any, table: Any) -> list[tuple[tuple, tuple | None]]:
+    """((series, start, count), stimulus cut or None) per current-clamp table row."""
+    responses = _references(table, "responses", "response")
+    stimuli = _references(table, "stimuli", "stimulus")
+    rows = len(table["id"])
+    if responses is None or len(responses) != rows:
+        raise _Unfamiliar("intracellular_recordings: response column missing or short")
+    if stimuli is not None and len(stimuli) != rows:
+        raise _Unfamiliar("intracellular_recordings: stimulus column of another length")
+    pairs = []
+    for row, (start, count, reference) in enumerate(responses):
+        if start < 0 or count < 0:
+            continue  # no response in this row: pynwb gives None, which is no current clamp
+        series = f[reference]
+        if _type_of(series) != _RESPONSE_TYPE:
+            continue
+        stimulus = None
+        if stimuli is not None and stimuli[row]["idx_start"] >= 0 and stimuli[row]["count"] >= 0:
+            s_start, s_count, s_reference = stimuli[row]
+            s_series = f[s_reference]
+            if _type_of(s_series) != _STIMULUS_TYPE:
+                raise _Unfamiliar(f"{s_series.name}: stimulus of another type")
+            stimulus = (s_series, int(s_start), int(s_count))
+        pairs.append(((series, int(start), int(count)), stimulus))
+    return pairs
+
+
+def _series_in(group: Any, kind: str) -> list[Any]:
+    """Members of `group` whose core type is `kind` (hard links under their own name)."""
+    found = []
+    for name, obj in group.items():
+        if obj.name.rsplit("/", 1)[-1] != name:
+            raise _Unfamiliar(f"{group.name}/{name} links to {obj.name}")
+        if _type_of(obj) == kind:
+            found.append(obj)
+    return found
+
+
+def _direct_acquisition_pairs(f: Any) -> list[tuple[tuple, tuple | None]]:
+    """Responses in `acquisition` with the `stimulus` series of the same sweep number."""
+    responses = _series_in(f["acquisition"], _RESPONSE_TYPE)
+    stimuli: dict = {}
+    for s in _series_in(f["stimulus/presentation"], _STIMULUS_TYPE):
+        number = s.attrs.get("sweep_number")
+        if number is not None:
+            if number in stimuli:
+                raise _Unfamiliar(f"two stimuli of sweep {number}")
+            stimuli[number] = s
+    responses.sort(
+        key=lambda s: (
+            s.attrs.get("sweep_number") is None,
+            s.attrs.get("sweep_number") or 0,
+            s.name.rsplit("/", 1)[-1],
+        )
+    )
+    pairs = []
+    for r in responses:
+        number = r.attrs.get("sweep_number")
+        stimulus = stimuli.get(number) if number is not None else None
+        pairs.append(((r, 0, None), None if stimulus is None else (stimulus, 0, None)))
+    return pairs
+
+
+def _direct_sweeps(pairs: list[tuple[tuple, tuple | None]]) -> tuple[list[Sweep], float]:
+    sweeps, rates = [], set()
+    for k, ((series, start, count), stimulus) in enumerate(pairs):
+        voltage = _direct_samples(series, "volts", start, count)
+        rates.add(_direct_rate(series))
+        current = None
+        if stimulus is not None:
+            current = _direct_samples(stimulus[0], "amperes", stimulus[1], stimulus[2])
+        sweeps.append(Sweep(k, voltage, current))  # unequal lengths raise: pynwb words it
+    if len(rates) != 1:
+        raise _Unfamiliar(f"sampling rates {sorted(rates)}")
+    return sweeps, rates.pop()
+
+
+def _direct_electrode(f: Any) -> Any:
+    """The one IntracellularElectrode group, or None."""
+    if _ICEPHYS not in f:
+        return None
+    members = [m for m in f[_ICEPHYS].values() if "neurodata_type" in m.attrs]  # not `filtering`
+    electrodes = [m for m in members if _type_of(m) == "IntracellularElectrode"]
+    if len(electrodes) > 1:
+        raise _Unfamiliar("several electrodes")  # pynwb's order decides which one
+    return electrodes[0] if electrodes else None
+
+
+def _direct_date(f: Any) -> str:
+    text = _text(f, "session_start_time")
+    if text is None or not _ISO_WITH_ZONE.fullmatch(text):
+        raise _Unfamiliar(f"session_start_time {text!r}")
+    return dt.datetime.fromisoformat(text).isoformat()
+
+
+def _direct_metadata(f: Any) -> dict:
+    """The same keys and values as `_metadata` gives from pynwb's NWBFile."""
+    identifier = _text(f, "identifier")
+    description = _text(f, "session_description")
+    if identifier is None or description is None:
+        raise _Unfamiliar("required NWBFile field missing")
+    general = f["general"]
+    electrode = _direct_electrode(f)
+    cell_id = _text(electrode, "cell_id") if electrode is not None else None
+    metadata: dict = {
+        "cell_id": cell_id or identifier,
+        "identifier": identifier,
+        "date": _direct_date(f),
+    }
+    notes = _text(general, "notes")
+    texts = {
+        "session_description": description,
+        "lab": _text(general, "lab"),
+        "institution": _text(general, "institution"),
+        "electrode": _text(electrode, "description") if electrode is not None else None,
+        "protocol": _text(general, "protocol"),
+        "notes": notes,
+    }
+    if "subject" in general:
+        subject = general["subject"]
+        if _type_of(subject) != "Subject":
+            raise _Unfamiliar(f"subject of type {subject.attrs.get('neurodata_type')!r}")
+        texts.update(subject_id=_text(subject, "subject_id"), species=_text(subject, "species"))
+    metadata.update({k: v for k, v in texts.items() if v})
+    match = _TEMPERATURE.search(notes or "")
+    if match:
+        metadata["temperature_C"] = float(match["value"])
+    return metadata
+
+
+def _check_direct_file(f: Any) -> None:
+    """An NWB 2 file whose cached schemas are only the core and hdmf ones."""
+    attrs = f.attrs
+    version = attrs.get("nwb_version")
+    if (
+        attrs.get("neurodata_type") != "NWBFile"
+        or attrs.get("namespace") != "core"
+        or not isinstance(version, str)
+        or not version.startswith("2.")
+    ):
+        raise _Unfamiliar("not an NWB 2 file")
+    extensions = set(f["specifications"]) - _DIRECT_NAMESPACES if "specifications" in f else set()
+    if extensions:
+        raise _Unfamiliar(f"extension namespaces {sorted(extensions)}")
+
+
+def _read_direct(f: Any, path: Path) -> Recording:
+    _check_direct_file(f)
+    table_path = f"{_ICEPHYS}/intracellular_recordings"
+    table = f[table_path] if table_path in f else None
+    if table is not None and len(table["id"]) > 0:
+        pairs = _direct_table_pairs(f, table)
+    else:
+        pairs = _direct_acquisition_pairs(f)
+    if not pairs:
+        raise _Unfamiliar("no current-clamp sweeps")  # pynwb words the error
+    sweeps, rate = _direct_sweeps(pairs)
+    return Recording(sweeps, rate, path=str(path), format="nwb", metadata=_direct_metadata(f))
+
+
+def read_nwb_hdf5(path: str | Path) -> Recording | None:
+    """Read the common NWB 2 icephys layouts with h5py alone, as pynwb would read them.
+
+    Handles current-clamp responses (CurrentClampSeries with a fixed `rate`) listed
+    in the `intracellular_recordings` table, or in `acquisition` paired with
+    `stimulus` CurrentClampStimulusSeries by `sweep_number`; samples are
+    ``data * conversion + offset`` in V and A.
+
+    Parameters
+    ----------
+    path : str or Path
+        The .nwb (HDF5) file.
+
+    Returns
+    -------
+    Recording or None
+        The same recording and metadata as `read_nwb_pynwb`; None when the file holds
+        anything else (extension types, timestamps, several electrodes, other units,
+        naive dates, ...) or cannot be read, so that pynwb reads it or names the error.
+    """
+    import h5py
+
+    path = Path(path)
+    try:
+        with h5py.File(path, "r") as f:
+            return _read_direct(f, path)
+    except Exception:  # unfamiliar or damaged: the pynwb path reads it or explains why
+        return None
+
+
+def read_nwb(path: str | Path) -> Recording:
+    """Read the current-clamp sweeps of an NWB 2 file.
+
+    Tries `read_nwb_hdf5` (h5py only) and, when it declines, `read_nwb_pynwb`.
+
+    Parameters
+    ----------
+    path : str or Path
+        The .nwb (HDF5) file.
+
+    Returns
+    -------
+    Recording
+        One sweep per current-clamp response (V), with the paired stimulus (A) or
+        None. Metadata: `cell_id`, `identifier`, `date` (ISO), `session_description`,
+        `lab`, `institution`, `protocol`, `electrode`, `subject_id`, `species`, `notes`,
+        `temperature_C` (from ``temperature_C: 32`` in the notes).
+
+    Raises
+    ------
+    LoadError
+        Not HDF5, truncated, HDF5 but not NWB, damaged, or no current-clamp sweeps.
+    """
+    path = Path(path)
+    _check_signature(path)
+    recording = read_nwb_hdf5(path)
+    return recording if recording is not None else read_nwb_pynwb(path)
 
 
 # ---------------------------------------------------------------- writing
