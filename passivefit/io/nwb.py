@@ -276,9 +276,10 @@ def _direct_samples(series: Any, unit: str, start: int, count: int | None) -> np
 
 
 def _direct_rate(series: Any) -> float:
-    if "timestamps" in series or "rate" not in series["starting_time"].attrs:
+    rate = None if "timestamps" in series else series["starting_time"].attrs.get("rate")
+    if rate is None:
         raise _Unfamiliar(f"{series.name}: no fixed rate")
-    return whole_hz(float(series["starting_time"].attrs["rate"]))
+    return whole_hz(float(rate))
 
 
 def _references(table: Any, category: str, column: str) -> np.ndarray | None:
