@@ -77,6 +77,9 @@ class Settings:
         A person's accept (True) / reject (False) of a sweep, with a reason.
     bootstrap : int
         Resamples over sweeps for the cell-level CIs (0 = Jacobian CIs only).
+    filter_hz : float or None
+        Corner of the amplifier's 4-pole Bessel low-pass, in Hz; its delay (0.336/fc)
+        shifts time zero of the cable-model fit. None: from the file's metadata, else 0.
     """
 
     sweeps: tuple[int, ...] | None = None
@@ -88,6 +91,7 @@ class Settings:
     sweep_windows: tuple[tuple[int, Windows], ...] = ()
     decisions: tuple[tuple[int, bool, str], ...] = ()
     bootstrap: int = 40
+    filter_hz: float | None = None
 
     def __post_init__(self) -> None:
         if self.components not in ("auto", "1", "2", "3"):
@@ -300,6 +304,7 @@ class RecordingResult:
     vi: dict | None = None                  # V–I points and regression
     protocol: str = "step"
     effective_settings: Settings | None = None  # settings with the automatic fit start filled in
+    cable_fit: object | None = None         # core.cablefit.BallStickFit of the combined response
 
     @property
     def groups(self) -> tuple[GroupAverage, ...]:
@@ -679,27 +684,36 @@ def _percentile_halfwidth(samples: np.ndarray) -> float | None:
 
 
 def _bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
-               seed: int = 0) -> dict[str, np.ndarray]:
-    """τ0, τ1 and the amplitude ratio refitted on sweeps resampled with replacement."""
+               cable: tuple | None = None, seed: int = 0) -> dict[str, np.ndarray]:
+    """Cell values refitted on sweeps resampled with replacement.
+
+    `cable` = (combined response with the cable-fit windows, BallStickFit, delay in s)
+    adds the ball-and-stick values; a resample whose fit fails gives NaN there.
+    """
     rng = np.random.default_rng(seed)
     n = len(fit.taus)
-    out: dict[str, list[float]] = {"tau0": [], "tau1": [], "ratio": [], "b0": []}
+    out: dict[str, list[float]] = {k: [] for k in ("tau0", "tau1", "tau1_model", "L", "rho")}
     for _ in range(n_boot):
         pick = rng.integers(0, len(pool.indices), len(pool.indices))
         if np.all(pool.currents[pick] == 0):
             continue
+        v = pool.combine(pick)
         try:
-            boot, filled = fit_average(replace(g, v_V=pool.combine(pick)), fs, str(n),
-                                       tau_init=fit.taus)
+            boot, _ = fit_average(replace(g, v_V=v), fs, str(n), tau_init=fit.taus)
         except (ValueError, np.linalg.LinAlgError, RuntimeError):
             continue
         if not boot.success:
             continue
         out["tau0"].append(boot.taus[0])
         out["tau1"].append(boot.taus[1] if n > 1 else np.nan)
-        r = _ratio(boot, filled)
-        out["ratio"].append(np.nan if r is None else r)
-        out["b0"].append(_onset_amplitudes(boot, filled)[0])
+        bs = None
+        if cable is not None:
+            g_cable, bs0, delay = cable
+            bs = fit_cable(replace(g_cable, v_V=v), fs, (bs0.tau0_s, bs0.L, bs0.rho), delay,
+                           None)
+        out["tau1_model"].append(bs.taus_s[1] if bs else np.nan)
+        out["L"].append(bs.L if bs else np.nan)
+        out["rho"].append(bs.rho if bs else np.nan)
     return {k: np.asarray(v, dtype=float) for k, v in out.items()}
 
 
@@ -745,7 +759,8 @@ def analyze(recording: Recording, settings: Settings | None = None) -> Recording
     effective = settings if start is None else replace(settings, fit_start_ms=start / MS)
     fits = [analyze_sweep(s.voltage, st, s.index, fs, effective, tau_init) for s, st in chosen]
     fits = apply_decisions(reject_outliers(fits), effective)
-    cell, extras = summarize_cell(fits, voltages, fs, effective)
+    delay = bessel_delay_s(settings.filter_hz or _metadata_float(recording, "filter_hz"))
+    cell, extras = summarize_cell(fits, voltages, fs, effective, settings, delay)
     cell["fit_start_ms"] = _num(extras["average"].windows_s.get(
         "fit", extras["average"].windows_s.get("fit_off", (np.nan,)))[0]
         - _edge_s(extras["average"]), MS, 4) if extras.get("average") else None
@@ -755,6 +770,23 @@ def analyze(recording: Recording, settings: Settings | None = None) -> Recording
                 "sweep_count": len(recording.sweeps)},
         settings=settings, sweeps=tuple(fits), cell=CellResult(cell), flags=flags,
         effective_settings=effective, **extras)
+
+
+def _metadata_float(recording: Recording, key: str) -> float | None:
+    try:
+        value = float(recording.metadata.get(key))
+    except (TypeError, ValueError):
+        return None
+    return value if np.isfinite(value) and value > 0 else None
+
+
+def bessel_delay_s(filter_hz: float | None) -> float:
+    """Group delay of a 4-pole Bessel low-pass at low frequency, 0.336/fc, in s (0 if None).
+
+    From memory (textbook value for the 4-pole Bessel's normalised group delay,
+    0.3363/fc with fc the −3 dB corner).
+    """
+    return 0.0 if not filter_hz else 0.336 / filter_hz
 
 
 def _edge_s(g: GroupAverage) -> float:
@@ -797,8 +829,14 @@ def _empty_cell() -> dict:
 
 
 def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
-                   settings: Settings) -> tuple[dict, dict]:
-    """Cell-level values (display units) and the arrays behind them."""
+                   settings: Settings, asked: Settings | None = None,
+                   delay_s: float = 0.0) -> tuple[dict, dict]:
+    """Cell-level values (display units) and the arrays behind them.
+
+    `settings` hold the fit start used for the exponential fits; the cable-model fit
+    starts where the person `asked` (default: after the artefact) and shifts time zero
+    by the filter delay `delay_s`.
+    """
     cell = _empty_cell()
     flags: list[Flag] = []
     used = [f for f in fits if f.accepted]
@@ -821,7 +859,11 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     except (ValueError, np.linalg.LinAlgError, RuntimeError) as exc:
         flags.append(Flag("fit.failed", f"the fit of the averaged sweeps failed: {exc}"))
         fit = None
-    bridge = _bridge(fit, avg, used)
+    avg_cable = _average(pool.step, list(pool.indices), avg.v_V, fs, asked or settings)
+    bs = fit_cable(avg_cable, fs, cable_init(fit, pool.step), delay_s, flags) \
+        if fit is not None else None
+    extras["cable_fit"] = bs
+    bridge = _bridge(fit, bs, avg, used)
     cell["bridge_MOhm"] = _num(bridge, MOHM, 4)
     if bridge is not None and abs(bridge) > 5 * MOHM:
         what = "subtracted from" if settings.correct_bridge else "left in"
@@ -844,28 +886,28 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     amps = _onset_amplitudes(fit, g_ref)
     cell["c0_mV"] = _num(amps[0], MV)
     cell["ref_step_pA"] = _num(g_ref.amplitude_A, PA, 5)
-    tau1_ok = n >= 2 and _tau1_resolved(fit, fs, flags)
     if n >= 2:
         cell["c1_mV"] = _num(amps[1], MV)
-    if tau1_ok:
-        cell["tau1_ms"] = _num(fit.taus[1], MS)
-        cell["tau1_ci95_ms"] = _num(fit.tau_ci95[1], MS, 3)
-    elif n < 2:
-        flags.append(Flag("fit.tau1_unresolved", "only one exponential component is resolved: "
-                          "no τ1, so no electrotonic length"))
+        cell["tau1_exp_ms"] = _num(fit.taus[1], MS)
     if n >= 3:
         cell["tau2_ms"] = _num(fit.taus[2], MS)
-
     boot = None
     if settings.bootstrap and len(pool.indices) >= 3:
-        boot = _bootstrap(pool, g_ref, fs, fit, settings.bootstrap)
-        for key, name in (("tau0", "tau0_ci95_ms"), ("tau1", "tau1_ci95_ms")):
-            hw = _percentile_halfwidth(boot[key])
-            if hw is not None and cell[name] is not None:
-                cell[name] = _num(hw, MS, 3)
+        cable = None if bs is None else (avg_cable, bs, delay_s)
+        boot = _bootstrap(pool, g_ref, fs, fit, settings.bootstrap, cable)
         cell["ci_method"] = "bootstrap over sweeps"
+        hw = _percentile_halfwidth(boot["tau0"])
+        if hw is not None:
+            cell["tau0_ci95_ms"] = _num(hw, MS, 3)
     else:
         cell["ci_method"] = "fit covariance"
+    tau1, tau1_ci = _tau1(fit, bs, boot, cell)
+    tau1_ok = tau1 is not None and _tau1_resolved(tau1, tau1_ci, fs, flags)
+    if tau1_ok:
+        cell["tau1_ms"], cell["tau1_ci95_ms"] = _num(tau1, MS), _num(tau1_ci, MS, 3)
+    elif tau1 is None:
+        flags.append(Flag("fit.tau1_unresolved", "only one exponential component is resolved: "
+                          "no τ1, so no electrotonic length"))
 
     per_sweep_tau0 = [f.tau(0) for f in used if f.tau(0) is not None]
     if len(per_sweep_tau0) >= 3:
@@ -881,15 +923,67 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     if tau1_ok:
         _scan_drift(scan, flags)
     extras["peel"] = _peel(g_ref, fs, fit, n)
-    _cable(cell, fit, g_ref, kind, tau1_ok, boot, flags)
+    _cable(cell, fit, bs, g_ref, kind, tau1 if tau1_ok else None, boot, flags)
     return cell, extras
 
 
-def _bridge(fit, avg: GroupAverage, used: list[SweepFit]) -> float | None:
-    """Bridge imbalance (Ω): the jump at the step edge of the fitted combined response.
+def cable_init(exp_fit, step: Step) -> tuple[float, float, float] | None:
+    """Start values (τ0, L, ρ) for the ball-and-stick fit from an exponential fit."""
+    from passivefit.core import cablefit
 
-    Without a cell fit, the median of the single sweeps' estimates.
+    if exp_fit is None or len(exp_fit.taus) < 2:
+        return None
+    amps = _response_amplitudes(exp_fit, 0, step.kind)  # segment 0: the first transient
+    kind = "step" if step.kind == "step" else "square"
+    try:
+        return cablefit.initial_guess(exp_fit.taus[0], exp_fit.taus[1], amps[1] / amps[0],
+                                      kind, None if kind == "step" else step.duration_s)
+    except ValueError:
+        return None
+
+
+def fit_cable(avg: GroupAverage, fs: float, init, delay_s: float, flags: list[Flag] | None):
+    """Ball-and-stick fit of the combined response (core.cablefit); None if it fails."""
+    from passivefit.core import cablefit
+    from passivefit.core.expfit import decimate_tail
+
+    step, segs = avg.step, []
+    for name, edge in (("fit", step.onset_s), ("fit_off", step.offset / fs)):
+        if name not in avg.windows_s:
+            continue
+        a, b = (_index(t, fs, avg.v_V.size) for t in avg.windows_s[name])
+        if b - a < 20:
+            continue
+        t, y, w = decimate_tail(np.arange(a, b) / fs - edge, avg.v_V[a:b], KEEP_FULL_S,
+                                BIN_FACTOR)
+        charge = name == "fit"
+        segs.append(cablefit.CableSegment(
+            t, y, w, kind="charge" if charge else "decay", group=0,
+            duration_s=None if charge else step.duration_s, sample_interval_s=1 / fs))
+    if not segs:
+        return None
+    try:
+        bs = cablefit.fit_ballstick(segs, init=init, delay_s=delay_s)
+    except (ValueError, np.linalg.LinAlgError, RuntimeError) as exc:
+        bs, problem = None, f"the ball-and-stick fit failed: {exc}"
+    else:
+        problem = None if bs.success else f"the ball-and-stick fit did not converge: {bs.message}"
+    if problem:
+        if flags is not None:
+            flags.append(Flag("cable.fit_failed", problem))
+        return None
+    return bs
+
+
+def _bridge(fit, bs, avg: GroupAverage, used: list[SweepFit]) -> float | None:
+    """Bridge imbalance (Ω): the jump at the step edge that is not membrane charging.
+
+    From the ball-and-stick fit, whose modes sum to the whole membrane response; else the
+    exponential fit extrapolated to the edge (biased by the unfitted fast components);
+    else the median of the single sweeps' estimates.
     """
+    if bs is not None and avg.step.kind == "step":
+        return bs.bridge_jump_V(0, avg.v_base_V) / avg.amplitude_A
     if fit is not None and avg.step.kind == "step":
         jump = fit.evaluate(avg.segments[0].index, np.zeros(1))[0] - avg.v_base_V
         return float(jump / avg.amplitude_A)
@@ -905,13 +999,50 @@ def _corrected(f: SweepFit, bridge: float) -> SweepFit:
     return replace(f, dv_ss_V=dv, r_in_ohm=dv / f.step.amplitude_A)
 
 
-def _tau1_resolved(fit, fs: float, flags: list[Flag]) -> bool:
-    tau1, ci = fit.taus[1], fit.tau_ci95[1]
+def _tau1(fit, bs, boot: dict | None, cell: dict) -> tuple[float | None, float | None]:
+    """τ1 and its 95 % CI half-width (s), from the ball-and-stick fit when there is one.
+
+    The ball-and-stick fit uses the early transient with every equalizing mode in it, so
+    its τ1 is far more precise than two free exponentials fitted late enough to be free
+    of τ2, τ3 … (benchmarks/bench_cell.py); without it, the exponential fit's τ1.
+    """
+    if len(fit.taus) < 2:
+        return None, None  # the data show no second component: no τ1 from any model
+    if bs is not None:
+        cell["tau1_source"] = "ball-and-stick fit"
+        hw = _percentile_halfwidth(boot["tau1_model"]) if boot is not None else None
+        return float(bs.taus_s[1]), hw if hw is not None else _model_tau1_ci(bs)
+    cell["tau1_source"] = "exponential fit"
+    hw = _percentile_halfwidth(boot["tau1"]) if boot is not None else None
+    return float(fit.taus[1]), hw if hw is not None else float(fit.tau_ci95[1])
+
+
+def _model_tau1_ci(bs) -> float:
+    """95 % CI half-width of the model τ1 = τ0/(1 + α1²), propagated from the CIs of τ0,
+    L and ρ (correlations ignored)."""
+    from passivefit.core import cable
+
+    def tau1(tau0: float, L: float, rho: float) -> float:
+        return tau0 / (1 + cable.ballstick_alphas(L, rho, 1)[0] ** 2)
+
+    x = np.array([bs.tau0_s, bs.L, bs.rho])
+    ci = np.array([bs.tau0_ci95_s, bs.L_ci95, bs.rho_ci95])
+    base = tau1(*x)
+    parts = []
+    for k in range(3):
+        h = 1e-4 * x[k]
+        moved = x.copy()
+        moved[k] += h
+        parts.append((tau1(*moved) - base) / h * ci[k])
+    return float(np.sqrt(np.sum(np.square(parts))))
+
+
+def _tau1_resolved(tau1: float, ci: float | None, fs: float, flags: list[Flag]) -> bool:
     if tau1 < 3 / fs:
         flags.append(Flag("fit.tau1_unresolved", "τ1 is shorter than 3 sampling intervals: "
                           "not resolved (ms)", tau1 / MS))
         return False
-    if not np.isfinite(ci) or ci > tau1:
+    if ci is None or not np.isfinite(ci) or ci > tau1:
         flags.append(Flag("fit.tau1_unresolved", "the 95 % CI of τ1 is wider than τ1 itself: "
                           "not resolved (ms)", tau1 / MS))
         return False
@@ -1017,72 +1148,68 @@ def _sag(used: list[SweepFit], cell: dict, flags: list[Flag]) -> None:
                           "(steady/peak ratio)", ratio))
 
 
-def _cable(cell: dict, fit, g: GroupAverage, kind: str, tau1_ok: bool,
+def _rho_cross_check(cell: dict, bs, v_inf: float, flags: list[Flag]) -> None:
+    """ρ from the amplitudes (steady deflection vs B0, REFERENCES.md §2) against the fit's ρ."""
+    from passivefit.core import cable
+
+    try:
+        rho_amp = cable.rho_from_amplitudes_step(v_inf, float(bs.b0_V[0]), bs.L)
+    except cable.CableFitError as exc:
+        flags.append(Flag("cable.rho_mismatch", str(exc)))
+        return
+    cell["rho_amplitude"] = _num(rho_amp, 1.0, 4)
+    if not 0.5 < rho_amp / bs.rho < 2.0:
+        flags.append(Flag("cable.rho_mismatch", "ρ from the amplitudes and ρ from the time "
+                          "course disagree by more than 2×: the cell is not a uniform "
+                          "ball-and-stick (ρ from amplitudes)", rho_amp))
+
+
+def _cable(cell: dict, fit, bs, g: GroupAverage, kind: str, tau1: float | None,
            boot: dict | None, flags: list[Flag]) -> None:
-    """Equivalent cylinder, ball-and-stick and capacitance from the cell fit."""
+    """Equivalent cylinder (exponential fit), ball-and-stick and capacitance (cable fit)."""
     from passivefit.core import cable
 
     tau0 = float(fit.taus[0])
-    amps = _onset_amplitudes(fit, g)
     step = g.step
     r_in = cell["r_in_MOhm"] * MOHM if cell["r_in_MOhm"] and cell["r_in_MOhm"] > 0 else None
-    def attempt(code: str, fn, *args):
-        """fn(*args), or None with a flag saying why the cable model has no answer."""
-        try:
-            return fn(*args)
-        except cable.CableFitError as exc:
-            flags.append(Flag(code, str(exc)))
-            return None
-
     if r_in:
         cell["c_tau_pF"] = _num(cable.c_tau(tau0, r_in), PF, 5)
-    if kind == "step":
-        c_total = attempt("cable.c_total", cable.c_total_step, step.amplitude_A, tau0, amps[0])
-    else:
-        # decay after a square pulse: C0 = I·τ0·(1 − e^(−D/τ0))/C_total (REFERENCES.md §1)
-        charge = step.amplitude_A * tau0 * -np.expm1(-step.duration_s / tau0)
-        c_total = attempt("cable.c_total", cable.c_total_pulse, charge, amps[0])
-    cell["c_total_pF"] = _num(c_total, PF, 5)
+    if bs is not None:
+        L_ci = _percentile_halfwidth(boot["L"]) if boot is not None else None
+        rho_ci = _percentile_halfwidth(boot["rho"]) if boot is not None else None
+        for key, value, ci in (("L_bs", bs.L, L_ci or bs.L_ci95),
+                               ("rho", bs.rho, rho_ci or bs.rho_ci95)):
+            ci_key = "L_ci95" if key == "L_bs" else "rho_ci95"
+            if ci < value:
+                cell[key], cell[ci_key] = _num(value, 1.0, 5), _num(ci, 1.0, 3)
+            else:
+                flags.append(Flag(f"cable.{key}_unresolved", f"the 95 % CI of {key} is wider "
+                                  "than the value itself: not resolved", value))
+        cell["tau0_model_ms"] = _num(bs.tau0_s, MS)
+        cell["c_total_pF"] = _num(bs.c_total_F(0, step.amplitude_A), PF, 5)
+        if kind == "step" and r_in:
+            _rho_cross_check(cell, bs, r_in * step.amplitude_A, flags)
+    elif kind == "step":  # no cable fit: I·τ0/B0 of the exponential fit (REFERENCES.md §3)
+        c0 = _onset_amplitudes(fit, g)[0]
+        if c0 * step.amplitude_A > 0:
+            cell["c_total_pF"] = _num(cable.c_total_step(step.amplitude_A, tau0, c0), PF, 5)
     if cell["c_tau_pF"] and cell["c_total_pF"]:
         cell["c_ratio"] = _num(cell["c_tau_pF"] / cell["c_total_pF"], 1.0, 4)
-    if not tau1_ok:
+    if tau1 is None:
         return
-    tau1 = float(fit.taus[1])
     cell["L_cyl"] = _num(cable.cylinder_L(tau0, tau1), 1.0, 5)
-    ratio = amps[1] / amps[0]
-    estimate = _ballstick(cable, tau0, tau1, ratio, kind, step.duration_s, flags)
-    if estimate is not None:
-        L, rho = estimate
-        cell["L_bs"], cell["rho"] = _num(L, 1.0, 5), _num(rho, 1.0, 5)
-        if kind == "step" and r_in:
-            cell["rho_amplitude"] = _num(attempt("cable.rho_amplitude",
-                                                 cable.rho_from_amplitudes_step,
-                                                 r_in * step.amplitude_A, amps[0], L), 1.0, 4)
-    if boot is not None:
-        samples = [_ballstick(cable, t0, t1, r, kind, step.duration_s, None)
-                   for t0, t1, r in zip(boot["tau0"], boot["tau1"], boot["ratio"], strict=True)]
-        cyl = [cable.cylinder_L(t0, t1) if t1 < t0 else np.nan
-               for t0, t1 in zip(boot["tau0"], boot["tau1"], strict=True)]
-        cell["L_cyl_ci95"] = _num(_percentile_halfwidth(np.array(cyl, dtype=float)), 1, 3)
-        good = np.array([s for s in samples if s is not None], dtype=float).reshape(-1, 2)
-        if estimate is not None and good.shape[0] >= 10:
-            cell["L_ci95"] = _num(_percentile_halfwidth(good[:, 0]), 1.0, 3)
-            cell["rho_ci95"] = _num(_percentile_halfwidth(good[:, 1]), 1.0, 3)
+    pairs = None if boot is None else zip(
+        boot["tau0"], boot["tau1_model" if bs is not None else "tau1"], strict=True)
+    cyl_ci = None if pairs is None else _percentile_halfwidth(np.array(
+        [cable.cylinder_L(t0, t1) if 0 < t1 < t0 else np.nan for t0, t1 in pairs]))
+    cell["L_cyl_ci95"] = _num(cyl_ci, 1.0, 3)
+    # amplitude ratios of free exponentials are trustworthy only with τ2 fitted as well
+    ratios = {}
+    if len(fit.taus) >= 3:
+        amps = _onset_amplitudes(fit, g)
+        t0, t1 = float(fit.taus[0]), float(fit.taus[1])
+        ratios = {"b1_over_b0": amps[1] / amps[0]} if kind == "step" else {
+            "c1_over_c0": amps[1] / amps[0] / cable.square_pulse_factor(t0, t1, step.duration_s)}
     tau2 = float(fit.taus[2]) if len(fit.taus) > 2 else None
-    ratios = {"b1_over_b0": ratio} if kind == "step" else {
-        "c1_over_c0": ratio / cable.square_pulse_factor(tau0, tau1, step.duration_s)}
     flags.extend(cable.plausibility_flags(tau0=tau0, tau1=tau1, tau2=tau2, **ratios,
-                                          L=estimate[0] if estimate else None,
-                                          rho=estimate[1] if estimate else None))
-
-
-def _ballstick(cable, tau0, tau1, ratio, kind, duration_s, flags):
-    if not (np.isfinite(tau0) and np.isfinite(tau1) and np.isfinite(ratio)) or tau1 >= tau0:
-        return None
-    kind_bs = "square" if kind == "pulse" else "step"
-    try:
-        return cable.estimate_ballstick(tau0, tau1, ratio, kind_bs, duration_s=duration_s)
-    except cable.CableFitError as exc:
-        if flags is not None:
-            flags.append(Flag("cable.no_ballstick", str(exc), ratio))
-        return None
+                                          L=bs.L if bs else None, rho=bs.rho if bs else None))

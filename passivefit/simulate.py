@@ -387,14 +387,20 @@ def _unit_command(
 
 
 def _bessel(filter_hz: float, sample_rate_hz: float) -> tuple[np.ndarray, np.ndarray]:
-    from scipy.signal import bessel
+    """An amplifier's analog 4-pole Bessel low-pass (−3 dB at `filter_hz`), digitised.
+
+    The analog filter is mapped by the bilinear transform without pre-warping, which keeps
+    its low-frequency group delay (0.336/fc) — the delay that shifts a recorded transient.
+    """
+    from scipy.signal import bessel, bilinear
 
     if not 0 < filter_hz < sample_rate_hz / 2:
         raise ValueError(
             f"`filter_hz` ({filter_hz} Hz) must be between 0 and half the "
             f"sampling rate ({sample_rate_hz / 2:g} Hz), or None for no filter"
         )
-    return bessel(4, filter_hz, btype="low", norm="phase", fs=sample_rate_hz)
+    b, a = bessel(4, 2 * np.pi * filter_hz, btype="low", norm="mag", analog=True)
+    return bilinear(b, a, fs=sample_rate_hz)
 
 
 def _apply_filter(ba: tuple[np.ndarray, np.ndarray] | None, x: np.ndarray) -> np.ndarray:
@@ -573,6 +579,7 @@ def simulate_recording(
         "lab": LAB_NAME,
         "simulated": True,
         "protocol": protocol.describe(),
+        "filter_hz": None if filter_hz is None else float(filter_hz),
     }
     meta.update(metadata or {})
     recording = Recording(

@@ -184,10 +184,11 @@ def test_initial_guess_fallbacks():
 
 def _filter_delay_s() -> float:
     """Low-frequency group delay of the simulator's 5 kHz Bessel filter, in s."""
-    from scipy.signal import bessel, group_delay
+    from scipy.signal import group_delay
 
-    b, a = bessel(4, 5_000, btype="low", norm="phase", fs=FS)
-    return float(group_delay((b, a), w=[10.0], fs=FS)[1][0]) * DT
+    from passivefit.simulate import _bessel
+
+    return float(group_delay(_bessel(5_000, FS), w=[10.0], fs=FS)[1][0]) * DT
 
 
 def _fit_recording(cell: BallStick, seed: int, start_s: float, delay_s: float):
@@ -227,8 +228,8 @@ def test_filtered_noisy_recordings_across_seeds():
 
 
 def test_filter_delay_option_removes_bias():
-    # noiseless but filtered: the 5 kHz Bessel delays the transient by ~0.08 ms; without
-    # the delay the fit biases rho (+16 %) and the bridge (-1.6 MOhm), with it both vanish
+    # noiseless but filtered: the 5 kHz Bessel delays the transient by 0.336/fc = 0.067 ms;
+    # without the delay the fit biases rho and the bridge, with it both vanish
     cell = BallStick.from_electrotonic(TAU_M, 1.0, 5.0, R_IN)
     rec, _ = simulate_recording(
         cell, protocol=StepProtocol(0.1, 0.4, (I_STEP,)), sweep_duration_s=0.8, n_sweeps=1,
@@ -236,7 +237,8 @@ def test_filter_delay_option_removes_bias():
     )  # fmt: skip
     v = rec.sweeps[0].voltage
     delay = _filter_delay_s()
-    assert delay == pytest.approx(0.08e-3, rel=0.05)
+    # 4-pole Bessel low-frequency group delay 0.336/fc (from memory, textbook value)
+    assert delay == pytest.approx(0.336 / 5_000, rel=0.01)
     with_delay = fit_ballstick(step_segments(v, 0.5e-3), delay_s=delay)
     without = fit_ballstick(step_segments(v, 0.5e-3))
     assert with_delay.rho == pytest.approx(5.0, rel=0.01)
