@@ -675,12 +675,21 @@ def _ratio(fit, g: GroupAverage) -> float | None:
 
 
 def _percentile_halfwidth(samples: np.ndarray) -> float | None:
-    """Half the width of the central 95 % of bootstrap samples (None with fewer than 10)."""
+    """95 % CI half-width from bootstrap samples (None with fewer than 10).
+
+    Half the central 95 % range with 40 or more samples; 1.96 sd with fewer, where the
+    extreme percentiles are too rough.
+    """
     samples = samples[np.isfinite(samples)]
     if samples.size < 10:
         return None
+    if samples.size < 40:
+        return float(1.96 * np.std(samples, ddof=1))
     lo, hi = np.percentile(samples, [2.5, 97.5])
     return float((hi - lo) / 2)
+
+
+CABLE_BOOTSTRAP = 20
 
 
 def _bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
@@ -688,7 +697,8 @@ def _bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
     """Cell values refitted on sweeps resampled with replacement.
 
     `cable` = (combined response with the cable-fit windows, BallStickFit, delay in s)
-    adds the ball-and-stick values; a resample whose fit fails gives NaN there.
+    adds the ball-and-stick values for the first CABLE_BOOTSTRAP resamples (each such fit
+    costs ~10 ms); a resample whose fit fails, or is not refitted, gives NaN there.
     """
     rng = np.random.default_rng(seed)
     n = len(fit.taus)
@@ -707,7 +717,7 @@ def _bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
         out["tau0"].append(boot.taus[0])
         out["tau1"].append(boot.taus[1] if n > 1 else np.nan)
         bs = None
-        if cable is not None:
+        if cable is not None and len(out["tau0"]) <= CABLE_BOOTSTRAP:
             g_cable, bs0, delay = cable
             bs = fit_cable(replace(g_cable, v_V=v), fs, (bs0.tau0_s, bs0.L, bs0.rho), delay,
                            None)
