@@ -12,6 +12,7 @@ CELL_ID = "LOL-2026-11-03-c1"  # invented scenario (helper_rules.md)
 LAB = "Lindqvist-Okafor Lab of Dendritic Physiology"
 DATE = "2026-11-03T14:22:05.250"
 PROTOCOL = "hyperpolarizing steps -40 pA, -20 pA increments"
+FILTER_HZ = 5000.0
 
 
 def charging_recording(
@@ -46,6 +47,7 @@ def charging_recording(
         "temperature_C": 32.0,
         "lab": LAB,
         "protocol": PROTOCOL,
+        "filter_hz": FILTER_HZ,
     }
     return Recording(sweeps, rate_hz, metadata=metadata)
 
@@ -56,6 +58,7 @@ def abf2_bytes(
     rate_hz: float,
     epochs: list[tuple[int, float, float, int]],
     waveform_enabled: bool = True,
+    lowpass_hz: tuple[float, float] = (0.0, 0.0),
 ) -> bytes:
     """A minimal two-channel ABF 2 file (IN 0 in mV, IN 1 in pA, OUT 0 in pA).
 
@@ -71,6 +74,8 @@ def abf2_bytes(
     epochs : list of tuple
     waveform_enabled : bool
         Whether DAC 0 plays its epoch table.
+    lowpass_hz : tuple of float
+        `fSignalLowpassFilter` of IN 0 and IN 1, in Hz (0: unset).
     """
     sweeps, samples = voltage_counts.shape
     strings = b"\0\0" + b"\0".join(
@@ -108,6 +113,7 @@ def abf2_bytes(
         struct.pack_into("<hh", adc, base, i, 0)  # nADCNum, nTelegraphEnable
         struct.pack_into("<hhf", adc, base + 24, i, i, 1.0)  # PtoL map, sampling seq, prog gain
         struct.pack_into("<ffff", adc, base + 40, 10.0 / 32768 / per_count, 0.0, 1.0, 0.0)
+        struct.pack_into("<f", adc, base + 56, lowpass_hz[i])  # fSignalLowpassFilter
         struct.pack_into("<ii", adc, base + 74, name, unit)
     blocks["adc"] = adc
 

@@ -8,10 +8,10 @@ import numpy as np
 import pyabf
 import pyabf.abfWriter
 import pytest
-from io_fixtures import abf2_bytes
+from io_fixtures import abf2_bytes, charging_recording
 from numpy.testing import assert_allclose
 
-from passivefit.io import LoadError, load
+from passivefit.io import LoadError, load, save
 
 SAMPLES = 3000
 EPOCHS = [(1, 0.0, 0.0, 300), (1, -40.0, -20.0, 1500)]  # step type 1: baseline, then step
@@ -32,10 +32,14 @@ def _expected_command_A(sweep: int) -> np.ndarray:
     return command * 1e-12
 
 
-def _abf2(tmp_path, rate_hz=20_000.0, epochs=EPOCHS, enabled=True, name="cell.abf"):
+def _abf2(
+    tmp_path, rate_hz=20_000.0, epochs=EPOCHS, enabled=True, name="cell.abf", lowpass=(0.0, 0.0)
+):
     v, i = _counts()
     path = tmp_path / name
-    path.write_bytes(abf2_bytes(v, i, rate_hz, epochs, waveform_enabled=enabled))
+    path.write_bytes(
+        abf2_bytes(v, i, rate_hz, epochs, waveform_enabled=enabled, lowpass_hz=lowpass)
+    )
     return path, v, i
 
 
@@ -119,3 +123,62 @@ def test_abf1_float_data_is_refused(tmp_path):
     path.write_bytes(bytes(raw))
     with pytest.raises(LoadError, match="float data is not implemented"):
         load(path)
+
+
+# ---------------------------------------------------------------- low-pass filter setting
+
+
+@pytest.mark.parametrize(
+    ("lowpass", "expected"),
+    [
+        ((2000.0, 0.0), 2000.0),  # the voltage channel's setting
+        ((3333.3, 0.0), 3333.3),  # float32 in the header, shortest decimal back
+        ((0.0, 2000.0), None),  # the current channel's setting is not the voltage's
+        ((100_000.0, 0.0), None),  # "bypass" (common practice, no source): above Nyquist
+        ((10_000.0, 0.0), None),  # at the Nyquist frequency of 20 kHz sampling
+        ((5.0, 0.0), None),  # below 10 Hz: no amplifier corner
+        ((float("nan"), 0.0), None),
+    ],
+)
+def test_abf2_lowpass_setting(tmp_path, lowpass, expected):
+    path, _, _ = _abf2(tmp_path, lowpass=lowpass)
+    assert load(path).metadata.get("filter_hz") == expected
+
+
+def _abf1_lowpass_field(path) -> float:
+    """fSignalLowpassFilter of ADC 0, decoded here: ABF 1 header offset 1178 (from memory)."""
+    return struct.unpack_from("<f", path.read_bytes(), 1178)[0]
+
+
+def test_abf1_round_trip_keeps_the_filter(tmp_path):
+    recording = charging_recording(n_sweeps=2, n_samples=3000)
+    recording.metadata["filter_hz"] = 2345.5
+    path = save(recording, tmp_path / "cell.abf")
+    assert _abf1_lowpass_field(path) == 2345.5
+    assert load(path).metadata["filter_hz"] == 2345.5
+
+
+def test_abf1_without_a_filter(tmp_path):
+    recording = charging_recording(n_sweeps=2, n_samples=3000)
+    del recording.metadata["filter_hz"]
+    path = save(recording, tmp_path / "cell.abf")
+    assert _abf1_lowpass_field(path) == 0.0
+    assert "filter_hz" not in load(path).metadata
+    plain = _raw_abf1(tmp_path, -70 + np.sin(np.arange(3000) / 9))  # pyabf's own writer
+    assert "filter_hz" not in load(plain).metadata
+
+
+def test_abf1_filter_above_nyquist_is_written_but_not_read_as_a_corner(tmp_path):
+    recording = charging_recording(n_sweeps=2, n_samples=3000, rate_hz=10_000.0)
+    recording.metadata["filter_hz"] = 5000.0  # the Nyquist frequency itself
+    path = save(recording, tmp_path / "cell.abf")
+    assert _abf1_lowpass_field(path) == 5000.0
+    assert "filter_hz" not in load(path).metadata
+
+
+def test_abf1_bad_filter_metadata_is_refused(tmp_path):
+    recording = charging_recording(n_sweeps=2, n_samples=3000)
+    recording.metadata["filter_hz"] = "fast"
+    with pytest.raises(ValueError, match=r"metadata `filter_hz` is 'fast'; give the low-pass"):
+        save(recording, tmp_path / "cell.abf")
+    assert not (tmp_path / "cell.abf").exists()

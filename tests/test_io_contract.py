@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from io_fixtures import CELL_ID, DATE, PROTOCOL, charging_recording
+from io_fixtures import CELL_ID, DATE, FILTER_HZ, PROTOCOL, charging_recording
 from numpy.testing import assert_allclose
 
 from passivefit.io import Recording, load, save
@@ -107,6 +107,7 @@ class TestNWBContract(ReaderContract):
         "temperature_C": 32.0,
         "lab": "Lindqvist-Okafor Lab of Dendritic Physiology",
         "protocol": PROTOCOL,
+        "filter_hz": FILTER_HZ,
     }
 
     def voltage_tolerance(self, written, path):
@@ -130,6 +131,7 @@ class TestCSVContract(ReaderContract):
         "temperature_C": 32.0,
         "lab": "Lindqvist-Okafor Lab of Dendritic Physiology",
         "protocol": PROTOCOL,
+        "filter_hz": FILTER_HZ,
     }
 
     def voltage_tolerance(self, written, path):
@@ -172,7 +174,7 @@ class TestABF1Contract(ReaderContract):
     extension = ".abf"
     format_name = "abf"
     keeps_current = False  # ABF 1 from pyabf's writer has no command waveform
-    kept_metadata = {"date": DATE, "comment": CELL_ID, "abf_version": 1}
+    kept_metadata = {"date": DATE, "comment": CELL_ID, "abf_version": 1, "filter_hz": FILTER_HZ}
 
     def voltage_tolerance(self, written, path):
         _, mV_per_count, _ = _abf1_int16_and_gain(path)

@@ -10,7 +10,7 @@ import sys
 import h5py
 import numpy as np
 import pytest
-from io_fixtures import charging_recording
+from io_fixtures import FILTER_HZ, charging_recording
 from numpy.testing import assert_allclose, assert_array_equal
 from pynwb import NWBHDF5IO, NWBFile
 from pynwb.file import Subject
@@ -23,13 +23,13 @@ from pynwb.icephys import (
 
 from passivefit.io import LoadError, Recording, load, save
 from passivefit.io import nwb as nwb_reader
-from passivefit.io.nwb import read_nwb_hdf5, read_nwb_pynwb
+from passivefit.io.nwb import filter_hz_from_text, read_nwb_hdf5, read_nwb_pynwb
 
 RATE = 10_000.0
 N = 1500
 
 
-def _file(**kwargs) -> tuple[NWBFile, object]:
+def _file(filtering=None, **kwargs) -> tuple[NWBFile, object]:
     nwb = NWBFile(
         session_description="steps",
         identifier="LOL-2026-11-05-c3",
@@ -37,7 +37,9 @@ def _file(**kwargs) -> tuple[NWBFile, object]:
         **kwargs,
     )
     device = nwb.create_device(name="amp")
-    electrode = nwb.create_icephys_electrode(name="e0", description="patch", device=device)
+    electrode = nwb.create_icephys_electrode(
+        name="e0", description="patch", device=device, filtering=filtering
+    )
     return nwb, electrode
 
 
@@ -136,8 +138,9 @@ def test_voltage_clamp_rows_are_skipped(tmp_path):
         load(_write(nwb, tmp_path / "vc.nwb"))
 
 
-def _metadata_file(path):
+def _metadata_file(path, filtering="Bessel 4-pole low-pass at 2.5 kHz, high-pass off"):
     nwb, electrode = _file(
+        filtering=filtering,
         lab="Lindqvist-Okafor Lab of Dendritic Physiology",
         institution="Invented Institute",
         notes="Bath temperature: 31.5 C, slice 2",
@@ -172,6 +175,56 @@ def test_metadata_from_the_file(tmp_path):
         "Mus musculus",
         "patch",
     )
+    assert meta["filter_hz"] == 2500.0  # from the electrode's `filtering` text
+
+
+@pytest.mark.parametrize(
+    ("text", "hz"),
+    [
+        ("low-pass 4-pole Bessel, -3 dB at 5000 Hz", 5000.0),
+        ("Bessel 10KHz", 10_000.0),
+        ("lowpass 3.3 kHz", 3300.0),
+        ("high-pass 1 Hz, low-pass 2 kHz", 2000.0),
+        ("highpass 0.1 Hz", None),
+        ("corner 1e4 Hz", 10_000.0),
+        ("sampled at 20 kHz after a 5 kHz low-pass", 5000.0),
+        ("4-pole Bessel, -3 dB", None),
+        ("filter bypassed", None),
+        ("0 Hz", None),
+        ("", None),
+        (None, None),
+    ],
+)
+def test_filter_frequency_from_free_text(text, hz):
+    assert filter_hz_from_text(text) == hz
+
+
+def test_written_filter_is_in_the_electrode_filtering_field(tmp_path):
+    recording = charging_recording(n_sweeps=1, n_samples=2000)
+    recording.metadata["filter_hz"] = 2345.5
+    path = save(recording, tmp_path / "cell.nwb")
+    # read with pynwb's object model, not through passivefit's readers
+    with NWBHDF5IO(str(path), "r") as io:
+        (electrode,) = io.read().icephys_electrodes.values()
+        assert electrode.filtering == "low-pass, -3 dB at 2345.5 Hz"
+    assert load(path).metadata["filter_hz"] == 2345.5
+
+
+def test_no_filter_writes_no_filtering_field(tmp_path):
+    recording = charging_recording(n_sweeps=1, n_samples=2000)
+    recording.metadata["filter_hz"] = None  # as the simulator gives for no filter
+    path = save(recording, tmp_path / "cell.nwb")
+    with h5py.File(path, "r") as f:
+        assert "filtering" not in f["general/intracellular_ephys/electrode_0"]
+    assert "filter_hz" not in load(path).metadata
+
+
+@pytest.mark.parametrize("value", [-5.0, 0.0, float("nan"), "fast"])
+def test_bad_filter_metadata_is_refused_when_writing(tmp_path, value):
+    recording = charging_recording(n_sweeps=1, n_samples=2000)
+    recording.metadata["filter_hz"] = value
+    with pytest.raises(ValueError, match="metadata `filter_hz` is .*; give the low-pass corner"):
+        save(recording, tmp_path / "cell.nwb")
 
 
 def test_hdf5_that_is_not_nwb(tmp_path):
@@ -244,6 +297,7 @@ SAME_READING = {
     "table slices of one long series": _slices_file,
     "table with voltage-clamp and I=0 rows": _mixed_table_file,
     "float32 conversion and offset": _float32_conversion_file,
+    "filtering text without a frequency": lambda p: _metadata_file(p, filtering="bypass"),
 }
 
 
@@ -264,6 +318,20 @@ def test_h5py_reader_gives_what_pynwb_gives(tmp_path, build):
     direct = read_nwb_hdf5(path)
     assert direct is not None, "the h5py reader declined a common layout"
     _assert_same_recording(direct, read_nwb_pynwb(path))
+
+
+FILTER_OF = {
+    "saved, table + stimulus, 20 kHz": FILTER_HZ,
+    "acquisition only, full metadata": 2500.0,
+    "filtering text without a frequency": None,
+}
+
+
+@pytest.mark.parametrize("name", FILTER_OF)
+def test_both_readers_read_the_filter(tmp_path, name):
+    path = SAME_READING[name](tmp_path / "cell.nwb")
+    for reader in (read_nwb_hdf5, read_nwb_pynwb):
+        assert reader(path).metadata.get("filter_hz") == FILTER_OF[name], reader.__name__
 
 
 def test_h5py_reader_keeps_the_written_values(tmp_path):

@@ -30,12 +30,17 @@ def test_units_and_semicolons_and_metadata(tmp_path):
     body = _rows(200, [lambda k: f"{-0.07 + k * 1e-6:.9f}", lambda k: "-0.05"], ";")
     path = _table(
         tmp_path,
-        "# cell_id: LOL-2026-11-04-c2\n# temperature_C: 31.5\n# rig: B\n"
+        "# cell_id: LOL-2026-11-04-c2\n# temperature_C: 31.5\n# filter_hz: 2000\n# rig: B\n"
         "time_ms;V3_V;I3_nA\n" + body + "\n",
     )
     rec = load(path)
     assert rec.sample_rate_hz == 10_000.0
-    assert rec.metadata == {"cell_id": "LOL-2026-11-04-c2", "temperature_C": 31.5, "rig": "B"}
+    assert rec.metadata == {
+        "cell_id": "LOL-2026-11-04-c2",
+        "temperature_C": 31.5,
+        "filter_hz": 2000.0,
+        "rig": "B",
+    }
     assert len(rec.sweeps) == 1 and rec.sweeps[0].index == 0  # V3 renumbered from 0
     assert_allclose(rec.sweeps[0].voltage[:2], [-0.07, -0.069999])
     assert_allclose(rec.sweeps[0].current, -0.05e-9)
@@ -78,6 +83,10 @@ def test_blank_lines_keep_line_numbers(tmp_path):
         ("time_ms,V0_mV\n", "a header but no data rows"),
         ("V0_mV\n1\n2\n", r"no time column and no `# sample_rate_hz:` line"),
         ("# temperature_C: warm\ntime_ms,V0_mV\n0,1\n", "`temperature_C` is 'warm', not a number"),
+        (
+            "# filter_hz: 5 kHz\ntime_ms,V0_mV\n0,1\n",
+            r"`filter_hz` is '5 kHz', not a number; write e.g. `# filter_hz: 5000`",
+        ),
         ("time_ms,V0_mV\n0,1\n0.1,2,3\n", "line 3: 3 values where the header has 2"),
         ("time_ms,V0_mV\n0,1\n0.1,\n", r"line 3, column 'V0_mV': '' is not a number"),
         (

@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 
 from passivefit.io._rate import whole_hz
-from passivefit.io.recording import LoadError, Recording, Sweep
+from passivefit.io.recording import LoadError, Recording, Sweep, metadata_filter_hz
 
 _SIGNATURES = (b"ABF ", b"ABF2")
 _VOLTAGE_UNITS = {"mV": 1e-3}
@@ -38,6 +38,15 @@ _ABF1_START_TIME = 24  # lFileStartTime, int32 seconds since midnight
 _ABF1_CREATOR = 294  # sCreatorInfo, 16 s
 _ABF1_COMMENT_OLD = 310  # sFileCommentOld, 56 s
 _ABF1_START_MS = 366  # nFileStartMillisecs, int16
+# fSignalLowpassFilter, 16 f (one per ADC), between fSignalOffset (1114, 16 f) and
+# sDACChannelName (1306), where fSignalHighpassFilter (16 f) ends the gap: from memory,
+# consistent with pyabf's offsets of those neighbours. pyabf itself does not read it.
+_ABF1_LOWPASS = 1178
+_ABF1_LOWPASS_END = 1242
+# A low-pass setting is an amplifier corner only within this range and below the
+# Nyquist frequency; headers hold 0 when unset and 100 kHz or more for "bypass"
+# (common practice, no source).
+_CORNER_RANGE_HZ = (10.0, 1e6)
 
 
 def _supported_text() -> str:
@@ -206,6 +215,30 @@ def _metadata(abf: Any, current_source: str) -> dict:
     return metadata
 
 
+def _lowpass_setting(path: Path, abf: Any, v_channel: int) -> float:
+    """The header's signal low-pass setting of the voltage channel, in Hz (NaN if none)."""
+    if _major(abf) == 2:
+        return float(abf._adcSection.fSignalLowpassFilter[v_channel])
+    adc = int(abf._headerV1.nADCSamplingSeq[v_channel])
+    if _abf1_data_start(abf) < _ABF1_LOWPASS_END or not 0 <= adc < _MAX_CHANNELS:
+        return float("nan")  # the field lies in the sample data, or the header is odd
+    with open(path, "rb") as f:
+        f.seek(_ABF1_LOWPASS + 4 * adc)
+        return float(struct.unpack("<f", f.read(4))[0])
+
+
+def _corner_hz(setting_hz: float, rate_hz: float) -> float | None:
+    """A plausible low-pass corner from a header setting, or None (unset, bypass, junk).
+
+    The header stores float32: the shortest decimal of that float32 is returned, so
+    a setting of 3333.3 Hz reads as 3333.3, not 3333.300048828125.
+    """
+    low, high = _CORNER_RANGE_HZ
+    if not (np.isfinite(setting_hz) and low <= setting_hz <= high and setting_hz < rate_hz / 2):
+        return None
+    return float(str(np.float32(setting_hz)))
+
+
 def read_abf(path: str | Path) -> Recording:
     """Read an ABF 1 or ABF 2 current-clamp file.
 
@@ -219,7 +252,9 @@ def read_abf(path: str | Path) -> Recording:
     Recording
         Voltage in V from the first mV channel; current in A from an enabled ABF 2
         epoch table, else from a pA/nA channel, else None. Metadata: `date` (ISO),
-        `protocol`, `comment`, `abf_version`, `current_source`.
+        `protocol`, `comment`, `abf_version`, `current_source`, and `filter_hz` (the
+        voltage channel's `fSignalLowpassFilter`, in Hz) when it is a plausible
+        corner: 10 Hz to 1 MHz and below the Nyquist frequency.
 
     Raises
     ------
@@ -244,10 +279,13 @@ def read_abf(path: str | Path) -> Recording:
                 _undo_phantom_telegraph_gain(abf)
             sweeps, current_source = _read_sweeps(abf, v_channel)
             metadata = _metadata(abf, current_source)
+            filter_hz = _corner_hz(_lowpass_setting(path, abf, v_channel), rate)
     except Exception as err:  # pyabf fails in many ways on damaged sweeps
         raise LoadError(
             path, f"damaged ABF data ({_reason(err)}); re-export the file from the rig"
         ) from None
+    if filter_hz is not None:
+        metadata["filter_hz"] = filter_hz
     return Recording(sweeps, rate, path=str(path), format="abf", metadata=metadata)
 
 
@@ -267,8 +305,8 @@ def _pack_text(text: str, size: int) -> bytes:
     return text.encode("ascii", errors="replace")[:size].ljust(size, b"\0")
 
 
-def _finish_abf1_header(path: Path, metadata: dict) -> None:
-    """Give pyabf's 2048-byte ABF 1 header its full 6144 bytes, then date and comment.
+def _finish_abf1_header(path: Path, metadata: dict, filter_hz: float | None) -> None:
+    """Give pyabf's 2048-byte ABF 1 header its full 6144 bytes, then date, comment, filter.
 
     pyabf's reader takes fields up to byte 5806 from fixed offsets; with the data
     section at byte 2048 those fields are sample data (short files fail to open,
@@ -289,6 +327,8 @@ def _finish_abf1_header(path: Path, metadata: dict) -> None:
         struct.pack_into("i", out, _ABF1_START_DATE, int(when.strftime("%Y%m%d")))
         struct.pack_into("i", out, _ABF1_START_TIME, seconds)
         struct.pack_into("h", out, _ABF1_START_MS, when.microsecond // 1000)
+    if filter_hz is not None:  # pyabf's writer records ADC 0 (nADCSamplingSeq all 0)
+        struct.pack_into("<f", out, _ABF1_LOWPASS, filter_hz)
     path.write_bytes(bytes(out))
 
 
@@ -298,7 +338,9 @@ def write_abf1(recording: Recording, path: str | Path) -> None:
     The current is not written (pyabf's ABF 1 writer carries no command waveform):
     analyse such a file with ``--step``. Values are truncated toward zero to the int16
     grid that pyabf chooses from the largest |V| (3.05 uV steps up to 100 mV).
-    The metadata `date` and `comment` (or `cell_id`) are kept in the header.
+    The metadata `date`, `comment` (or `cell_id`) and `filter_hz` (as
+    `fSignalLowpassFilter`, float32) are kept in the header; `read_abf` reads the
+    filter back only when it is below the Nyquist frequency.
 
     Parameters
     ----------
@@ -310,15 +352,16 @@ def write_abf1(recording: Recording, path: str | Path) -> None:
     Raises
     ------
     ValueError
-        Sweeps of different lengths, non-finite voltage, or values pyabf cannot
-        fit into int16.
+        Sweeps of different lengths, non-finite voltage, values pyabf cannot fit
+        into int16, or metadata `filter_hz` that is not a positive number.
     """
     import pyabf.abfWriter
 
     path = Path(path)
     data_mV = _stack_voltage_mV(recording, path)
+    filter_hz = metadata_filter_hz(recording.metadata)
     try:
         pyabf.abfWriter.writeABF1(data_mV, str(path), recording.sample_rate_hz, units="mV")
     except struct.error as err:
         raise ValueError(f"{path}: voltages do not fit ABF 1 int16 ({err})") from None
-    _finish_abf1_header(path, recording.metadata)
+    _finish_abf1_header(path, recording.metadata, filter_hz)

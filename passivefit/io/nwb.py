@@ -20,19 +20,59 @@ import datetime as dt
 import re
 import uuid
 import warnings
+from decimal import Decimal
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from passivefit.io._rate import rate_from_times, whole_hz
-from passivefit.io.recording import LoadError, Recording, Sweep
+from passivefit.io.recording import LoadError, Recording, Sweep, metadata_filter_hz
 
 _TEMPERATURE = re.compile(
     r"temperature(?:_C)?\s*[:=]\s*(?P<value>[-+]?\d+(?:\.\d*)?)", re.IGNORECASE
 )
+# a frequency with its unit in free text: "5000 Hz", "2.5 kHz", "10KHz", "1e4 Hz"
+_FREQUENCY = re.compile(
+    r"(?<![\w.])(?P<value>\d+(?:\.\d*)?(?:[eE][-+]?\d+)?)\s*(?P<prefix>[kKM]?)[Hh][Zz]\b"
+)
+_PREFIX_EXPONENT = {"": 0, "k": 3, "K": 3, "M": 6}
+_HIGH_PASS = re.compile(r"high[\s-]?pass", re.IGNORECASE)
 _V_UNITS_PER_SI = 1e3  # responses stored in mV (float32), conversion 1e-3 to V
 _I_UNITS_PER_SI = 1e12  # stimuli stored in pA (float32), conversion 1e-12 to A
+
+
+def filter_hz_from_text(text: str | None) -> float | None:
+    """The low-pass corner named in an electrode's `filtering` text, in Hz.
+
+    Frequencies are numbers followed by Hz, kHz or MHz. One that follows the words
+    "high-pass" (since the previous frequency) is a high-pass corner and is skipped;
+    of the others the lowest is the low-pass corner (it dominates a cascade).
+
+    Parameters
+    ----------
+    text : str or None
+        Free text such as ``"low-pass 4-pole Bessel, -3 dB at 5 kHz"``.
+
+    Returns
+    -------
+    float or None
+        The corner in Hz, None when the text names no positive frequency.
+    """
+    corners, previous_end = [], 0
+    for match in _FREQUENCY.finditer(text or ""):
+        high_pass = _HIGH_PASS.search(text, previous_end, match.start()) is not None
+        previous_end = match.end()
+        # scaled in decimal: "3.3 kHz" is 3300.0, not 3.3 * 1e3 = 3299.9999999999995
+        hz = float(Decimal(match["value"]).scaleb(_PREFIX_EXPONENT[match["prefix"]]))
+        if not high_pass and np.isfinite(hz) and hz > 0:
+            corners.append(hz)
+    return min(corners) if corners else None
+
+
+def filtering_text(filter_hz: float) -> str:
+    """The `filtering` text written for a low-pass corner of `filter_hz` Hz."""
+    return f"low-pass, -3 dB at {filter_hz:.10g} Hz"
 
 
 def _reason(err: BaseException) -> str:
@@ -152,6 +192,9 @@ def _metadata(nwb: Any) -> dict:
     match = _TEMPERATURE.search(str(nwb.notes or ""))
     if match:
         metadata["temperature_C"] = float(match["value"])
+    filter_hz = filter_hz_from_text(getattr(electrode, "filtering", None))
+    if filter_hz is not None:
+        metadata["filter_hz"] = filter_hz
     return metadata
 
 
@@ -182,7 +225,9 @@ def read_nwb_pynwb(path: str | Path) -> Recording:
         One sweep per current-clamp response (V), with the paired stimulus (A) or
         None. Metadata: `cell_id`, `identifier`, `date` (ISO), `session_description`,
         `lab`, `institution`, `protocol`, `electrode`, `subject_id`, `species`, `notes`,
-        `temperature_C` (from ``temperature_C: 32`` in the notes).
+        `temperature_C` (from ``temperature_C: 32`` in the notes), `filter_hz`
+        (the low-pass corner in Hz, from the electrode's `filtering` text; see
+        `filter_hz_from_text`).
 
     Raises
     ------
@@ -423,6 +468,10 @@ def _direct_metadata(f: Any) -> dict:
     match = _TEMPERATURE.search(notes or "")
     if match:
         metadata["temperature_C"] = float(match["value"])
+    filtering = _text(electrode, "filtering") if electrode is not None else None
+    filter_hz = filter_hz_from_text(filtering)
+    if filter_hz is not None:
+        metadata["filter_hz"] = filter_hz
     return metadata
 
 
@@ -502,7 +551,9 @@ def read_nwb(path: str | Path) -> Recording:
         One sweep per current-clamp response (V), with the paired stimulus (A) or
         None. Metadata: `cell_id`, `identifier`, `date` (ISO), `session_description`,
         `lab`, `institution`, `protocol`, `electrode`, `subject_id`, `species`, `notes`,
-        `temperature_C` (from ``temperature_C: 32`` in the notes).
+        `temperature_C` (from ``temperature_C: 32`` in the notes), `filter_hz`
+        (the low-pass corner in Hz, from the electrode's `filtering` text; see
+        `filter_hz_from_text`).
 
     Raises
     ------
@@ -567,7 +618,8 @@ def write_nwb(recording: Recording, path: str | Path) -> None:
     Metadata written: `cell_id` (electrode cell id), `date` (session start; naive
     dates are taken as UTC), `lab`, `institution`, `session_description`,
     `protocol`, `electrode`, `subject_id`, `species`, `notes`, `temperature_C` (in
-    the notes). Other keys have no NWB field and are not written.
+    the notes), `filter_hz` (in the electrode's `filtering` text, see
+    `filtering_text`). Other keys have no NWB field and are not written.
 
     Parameters
     ----------
@@ -575,11 +627,17 @@ def write_nwb(recording: Recording, path: str | Path) -> None:
         Sweeps in V and A.
     path : str or Path
         Target .nwb file (overwritten).
+
+    Raises
+    ------
+    ValueError
+        Metadata `filter_hz` that is not a positive number.
     """
     from pynwb import NWBHDF5IO
     from pynwb.icephys import CurrentClampSeries, CurrentClampStimulusSeries
 
     metadata = recording.metadata
+    filter_hz = metadata_filter_hz(metadata)
     nwb = _new_file(metadata)
     device = nwb.create_device(name="amplifier", description="current-clamp amplifier")
     electrode = nwb.create_icephys_electrode(
@@ -587,6 +645,7 @@ def write_nwb(recording: Recording, path: str | Path) -> None:
         description=str(metadata.get("electrode") or "whole-cell patch electrode"),
         device=device,
         cell_id=str(metadata["cell_id"]) if metadata.get("cell_id") else None,
+        filtering=None if filter_hz is None else filtering_text(filter_hz),
     )
     rows = []
     for k, sweep in enumerate(recording.sweeps):

@@ -33,8 +33,9 @@ _CURRENT_SCALE = {"pA": 1e-12, "nA": 1e-9, "A": 1.0}
 _SIGNAL_COLUMN = re.compile(r"^(?P<kind>[VI])(?P<sweep>\d+)_(?P<unit>\w+)$")
 _DELIMITERS = (",", "\t", ";")
 _HELP = "expected time_s or time_ms, V<k>_mV or V<k>_V, I<k>_pA, I<k>_nA or I<k>_A"
-# metadata keys read as numbers; every other key stays text
-_NUMERIC_KEYS = ("sample_rate_hz", "temperature_C")
+# metadata keys read as numbers, with an example value for the error; every other key
+# stays text
+_NUMERIC_KEYS = {"sample_rate_hz": "20000", "temperature_C": "32", "filter_hz": "5000"}
 
 
 @dataclass(frozen=True)
@@ -70,14 +71,15 @@ def _split_preamble(path: Path, lines: list[str]) -> tuple[dict, int]:
 
 def _typed_metadata(path: Path, raw: dict) -> dict:
     metadata = dict(raw)
-    for key in _NUMERIC_KEYS:
+    for key, example in _NUMERIC_KEYS.items():
         if key in metadata:
             try:
                 metadata[key] = float(metadata[key])
             except ValueError:
                 raise LoadError(
                     path,
-                    f"metadata `{key}` is {raw[key]!r}, not a number; write e.g. `# {key}: 32`",
+                    f"metadata `{key}` is {raw[key]!r}, not a number; "
+                    f"write e.g. `# {key}: {example}`",
                 ) from None
     return metadata
 
@@ -206,7 +208,8 @@ def read_text(path: str | Path) -> Recording:
     -------
     Recording
         Sweeps in V and A, ordered by sweep number and renumbered from 0; metadata
-        from the `# key: value` lines (`temperature_C` as a float).
+        from the `# key: value` lines (`temperature_C` and `filter_hz`, the low-pass
+        corner in Hz, as floats).
 
     Raises
     ------
