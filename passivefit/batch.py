@@ -152,7 +152,7 @@ def find_recordings(paths: list[str], exclude: set[Path]) -> list[Path]:
 
     found: dict[Path, None] = {}
     for given in paths:
-        p = Path(given)
+        p = Path(given).absolute()  # stored paths must mean the same file later
         if p.is_file():
             found[p] = None
         elif p.is_dir():
@@ -342,10 +342,10 @@ def _run_files(files: list[Path], settings, database, metadata: MetadataTable, w
             summary.failed.append((str(path), f"cannot read the file ({exc.strerror})"))
             progress.update("failed", str(path), exc.strerror or "")
             continue
+        notes = metadata.lookup(path)
         if sha in seen or sha in done:
             why = (f"same content as {seen[sha]}" if sha in seen
                    else "already analysed with these settings")
-            notes = metadata.lookup(path)
             if notes and sha not in seen and database.update_cell_metadata(sha, notes):
                 why += "; cell metadata applied"
             summary.skipped.append(str(path))

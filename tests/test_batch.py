@@ -115,18 +115,21 @@ def test_batch_stores_every_file_and_skips_them_on_rerun(lab, tmp_path, run_batc
     (folder / "day1" / "old_results.csv").unlink()
 
 
-def test_batch_result_equals_analyze(lab, tmp_path, run_batch):
-    from passivefit.analysis import Settings, analyze
-    from passivefit.io import load
+def test_batch_stores_what_analyze_json_prints(lab, tmp_path, run_batch):
+    import json
 
     folder, cells = lab
-    path = cells[0][0]
+    path = cells[0][0].absolute()
     url = f"sqlite:///{tmp_path / 'one.db'}"
     assert run_batch(["batch", str(path), "--db", url, "--workers", "1"]) == 0
     db = open_database(url, create=False)
     (row,) = db.current_analyses()
     db.close()
-    assert row.result == analyze(load(path), Settings()).to_dict()
+    # both from fresh processes, so both run the same code as installed now
+    printed = subprocess.run([*CLI, "analyze", str(path), "--json"], capture_output=True,
+                             text=True, timeout=300)
+    assert printed.returncode == 0, printed.stderr
+    assert row.result == json.loads(printed.stdout)
 
 
 def test_bad_files_are_listed_and_the_rest_is_stored(lab, tmp_path, run_batch, capsys):

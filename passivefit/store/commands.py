@@ -77,13 +77,14 @@ def annotations_of(rows) -> list[dict]:
 # ---------------------------------------------------------------------------- list
 def _list(args, database, rows) -> int:
     counts = database.analysis_counts()
-    columns = [("cell_id", 20), ("region", 8), ("tau0_ms", 8), ("r_in_MOhm", 9), ("L_bs", 6),
-               ("n_sweeps_used", 6), ("revs", 4), ("analysed", 10)]
-    print("  ".join(f"{name[:width]:<{width}}" for name, width in columns) + "  path")
+    columns = [("cell_id", "cell_id", 20), ("region", "region", 12), ("tau0_ms", "tau0_ms", 8),
+               ("r_in_MOhm", "r_in_MOhm", 9), ("L_bs", "L_bs", 6), ("n_sweeps_used", "sweeps", 6),
+               ("revs", "revs", 4), ("analysed", "analysed", 10)]
+    print("  ".join(f"{header:<{width}}" for _, header, width in columns) + "  path")
     for r in rows:
         values = {**r.cell, **r.analysis, "revs": counts.get(r.recording["id"], 0),
                   "analysed": r.analysis["analysed_at"].date().isoformat()}
-        cells = [_cell_text(values.get(name), width) for name, width in columns]
+        cells = [_cell_text(values.get(key), width) for key, _, width in columns]
         print("  ".join(cells) + "  " + r.recording["path"])
     n_cells = len({r.cell["cell_id"] for r in rows})
     print(f"{len(rows)} recordings, {n_cells} cells")
