@@ -97,6 +97,8 @@ def test_bad_input_exits_2_with_one_line(tmp_path, name):
 def test_bad_options_are_one_line_errors(capsys):
     assert main(["analyze", str(CA1), "--step", "1", "2"]) == 2
     assert "--step" in capsys.readouterr().err
+    assert main(["analyze", str(CA1), "--filter-hz", "-5"]) == 2
+    assert "--filter-hz" in capsys.readouterr().err
     with pytest.raises(SystemExit) as exc:
         main(["analyze", str(CA1), "--sweeps", "a-b"])
     assert exc.value.code == 2

@@ -38,6 +38,8 @@ def add_settings_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--components", choices=["auto", "1", "2", "3"], default="auto")
     p.add_argument("--no-bridge-correction", action="store_true",
                    help="leave the instantaneous jump at the step edge in R_in")
+    p.add_argument("--filter-hz", type=float, metavar="F",
+                   help="the amplifier's low-pass (−3 dB) corner, when the file does not say")
 
 
 def settings_from(args: argparse.Namespace):
@@ -46,6 +48,8 @@ def settings_from(args: argparse.Namespace):
     from passivefit.io.recording import StepSpec
 
     step = None
+    if args.filter_hz is not None and not args.filter_hz > 0:
+        raise UsageError(f"`--filter-hz` must be a positive frequency in Hz, not {args.filter_hz}")
     if args.step:
         if len(args.step) not in (3, 4):
             raise UsageError("`--step` takes ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]")
@@ -55,7 +59,7 @@ def settings_from(args: argparse.Namespace):
         step = StepSpec(on * 1e-3, dur * 1e-3, amp * 1e-12, inc * 1e-12)
     try:
         return Settings(sweeps=args.sweeps, step=step, fit_start_ms=args.fit_start_ms,
-                        components=args.components,
+                        components=args.components, filter_hz=args.filter_hz,
                         correct_bridge=not args.no_bridge_correction)
     except ValueError as exc:
         raise UsageError(str(exc)) from None
