@@ -274,7 +274,7 @@ class WindowsBar(QtWidgets.QFrame):
 
 
 # ----------------------------------------------------------------------------- sweeps
-SWEEP_COLUMNS = ("sweep", "step\npA", "V_rest\nmV", "R_in\nMΩ", "τ0\nms", "τ1\nms",
+SWEEP_COLUMNS = ("#", "step\npA", "V_rest\nmV", "R_in\nMΩ", "τ0\nms", "τ1\nms",
                  "rmse\nmV", "kept")
 
 
@@ -334,17 +334,19 @@ class SweepTable(QtWidgets.QTableWidget):
             back = QtGui.QColor(theme.ROW_REJECTED)
         elif status is not None and status.by_hand:
             back = QtGui.QColor(theme.ROW_BY_HAND)
+        muted = status is not None and not status.accepted
         for col, text in enumerate(cells):
-            item = QtWidgets.QTableWidgetItem(text)
-            last = col == len(cells) - 1
-            align = Qt.AlignmentFlag.AlignLeft if last else Qt.AlignmentFlag.AlignRight
-            item.setTextAlignment(align | Qt.AlignmentFlag.AlignVCenter)
-            if back is not None:
-                item.setBackground(back)
-            if status is not None and not status.accepted:
-                item.setForeground(QtGui.QColor(theme.MUTED))
-                item.setToolTip(status.reason)
-            self.setItem(row, col, item)
+            item = self.item(row, col)
+            if item is None:
+                item = QtWidgets.QTableWidgetItem()
+                last = col == len(cells) - 1
+                align = Qt.AlignmentFlag.AlignLeft if last else Qt.AlignmentFlag.AlignRight
+                item.setTextAlignment(align | Qt.AlignmentFlag.AlignVCenter)
+                self.setItem(row, col, item)
+            item.setText(text)
+            item.setBackground(back if back is not None else QtGui.QBrush())
+            item.setForeground(QtGui.QColor(theme.MUTED if muted else theme.INK))
+            item.setToolTip(status.reason if muted else "")
 
     def select(self, index: int) -> None:
         row = self._rows.get(index)

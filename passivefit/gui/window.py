@@ -67,6 +67,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.state: ReviewState | None = None
         self.last_error = ""
         self._previewed = False
+        self.failed_settings: Settings | None = None
         self.runner = AnalysisRunner(self)
         self.runner.finished.connect(self._analysis_done)
         self.runner.failed.connect(self._analysis_failed)
@@ -337,6 +338,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
 
     def _analysis_failed(self, owner, message: str) -> None:
         if owner is self.state:
+            self.failed_settings = owner.settings
             self._problem(f"the analysis failed: {message}")
 
     def _busy(self, busy: bool) -> None:
@@ -348,8 +350,10 @@ class ReviewWindow(QtWidgets.QMainWindow):
 
     @property
     def idle(self) -> bool:
-        """No analysis running or waiting and the result matches the settings."""
-        return not self.runner.busy and (self.state is None or self.state.up_to_date)
+        """No analysis running or waiting, and the last one ended (result or failure)."""
+        if self.runner.busy or self.state is None:
+            return not self.runner.busy
+        return self.state.up_to_date or self.failed_settings == self.state.settings
 
     # ------------------------------------------------------------------ editing
     def _preview_window(self, name: str, start_ms: float, end_ms: float) -> None:
@@ -399,6 +403,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
             return
         if accepted is False and reason is None:
             reason = self._ask_reason()
+            self.activateWindow()     # keys go back to the window after the dialog
             if reason is None:
                 return
         self.state.set_decision(None, accepted, reason or "")
@@ -469,7 +474,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
     def snapshot(self, path: str | Path) -> Path:
         """Render the window (at its present size) to a PNG file."""
         QtWidgets.QApplication.processEvents()
-        if not self.grab().save(str(path)):
+        if not self.grab().toImage().save(str(path), "PNG", 0):   # 0: smallest file
             raise OSError(f"{path}: could not write the PNG")
         return Path(path)
 
