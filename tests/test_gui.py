@@ -237,6 +237,15 @@ def test_export_writes_a_sheet_that_reads_back(qtbot, open_window, recording, tm
     assert row["cell_id"] == "LOL-2026-12-01-c9"
 
 
+def test_export_report_writes_a_pdf(qtbot, open_window, recording, tmp_path):
+    window = open_window(recording)
+    written = window.export_report(tmp_path / "cell.pdf")
+    data = written.read_bytes()
+    assert data.startswith(b"%PDF") and data.count(b"/Type /Page") >= 2
+    with pytest.raises(ValueError, match="ending in .pdf"):
+        window.export_report(tmp_path / "cell.png")
+
+
 def test_add_to_database_stores_the_reviewed_analysis(qtbot, open_window, recording, tmp_path):
     from passivefit.store.database import open_database
 

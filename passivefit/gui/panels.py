@@ -392,7 +392,7 @@ SHORTCUTS = (
     ("N  or  Page Down", "next recording"),
     ("P  or  Page Up", "previous recording"),
     ("Ctrl+O / Ctrl+Shift+O", "open files / a folder"),
-    ("Ctrl+E", "export a parameter sheet"),
+    ("Ctrl+E / Ctrl+P", "export a parameter sheet / a PDF report"),
     ("Ctrl+D", "add the cell to a database"),
     ("F1  or  ?", "show / hide this list"),
 )

@@ -8,7 +8,6 @@ thread (:class:`~passivefit.gui.worker.AnalysisRunner`) so the window never free
 
 from __future__ import annotations
 
-import importlib.util
 from dataclasses import replace
 from pathlib import Path
 
@@ -179,8 +178,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.recent_menu.aboutToShow.connect(self._fill_recent)
         file_menu.addSeparator()
         self._action(file_menu, "Export parameter sheet…", "Ctrl+E", self._ask_export)
-        if importlib.util.find_spec("passivefit.export.report") is not None:
-            self._action(file_menu, "Export PDF report…", "Ctrl+P", self._ask_report)
+        self._action(file_menu, "Export PDF report…", "Ctrl+P", self._ask_report)
         self._action(file_menu, "Add cell to database…", "Ctrl+D", self._ask_database)
         file_menu.addSeparator()
         self._action(file_menu, "Quit", "Ctrl+Q", self.close)
@@ -446,6 +444,19 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.statusBar().showMessage("wrote " + ", ".join(p.name for p in written), 6000)
         return written
 
+    def export_report(self, path: str | Path) -> Path:
+        """Write the per-cell PDF report (figures, values, flags, provenance, cautions)."""
+        from passivefit.export.report import write_report
+
+        result = self.current_result()
+        QtWidgets.QApplication.setOverrideCursor(Qt.CursorShape.WaitCursor)
+        try:
+            written = write_report([(self.state.recording, result)], path)
+        finally:
+            QtWidgets.QApplication.restoreOverrideCursor()
+        self.statusBar().showMessage(f"wrote {written.name}", 6000)
+        return written
+
     def add_to_database(self, target: str) -> str:
         """Store the reviewed analysis in a cell database (SQLite path or URL)."""
         from passivefit.store.database import open_database
@@ -525,7 +536,16 @@ class ReviewWindow(QtWidgets.QMainWindow):
                 self._problem(str(exc))
 
     def _ask_report(self) -> None:
-        self._problem("the PDF report is not wired into this window yet")
+        if self.state is None:
+            return
+        stem = Path(self.state.recording.path).with_suffix("")
+        path, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Export PDF report",
+                                                        f"{stem}_passivefit.pdf", "PDF (*.pdf)")
+        if path:
+            try:
+                self.export_report(path)
+            except (OSError, ValueError) as exc:
+                self._problem(str(exc))
 
     def _ask_database(self) -> None:
         if self.state is None:
