@@ -164,6 +164,30 @@ def test_keyboard_review(qtbot, open_window, recording):
     wait_idle(qtbot, window)
 
 
+def test_dropping_a_folder_opens_its_recordings_and_n_goes_to_the_next(
+        qtbot, open_window, recording, tmp_path):
+    from PySide6 import QtCore, QtGui
+
+    folder = tmp_path / "day"
+    folder.mkdir()
+    for name in ("LOL-2026-12-01-c9.csv", "LOL-2026-12-01-c10.csv"):
+        shutil.copy(recording, folder / name)
+    (folder / "notes.md").write_text("not a recording")
+    window = open_window(recording)
+    mime = QtCore.QMimeData()
+    mime.setUrls([QtCore.QUrl.fromLocalFile(str(folder))])
+    drop = QtGui.QDropEvent(QtCore.QPointF(200, 200), QtCore.Qt.DropAction.CopyAction, mime,
+                            QtCore.Qt.MouseButton.LeftButton, QtCore.Qt.KeyboardModifier.NoModifier)
+    window.dropEvent(drop)
+    assert [p.name for p in window.paths] == ["LOL-2026-12-01-c10.csv", "LOL-2026-12-01-c9.csv"]
+    assert Path(window.state.recording.path).name == "LOL-2026-12-01-c10.csv"
+    wait_idle(qtbot, window)
+    qtbot.keyClick(window, QtCore.Qt.Key.Key_N)
+    assert Path(window.state.recording.path).name == "LOL-2026-12-01-c9.csv"
+    assert window.recent_files()[0] == str((folder / "LOL-2026-12-01-c9.csv").resolve())
+    wait_idle(qtbot, window)
+
+
 # ----------------------------------------------------------------------------- persistence
 def test_closing_and_reopening_restores_the_review(qtbot, open_window, recording):
     from passivefit.gui.state import REVIEW_FORMAT, REVIEW_SUFFIX
