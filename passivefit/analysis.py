@@ -458,6 +458,22 @@ def _event_in(resid: np.ndarray, fs: float) -> float:
     return float(np.max(np.abs(centred)) / max(spread, 1e-9))
 
 
+DRIFT_V = 1e-3       # baseline change over a sweep beyond which the sweep is rejected
+TAIL_S = 0.2         # the last tenth of a tail at least this long is back at baseline
+
+
+def baseline_drift(v: np.ndarray, step: Step, fs: float, v_base: float) -> float | None:
+    """Level at the end of the sweep minus the baseline before the step, in V.
+
+    Measured only when the sweep goes on for at least TAIL_S after the step, so the
+    decay is over in its last tenth; None otherwise.
+    """
+    tail = v.size - step.offset
+    if tail / fs < TAIL_S:
+        return None
+    return steady.robust_level(v[v.size - tail // 10:]) - v_base
+
+
 def baseline_only(v: np.ndarray, step: Step | None, index: int, fs: float,
                   settings: Settings) -> SweepFit:
     """A sweep with its step and baseline only, unfitted: enough to pool sweeps."""
@@ -534,9 +550,16 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
     elif fit is not None:
         amps = _response_amplitudes(fit, 0, "pulse")
 
+    drift = baseline_drift(v, step, fs, v_base)
+    if drift is not None and abs(drift) > 0.25 * DRIFT_V:
+        flags.append(Flag("sweep.drift", "the baseline at the end of the sweep differs from the "
+                          "one before the step: slow drift biases R_in (mV)", drift / MV))
     accepted, reason = True, None
     if fit_error:
         accepted, reason = False, fit_error
+    elif drift is not None and abs(drift) > max(DRIFT_V, 0.25 * abs(dv or 0.0)):
+        accepted, reason = False, (f"the baseline drifts {drift / MV:+.1f} mV between the "
+                                   "start and the end of the sweep")
     elif np.max(v) >= SPIKE_V:
         accepted, reason = False, f"action potential (peak {np.max(v) / MV:.0f} mV)"
     elif fit is not None:

@@ -145,3 +145,11 @@ def test_sag_is_flagged_in_a_cell_with_an_h_like_relaxation():
     data = analyze(rec, Settings(bootstrap=0)).to_dict()
     assert data["cell"]["sag_ratio"] < 0.95
     assert "cell.sag" in {f["code"] for f in data["flags"]}
+
+
+def test_drifting_sweeps_are_rejected_with_the_drift_in_the_reason():
+    rec, _ = simulate(n_sweeps=4, drift_V_per_s=3e-3)  # 2.4 mV over each 0.8 s sweep
+    data = analyze(rec, Settings(bootstrap=0)).to_dict()
+    assert all(not s["accepted"] and "drifts" in s["reject_reason"] for s in data["sweeps"])
+    assert data["cell"]["n_sweeps_used"] == 0
+    assert "cell.no_sweeps" in {f["code"] for f in data["flags"]}
