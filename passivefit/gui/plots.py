@@ -167,11 +167,12 @@ class TraceView(QtWidgets.QWidget):
             item = self.plot.plot(np.arange(v.size) / state.fs / MS, v / MV,
                                   pen=pg.mkPen(theme.FAINT, width=1))
             _light(item)
+            # the other sweeps never change during a drag: paint them from a cached image
+            item.curve.setCacheMode(QtWidgets.QGraphicsItem.CacheMode.DeviceCoordinateCache)
             self._faint[index] = item
         _light(self._bold)
         self.show_sweep(state)
         self.plot.getPlotItem().getViewBox().autoRange(padding=0.04)
-        self.resid.getPlotItem().getViewBox().enableAutoRange(axis="y")
 
     def set_statuses(self, state) -> None:
         """Rejected sweeps faint rose, the others faint slate."""
@@ -213,7 +214,14 @@ class TraceView(QtWidgets.QWidget):
                         region.setRegion((span[0] + self._onset_ms, span[1] + self._onset_ms))
             finally:
                 self._updating = False
-        self.show_fit(state.sweep_fit())
+        fit = state.sweep_fit()
+        self.show_fit(fit)
+        if fit is not None and fit.noise_V:
+            # a fixed scale per sweep: residuals of a good fit fill about half the strip,
+            # and the axis does not jump (nor repaint) while a window is dragged
+            self.resid.setYRange(-6 * fit.noise_V / MV, 6 * fit.noise_V / MV, padding=0)
+        else:
+            self.resid.getPlotItem().getViewBox().enableAutoRange(axis="y")
 
     def show_fit(self, fit) -> None:
         """Draw a sweep's fitted model, its decay window and the residuals."""
