@@ -712,7 +712,7 @@ def _percentile_halfwidth(samples: np.ndarray) -> float | None:
     return float((hi - lo) / 2)
 
 
-CABLE_BOOTSTRAP = 20
+CABLE_BOOTSTRAP = 12
 
 
 def _bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,

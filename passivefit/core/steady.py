@@ -21,12 +21,15 @@ def noise_sd(v: np.ndarray) -> float:
     spike does not tilt it.
     """
     v = np.asarray(v, dtype=np.float64)
-    x = np.arange(v.size)
+    x = np.arange(v.size) - (v.size - 1) / 2.0
     keep = np.ones(v.size, dtype=bool)
     for _ in range(2):
-        detrended = v - np.polyval(np.polyfit(x[keep], v[keep], 1), x)
-        mad = np.median(np.abs(detrended - np.median(detrended)))
-        keep = np.abs(detrended - np.median(detrended)) <= 5 * mad
+        xk, vk = x[keep], v[keep]
+        slope = np.dot(xk - xk.mean(), vk) / max(np.dot(xk - xk.mean(), xk - xk.mean()), 1e-30)
+        detrended = v - slope * x
+        deviation = np.abs(detrended - np.median(detrended))
+        mad = np.median(deviation)
+        keep = deviation <= 5 * mad
     return float(1.4826 * mad)
 
 
