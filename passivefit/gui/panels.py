@@ -193,7 +193,9 @@ class NotesPanel(QtWidgets.QFrame):
             return
         items = []
         for flag in result.flags:
-            message = flag.message[0].upper() + flag.message[1:]
+            message = flag.message
+            if message[:1].isascii():        # "τ0 ..." must not become "Τ0 ..."
+                message = message[:1].upper() + message[1:]
             value = "" if flag.value is None else f" <span style='color:{theme.MUTED}'>" \
                                                   f"({flag.value:.3g})</span>"
             items.append(f"<p style='margin:0 0 5px 0'>• {message}{value}</p>")
@@ -248,6 +250,7 @@ class WindowsBar(QtWidgets.QFrame):
     def _box(self, name: str) -> QtWidgets.QDoubleSpinBox:
         box = QtWidgets.QDoubleSpinBox()
         box.setRange(-9999.9, 9999.9)
+        box.setSpecialValueText("—")      # shown at the minimum: a window not used
         box.setDecimals(1)
         box.setSingleStep(0.5)
         box.setKeyboardTracking(False)
@@ -266,7 +269,8 @@ class WindowsBar(QtWidgets.QFrame):
         """Show each window's (start, end) in ms, or disable it when it is not used."""
         for name, boxes in self.boxes.items():
             span = spans.get(name)
-            for box, value in zip(boxes, span or (0.0, 0.0), strict=True):
+            unused = (boxes[0].minimum(),) * 2
+            for box, value in zip(boxes, span or unused, strict=True):
                 box.blockSignals(True)
                 box.setValue(value)
                 box.setEnabled(span is not None)

@@ -121,6 +121,7 @@ class TraceView(QtWidgets.QWidget):
         self._updating = False
         self._v: np.ndarray | None = None
         self._fs = 1.0
+        self._extent = None
         self.redraws = 0   # counts fit redraws (for the benchmark and tests)
 
     def _make_region(self, name: str, tint) -> pg.LinearRegionItem:
@@ -171,8 +172,9 @@ class TraceView(QtWidgets.QWidget):
             item.curve.setCacheMode(QtWidgets.QGraphicsItem.CacheMode.DeviceCoordinateCache)
             self._faint[index] = item
         _light(self._bold)
+        self._extent = _extent(state)
         self.show_sweep(state)
-        self.plot.getPlotItem().getViewBox().autoRange(padding=0.04)
+        self.fit_view()
 
     def set_statuses(self, state) -> None:
         """Rejected sweeps faint rose, the others faint slate."""
@@ -254,8 +256,22 @@ class TraceView(QtWidgets.QWidget):
         return out
 
     def fit_view(self) -> None:
-        """Zoom out to show every sweep."""
-        self.plot.getPlotItem().getViewBox().autoRange(padding=0.04)
+        """Zoom out to show every sample of every sweep.
+
+        The range comes from the data, not from pyqtgraph's auto-range, which sees only
+        the part of a clipped, downsampled trace that was on screen before.
+        """
+        if self._extent is not None:
+            (x0, x1), (y0, y1) = self._extent
+            self.plot.setRange(xRange=(x0, x1), yRange=(y0, y1), padding=0.03)
+
+
+def _extent(state) -> tuple[tuple[float, float], tuple[float, float]]:
+    """(time range in ms, voltage range in mV) of every sweep of a review."""
+    volts = [state.voltage(i) for i in state.indices]
+    t_end = max(v.size for v in volts) / state.fs / MS
+    lows, highs = (np.array([f(v) for v in volts]) / MV for f in (np.min, np.max))
+    return (0.0, t_end), (float(lows.min()), float(highs.max()))
 
 
 # ----------------------------------------------------------------------------- semilog
@@ -369,7 +385,7 @@ class VIView(QtWidgets.QWidget):
         vi = result.vi if result is not None else None
         if vi is None:
             set_title(self.plot, "V–I")
-            _note(self.plot, "no steady state (brief pulses): no V–I relation")
+            _note(self.plot, "brief pulses reach no steady state:\nno V–I relation")
             return
         i_pa, dv_mv = vi["current_A"] / PA, vi["dv_V"] / MV
         self.plot.plot(i_pa, dv_mv, pen=None, symbol="o", symbolSize=7, symbolPen=None,
