@@ -955,7 +955,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     extras["scan"] = scan
     if tau1_ok:
         _scan_drift(scan, flags)
-    extras["peel"] = _peel(g_ref, fs, fit, n)
+    extras["peel"] = _peel(g_ref, avg_cable, fs, fit, n)
     _cable(cell, fit, bs, g_ref, kind, tau1 if tau1_ok else None, boot, flags)
     return cell, extras
 
@@ -1155,15 +1155,17 @@ def _scan_drift(scan: dict, flags: list[Flag]) -> None:
                               drift))
 
 
-def _peel(g: GroupAverage, fs: float, fit, n: int):
+def _peel(g: GroupAverage, early: GroupAverage, fs: float, fit, n: int):
+    """Automated peel of the first transient, from the early (artefact-end) fit start so
+    the fast components are in view; its asymptote from the exponential fit."""
     from passivefit.core import peel
 
     seg = g.segments[0]
-    span = seg.samples(fs)
-    t = np.arange(span.start, span.stop) / fs - seg.edge_s
+    name = "fit" if g.step.kind == "step" else "fit_off"
+    a, b = (_index(t, fs, g.v_V.size) for t in early.windows_s[name])
+    t = np.arange(a, b) / fs - seg.edge_s
     try:
-        return peel.peel(t, g.v_V[span], float(fit.offsets[seg.index]),
-                         n_components=max(2, n))
+        return peel.peel(t, g.v_V[a:b], float(fit.offsets[seg.index]), n_components=max(2, n))
     except (ValueError, np.linalg.LinAlgError):
         return None
 

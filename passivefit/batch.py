@@ -299,8 +299,12 @@ def run(args: argparse.Namespace) -> int:
     if args.sheet and Path(args.sheet).suffix.lower() not in SHEET_SUFFIXES:
         raise UsageError(f"`--sheet` {args.sheet}: use one of {', '.join(SHEET_SUFFIXES)}")
     metadata = read_metadata(args.metadata) if args.metadata else MetadataTable()
-    if args.reports and not Path(args.reports).is_dir():
-        raise UsageError(f"`--reports` {args.reports}: no such folder; create it first")
+    if args.reports:
+        try:
+            Path(args.reports).mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise UsageError(f"`--reports` {args.reports}: cannot create the folder "
+                             f"({exc.strerror})") from None
     files = find_recordings(args.paths, _excluded_paths(args))
     try:
         database = open_database(args.db, create=True)
