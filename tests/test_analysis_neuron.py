@@ -10,8 +10,6 @@ REFERENCES.md §2 [der] (Rall 1969, Biophys J 9:1483 [pub] for the definition of
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 import pytest
 
@@ -20,14 +18,12 @@ from passivefit.core import cable
 from passivefit.io.recording import Recording, Sweep
 
 neuron = pytest.importorskip("neuron")
+from neuron_cells import morphology_truth  # noqa: E402
 from test_neuron_crosscheck import (  # noqa: E402
     AMP_NA,
-    CM_UF_CM2,
     DELAY_MS,
     DT_MS,
     DURATION_MS,
-    RI_OHM_CM,
-    RM_OHM_CM2,
     neuron_soma_voltage,
 )
 
@@ -51,17 +47,11 @@ def result():
 
 
 def expected():
-    rm, ri, cm = RM_OHM_CM2 * 1e-4, RI_OHM_CM * 1e-2, CM_UF_CM2 * 1e-2   # SI: Ω·m², Ω·m, F/m²
-    d, ell, ds = DEND_DIAM_UM * 1e-6, DEND_LEN_UM * 1e-6, SOMA_UM * 1e-6
-    lam = math.sqrt(rm * d / (4 * ri))
-    L = ell / lam
-    g_inf = (math.pi / 2) * d ** 1.5 / math.sqrt(rm * ri)          # 1/R∞
-    g_soma = math.pi * ds ** 2 / rm
-    rho = g_inf * math.tanh(L) / g_soma
-    tau0 = rm * cm
+    truth = morphology_truth(SOMA_UM, DEND_DIAM_UM, DEND_LEN_UM)
+    L, rho, tau0 = truth["L"], truth["rho"], truth["tau0_s"]
     tau1 = tau0 / (1 + cable.ballstick_alphas(L, rho, 1)[0] ** 2)
-    c_total = (math.pi * ds ** 2 + math.pi * d * ell) * cm
-    return dict(tau0_ms=tau0 * 1e3, tau1_ms=tau1 * 1e3, L=L, rho=rho, c_total_pF=c_total * 1e12)
+    return dict(tau0_ms=tau0 * 1e3, tau1_ms=tau1 * 1e3, L=L, rho=rho,
+                c_total_pF=truth["c_total_F"] * 1e12)
 
 
 def test_time_constants_match_the_neuron_cell(result):

@@ -297,36 +297,13 @@ def test_initial_guess_rejects_bad_tau0():
 
 # ------------------------------------------------------------------ NEURON cross-check
 
-RM_OHM_CM2, CM_UF_CM2, RI_OHM_CM = 20e3, 1.0, 100.0
-
-
 def _neuron_step(soma_um: float, dend_diam_um: float, dend_len_um: float, dt_ms: float):
-    """Somatic voltage (V) of a NEURON ball-and-stick for a -50 pA step from 20 to 170 ms.
+    """Somatic voltage (V) of a NEURON ball-and-stick for a -50 pA step from 20 to 170 ms."""
+    pytest.importorskip("neuron")
+    from neuron_cells import neuron_step_mV
 
-    NEURON (https://neuron.yale.edu; test extra) only simulates the passive cable: an
-    isopotential soma section plus one 101-segment dendrite, `pas`, backward Euler.
-    """
-    neuron = pytest.importorskip("neuron")
-    h = neuron.h
-    h.load_file("stdrun.hoc")
-    soma, dend = h.Section(name="soma"), h.Section(name="dend")
-    soma.L = soma.diam = soma_um  # lateral area pi*d^2, a sphere's area
-    soma.nseg, soma.Ra = 1, 1e-6
-    dend.L, dend.diam, dend.nseg, dend.Ra = dend_len_um, dend_diam_um, 101, RI_OHM_CM
-    dend.connect(soma(1))
-    for sec in (soma, dend):
-        sec.cm = CM_UF_CM2
-        sec.insert("pas")
-        for seg in sec:
-            seg.pas.g, seg.pas.e = 1.0 / RM_OHM_CM2, -70.0
-    stim = h.IClamp(soma(0.5))
-    stim.delay, stim.dur, stim.amp = 20.0, 150.0, -0.05
-    h.CVode().active(0)
-    h.secondorder, h.dt, h.steps_per_ms = 0, dt_ms, 1.0 / dt_ms
-    v = h.Vector().record(soma(0.5)._ref_v)
-    h.finitialize(-70.0)
-    h.continuerun(270.0)
-    return np.array(v) * 1e-3
+    return 1e-3 * neuron_step_mV(soma_um, dend_diam_um, dend_len_um, delay_ms=20.0,
+                                 duration_ms=150.0, amp_nA=-0.05, tstop_ms=270.0, dt_ms=dt_ms)
 
 
 @pytest.mark.neuron
@@ -336,14 +313,10 @@ def _neuron_step(soma_um: float, dend_diam_um: float, dend_len_um: float, dt_ms:
 def test_recovers_neuron_cell(soma_um, dend_diam_um, dend_len_um):
     dt_ms = 0.025
     v = _neuron_step(soma_um, dend_diam_um, dend_len_um, dt_ms)
-    # the cell's L and rho from its morphology: lambda = sqrt(Rm d/(4 Ri)),
-    # G_inf = (pi/2) d^(3/2)/sqrt(Rm Ri) (REFERENCES.md notation, Rall 1959 [mem], re-derived
-    # [der]); rho = G_inf tanh(L)/G_soma (Rall 1969 definition [pub])
-    d_cm = dend_diam_um * 1e-4
-    L = dend_len_um * 1e-4 / math.sqrt(RM_OHM_CM2 * d_cm / (4 * RI_OHM_CM))
-    g_inf = 0.5 * math.pi * d_cm**1.5 / math.sqrt(RM_OHM_CM2 * RI_OHM_CM)
-    rho = g_inf * math.tanh(L) / (math.pi * (soma_um * 1e-4) ** 2 / RM_OHM_CM2)
-    tau_m = RM_OHM_CM2 * CM_UF_CM2 * 1e-6
+    from neuron_cells import morphology_truth
+
+    truth = morphology_truth(soma_um, dend_diam_um, dend_len_um)
+    L, rho, tau_m = truth["L"], truth["rho"], truth["tau0_s"]
     fs = 1e3 / dt_ms
     on, off = round(20.0 / dt_ms), round(170.0 / dt_ms)
     segs = []

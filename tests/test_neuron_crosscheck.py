@@ -13,12 +13,10 @@ import pytest
 from passivefit.simulate import BallStick
 
 neuron = pytest.importorskip("neuron")
+from neuron_cells import CM_UF_CM2, RI_OHM_CM, RM_OHM_CM2, neuron_step_mV  # noqa: E402
 
 pytestmark = pytest.mark.neuron
 
-RM_OHM_CM2 = 20e3
-CM_UF_CM2 = 1.0
-RI_OHM_CM = 100.0
 DT_MS = 0.025
 DELAY_MS = 20.0
 DURATION_MS = 250.0
@@ -27,31 +25,9 @@ AMP_NA = -0.05
 
 def neuron_soma_voltage(soma_um: float, dend_diam_um: float, dend_len_um: float) -> np.ndarray:
     """Somatic voltage (mV) of the NEURON ball-and-stick, sampled every DT_MS from t = 0."""
-    h = neuron.h
-    h.load_file("stdrun.hoc")
-    soma = h.Section(name="soma")
-    dend = h.Section(name="dend")
-    soma.L = soma.diam = soma_um  # lateral area pi*d^2, the area of a sphere of diameter d
-    soma.nseg = 1
-    soma.Ra = 1e-6  # a lumped (isopotential) soma
-    dend.L, dend.diam, dend.nseg, dend.Ra = dend_len_um, dend_diam_um, 101, RI_OHM_CM
-    dend.connect(soma(1))
-    for sec in (soma, dend):
-        sec.cm = CM_UF_CM2
-        sec.insert("pas")
-        for seg in sec:
-            seg.pas.g = 1.0 / RM_OHM_CM2
-            seg.pas.e = -70.0
-    stim = h.IClamp(soma(0.5))
-    stim.delay, stim.dur, stim.amp = DELAY_MS, DURATION_MS, AMP_NA
-    h.CVode().active(0)
-    h.secondorder = 0
-    h.dt = DT_MS
-    h.steps_per_ms = 1.0 / DT_MS
-    v = h.Vector().record(soma(0.5)._ref_v)
-    h.finitialize(-70.0)
-    h.continuerun(DELAY_MS + DURATION_MS + 30.0)
-    return np.array(v)
+    return neuron_step_mV(soma_um, dend_diam_um, dend_len_um, delay_ms=DELAY_MS,
+                          duration_ms=DURATION_MS, amp_nA=AMP_NA,
+                          tstop_ms=DELAY_MS + DURATION_MS + 30.0, dt_ms=DT_MS)
 
 
 @pytest.mark.parametrize(
