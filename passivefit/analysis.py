@@ -135,7 +135,8 @@ class Settings:
         d["sweeps"] = tuple(d["sweeps"]) if d.get("sweeps") is not None else None
         d["step"] = StepSpec(**d["step"]) if d.get("step") else None
         d["windows"] = _windows_from(d.get("windows") or {})
-        d["sweep_windows"] = tuple((int(i), _windows_from(w)) for i, w in d.get("sweep_windows", []))
+        d["sweep_windows"] = tuple((int(i), _windows_from(w))
+                                   for i, w in d.get("sweep_windows", []))
         d["decisions"] = tuple((int(i), bool(a), str(r)) for i, a, r in d.get("decisions", []))
         return cls(**d)
 
@@ -594,7 +595,8 @@ def reject_outliers(fits: list[SweepFit]) -> list[SweepFit]:
     for f in fits:
         reason = None
         if f.accepted and abs(f.v_rest_V - med_base) > max(5 * spread, 3 * MV):
-            reason = f"baseline {f.v_rest_V / MV:.1f} mV far from the others' {med_base / MV:.1f} mV"
+            reason = (f"baseline {f.v_rest_V / MV:.1f} mV far from the others' "
+                      f"{med_base / MV:.1f} mV")
         elif f.accepted and f.rmse_V > 3 * med_noise:
             reason = f"noise {f.rmse_V / MV:.2f} mV, over 3× the others' {med_noise / MV:.2f} mV"
         out.append(replace(f, accepted=False, reject_reason=reason) if reason else f)
@@ -1131,7 +1133,8 @@ def _onset_offset(g: GroupAverage, fs: float, n: int, fit, flags: list[Flag]) ->
         return
     taus = []
     for name in ("fit", "fit_off"):
-        wins = {k: v for k, v in g.windows_s.items() if k != ("fit_off" if name == "fit" else "fit")}
+        other = "fit_off" if name == "fit" else "fit"
+        wins = {k: v for k, v in g.windows_s.items() if k != other}
         try:
             part, _ = fit_average(replace(g, windows_s=wins), fs, str(n), fit.taus)
             taus.append((part.taus[0], part.tau_ci95[0]))

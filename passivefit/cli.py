@@ -42,7 +42,8 @@ def build_parser(command: str | None = None) -> argparse.ArgumentParser:
 
 # (name, module, one-line help). Each module has add_arguments(parser) and run(args) -> int.
 COMMANDS = [
-    ("analyze", "passivefit.commands.analyze", "fit one recording and print its passive properties"),
+    ("analyze", "passivefit.commands.analyze",
+     "fit one recording and print its passive properties"),
     ("gui", "passivefit.commands.gui", "open the review window on recordings"),
     ("batch", "passivefit.batch", "analyse folders of recordings into a cell database"),
     ("db", "passivefit.store.commands", "list, export and plot the cell database"),

@@ -13,7 +13,8 @@ def sample_folder() -> Path:
     """The sample folder of a source checkout, else a cache folder written on first use."""
     if (REPO_SAMPLES / DEFAULT_SAMPLE).exists():
         return REPO_SAMPLES
-    cache = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "passivefit" / "samples"
+    cache_home = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache"))
+    cache = cache_home / "passivefit" / "samples"
     if not (cache / DEFAULT_SAMPLE).exists():
         from passivefit.commands.demo import write_samples
 

@@ -105,9 +105,9 @@ def test_bad_options_are_one_line_errors(capsys):
 
 
 def test_analyze_never_imports_qt():
-    code = ("import sys; from passivefit.cli import main; main(['analyze', %r, '--json']); "
-            "bad = [m for m in sys.modules if m.startswith(('PySide6', 'pyqtgraph'))]; "
-            "sys.exit(1 if bad else 0)") % str(CA1)
+    code = (f"import sys; from passivefit.cli import main; main(['analyze', {str(CA1)!r}, "
+            "'--json']); bad = [m for m in sys.modules if m.startswith(('PySide6', 'pyqtgraph'))]; "
+            "sys.exit(1 if bad else 0)")
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     assert proc.returncode == 0, proc.stderr
 
