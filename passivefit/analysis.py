@@ -1046,7 +1046,7 @@ def _tau1(fit, bs, boot: dict | None, cell: dict) -> tuple[float | None, float |
     if bs is not None:
         cell["tau1_source"] = "ball-and-stick fit"
         hw = _percentile_halfwidth(boot["tau1_model"]) if boot is not None else None
-        return float(bs.taus_s[1]), hw if hw is not None else _model_tau1_ci(bs)
+        return float(bs.taus_s[1]), max(hw or 0.0, _model_tau1_ci(bs))
     cell["tau1_source"] = "exponential fit"
     hw = _percentile_halfwidth(boot["tau1"]) if boot is not None else None
     return float(fit.taus[1]), hw if hw is not None else float(fit.tau_ci95[1])
@@ -1215,8 +1215,9 @@ def _cable(cell: dict, fit, bs, g: GroupAverage, kind: str, tau1: float | None,
     if bs is not None:
         L_ci = _percentile_halfwidth(boot["L"]) if boot is not None else None
         rho_ci = _percentile_halfwidth(boot["rho"]) if boot is not None else None
-        for key, value, ci in (("L_bs", bs.L, L_ci or bs.L_ci95),
-                               ("rho", bs.rho, rho_ci or bs.rho_ci95)):
+        # the larger of the bootstrap (few resamples) and the fit-covariance CI
+        for key, value, ci in (("L_bs", bs.L, max(L_ci or 0.0, bs.L_ci95)),
+                               ("rho", bs.rho, max(rho_ci or 0.0, bs.rho_ci95))):
             ci_key = "L_ci95" if key == "L_bs" else "rho_ci95"
             if ci < value:
                 cell[key], cell[ci_key] = _num(value, 1.0, 5), _num(ci, 1.0, 3)
