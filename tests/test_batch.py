@@ -308,5 +308,11 @@ def test_batch_writes_a_report_per_analysed_recording(lab, tmp_path, run_batch):
     expected = {f"{Path(p).stem}-{file_sha256(p)[:8]}.pdf" for p in picked}
     assert {p.name for p in reports.iterdir()} == expected
     assert all(p.read_bytes()[:5] == b"%PDF-" for p in reports.iterdir())
-    assert run_batch(["batch", picked[0], "--db", str(tmp_path / "r.db"), "--reports",
-                      str(tmp_path / "missing")]) == 2
+    missing = tmp_path / "new" / "reports"  # created on demand
+    assert run_batch(["batch", picked[0], "--db", str(tmp_path / "r2.db"), "--reports",
+                      str(missing)]) == 0
+    assert len(list(missing.iterdir())) == 1
+    blocked = tmp_path / "a-file"
+    blocked.write_text("not a folder")
+    assert run_batch(["batch", picked[0], "--db", str(tmp_path / "r3.db"), "--reports",
+                      str(blocked / "reports")]) == 2
