@@ -717,6 +717,12 @@ def _percentile_halfwidth(samples: np.ndarray) -> float | None:
 CABLE_BOOTSTRAP = 12
 
 
+def _baseline(v: np.ndarray, g: GroupAverage, fs: float) -> float:
+    """Baseline level (V) of `v` in the baseline window of `g`."""
+    a, b = (_index(t, fs, v.size) for t in g.windows_s["baseline"])
+    return steady.robust_level(v[a:b])
+
+
 def _bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
                cable: tuple | None = None, seed: int = 0) -> dict[str, np.ndarray]:
     """Cell values refitted on sweeps resampled with replacement.
@@ -727,7 +733,8 @@ def _bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
     """
     rng = np.random.default_rng(seed)
     n = len(fit.taus)
-    out: dict[str, list[float]] = {k: [] for k in ("tau0", "tau1", "tau1_model", "L", "rho")}
+    out: dict[str, list[float]] = {k: [] for k in ("tau0", "tau1", "tau1_model", "L", "rho",
+                                                   "bridge")}
     for _ in range(n_boot):
         pick = rng.integers(0, len(pool.indices), len(pool.indices))
         if np.all(pool.currents[pick] == 0):
@@ -749,6 +756,8 @@ def _bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
         out["tau1_model"].append(bs.taus_s[1] if bs else np.nan)
         out["L"].append(bs.L if bs else np.nan)
         out["rho"].append(bs.rho if bs else np.nan)
+        bridge = _bridge(bs, replace(g_cable, v_base_V=_baseline(v, g_cable, fs)))
+        out["bridge"].append(np.nan if bridge is None else bridge)
     return {k: np.asarray(v, dtype=float) for k, v in out.items()}
 
 
@@ -870,7 +879,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
 
     `settings` hold the fit start used for the exponential fits; the cable-model fit
     starts where the person `asked` (default: after the artefact) and shifts time zero
-    by the filter delay `delay_s`.
+    by the filter delay `delay_s`. `fits` get the cell's bridge correction in place.
     """
     cell = _empty_cell()
     flags: list[Flag] = []
@@ -897,53 +906,22 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     avg_cable = _average(pool.step, list(pool.indices), avg.v_V, fs, asked or settings)
     bs = fit_cable(avg_cable, fs, cable_init(fit, pool.step), delay_s, flags) \
         if fit is not None else None
-    extras["cable_fit"] = bs
-    bridge = _bridge(fit, bs, avg, used)
-    cell["bridge_MOhm"] = _num(bridge, MOHM, 4)
-    if bridge is not None and abs(bridge) > 5 * MOHM:
-        what = "subtracted from" if settings.correct_bridge else "left in"
-        flags.append(Flag("cell.bridge", f"an instantaneous jump at the step edge shows a bridge "
-                          f"imbalance; it is {what} R_in (MΩ)", bridge / MOHM))
-    if settings.correct_bridge and bridge is not None:
-        fits[:] = [_corrected(f, bridge) for f in fits]
-        used = [f for f in fits if f.accepted]
+    extras.update(average=avg, cable_fit=bs, cell_fit=fit)
+    boot = None
+    if fit is not None and settings.bootstrap and len(pool.indices) >= 3:
+        cable = None if bs is None else (avg_cable, bs, delay_s)
+        boot = _bootstrap(pool, avg, fs, fit, settings.bootstrap, cable)
+    cell["ci_method"] = "bootstrap over sweeps" if boot is not None else "fit covariance"
+    _bridge_correction(fits, fit.taus if fit is not None else (), bs, avg, boot, settings,
+                       cell, flags)
+    used = [f for f in fits if f.accepted]
     _input_resistance(used, cell, extras, flags)
     _sag(used, cell, flags)
-    extras["average"] = avg
     if fit is None:
         return cell, extras
-    g_ref = avg
-    extras["cell_fit"] = fit
+    _time_constants(cell, fit, bs, avg, boot, fs, flags)
+    tau1 = cell["tau1_ms"] * MS if cell["tau1_ms"] is not None else None
     n = len(fit.taus)
-    cell["n_components"] = n
-    cell["tau0_ms"] = _num(fit.taus[0], MS)
-    cell["tau0_ci95_ms"] = _num(fit.tau_ci95[0], MS, 3)
-    amps = _onset_amplitudes(fit, g_ref)
-    cell["c0_mV"] = _num(amps[0], MV)
-    cell["ref_step_pA"] = _num(g_ref.amplitude_A, PA, 5)
-    if n >= 2:
-        cell["c1_mV"] = _num(amps[1], MV)
-        cell["tau1_exp_ms"] = _num(fit.taus[1], MS)
-    if n >= 3:
-        cell["tau2_ms"] = _num(fit.taus[2], MS)
-    boot = None
-    if settings.bootstrap and len(pool.indices) >= 3:
-        cable = None if bs is None else (avg_cable, bs, delay_s)
-        boot = _bootstrap(pool, g_ref, fs, fit, settings.bootstrap, cable)
-        cell["ci_method"] = "bootstrap over sweeps"
-        hw = _percentile_halfwidth(boot["tau0"])
-        if hw is not None:
-            cell["tau0_ci95_ms"] = _num(hw, MS, 3)
-    else:
-        cell["ci_method"] = "fit covariance"
-    tau1, tau1_ci = _tau1(fit, bs, boot, cell)
-    tau1_ok = tau1 is not None and _tau1_resolved(tau1, tau1_ci, fs, flags)
-    if tau1_ok:
-        cell["tau1_ms"], cell["tau1_ci95_ms"] = _num(tau1, MS), _num(tau1_ci, MS, 3)
-    elif tau1 is None:
-        flags.append(Flag("fit.tau1_unresolved", "only one exponential component is resolved: "
-                          "no τ1, so no electrotonic length"))
-
     per_sweep_tau0 = [f.tau(0) for f in used if f.tau(0) is not None]
     if len(per_sweep_tau0) >= 3:
         spread = np.std(per_sweep_tau0, ddof=1) / np.sqrt(len(per_sweep_tau0))
@@ -952,14 +930,69 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
             flags.append(Flag("cell.sweep_spread", "τ0 of the averaged sweeps differs from the "
                               "median of the single sweeps (ms)", gap / MS))
     _residual_structure(fit, avg, fs, flags)
-    _onset_offset(g_ref, fs, n, fit, flags)
-    scan = fit_start_scan(g_ref, fs, n, fit.taus)
-    extras["scan"] = scan
-    if tau1_ok:
-        _scan_drift(scan, flags)
-    extras["peel"] = _peel(g_ref, avg_cable, fs, fit, n)
-    _cable(cell, fit, bs, g_ref, kind, tau1 if tau1_ok else None, boot, flags)
+    _onset_offset(avg, fs, n, fit, flags)
+    extras["scan"] = fit_start_scan(avg, fs, n, fit.taus)
+    if tau1 is not None:
+        _scan_drift(extras["scan"], flags)
+    extras["peel"] = _peel(avg, avg_cable, fs, fit, n)
+    _cable(cell, fit, bs, avg, kind, tau1, boot, flags)
     return cell, extras
+
+
+def _time_constants(cell: dict, fit, bs, avg: GroupAverage, boot: dict | None, fs: float,
+                    flags: list[Flag]) -> None:
+    """τ0, τ1 (τ2) with CIs and the component amplitudes of the reference step."""
+    n = len(fit.taus)
+    cell["n_components"] = n
+    cell["tau0_ms"] = _num(fit.taus[0], MS)
+    hw = _percentile_halfwidth(boot["tau0"]) if boot is not None else None
+    cell["tau0_ci95_ms"] = _num(hw if hw is not None else fit.tau_ci95[0], MS, 3)
+    amps = _onset_amplitudes(fit, avg)
+    cell["c0_mV"] = _num(amps[0], MV)
+    cell["ref_step_pA"] = _num(avg.amplitude_A, PA, 5)
+    if n >= 2:
+        cell["c1_mV"] = _num(amps[1], MV)
+        cell["tau1_exp_ms"] = _num(fit.taus[1], MS)
+    if n >= 3:
+        cell["tau2_ms"] = _num(fit.taus[2], MS)
+    tau1, tau1_ci = _tau1(fit, bs, boot, cell)
+    if tau1 is None:
+        flags.append(Flag("fit.tau1_unresolved", "only one exponential component is resolved: "
+                          "no τ1, so no electrotonic length"))
+    elif _tau1_resolved(tau1, tau1_ci, fs, flags):
+        cell["tau1_ms"], cell["tau1_ci95_ms"] = _num(tau1, MS), _num(tau1_ci, MS, 3)
+
+
+def _bridge_correction(fits: list[SweepFit], fit_taus, bs, avg: GroupAverage,
+                       boot: dict | None, settings: Settings, cell: dict,
+                       flags: list[Flag]) -> None:
+    """Estimate the bridge jump and, when it is real, take it out of every sweep's R_in.
+
+    It is subtracted only when the exponential fit shows a second component, the
+    ball-and-stick fit resolves L and ρ, and the jump is larger than its own 95 % CI
+    (bootstrap): an unresolved cable model cannot tell a bridge error from fast
+    dendritic charging.
+    """
+    bridge = _bridge(bs, avg)
+    cell["bridge_MOhm"] = _num(bridge, MOHM, 4)
+    if bridge is None:
+        return
+    ci = _percentile_halfwidth(boot["bridge"]) if boot is not None else None
+    cell["bridge_ci95_MOhm"] = _num(ci, MOHM, 3)
+    L_ci, rho_ci = _cable_cis(bs, boot)
+    resolved = len(fit_taus) >= 2 and L_ci < bs.L and rho_ci < bs.rho
+    if not resolved or (ci is not None and abs(bridge) <= ci):
+        if abs(bridge) > 5 * MOHM:
+            flags.append(Flag("cell.bridge_uncertain", "the jump at the step edge cannot be "
+                              "told apart from fast charging or noise; R_in is not corrected "
+                              "for it (MΩ)", bridge / MOHM))
+        return
+    if abs(bridge) > 5 * MOHM:
+        what = "subtracted from" if settings.correct_bridge else "left in"
+        flags.append(Flag("cell.bridge", f"an instantaneous jump at the step edge shows a bridge "
+                          f"imbalance; it is {what} R_in (MΩ)", bridge / MOHM))
+    if settings.correct_bridge:
+        fits[:] = [_corrected(f, bridge) for f in fits]
 
 
 def cable_init(exp_fit, step: Step) -> tuple[float, float, float] | None:
@@ -1010,20 +1043,15 @@ def fit_cable(avg: GroupAverage, fs: float, init, delay_s: float, flags: list[Fl
     return bs
 
 
-def _bridge(fit, bs, avg: GroupAverage, used: list[SweepFit]) -> float | None:
-    """Bridge imbalance (Ω): the jump at the step edge that is not membrane charging.
+def _bridge(bs, avg: GroupAverage) -> float | None:
+    """Bridge imbalance (Ω): the jump at the step onset that is not membrane charging.
 
-    From the ball-and-stick fit, whose modes sum to the whole membrane response; else the
-    exponential fit extrapolated to the edge (biased by the unfitted fast components);
-    else the median of the single sweeps' estimates.
+    From the ball-and-stick fit, whose modes sum to the whole membrane response (free
+    exponentials extrapolated to the edge miss the fast components); None without it.
     """
-    if bs is not None and avg.step.kind == "step":
-        return bs.bridge_jump_V(0, avg.v_base_V) / avg.amplitude_A
-    if fit is not None and avg.step.kind == "step":
-        jump = fit.evaluate(avg.segments[0].index, np.zeros(1))[0] - avg.v_base_V
-        return float(jump / avg.amplitude_A)
-    single = [f.bridge_ohm for f in used if f.bridge_ohm is not None]
-    return float(np.median(single)) if single else None
+    if bs is None or avg.step.kind != "step":
+        return None
+    return bs.bridge_jump_V(0, avg.v_base_V) / avg.amplitude_A
 
 
 def _corrected(f: SweepFit, bridge: float) -> SweepFit:
@@ -1186,6 +1214,14 @@ def _sag(used: list[SweepFit], cell: dict, flags: list[Flag]) -> None:
                           "(steady/peak ratio)", ratio))
 
 
+def _cable_cis(bs, boot: dict | None) -> tuple[float, float]:
+    """95 % CI half-widths of L and ρ: the larger of the bootstrap (few resamples) and the
+    fit-covariance ones."""
+    L_ci = _percentile_halfwidth(boot["L"]) if boot is not None else None
+    rho_ci = _percentile_halfwidth(boot["rho"]) if boot is not None else None
+    return max(L_ci or 0.0, bs.L_ci95), max(rho_ci or 0.0, bs.rho_ci95)
+
+
 def _rho_cross_check(cell: dict, bs, v_inf: float, flags: list[Flag]) -> None:
     """ρ from the amplitudes (steady deflection vs B0, REFERENCES.md §2) against the fit's ρ."""
     from passivefit.core import cable
@@ -1213,11 +1249,8 @@ def _cable(cell: dict, fit, bs, g: GroupAverage, kind: str, tau1: float | None,
     if r_in:
         cell["c_tau_pF"] = _num(cable.c_tau(tau0, r_in), PF, 5)
     if bs is not None:
-        L_ci = _percentile_halfwidth(boot["L"]) if boot is not None else None
-        rho_ci = _percentile_halfwidth(boot["rho"]) if boot is not None else None
-        # the larger of the bootstrap (few resamples) and the fit-covariance CI
-        for key, value, ci in (("L_bs", bs.L, max(L_ci or 0.0, bs.L_ci95)),
-                               ("rho", bs.rho, max(rho_ci or 0.0, bs.rho_ci95))):
+        L_ci, rho_ci = _cable_cis(bs, boot)
+        for key, value, ci in (("L_bs", bs.L, L_ci), ("rho", bs.rho, rho_ci)):
             ci_key = "L_ci95" if key == "L_bs" else "rho_ci95"
             if ci < value:
                 cell[key], cell[ci_key] = _num(value, 1.0, 5), _num(ci, 1.0, 3)

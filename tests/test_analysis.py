@@ -153,3 +153,15 @@ def test_drifting_sweeps_are_rejected_with_the_drift_in_the_reason():
     assert all(not s["accepted"] and "drifts" in s["reject_reason"] for s in data["sweeps"])
     assert data["cell"]["n_sweeps_used"] == 0
     assert "cell.no_sweeps" in {f["code"] for f in data["flags"]}
+
+
+def test_bridge_is_not_subtracted_when_the_cable_fit_cannot_resolve_it():
+    # four noisy sweeps at 10 kHz: the ball-and-stick fit cannot tell a bridge jump from
+    # fast charging, so R_in keeps the plain steady-state deflection (truth: no bridge)
+    cell = BallStick.from_electrotonic(15e-3, 1.0, 5.0, 100e6)
+    rec, truth = simulate_recording(
+        cell, protocol=StepProtocol(0.05, 0.25, (-50e-12, -30e-12, -10e-12, 10e-12)),
+        sample_rate_hz=10_000, sweep_duration_s=0.4, n_sweeps=4, filter_hz=2_000, seed=0)
+    data = analyze(rec, Settings()).to_dict()
+    assert data["cell"]["r_in_MOhm"] == pytest.approx(truth["r_in_MOhm"], rel=0.02)
+    assert "cell.bridge" not in {f["code"] for f in data["flags"]}
