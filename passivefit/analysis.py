@@ -748,15 +748,15 @@ def _bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
             continue
         out["tau0"].append(boot.taus[0])
         out["tau1"].append(boot.taus[1] if n > 1 else np.nan)
-        bs = None
+        bs = bridge = None
         if cable is not None and len(out["tau0"]) <= CABLE_BOOTSTRAP:
             g_cable, bs0, delay = cable
             bs = fit_cable(replace(g_cable, v_V=v), fs, (bs0.tau0_s, bs0.L, bs0.rho), delay,
                            None)
+            bridge = _bridge(bs, replace(g_cable, v_base_V=_baseline(v, g_cable, fs)))
         out["tau1_model"].append(bs.taus_s[1] if bs else np.nan)
         out["L"].append(bs.L if bs else np.nan)
         out["rho"].append(bs.rho if bs else np.nan)
-        bridge = _bridge(bs, replace(g_cable, v_base_V=_baseline(v, g_cable, fs)))
         out["bridge"].append(np.nan if bridge is None else bridge)
     return {k: np.asarray(v, dtype=float) for k, v in out.items()}
 

@@ -165,3 +165,14 @@ def test_bridge_is_not_subtracted_when_the_cable_fit_cannot_resolve_it():
     data = analyze(rec, Settings()).to_dict()
     assert data["cell"]["r_in_MOhm"] == pytest.approx(truth["r_in_MOhm"], rel=0.02)
     assert "cell.bridge" not in {f["code"] for f in data["flags"]}
+
+
+def test_bootstrap_runs_when_the_cable_fit_fails(monkeypatch):
+    import passivefit.analysis as analysis
+
+    monkeypatch.setattr(analysis, "fit_cable", lambda *args, **kwargs: None)
+    rec, truth = simulate(n_sweeps=5)
+    data = analyze(rec, Settings()).to_dict()
+    assert data["cell"]["tau0_ms"] == pytest.approx(truth["tau0_ms"], rel=0.02)
+    assert data["cell"]["ci_method"] == "bootstrap over sweeps"
+    assert data["cell"]["L_bs"] is None and data["cell"]["bridge_MOhm"] is None
