@@ -80,6 +80,9 @@ class Settings:
     filter_hz : float or None
         Corner of the amplifier's 4-pole Bessel low-pass, in Hz; its delay (0.336/fc)
         shifts time zero of the cable-model fit. None: from the file's metadata, else 0.
+    area_um2 : float or None
+        Total membrane area of the cell, in µm², when known (e.g. from a reconstruction):
+        gives the specific capacitance Cm = C_total/area and Rm = τ0/Cm.
     """
 
     sweeps: tuple[int, ...] | None = None
@@ -92,12 +95,17 @@ class Settings:
     decisions: tuple[tuple[int, bool, str], ...] = ()
     bootstrap: int = 40
     filter_hz: float | None = None
+    area_um2: float | None = None
 
     def __post_init__(self) -> None:
         if self.components not in ("auto", "1", "2", "3"):
             raise ValueError(f"`components` must be auto, 1, 2 or 3, not {self.components!r}")
         if self.fit_start_ms is not None and not self.fit_start_ms >= 0:
             raise ValueError(f"`fit_start_ms` must be >= 0, not {self.fit_start_ms!r}")
+        for name in ("filter_hz", "area_um2"):
+            value = getattr(self, name)
+            if value is not None and not (np.isfinite(value) and value > 0):
+                raise ValueError(f"`{name}` must be a positive number, not {value!r}")
 
     def windows_for(self, index: int) -> Windows:
         override = dict(self.sweep_windows).get(index)
@@ -415,11 +423,15 @@ def _segments(v: np.ndarray, fs: float, step: Step, wins: dict):
     return segs, tuple(records)
 
 
-def _fit(segs, components: str, tau_init=None, max_components: int = 3):
+def _fit(segs, components: str, tau_init=None, max_components: int = 3,
+         choice: dict | None = None):
+    """Fit 1–3 exponentials; with "auto", the chooser's record goes into `choice`."""
     from passivefit.core import expfit
 
     if components == "auto":
-        fit, _choice = expfit.fit_auto(segs, max_components=max_components, tau_init=tau_init)
+        fit, record = expfit.fit_auto(segs, max_components=max_components, tau_init=tau_init)
+        if choice is not None:
+            choice.update(record)
         return fit
     return expfit.fit_exponentials(segs, int(components), tau_init=tau_init)
 
@@ -677,15 +689,17 @@ def _average(step: Step, indices: list[int], v: np.ndarray, fs: float,
     return GroupAverage(step, tuple(indices), v, v_base, wins)
 
 
-def fit_average(g: GroupAverage, fs: float, components: str, tau_init=None):
+def fit_average(g: GroupAverage, fs: float, components: str, tau_init=None,
+                choice: dict | None = None):
     """Fit the combined response's transients with shared time constants.
 
-    Returns the fit and `g` with its segment records filled in.
+    Returns the fit and `g` with its segment records filled in; `choice` receives the
+    record of how many components were chosen and why ("auto").
     """
     segs, records = _segments(g.v_V, fs, g.step, g.windows_s)
     if not segs:
         raise ValueError("no fit window holds enough samples")
-    return _fit(segs, components, tau_init), replace(g, segments=records)
+    return _fit(segs, components, tau_init, choice=choice), replace(g, segments=records)
 
 
 def _onset_amplitudes(fit, g: GroupAverage) -> tuple[float, ...]:
@@ -896,13 +910,15 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     cell["v_rest_mV"] = _num(np.mean([f.v_rest_V for f in used]), MV)
     pool = sweep_pool(fits, voltages)
     avg = _average(pool.step, list(pool.indices), pool.combine(), fs, settings)
+    choice: dict = {}
     try:
-        fit, avg = fit_average(avg, fs, settings.components)
+        fit, avg = fit_average(avg, fs, settings.components, choice=choice)
         if not fit.success:
             raise ValueError(fit.message)
     except (ValueError, np.linalg.LinAlgError, RuntimeError) as exc:
         flags.append(Flag("fit.failed", f"the fit of the averaged sweeps failed: {exc}"))
         fit = None
+    cell["components_reason"] = choice.get("reason", f"set to {settings.components}")
     avg_cable = _average(pool.step, list(pool.indices), avg.v_V, fs, asked or settings)
     bs = fit_cable(avg_cable, fs, cable_init(fit, pool.step), delay_s, flags) \
         if fit is not None else None
@@ -936,6 +952,13 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         _scan_drift(extras["scan"], flags)
     extras["peel"] = _peel(avg, avg_cable, fs, fit, n)
     _cable(cell, fit, bs, avg, kind, tau1, boot, flags)
+    if settings.area_um2 and cell["c_total_pF"]:
+        from passivefit.core import cable
+
+        cm, rm = cable.specific_membrane(cell["c_total_pF"] * PF, float(fit.taus[0]),
+                                         settings.area_um2 * 1e-12)
+        cell["cm_uF_per_cm2"] = _num(cm * 100, 1.0, 4)        # F/m² → µF/cm²
+        cell["rm_kOhm_cm2"] = _num(rm * 10, 1.0, 4)           # Ω·m² → kΩ·cm²
     return cell, extras
 
 

@@ -176,3 +176,16 @@ def test_bootstrap_runs_when_the_cable_fit_fails(monkeypatch):
     assert data["cell"]["tau0_ms"] == pytest.approx(truth["tau0_ms"], rel=0.02)
     assert data["cell"]["ci_method"] == "bootstrap over sweeps"
     assert data["cell"]["L_bs"] is None and data["cell"]["bridge_MOhm"] is None
+
+
+def test_membrane_area_gives_specific_capacitance_and_resistance():
+    # Worked numbers of REFERENCES.md §4 [der]: Rm = 20 kΩ·cm², Cm = 1 µF/cm² (common
+    # practice, no source) → a cell's area follows from C_total = Cm · area.
+    rec, truth = simulate(n_sweeps=10)
+    area_um2 = truth["c_total_pF"] * 1e-12 / 1e-6 * 1e8   # F / (F/cm²) → cm² → µm²
+    cell = analyze(rec, Settings(bootstrap=0, area_um2=area_um2)).to_dict()["cell"]
+    assert cell["cm_uF_per_cm2"] == pytest.approx(1.0, rel=0.08)
+    # τm = Rm·Cm with τm = 22 ms and Cm = 1 µF/cm² → Rm = 22 kΩ·cm²
+    assert cell["rm_kOhm_cm2"] == pytest.approx(22.0, rel=0.10)
+    with pytest.raises(ValueError, match="area_um2"):
+        Settings(area_um2=-3.0)

@@ -40,6 +40,8 @@ def add_settings_arguments(p: argparse.ArgumentParser) -> None:
                    help="leave the instantaneous jump at the step edge in R_in")
     p.add_argument("--filter-hz", type=float, metavar="F",
                    help="the amplifier's low-pass (−3 dB) corner, when the file does not say")
+    p.add_argument("--area-um2", type=float, metavar="A",
+                   help="the cell's membrane area, for specific Cm and Rm")
 
 
 def settings_from(args: argparse.Namespace):
@@ -48,8 +50,6 @@ def settings_from(args: argparse.Namespace):
     from passivefit.io.recording import StepSpec
 
     step = None
-    if args.filter_hz is not None and not args.filter_hz > 0:
-        raise UsageError(f"`--filter-hz` must be a positive frequency in Hz, not {args.filter_hz}")
     if args.step:
         if len(args.step) not in (3, 4):
             raise UsageError("`--step` takes ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]")
@@ -60,9 +60,11 @@ def settings_from(args: argparse.Namespace):
     try:
         return Settings(sweeps=args.sweeps, step=step, fit_start_ms=args.fit_start_ms,
                         components=args.components, filter_hz=args.filter_hz,
+                        area_um2=args.area_um2,
                         correct_bridge=not args.no_bridge_correction)
-    except ValueError as exc:
-        raise UsageError(str(exc)) from None
+    except ValueError as exc:  # name the option, not the setting
+        raise UsageError(str(exc).replace("`filter_hz`", "`--filter-hz`")
+                         .replace("`area_um2`", "`--area-um2`")) from None
 
 
 def load_and_analyze(path: str, settings):
