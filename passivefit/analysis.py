@@ -217,10 +217,13 @@ class SweepFit:
     flags: tuple[Flag, ...] = ()
 
     def tau(self, n: int) -> float | None:
-        """τn in s; None when not fitted or not resolved (95 % CI wider than the value)."""
+        """τn in s; None when not fitted or not resolved: 95 % CI wider than the value, or
+        so short that the component was gone (< 1 %) before the fit window opened."""
         if n >= len(self.taus_s) or self.fit is None:
             return None
-        return None if not self.fit.tau_ci95[n] < self.taus_s[n] else self.taus_s[n]
+        tau = self.taus_s[n]
+        start = self.segments[0].start_s - self.segments[0].edge_s if self.segments else 0.0
+        return None if not self.fit.tau_ci95[n] < tau or tau < start / 4.6 else tau
 
     def amp(self, n: int) -> float | None:
         """Amplitude of component n in V; None when its τ is not resolved."""
@@ -355,7 +358,7 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
 SPIKE_V = -0.010          # a sweep reaching this potential fired an action potential
 GUARD_S = 0.5e-3         # keep windows this far from step edges
 MIN_FIT_START_S = 0.3e-3  # earliest automatic fit start after an edge
-KEEP_FULL_S, BIN_FACTOR = 8e-3, 1.04  # fit samples at full rate up to 8 ms, then 4 % bins
+KEEP_FULL_S, BIN_FACTOR = 5e-3, 1.05  # fit samples at full rate up to 5 ms, then 5 % bins
 
 
 def artefact_end_s(v: np.ndarray, edge: int, fs: float, noise: float) -> float:
@@ -529,7 +532,10 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         if not segs:
             raise ValueError("the fit window holds too few samples")
         if tau_init is not None and settings.components == "auto":
-            fit = _fit(segs, str(min(len(tau_init), 2)), tau_init=tau_init[:2])
+            n = min(len(tau_init), 2)
+            fit = _fit(segs, str(n), tau_init=tau_init[:n])
+            if not fit.success and n == 2:  # a small step may not show τ1: one exponential
+                fit = _fit(segs, "1", tau_init=tau_init[:1])
         else:  # single sweeps rarely resolve a third component: "auto" stops at two here
             fit = _fit(segs, settings.components, max_components=2)
         if not fit.success:
