@@ -83,6 +83,9 @@ class Settings:
     area_um2 : float or None
         Total membrane area of the cell, in µm², when known (e.g. from a reconstruction):
         gives the specific capacitance Cm = C_total/area and Rm = τ0/Cm.
+    correct_drift : bool
+        Subtract a sweep's linear baseline drift (baseline before the step to the end of
+        a long tail) before fitting.
     """
 
     sweeps: tuple[int, ...] | None = None
@@ -96,6 +99,7 @@ class Settings:
     bootstrap: int = 40
     filter_hz: float | None = None
     area_um2: float | None = None
+    correct_drift: bool = True
 
     def __post_init__(self) -> None:
         if self.components not in ("auto", "1", "2", "3"):
@@ -211,6 +215,8 @@ class SweepFit:
     bridge_ohm: float | None = None
     sag: float | None = None
     noise_V: float | None = None
+    drift_V: float | None = None                     # end-of-sweep level − baseline
+    trend: tuple[float, float] = (0.0, 0.0)          # (V/s, reference time s) subtracted
     windows_s: dict = field(default_factory=dict)   # name -> (start, end) absolute times
     segments: tuple[Segment, ...] = ()
     fit: object | None = None            # core.expfit.ExpFit
@@ -235,8 +241,17 @@ class SweepFit:
         return all(self.tau(n) is not None for n in range(len(self.taus_s)))
 
     def model_curves(self) -> list[tuple[np.ndarray, np.ndarray]]:
-        """(time in s, fitted voltage in V) over each fit segment, for drawing."""
-        return fit_curves(self.fit, self.segments) if self.fit is not None else []
+        """(time in s, fitted voltage in V) over each fit segment, on the recorded trace
+        (the subtracted drift added back), for drawing."""
+        if self.fit is None:
+            return []
+        slope, t_ref = self.trend
+        return [(t, v + slope * (t - t_ref)) for t, v in fit_curves(self.fit, self.segments)]
+
+    def corrected(self, v: np.ndarray, fs: float) -> np.ndarray:
+        """The sweep's voltage with its subtracted drift taken out, as the fit saw it."""
+        slope, t_ref = self.trend
+        return v - slope * (np.arange(v.size) / fs - t_ref) if slope else v
 
     def to_dict(self) -> dict:
         return {
@@ -478,16 +493,21 @@ DRIFT_V = 1e-3       # baseline change over a sweep beyond which the sweep is re
 TAIL_S = 0.2         # the last tenth of a tail at least this long is back at baseline
 
 
-def baseline_drift(v: np.ndarray, step: Step, fs: float, v_base: float) -> float | None:
-    """Level at the end of the sweep minus the baseline before the step, in V.
+def baseline_drift(v: np.ndarray, step: Step, fs: float, v_base: float,
+                   base_window: tuple[int, int]) -> tuple[float, float, float] | None:
+    """(drift in V, slope in V/s, reference time in s) of a sweep's baseline.
 
-    Measured only when the sweep goes on for at least TAIL_S after the step, so the
-    decay is over in its last tenth; None otherwise.
+    The drift is the level at the end of the sweep minus the baseline before the step; the
+    slope joins the centres of the two windows. Measured only when the sweep goes on for
+    at least TAIL_S after the step, so the decay is over in its last tenth; None otherwise.
     """
     tail = v.size - step.offset
     if tail / fs < TAIL_S:
         return None
-    return steady.robust_level(v[v.size - tail // 10:]) - v_base
+    drift = steady.robust_level(v[v.size - tail // 10:]) - v_base
+    t_ref = 0.5 * (base_window[0] + base_window[1]) / fs
+    t_end = (v.size - tail / 20) / fs
+    return drift, drift / (t_end - t_ref), t_ref
 
 
 def baseline_only(v: np.ndarray, step: Step | None, index: int, fs: float,
@@ -518,6 +538,12 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
     if b1 - b0 < 10:
         return SweepFit(index, False, "no baseline before the step", step)
     v_base = steady.robust_level(v[b0:b1])
+    drift = baseline_drift(v, step, fs, v_base, (b0, b1))
+    trend = (0.0, 0.0)
+    if drift is not None and settings.correct_drift:
+        trend = drift[1:]
+        v = v - trend[0] * (np.arange(v.size) / fs - trend[1])
+        v_base = steady.robust_level(v[b0:b1])
     noise = steady.noise_sd(v[b0:b1])
     if settings.fit_start_ms is not None:
         start = settings.fit_start_ms * MS
@@ -569,10 +595,11 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
     elif fit is not None:
         amps = _response_amplitudes(fit, 0, "pulse")
 
-    drift = baseline_drift(v, step, fs, v_base)
+    drift = drift[0] if drift is not None else None
     if drift is not None and abs(drift) > 0.25 * DRIFT_V:
+        done = "subtracted as a straight line" if settings.correct_drift else "not corrected"
         flags.append(Flag("sweep.drift", "the baseline at the end of the sweep differs from the "
-                          "one before the step: slow drift biases R_in (mV)", drift / MV))
+                          f"one before the step ({done}) (mV)", drift / MV))
     accepted, reason = True, None
     if fit_error:
         accepted, reason = False, fit_error
@@ -594,8 +621,8 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         v_rest_V=v_base, dv_ss_V=dv, r_in_ohm=r_in,
         taus_s=tuple(float(t) for t in fit.taus) if fit is not None else (),
         amps_V=amps, rmse_V=rmse,
-        bridge_ohm=bridge, sag=sag, noise_V=noise, windows_s=wins, segments=records,
-        fit=fit, flags=tuple(flags),
+        bridge_ohm=bridge, sag=sag, noise_V=noise, drift_V=drift, trend=trend, windows_s=wins,
+        segments=records, fit=fit, flags=tuple(flags),
     )
 
 
@@ -674,7 +701,8 @@ def sweep_pool(fits: list[SweepFit], voltages: dict[int, np.ndarray]) -> SweepPo
     members = [f for f in used if timing(f) == common]
     currents = np.array([f.step.amplitude_A for f in members])
     bases = np.array([f.v_rest_V for f in members])
-    deflections = np.stack([voltages[f.index] for f in members]) - bases[:, None]
+    deflections = np.stack([f.corrected(voltages[f.index], members[0].step.sample_rate_hz)
+                            for f in members]) - bases[:, None]
     i_ref = currents.min() if np.any(currents < 0) else currents.max()
     return SweepPool(replace(members[0].step, amplitude_A=float(i_ref)),
                      tuple(f.index for f in members), currents, deflections, float(bases.mean()))
@@ -998,9 +1026,9 @@ def _bridge_correction(fits: list[SweepFit], fit_taus, bs, avg: GroupAverage,
     """Estimate the bridge jump and, when it is real, take it out of every sweep's R_in.
 
     It is subtracted only when the exponential fit shows a second component, the
-    ball-and-stick fit resolves L and ρ, and the jump is larger than its own 95 % CI
-    (bootstrap): an unresolved cable model cannot tell a bridge error from fast
-    dendritic charging.
+    ball-and-stick fit resolves L, and the jump is larger than its own 95 % CI from the
+    bootstrap over sweeps (no bootstrap, no correction): an unresolved cable model cannot
+    tell a bridge error from fast dendritic charging or noise.
     """
     bridge = _bridge(bs, avg)
     cell["bridge_MOhm"] = _num(bridge, MOHM, 4)
@@ -1008,9 +1036,9 @@ def _bridge_correction(fits: list[SweepFit], fit_taus, bs, avg: GroupAverage,
         return
     ci = _percentile_halfwidth(boot["bridge"]) if boot is not None else None
     cell["bridge_ci95_MOhm"] = _num(ci, MOHM, 3)
-    L_ci, rho_ci = _cable_cis(bs, boot)
-    resolved = len(fit_taus) >= 2 and L_ci < bs.L and rho_ci < bs.rho
-    if not resolved or (ci is not None and abs(bridge) <= ci):
+    L_ci, _ = _cable_cis(bs, boot)
+    resolved = ci is not None and len(fit_taus) >= 2 and L_ci < bs.L and abs(bridge) > ci
+    if not resolved:
         if abs(bridge) > 5 * MOHM:
             flags.append(Flag("cell.bridge_uncertain", "the jump at the step edge cannot be "
                               "told apart from fast charging or noise; R_in is not corrected "

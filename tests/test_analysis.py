@@ -189,3 +189,20 @@ def test_membrane_area_gives_specific_capacitance_and_resistance():
     assert cell["rm_kOhm_cm2"] == pytest.approx(22.0, rel=0.10)
     with pytest.raises(ValueError, match="area_um2"):
         Settings(area_um2=-3.0)
+
+
+def test_slow_drift_is_taken_out_before_fitting():
+    rec, truth = simulate(n_sweeps=10, drift_V_per_s=0.5e-3)  # 0.4 mV over each sweep
+    result = analyze(rec, Settings())
+    cell = result.to_dict()["cell"]
+    assert cell["r_in_MOhm"] == pytest.approx(truth["r_in_MOhm"], rel=0.02)
+    assert cell["tau0_ms"] == pytest.approx(truth["tau0_ms"], rel=0.02)
+    sweep = result.sweeps[0]
+    assert sweep.trend[0] == pytest.approx(0.5e-3, rel=0.3)
+    assert "sweep.drift" in {f.code for f in sweep.flags}
+    # the drawn model follows the recorded (drifting) trace
+    t, v = sweep.model_curves()[1]
+    raw = rec.sweeps[0].voltage[np.round(t * rec.sample_rate_hz).astype(int)]
+    assert abs(np.mean(raw - v)) < 0.05e-3
+    without = analyze(rec, Settings(bootstrap=0, correct_drift=False)).to_dict()["cell"]
+    assert abs(without["r_in_MOhm"] / truth["r_in_MOhm"] - 1) > 0.02

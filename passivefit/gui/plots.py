@@ -247,13 +247,11 @@ class TraceView(QtWidgets.QWidget):
         """(time in ms, data − model in mV) over each fitted segment."""
         if fit is None or fit.fit is None or self._v is None:
             return []
-        out = []
-        for seg in fit.segments:
-            a = int(round(seg.start_s * self._fs))
-            b = min(int(round(seg.end_s * self._fs)) + 1, self._v.size)
-            t = np.arange(a, b) / self._fs
-            out.append((t / MS, (self._v[a:b] - fit.fit.evaluate(seg.index, t - seg.edge_s)) / MV))
-        return out
+        from passivefit.analysis import residual
+
+        v = fit.corrected(self._v, self._fs)  # as the fit saw it (drift taken out)
+        return [(t / MS, r / MV) for t, r in (residual(v, fit.fit, seg, self._fs)
+                                             for seg in fit.segments)]
 
     def fit_view(self) -> None:
         """Zoom out to show every sample of every sweep.
