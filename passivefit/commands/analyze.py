@@ -110,7 +110,7 @@ CELL_ROWS = [
     ("C from τ0/R_in", "c_tau_pF", None, "pF"),
     ("C total (cable)", "c_total_pF", None, "pF"),
     ("sag ratio", "sag_ratio", None, ""),
-    ("bridge jump", "bridge_MOhm", None, "MΩ"),
+    ("bridge jump", "bridge_MOhm", "bridge_ci95_MOhm", "MΩ"),
 ]
 
 
