@@ -61,12 +61,12 @@ def _tree_rss_kib(pid: int) -> int:
     return total
 
 
-def run_batch(folder: Path, db: Path, workers: int) -> tuple[float, int, str]:
+def run_batch(folder: Path, db: Path, workers: int, bootstrap: int) -> tuple[float, int, str]:
     """Wall time in s, peak summed RSS in KiB and stdout of one batch run."""
     db.unlink(missing_ok=True)
     start = time.perf_counter()
     proc = subprocess.Popen([sys.executable, "-m", "passivefit.cli", "batch", str(folder), "--db",
-                             str(db), "--workers", str(workers)],
+                             str(db), "--workers", str(workers), "--bootstrap", str(bootstrap)],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     peak = 0
     while proc.poll() is None:
@@ -79,15 +79,16 @@ def run_batch(folder: Path, db: Path, workers: int) -> tuple[float, int, str]:
     return seconds, peak, out
 
 
-def serial_rate(paths: list[Path]) -> float:
+def serial_rate(paths: list[Path], bootstrap: int) -> float:
     """Sweeps/s of load + analyze in this process, one file after another (one core)."""
     from passivefit.analysis import Settings, analyze
     from passivefit.io import load
 
-    analyze(load(paths[0]), Settings())  # imports and caches out of the timing
+    settings = Settings(bootstrap=bootstrap)
+    analyze(load(paths[0]), settings)  # imports and caches out of the timing
     start, sweeps = time.perf_counter(), 0
     for path in paths:
-        sweeps += len(analyze(load(path), Settings()).sweeps)
+        sweeps += len(analyze(load(path), settings).sweeps)
     return sweeps / (time.perf_counter() - start)
 
 
@@ -96,18 +97,22 @@ def main() -> int:
     parser.add_argument("--files", type=int, default=10, help="N (the larger folder has 4N)")
     parser.add_argument("--sweeps", type=int, default=10, help="sweeps per recording")
     parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--bootstrap", type=int, default=40,
+                        help="resamples for the CIs, as `passivefit batch --bootstrap`")
     parser.add_argument("--data", type=Path,
                         default=Path(tempfile.gettempdir()) / "passivefit-bench-batch",
                         help="folder for the recordings (kept and reused between runs)")
     args = parser.parse_args()
-
+    print(f"command: python benchmarks/bench_batch.py --files {args.files} --sweeps "
+          f"{args.sweeps} --workers {args.workers} --bootstrap {args.bootstrap}")
     results = []
     for n in (args.files, 4 * args.files):
         folder = args.data / f"n{n}_s{args.sweeps}"
         t0 = time.perf_counter()
         write_recordings(folder, n, args.sweeps)
         prepared = time.perf_counter() - t0
-        seconds, peak_kib, out = run_batch(folder, args.data / f"n{n}.db", args.workers)
+        seconds, peak_kib, out = run_batch(folder, args.data / f"n{n}.db", args.workers,
+                                           args.bootstrap)
         sweeps = n * args.sweeps
         rate = sweeps / seconds
         analysed = re.search(r"(\d+) analysed \((\d+) sweeps\)", out)
@@ -122,7 +127,7 @@ def main() -> int:
 
     (_, _, _, _, peak_n), (_, _, _, rate_4n, peak_4n) = results
     one_core = serial_rate(write_recordings(args.data / f"n{args.files}_s{args.sweeps}",
-                                            args.files, args.sweeps))
+                                            args.files, args.sweeps), args.bootstrap)
     print(f"load + analyze alone, one core, no batch: {one_core:.1f} sweeps/s -> with "
           f"{args.workers} workers at most {args.workers * one_core:.0f} sweeps/s; the batch "
           f"reached {rate_4n / (args.workers * one_core):.0%} of that at 4N")

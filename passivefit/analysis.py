@@ -106,6 +106,8 @@ class Settings:
             raise ValueError(f"`components` must be auto, 1, 2 or 3, not {self.components!r}")
         if self.fit_start_ms is not None and not self.fit_start_ms >= 0:
             raise ValueError(f"`fit_start_ms` must be >= 0, not {self.fit_start_ms!r}")
+        if self.bootstrap < 0:
+            raise ValueError(f"`bootstrap` must be 0 or more resamples, not {self.bootstrap}")
         for name in ("filter_hz", "area_um2"):
             value = getattr(self, name)
             if value is not None and not (np.isfinite(value) and value > 0):

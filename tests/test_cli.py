@@ -129,3 +129,12 @@ def test_demo_writes_samples_with_truth(tmp_path):
     assert "LOL-2026-11-03-c1_CA1.nwb" in written
     assert "LOL-2026-11-03-c1_CA1.nwb.truth.json" in written
     assert len(written) == 8
+
+
+def test_bootstrap_option_sets_the_ci_method(tmp_path):
+    out = tmp_path / "r.json"
+    proc = run_cli("analyze", CA1, "--bootstrap", "0", "--out", out)
+    assert proc.returncode == 0, proc.stderr
+    assert json.loads(out.read_text())["cell"]["ci_method"] == "fit covariance"
+    proc = run_cli("analyze", CA1, "--bootstrap", "-1")
+    assert proc.returncode == 2 and "bootstrap" in proc.stderr
