@@ -77,5 +77,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 130
 
 
-if __name__ == "__main__":
-    sys.exit(main())
+if __name__ == "__main__":  # `python -m passivefit.cli`: run the imported module's main, so
+    from passivefit.cli import main as _main  # its exception classes are the ones raised
+
+    sys.exit(_main())
