@@ -743,12 +743,6 @@ def _onset_amplitudes(fit, g: GroupAverage) -> tuple[float, ...]:
     return _response_amplitudes(fit, g.segments[0].index, g.step.kind)
 
 
-def _ratio(fit, g: GroupAverage) -> float | None:
-    """B1/B0 (step charging) or C1/C0 (pulse decay) of one group in the cell fit."""
-    amps = _onset_amplitudes(fit, g)
-    return amps[1] / amps[0] if len(amps) > 1 and amps[0] != 0 else None
-
-
 def _percentile_halfwidth(samples: np.ndarray) -> float | None:
     """95 % CI half-width from bootstrap samples (None with fewer than 10).
 
