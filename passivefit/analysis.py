@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import hashlib
 import json
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, astuple, dataclass, field, replace
 
 import numpy as np
 
@@ -46,11 +46,7 @@ class Windows:
         if other is None:
             return self
         return Windows(*(o if o is not None else s for s, o in
-                         zip(astuple_shallow(self), astuple_shallow(other), strict=True)))
-
-
-def astuple_shallow(w: Windows) -> tuple:
-    return (w.baseline_ms, w.steady_ms, w.fit_ms)
+                         zip(astuple(self), astuple(other), strict=True)))
 
 
 @dataclass(frozen=True)
@@ -185,6 +181,7 @@ class Segment:
     start_s: float      # fit start (absolute sweep time)
     end_s: float        # fit end (absolute sweep time)
     index: int          # segment index in the ExpFit
+    charging: bool = True  # a step's charging transient (else the decay after it ends)
 
     def samples(self, fs: float) -> slice:
         """The sweep samples this segment covers."""
@@ -312,6 +309,16 @@ class GroupAverage:
     def amplitude_A(self) -> float:
         return self.step.amplitude_A
 
+    @property
+    def edge_s(self) -> float:
+        """The edge the first fitted transient starts from: step onset, or a pulse's end."""
+        return self.step.onset_s if self.step.kind == "step" else self.step.offset_s
+
+    @property
+    def fit_start_s(self) -> float:
+        """Start of the first fitted transient after its edge, in s."""
+        return self.windows_s["fit" if self.step.kind == "step" else "fit_off"][0] - self.edge_s
+
     def model_curves(self, fit) -> list[tuple[np.ndarray, np.ndarray]]:
         """(time in s, fitted voltage in V) of the cell-level fit over this average."""
         return fit_curves(fit, self.segments)
@@ -334,13 +341,6 @@ class RecordingResult:
     protocol: str = "step"
     effective_settings: Settings | None = None  # settings with the automatic fit start filled in
     cable_fit: object | None = None         # core.cablefit.BallStickFit of the combined response
-
-    @property
-    def groups(self) -> tuple[GroupAverage, ...]:
-        """The combined responses behind the cell values (one for now)."""
-        return () if self.average is None else (self.average,)
-
-    reference_group = 0
 
     def to_dict(self) -> dict:
         return {
@@ -430,7 +430,7 @@ def _segments(v: np.ndarray, fs: float, step: Step, wins: dict):
     from passivefit.core.expfit import decimate_tail
 
     segs, records = [], []
-    edges = {"fit": step.onset / fs, "fit_off": step.offset / fs}
+    edges = {"fit": step.onset_s, "fit_off": step.offset_s}
     for name in ("fit", "fit_off"):
         if name not in wins:
             continue
@@ -439,7 +439,8 @@ def _segments(v: np.ndarray, fs: float, step: Step, wins: dict):
             continue
         t = np.arange(a, b) / fs - edges[name]
         segs.append(FitSegment(*decimate_tail(t, v[a:b], KEEP_FULL_S, BIN_FACTOR)))
-        records.append(Segment(edges[name], a / fs, (b - 1) / fs, len(records)))
+        records.append(Segment(edges[name], a / fs, (b - 1) / fs, len(records),
+                               charging=name == "fit"))
     return segs, tuple(records)
 
 
@@ -808,10 +809,8 @@ def _bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
 def fit_start_scan(g: GroupAverage, fs: float, n_components: int, tau_init,
                    n_starts: int = 10, span_s: float = 4e-3) -> dict:
     """τ0 and τ1 refitted from a series of later fit starts (for the plateau check)."""
-    edges = {"fit": g.step.onset_s, "fit_off": g.step.offset / fs}
-    main = "fit" if g.step.kind == "step" else "fit_off"
-    first = g.windows_s[main][0] - edges[main]
-    starts = first + np.linspace(0.0, span_s, n_starts)
+    edges = {"fit": g.step.onset_s, "fit_off": g.step.offset_s}  # as in _segments
+    starts = g.fit_start_s + np.linspace(0.0, span_s, n_starts)
     rows = []
     for s0 in starts:
         wins = dict(g.windows_s)
@@ -849,9 +848,8 @@ def analyze(recording: Recording, settings: Settings | None = None) -> Recording
     fits = apply_decisions(reject_outliers(fits), effective)
     delay = bessel_delay_s(settings.filter_hz or _metadata_float(recording, "filter_hz"))
     cell, extras = summarize_cell(fits, voltages, fs, effective, settings, delay)
-    cell["fit_start_ms"] = _num(extras["average"].windows_s.get(
-        "fit", extras["average"].windows_s.get("fit_off", (np.nan,)))[0]
-        - _edge_s(extras["average"]), MS, 4) if extras.get("average") else None
+    if extras.get("average") is not None:
+        cell["fit_start_ms"] = _num(extras["average"].fit_start_s, MS, 4)
     flags = tuple(extras.pop("flags"))
     return RecordingResult(
         source={"path": recording.path, "sha256": recording.sha256, "format": recording.format,
@@ -875,11 +873,6 @@ def bessel_delay_s(filter_hz: float | None) -> float:
     0.3363/fc with fc the −3 dB corner).
     """
     return 0.0 if not filter_hz else 0.336 / filter_hz
-
-
-def _edge_s(g: GroupAverage) -> float:
-    """The edge the first fitted transient starts from: step onset, or a pulse's end."""
-    return g.step.onset_s if g.step.kind == "step" else g.step.offset / g.step.sample_rate_hz
 
 
 #: The fit starts this many τ1 after the edge, where τ2, τ3 … have decayed enough that two
@@ -908,7 +901,7 @@ def first_look(screened: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     taus = tuple(float(t) for t in fit.taus)
     if settings.fit_start_ms is not None or pool.step.kind == "pulse" or len(taus) < 2:
         return None, taus  # pulses weight τ1 strongly: fit from the artefact on
-    artefact = avg.segments[0].start_s - _edge_s(avg)
+    artefact = avg.fit_start_s
     return float(np.clip(START_TAU1 * taus[1], artefact, 5e-3)), taus
 
 
@@ -1066,21 +1059,12 @@ def cable_init(exp_fit, step: Step) -> tuple[float, float, float] | None:
 def fit_cable(avg: GroupAverage, fs: float, init, delay_s: float, flags: list[Flag] | None):
     """Ball-and-stick fit of the combined response (core.cablefit); None if it fails."""
     from passivefit.core import cablefit
-    from passivefit.core.expfit import decimate_tail
 
-    step, segs = avg.step, []
-    for name, edge in (("fit", step.onset_s), ("fit_off", step.offset / fs)):
-        if name not in avg.windows_s:
-            continue
-        a, b = (_index(t, fs, avg.v_V.size) for t in avg.windows_s[name])
-        if b - a < 20:
-            continue
-        t, y, w = decimate_tail(np.arange(a, b) / fs - edge, avg.v_V[a:b], KEEP_FULL_S,
-                                BIN_FACTOR)
-        charge = name == "fit"
-        segs.append(cablefit.CableSegment(
-            t, y, w, kind="charge" if charge else "decay", group=0,
-            duration_s=None if charge else step.duration_s, sample_interval_s=1 / fs))
+    fit_segs, records = _segments(avg.v_V, fs, avg.step, avg.windows_s)
+    segs = [cablefit.CableSegment(
+        seg.t, seg.y, seg.weight, kind="charge" if rec.charging else "decay", group=0,
+        duration_s=None if rec.charging else avg.step.duration_s, sample_interval_s=1 / fs)
+        for seg, rec in zip(fit_segs, records, strict=True)]
     if not segs:
         return None
     try:

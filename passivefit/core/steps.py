@@ -40,6 +40,10 @@ class Step:
         return self.onset / self.sample_rate_hz
 
     @property
+    def offset_s(self) -> float:
+        return self.offset / self.sample_rate_hz
+
+    @property
     def kind(self) -> str:
         """"step" when the charging phase can be fitted, "pulse" for a brief pulse."""
         return "pulse" if self.duration_s < PULSE_MAX_S else "step"

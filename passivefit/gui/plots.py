@@ -296,8 +296,7 @@ class SemilogView(QtWidgets.QWidget):
             self.plot.setLogMode(x=False, y=False)
             _note(self.plot, "no semilog view: the transient could not be peeled")
             return
-        group = result.groups[result.reference_group or 0]
-        set_title(self.plot, f"peel of the {group.amplitude_A / PA:+.0f} pA average")
+        set_title(self.plot, f"peel of the {result.average.amplitude_A / PA:+.0f} pA average")
         t_end = min(float(peel.residual_log[0][0][-1]), 1.25 * peel.lines[0].t_end)
         lo, hi = np.inf, 0.0
         for stage, (t, log_a) in enumerate(peel.residual_log):
