@@ -98,17 +98,21 @@ class ReaderContract:
         written[2].validate()  # load() ran it too; the data are analysable
 
 
+# What NWB and the sweep table both keep of the test recording's metadata.
+FULL_METADATA = {
+    "cell_id": CELL_ID,
+    "date": DATE,
+    "temperature_C": 32.0,
+    "lab": "Lindqvist-Okafor Lab of Dendritic Physiology",
+    "protocol": PROTOCOL,
+    "filter_hz": FILTER_HZ,
+}
+
+
 class TestNWBContract(ReaderContract):
     extension = ".nwb"
     format_name = "nwb"
-    kept_metadata = {
-        "cell_id": CELL_ID,
-        "date": DATE,
-        "temperature_C": 32.0,
-        "lab": "Lindqvist-Okafor Lab of Dendritic Physiology",
-        "protocol": PROTOCOL,
-        "filter_hz": FILTER_HZ,
-    }
+    kept_metadata = FULL_METADATA
 
     def voltage_tolerance(self, written, path):
         # stored as float32 mV: half an ulp of the largest |mV| value
@@ -125,14 +129,7 @@ class TestNWBContract(ReaderContract):
 class TestCSVContract(ReaderContract):
     extension = ".csv"
     format_name = "csv"
-    kept_metadata = {
-        "cell_id": CELL_ID,
-        "date": DATE,
-        "temperature_C": 32.0,
-        "lab": "Lindqvist-Okafor Lab of Dendritic Physiology",
-        "protocol": PROTOCOL,
-        "filter_hz": FILTER_HZ,
-    }
+    kept_metadata = FULL_METADATA
 
     def voltage_tolerance(self, written, path):
         # 10 significant digits: each value within 5e-10 of its own magnitude

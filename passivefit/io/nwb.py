@@ -214,25 +214,8 @@ def _check_signature(path: Path) -> None:
 def read_nwb_pynwb(path: str | Path) -> Recording:
     """Read the current-clamp sweeps of an NWB 2 file through pynwb (any layout).
 
-    Parameters
-    ----------
-    path : str or Path
-        The .nwb (HDF5) file.
-
-    Returns
-    -------
-    Recording
-        One sweep per current-clamp response (V), with the paired stimulus (A) or
-        None. Metadata: `cell_id`, `identifier`, `date` (ISO), `session_description`,
-        `lab`, `institution`, `protocol`, `electrode`, `subject_id`, `species`, `notes`,
-        `temperature_C` (from ``temperature_C: 32`` in the notes), `filter_hz`
-        (the low-pass corner in Hz, from the electrode's `filtering` text; see
-        `filter_hz_from_text`).
-
-    Raises
-    ------
-    LoadError
-        Truncated, HDF5 but not NWB, damaged, or no current-clamp sweeps.
+    Returns the same `Recording` and metadata as `read_nwb`; raises `LoadError` for a
+    truncated, damaged or non-NWB HDF5 file, or one without current-clamp sweeps.
     """
     path = Path(path)
     from pynwb import NWBHDF5IO
