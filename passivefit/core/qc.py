@@ -14,7 +14,7 @@ class Flag:
     Parameters
     ----------
     code : str
-        Stable identifier, e.g. ``"fit.tau1_unresolved"``.
+        Stable identifier, ``<where>.<what>`` (see passivefit.model.schema.FLAGS).
     message : str
         What was seen and what it means, in plain words.
     value : float or None
@@ -45,3 +45,18 @@ def runs_test_z(residuals: np.ndarray) -> float:
     mean = 2.0 * n_pos * n_neg / n + 1.0
     var = (mean - 1.0) * (mean - 2.0) / (n - 1.0)
     return float((runs - mean) / np.sqrt(var)) if var > 0 else 0.0
+
+
+def percentile_halfwidth(samples: np.ndarray) -> float | None:
+    """95 % CI half-width from bootstrap samples (None with fewer than 10).
+
+    Half the central 95 % range with 40 or more samples; 1.96 sd with fewer, where the
+    extreme percentiles are too rough.
+    """
+    samples = samples[np.isfinite(samples)]
+    if samples.size < 10:
+        return None
+    if samples.size < 40:
+        return float(1.96 * np.std(samples, ddof=1))
+    lo, hi = np.percentile(samples, [2.5, 97.5])
+    return float((hi - lo) / 2)

@@ -1,152 +1,17 @@
-"""The one data model every reader returns: a recording of current-clamp sweeps.
-
-All arrays are float64 in SI units (volts, amperes, seconds).
-"""
+"""The recording data model (`passivefit.model.recording`) as the readers see it, and
+helpers the readers and writers share: the file hash and the stored filter corner."""
 
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
+from passivefit.model.errors import LoadError
+from passivefit.model.recording import Recording, StepSpec, Sweep
 
-class LoadError(ValueError):
-    """A recording could not be read; carries the path and the reason."""
-
-    def __init__(self, path: str | Path, reason: str) -> None:
-        self.path = str(path)
-        self.reason = reason
-        super().__init__(f"{self.path}: {reason}")
-
-
-@dataclass(frozen=True)
-class StepSpec:
-    """A current step described by the user or a protocol, not by a recorded waveform.
-
-    Parameters
-    ----------
-    onset_s : float
-        Time of the step edge from the start of each sweep, in s.
-    duration_s : float
-        Step duration, in s.
-    amplitude_A : float
-        Step amplitude of the first sweep, in A (hyperpolarizing is negative).
-    increment_A : float
-        Change of amplitude from one sweep to the next, in A.
-    """
-
-    onset_s: float
-    duration_s: float
-    amplitude_A: float
-    increment_A: float = 0.0
-
-    def amplitude_of(self, sweep_index: int) -> float:
-        return self.amplitude_A + sweep_index * self.increment_A
-
-    def command(self, n_samples: int, sample_rate_hz: float, sweep_index: int) -> np.ndarray:
-        """The command current of one sweep as a sampled waveform, in A."""
-        t = np.arange(n_samples) / sample_rate_hz
-        on = (t >= self.onset_s) & (t < self.onset_s + self.duration_s)
-        return np.where(on, self.amplitude_of(sweep_index), 0.0)
-
-
-@dataclass
-class Sweep:
-    """One sweep: the membrane voltage and, when known, the injected current.
-
-    Parameters
-    ----------
-    index : int
-        Sweep number within the recording, from 0.
-    voltage : ndarray
-        Membrane potential, in V.
-    current : ndarray or None
-        Injected (command or recorded) current, in A, same length as `voltage`;
-        None when the file carries no current and no step was given.
-    """
-
-    index: int
-    voltage: np.ndarray
-    current: np.ndarray | None = None
-
-    def __post_init__(self) -> None:
-        self.voltage = np.asarray(self.voltage, dtype=np.float64)
-        if self.current is not None:
-            self.current = np.asarray(self.current, dtype=np.float64)
-            if self.current.shape != self.voltage.shape:
-                raise ValueError(
-                    f"sweep {self.index}: current has {self.current.size} samples, "
-                    f"voltage {self.voltage.size}"
-                )
-
-    @property
-    def n_samples(self) -> int:
-        return int(self.voltage.size)
-
-
-@dataclass
-class Recording:
-    """A current-clamp recording: sweeps at one sampling rate plus provenance.
-
-    Parameters
-    ----------
-    sweeps : list of Sweep
-    sample_rate_hz : float
-        Sampling rate, in Hz.
-    path : str
-        Source file.
-    sha256 : str
-        Hex digest of the source file's bytes.
-    format : str
-        Reader name: "abf", "nwb" or "csv".
-    metadata : dict
-        Plain values the file carries: cell_id, date, temperature_C, ... .
-    """
-
-    sweeps: list[Sweep]
-    sample_rate_hz: float
-    path: str = ""
-    sha256: str = ""
-    format: str = ""
-    metadata: dict = field(default_factory=dict)
-
-    @property
-    def dt(self) -> float:
-        return 1.0 / self.sample_rate_hz
-
-    @property
-    def has_current(self) -> bool:
-        return all(s.current is not None for s in self.sweeps)
-
-    def with_step(self, step: StepSpec) -> Recording:
-        """A copy whose sweeps carry the command current of `step`."""
-        sweeps = [
-            Sweep(s.index, s.voltage, step.command(s.n_samples, self.sample_rate_hz, k))
-            for k, s in enumerate(self.sweeps)
-        ]
-        return Recording(sweeps, self.sample_rate_hz, self.path, self.sha256, self.format,
-                         dict(self.metadata))
-
-    def validate(self) -> None:
-        """Raise LoadError when the data cannot be analysed (empty, NaN, too short)."""
-        if not self.sweeps:
-            raise LoadError(self.path, "the file holds no sweeps")
-        if not (np.isfinite(self.sample_rate_hz) and self.sample_rate_hz > 0):
-            raise LoadError(self.path, f"the sampling rate {self.sample_rate_hz!r} Hz is not valid")
-        for s in self.sweeps:
-            if s.n_samples < 100:
-                raise LoadError(
-                    self.path,
-                    f"sweep {s.index} has only {s.n_samples} samples; at least 100 are needed",
-                )
-            if not np.all(np.isfinite(s.voltage)):
-                raise LoadError(self.path, f"sweep {s.index} holds NaN or infinite voltages")
-            if s.current is not None and not np.all(np.isfinite(s.current)):
-                raise LoadError(self.path, f"sweep {s.index} holds NaN or infinite currents")
-            if np.ptp(s.voltage) == 0.0:
-                raise LoadError(self.path, f"sweep {s.index} is flat: the voltage never changes")
+__all__ = ["LoadError", "Recording", "StepSpec", "Sweep", "file_sha256", "metadata_filter_hz"]
 
 
 def metadata_filter_hz(metadata: dict) -> float | None:

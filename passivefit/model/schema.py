@@ -1,0 +1,351 @@
+"""Every name passivefit reports, declared once: quantities, flag codes, metadata keys.
+
+A :class:`Quantity` is one reported value: its key in ``to_dict()`` (with the display
+unit in the name), its labels, display unit and scale, significant digits, the key of
+its 95 % CI and whether the database keeps it in a column. The JSON, the sheets, the
+PDF report, the command line's table, the window's cell card and sweep table and the
+database columns are all generated from these declarations.
+
+A :class:`FlagSpec` is one quality flag: a stable code, a severity and the words
+(a template, filled in with the numbers of the case). Code never writes a key or a flag
+code as a string literal; a test greps for strays.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from passivefit.core.qc import Flag
+
+
+# --------------------------------------------------------------------------- quantities
+@dataclass(frozen=True)
+class Quantity:
+    """One reported value.
+
+    Parameters
+    ----------
+    key : str
+        Its name in ``to_dict()``, the sheets and the database; ends in its unit.
+    label : str
+        Short label (tables, the cell card).
+    unit : str
+        Display unit ("" for a pure number).
+    scale : float
+        SI value of one display unit (1e-3 for ms); 1 for pure numbers.
+    digits : int
+        Significant digits kept in ``to_dict()``.
+    ci : str or None
+        Key of the 95 % CI half-width of this value.
+    title : str
+        Longer label for the PDF report ("" = the label).
+    kind : str
+        "number", "int", "text" or "bool".
+    column : bool
+        The database keeps it in a column of its own (for filtering and plots).
+    """
+
+    key: str
+    label: str
+    unit: str = ""
+    scale: float = 1.0
+    digits: int = 6
+    ci: str | None = None
+    title: str = ""
+    kind: str = "number"
+    column: bool = False
+
+    def display(self, value):
+        """`value` (SI for numbers) in display units and digits; None when not finite."""
+        if value is None:
+            return None
+        if self.kind == "text":
+            return str(value)
+        if self.kind == "bool":
+            return bool(value)
+        if self.kind == "int":
+            return int(value)
+        if not np.isfinite(value):
+            return None
+        return float(f"{float(value) / self.scale:.{self.digits}g}")
+
+    @property
+    def heading(self) -> str:
+        """Label with unit, e.g. "τ0 (ms)"."""
+        return f"{self.label} ({self.unit})" if self.unit else self.label
+
+
+MS, MV, PA, MOHM, PF = 1e-3, 1e-3, 1e-12, 1e6, 1e-12
+
+
+def _ci(key: str, of: str, unit: str = "", scale: float = 1.0) -> Quantity:
+    return Quantity(key, f"{of} 95 % CI", unit, scale, 3)
+
+
+# Cell values, in the order of the JSON contract, then the extras.
+V_REST = Quantity("v_rest_mV", "V_rest", "mV", MV, title="Resting potential V_rest",
+                  column=True)
+R_IN = Quantity("r_in_MOhm", "R_in", "MΩ", MOHM, title="Input resistance R_in", column=True)
+TAU0 = Quantity("tau0_ms", "τ0", "ms", MS, ci="tau0_ci95_ms",
+                title="Membrane time constant τ0", column=True)
+TAU0_CI = _ci("tau0_ci95_ms", "τ0", "ms", MS)
+TAU1 = Quantity("tau1_ms", "τ1", "ms", MS, ci="tau1_ci95_ms", title="First equalizing τ1",
+                column=True)
+TAU1_CI = _ci("tau1_ci95_ms", "τ1", "ms", MS)
+C0 = Quantity("c0_mV", "C0", "mV", MV, title="Amplitude C0")
+C1 = Quantity("c1_mV", "C1", "mV", MV, title="Amplitude C1")
+L_CYL = Quantity("L_cyl", "L (cylinder)", digits=5, ci="L_cyl_ci95",
+                 title="L, equivalent cylinder", column=True)
+L_BS = Quantity("L_bs", "L (ball-and-stick)", digits=5, ci="L_ci95",
+                title="L, ball-and-stick", column=True)
+L_CI = _ci("L_ci95", "L (ball-and-stick)")
+RHO = Quantity("rho", "ρ", digits=5, ci="rho_ci95", title="ρ, ball-and-stick", column=True)
+RHO_CI = _ci("rho_ci95", "ρ")
+C_TAU = Quantity("c_tau_pF", "C from τ0/R_in", "pF", PF, 5, title="C = τ0/R_in", column=True)
+C_TOTAL = Quantity("c_total_pF", "C total (cable)", "pF", PF, 5,
+                   title="C total (cable-corrected)", column=True)
+SAG_RATIO = Quantity("sag_ratio", "sag ratio", digits=4, title="Sag ratio (steady/peak)",
+                     column=True)
+N_SWEEPS_USED = Quantity("n_sweeps_used", "sweeps used", kind="int", title="Sweeps used")
+
+BRIDGE = Quantity("bridge_MOhm", "bridge jump", "MΩ", MOHM, 4, ci="bridge_ci95_MOhm",
+                  title="Bridge jump at the step edge")
+BRIDGE_CI = _ci("bridge_ci95_MOhm", "bridge jump", "MΩ", MOHM)
+TAU1_SOURCE = Quantity("tau1_source", "τ1 from", kind="text")
+TAU1_EXP = Quantity("tau1_exp_ms", "τ1 (exponential fit)", "ms", MS)
+TAU2 = Quantity("tau2_ms", "τ2", "ms", MS)
+TAU0_MODEL = Quantity("tau0_model_ms", "τ0 (ball-and-stick fit)", "ms", MS)
+L_CYL_CI = _ci("L_cyl_ci95", "L (cylinder)")
+RHO_AMPLITUDE = Quantity("rho_amplitude", "ρ from amplitudes", digits=4)
+FIT_START = Quantity("fit_start_ms", "fit start", "ms", MS, 4)
+R_IN_METHOD = Quantity("r_in_method", "R_in from", kind="text")
+VI_R2 = Quantity("vi_r2", "V–I r²", digits=5)
+R_IN_ASYMMETRY = Quantity("r_in_asymmetry", "± step R_in difference", digits=3)
+N_COMPONENTS = Quantity("n_components", "components", kind="int")
+COMPONENTS_REASON = Quantity("components_reason", "components because", kind="text")
+CI_METHOD = Quantity("ci_method", "CIs from", kind="text")
+REF_STEP = Quantity("ref_step_pA", "reference step", "pA", PA, 5)
+C_RATIO = Quantity("c_ratio", "C ratio τ0/R_in : total", digits=4)
+CM = Quantity("cm_uF_per_cm2", "specific Cm", "µF/cm²", 1e-2, 4)   # SI: F/m²
+RM = Quantity("rm_kOhm_cm2", "specific Rm", "kΩ·cm²", 0.1, 4)      # SI: Ω·m²
+
+#: The `cell` object of the JSON contract: these keys always, null when not estimable.
+CELL_CORE = (V_REST, R_IN, TAU0, TAU0_CI, TAU1, TAU1_CI, C0, C1, L_CYL, L_BS, L_CI, RHO,
+             RHO_CI, C_TAU, C_TOTAL, SAG_RATIO, N_SWEEPS_USED)
+CELL_EXTRA = (BRIDGE, BRIDGE_CI, TAU1_SOURCE, TAU1_EXP, TAU2, TAU0_MODEL, L_CYL_CI,
+              RHO_AMPLITUDE, FIT_START, R_IN_METHOD, VI_R2, R_IN_ASYMMETRY, N_COMPONENTS,
+              COMPONENTS_REASON, CI_METHOD, REF_STEP, C_RATIO, CM, RM)
+CELL = CELL_CORE + CELL_EXTRA
+
+# Sweep values (each of `sweeps`), in contract order.
+INDEX = Quantity("index", "#", kind="int")
+ACCEPTED = Quantity("accepted", "accepted", kind="bool")
+REJECT_REASON = Quantity("reject_reason", "status", kind="text")
+STEP = Quantity("step_pA", "step", "pA", PA, 5)
+RMSE = Quantity("rmse_mV", "rmse", "mV", MV)
+FLAGS_KEY = "flags"
+SWEEP = (INDEX, ACCEPTED, REJECT_REASON, STEP, V_REST, R_IN, TAU0, TAU1, TAU2, C0, C1, RMSE,
+         BRIDGE, SAG_RATIO, N_COMPONENTS)
+SWEEP_CORE = (INDEX, ACCEPTED, REJECT_REASON, STEP, V_REST, R_IN, TAU0, TAU1, C0, C1, RMSE)
+
+BY_KEY: dict[str, Quantity] = {q.key: q for q in (*CELL, *SWEEP)}
+
+#: What a physiologist reads first: the command line's table, the window's card and the
+#: report's values table, in this order (CIs shown beside their value).
+SUMMARY = (V_REST, R_IN, TAU0, TAU1, C0, C1, L_CYL, L_BS, RHO, C_TAU, C_TOTAL, SAG_RATIO,
+           BRIDGE)
+#: The per-sweep table of the command line and the window.
+SWEEP_TABLE = (INDEX, STEP, V_REST, R_IN, TAU0, TAU1, RMSE)
+#: Cell values the database keeps in columns of their own.
+COLUMNS = tuple(q for q in CELL if q.column)
+SWEEP_COLUMNS = (STEP, V_REST, R_IN, TAU0, TAU1, C0, C1, RMSE)
+
+
+def unit_of(key: str) -> str:
+    """Display unit of a key or of a sheet column made from one (``tau0_ci95_ms_lo``);
+    "" when unknown or unitless."""
+    for end in ("_lo", "_hi"):
+        if key.endswith(end) and key[: -len(end)] in BY_KEY:
+            key = key[: -len(end)]
+    q = BY_KEY.get(key)
+    if q is not None:
+        return q.unit
+    q = METADATA_BY_KEY.get(key)
+    return q.unit if q is not None else ""
+
+
+# --------------------------------------------------------------------------- metadata
+@dataclass(frozen=True)
+class MetadataKey:
+    """One cell-metadata column (metadata sheet, database, file headers)."""
+
+    key: str
+    label: str
+    unit: str = ""
+    kind: str = "text"      # "text", "number" or "date"
+
+
+CELL_ID = MetadataKey("cell_id", "cell")
+METADATA = (
+    CELL_ID,
+    MetadataKey("date", "date", kind="date"),
+    MetadataKey("preparation", "preparation"),
+    MetadataKey("region", "region"),
+    MetadataKey("cell_type", "cell type"),
+    MetadataKey("temperature_C", "temperature", "°C", "number"),
+    MetadataKey("internal_solution", "internal solution"),
+    MetadataKey("notes", "notes"),
+)
+METADATA_KEYS = tuple(m.key for m in METADATA)
+METADATA_BY_KEY = {m.key: m for m in METADATA}
+
+
+# --------------------------------------------------------------------------- flags
+@dataclass(frozen=True)
+class FlagSpec:
+    """One quality flag code and its words.
+
+    Parameters
+    ----------
+    code : str
+        Stable code, "<where>.<what>".
+    severity : str
+        "info" (a correction was made), "warning" (read with care) or "error" (no value).
+    template : str
+        The message; ``{name}`` fields are filled in by :meth:`make`. A ``{reason}``
+        field takes one of `reasons` by name.
+    reasons : mapping
+        Named variants of the message for one code.
+    """
+
+    code: str
+    severity: str
+    template: str
+    reasons: Mapping[str, str] = field(default_factory=dict)
+
+    def make(self, value: float | None = None, *, reason: str | None = None,
+             **fields) -> Flag:
+        """A flag of this code with its message filled in and the value behind it."""
+        if reason is not None:
+            fields["reason"] = self.reasons[reason].format(**fields)
+        return Flag(self.code, self.template.format(**fields), value)
+
+
+FLAGS: dict[str, FlagSpec] = {}
+
+
+def _flag(code: str, severity: str, template: str, **reasons: str) -> FlagSpec:
+    spec = FlagSpec(code, severity, template, reasons)
+    FLAGS[code] = spec
+    return spec
+
+
+# sweep level
+STEADY_NOT_REACHED = _flag(
+    "steady.not_reached", "warning",
+    "the voltage is still changing in the steady-state window; the fitted asymptote is used "
+    "(fraction of the deflection left)")
+SWEEP_DRIFT = _flag(
+    "sweep.drift", "warning",
+    "the baseline at the end of the sweep differs from the one before the step ({done}) (mV)")
+SWEEP_EVENT = _flag(
+    "sweep.event", "warning",
+    "a spontaneous event or other excursion from the fit (residual in noise units)")
+# cell level
+CELL_NO_SWEEPS = _flag("cell.no_sweeps", "error", "no sweep was accepted; nothing to report")
+CELL_FEW_SWEEPS = _flag(
+    "cell.few_sweeps", "warning",
+    "fewer than 3 sweeps accepted: averages are noisy and no bootstrap CIs (number of sweeps)")
+CELL_NO_STEADY_STATE = _flag(
+    "cell.no_steady_state", "info", "brief pulses reach no steady state: R_in is not measured")
+CELL_SWEEP_SPREAD = _flag(
+    "cell.sweep_spread", "warning",
+    "τ0 of the averaged sweeps differs from the median of the single sweeps (ms)")
+CELL_BRIDGE = _flag(
+    "cell.bridge", "info",
+    "an instantaneous jump at the step edge shows a bridge imbalance; it is {what} R_in (MΩ)")
+CELL_BRIDGE_UNCERTAIN = _flag(
+    "cell.bridge_uncertain", "warning",
+    "the jump at the step edge cannot be told apart from fast charging or noise; R_in is not "
+    "corrected for it (MΩ)")
+CELL_ASYMMETRIC = _flag(
+    "cell.asymmetric", "warning",
+    "depolarizing and hyperpolarizing steps give R_in that differ: the responses are not "
+    "linear (relative difference)")
+CELL_SAG = _flag(
+    "cell.sag", "warning",
+    "the voltage sags back during hyperpolarizing steps (an active, e.g. h-type, "
+    "conductance): the cell is not passive (steady/peak ratio)")
+VI_NONLINEAR = _flag(
+    "vi.nonlinear", "warning",
+    "the V–I relation is not straight over the step range (relative change of slope)")
+FIT_FAILED = _flag("fit.failed", "error", "the fit of the averaged sweeps failed: {problem}")
+FIT_TAU1_UNRESOLVED = _flag(
+    "fit.tau1_unresolved", "warning", "{reason}",
+    one_component="only one exponential component is resolved: no τ1, so no electrotonic "
+                  "length",
+    too_fast="τ1 is shorter than 3 sampling intervals: not resolved (ms)",
+    wide_ci="the 95 % CI of τ1 is wider than τ1 itself: not resolved (ms)")
+FIT_TAU1_DRIFT = _flag(
+    "fit.tau1_drift", "warning",
+    "τ1 still changes when the fit starts 1 ms later: early artefact or unresolved faster "
+    "components (relative change)")
+FIT_ONSET_OFFSET = _flag(
+    "fit.onset_offset", "warning",
+    "τ0 of the charging and of the decay transient disagree (relative difference)")
+FIT_RESIDUAL_STRUCTURE = _flag(
+    "fit.residual_structure", "warning",
+    "the residuals keep their sign too long: the model misses part of the transient "
+    "(runs-test z)")
+CABLE_FIT_FAILED = _flag(
+    "cable.fit_failed", "warning", "{reason}",
+    failed="the ball-and-stick fit failed: {problem}",
+    not_converged="the ball-and-stick fit did not converge: {problem}")
+CABLE_L_UNRESOLVED = _flag(
+    "cable.L_bs_unresolved", "warning",
+    "the 95 % CI of L_bs is wider than the value itself: not resolved")
+CABLE_RHO_UNRESOLVED = _flag(
+    "cable.rho_unresolved", "warning",
+    "the 95 % CI of rho is wider than the value itself: not resolved")
+CABLE_RHO_MISMATCH = _flag(
+    "cable.rho_mismatch", "warning", "{reason}",
+    disagree="ρ from the amplitudes and ρ from the time course disagree by more than 2×: the "
+             "cell is not a uniform ball-and-stick (ρ from amplitudes)",
+    no_value="{problem}")
+CABLE_TAU2_RATIO = _flag(
+    "cable.tau2_ratio", "warning",
+    "(tau0/tau2 - 1)/(tau0/tau1 - 1) = {x:.2f} is outside 4-9, the range of a uniform "
+    "ball-and-stick: tau1 or tau2 is unreliable, or the cell is not uniform")
+CABLE_SHUNT_SUSPECTED = _flag(
+    "cable.shunt_suspected", "warning",
+    "{reason}: not a uniform passive cell (somatic shunt or non-uniform membrane?)",
+    pulse="pulse C1/C0 = {x:.3f} exceeds 2",
+    step="step B1/B0 = {x:.3f} exceeds 2*tau1/tau0 = {limit:.3f}")
+CABLE_L_RANGE = _flag(
+    "cable.L_range", "warning",
+    "L = {x:.3g} is outside 0.1-3, unusual for a neuron: check tau1")
+CABLE_RHO_RANGE = _flag(
+    "cable.rho_range", "warning",
+    "rho = {x:.3g} is outside 0.1-100, unusual for a neuron: check the amplitude ratio")
+
+#: core.cable.implausible() check names → flag codes.
+PLAUSIBILITY = {"tau2_ratio": CABLE_TAU2_RATIO, "shunt_pulse": CABLE_SHUNT_SUSPECTED,
+                "shunt_step": CABLE_SHUNT_SUSPECTED, "L_range": CABLE_L_RANGE,
+                "rho_range": CABLE_RHO_RANGE}
+
+
+def flags_markdown() -> str:
+    """The README's table of flag codes (a test keeps the README equal to it)."""
+    rows = ["| code | severity | what it says |", "|---|---|---|"]
+    for spec in FLAGS.values():
+        words = " / ".join(spec.reasons.values()) if spec.reasons else spec.template
+        words = words.replace("{reason}", "…").replace("|", "\\|")
+        for field_name in ("done", "what", "problem", "limit"):
+            words = words.replace("{" + field_name + "}", "…")
+        for fmt in ("{x:.2f}", "{x:.3f}", "{x:.3g}", "{limit:.3f}"):
+            words = words.replace(fmt, "x")
+        rows.append(f"| `{spec.code}` | {spec.severity} | {words} |")
+    return "\n".join(rows) + "\n"
