@@ -18,8 +18,6 @@ import math
 
 import numpy as np
 
-from passivefit.core.qc import Flag
-
 __all__ = [
     "CableFitError",
     "ballstick_alphas",
@@ -32,7 +30,7 @@ __all__ = [
     "cylinder_L_ci",
     "estimate_ballstick",
     "estimate_ballstick_ci",
-    "plausibility_flags",
+    "implausible",
     "pulse_ratio",
     "pulse_ratios",
     "pulse_ratios_from_alphas",
@@ -493,7 +491,7 @@ def _valid(*values: float | None) -> bool:
     return all(v is not None and math.isfinite(v) and v > 0 for v in values)
 
 
-def plausibility_flags(
+def implausible(
     *,
     tau0: float | None = None,
     tau1: float | None = None,
@@ -502,71 +500,36 @@ def plausibility_flags(
     b1_over_b0: float | None = None,
     L: float | None = None,
     rho: float | None = None,
-) -> list[Flag]:
-    """Warnings about cable estimates that a uniform passive ball-and-stick cannot produce.
+) -> list[tuple[str, float, dict]]:
+    """Cable estimates that a uniform passive ball-and-stick cannot produce.
 
     Checks (each only when its inputs are given and finite): the tau2 ratio
     (tau0/tau2 - 1)/(tau0/tau1 - 1) within [4, 9]; brief-pulse C1/C0 <= 2 and step
-    B1/B0 <= 2*tau1/tau0 (REFERENCES.md §2, signs of a shunt); L within 0.1–3 and rho
-    within 0.1–100 (REFERENCES.md §7 ranges, common practice).
+    B1/B0 <= 2*tau1/tau0 (REFERENCES.md §2, signs of a shunt); L within 0.1–3 and
+    rho within 0.1–100 (REFERENCES.md §7 ranges, common practice).
 
     Returns
     -------
-    list of Flag
-        Codes "cable.tau2_ratio", "cable.shunt_suspected", "cable.L_range",
-        "cable.rho_range".
+    list of (check, value, extra)
+        The checks that failed: "tau2_ratio", "shunt_pulse", "shunt_step" (extra
+        ``limit`` = 2*tau1/tau0), "L_range", "rho_range", each with the value tested.
     """
-    flags: list[Flag] = []
+    out: list[tuple[str, float, dict]] = []
     if _valid(tau0, tau1, tau2) and tau2 < tau1 < tau0:
         q = (tau0 / tau2 - 1.0) / (tau0 / tau1 - 1.0)
         if not 4.0 <= q <= 9.0:
-            flags.append(
-                Flag(
-                    "cable.tau2_ratio",
-                    f"(tau0/tau2 - 1)/(tau0/tau1 - 1) = {q:.2f} is outside 4-9, the range of "
-                    "a uniform ball-and-stick: tau1 or tau2 is unreliable, or the cell is "
-                    "not uniform",
-                    q,
-                )
-            )
-    shunt = "not a uniform passive cell (somatic shunt or non-uniform membrane?)"
+            out.append(("tau2_ratio", q, {}))
     if c1_over_c0 is not None and math.isfinite(c1_over_c0) and c1_over_c0 > 2.0:
-        flags.append(
-            Flag(
-                "cable.shunt_suspected",
-                f"pulse C1/C0 = {c1_over_c0:.3f} exceeds 2: {shunt}",
-                c1_over_c0,
-            )
-        )
+        out.append(("shunt_pulse", c1_over_c0, {}))
     if (
         b1_over_b0 is not None
         and math.isfinite(b1_over_b0)
         and _valid(tau0, tau1)
         and b1_over_b0 > 2.0 * tau1 / tau0
     ):
-        flags.append(
-            Flag(
-                "cable.shunt_suspected",
-                f"step B1/B0 = {b1_over_b0:.3f} exceeds 2*tau1/tau0 = "
-                f"{2.0 * tau1 / tau0:.3f}: {shunt}",
-                b1_over_b0,
-            )
-        )
+        out.append(("shunt_step", b1_over_b0, {"limit": 2.0 * tau1 / tau0}))
     if L is not None and math.isfinite(L) and not 0.1 <= L <= 3.0:
-        flags.append(
-            Flag(
-                "cable.L_range",
-                f"L = {L:.3g} is outside 0.1-3, unusual for a neuron: check tau1",
-                L,
-            )
-        )
+        out.append(("L_range", L, {}))
     if rho is not None and math.isfinite(rho) and not 0.1 <= rho <= 100.0:
-        flags.append(
-            Flag(
-                "cable.rho_range",
-                f"rho = {rho:.3g} is outside 0.1-100, unusual for a neuron: check "
-                "the amplitude ratio",
-                rho,
-            )
-        )
-    return flags
+        out.append(("rho_range", rho, {}))
+    return out

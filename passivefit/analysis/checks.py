@@ -1,0 +1,112 @@
+"""Cell-level measurements and checks that read the fitted sweeps: R_in from the V–I
+relation, sag, and the quality checks of the cell fit. Each returns new values (SI,
+keyed by schema quantity) and flags; nothing is changed in place."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+
+from passivefit.analysis.fits import FIT_ERRORS, fit_average, residual
+from passivefit.core import steady
+from passivefit.core.qc import Flag, runs_test_z
+from passivefit.model import schema as S
+from passivefit.model.results import GroupAverage, SweepFit
+
+MS = 1e-3
+
+
+def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag]]:
+    """R_in from the V–I slope (≥ 3 amplitudes) or the mean step; (values, V–I, flags)."""
+    pts = [(f.step.amplitude_A, f.dv_ss_V) for f in used if f.dv_ss_V is not None]
+    if not pts:
+        return {}, None, [S.CELL_NO_STEADY_STATE.make()]
+    values: dict = {}
+    flags: list[Flag] = []
+    i, dv = (np.array(x) for x in zip(*pts, strict=True))
+    fitline = steady.vi_slope(i, dv)
+    vi = {"current_A": i, "dv_V": dv, "slope": fitline}
+    if fitline is not None:
+        values[S.R_IN] = fitline.slope_ohm
+        values[S.R_IN_METHOD] = "V-I slope"
+        values[S.VI_R2] = fitline.r2
+        if fitline.r2 < 0.98 or fitline.curvature > 0.15:
+            flags.append(S.VI_NONLINEAR.make(fitline.curvature))
+    else:
+        values[S.R_IN] = np.sum(dv * i) / np.sum(i * i)
+        values[S.R_IN_METHOD] = "mean step"
+    neg, pos = dv[i < 0] / i[i < 0], dv[i > 0] / i[i > 0]
+    if neg.size and pos.size:
+        asym = abs(neg.mean() - pos.mean()) / abs(np.mean(dv / i))
+        values[S.R_IN_ASYMMETRY] = asym
+        if asym > 0.1:
+            flags.append(S.CELL_ASYMMETRIC.make(asym))
+    return values, vi, flags
+
+
+def sag(used: list[SweepFit]) -> tuple[dict, list[Flag]]:
+    """Sag ratio (steady/peak) of the largest hyperpolarizing step."""
+    hyper = [f for f in used if f.sag is not None and f.step.amplitude_A < 0]
+    if not hyper:
+        return {}, []
+    most = min(f.step.amplitude_A for f in hyper)
+    ratio = float(np.mean([f.sag for f in hyper if f.step.amplitude_A == most]))
+    flags = [S.CELL_SAG.make(ratio)] if ratio < 0.95 else []
+    return {S.SAG_RATIO: ratio}, flags
+
+
+def sweep_spread(used: list[SweepFit], fit) -> list[Flag]:
+    """τ0 of the combined sweeps against the median of the single sweeps."""
+    per_sweep = [f.tau(0) for f in used if f.tau(0) is not None]
+    if len(per_sweep) < 3:
+        return []
+    spread = np.std(per_sweep, ddof=1) / np.sqrt(len(per_sweep))
+    gap = abs(np.median(per_sweep) - fit.taus[0])
+    if gap > max(3 * spread, 0.05 * fit.taus[0]):
+        return [S.CELL_SWEEP_SPREAD.make(gap / MS)]
+    return []
+
+
+def residual_structure(fit, avg: GroupAverage, fs: float) -> list[Flag]:
+    """Runs test on 0.5-ms bin means of the residuals (bins make filtered noise independent)."""
+    width = max(1, int(0.5e-3 * fs))
+    resid = []
+    for seg in avg.segments:
+        r = residual(avg.v_V, fit, seg, fs)[1]
+        m = r.size // width * width
+        resid.append(r[:m].reshape(-1, width).mean(axis=1))
+    z = runs_test_z(np.concatenate(resid)) if resid else 0.0
+    return [S.FIT_RESIDUAL_STRUCTURE.make(z)] if z < -4 else []
+
+
+def onset_offset(g: GroupAverage, fs: float, fit) -> list[Flag]:
+    """Compare τ0 of the charging and the decay transient fitted apart."""
+    if g.step.kind != "step" or len(g.segments) < 2:
+        return []
+    n = len(fit.taus)
+    taus = []
+    for name in ("fit", "fit_off"):
+        other = "fit_off" if name == "fit" else "fit"
+        wins = {k: v for k, v in g.windows_s.items() if k != other}
+        try:
+            part, _ = fit_average(replace(g, windows_s=wins), fs, str(n), fit.taus)
+            taus.append((part.taus[0], part.tau_ci95[0]))
+        except FIT_ERRORS:
+            return []
+    (t_on, ci_on), (t_off, ci_off) = taus
+    diff = abs(t_on - t_off) / fit.taus[0]
+    if diff > 0.1 and abs(t_on - t_off) > np.hypot(ci_on, ci_off):
+        return [S.FIT_ONSET_OFFSET.make(diff)]
+    return []
+
+
+def scan_drift(scan: dict) -> list[Flag]:
+    """τ1 of the fit-start scan should not move when the fit starts 1 ms later."""
+    tau1 = scan["tau1_s"]
+    later = np.flatnonzero(scan["start_s"] - scan["start_s"][0] >= 1e-3)
+    if later.size and np.isfinite(tau1[0]) and np.isfinite(tau1[later[0]]):
+        drift = (tau1[later[0]] - tau1[0]) / tau1[0]
+        if abs(drift) > 0.1:
+            return [S.FIT_TAU1_DRIFT.make(drift)]
+    return []

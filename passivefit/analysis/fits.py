@@ -1,0 +1,109 @@
+"""Exponential fits of the transients: segments, the fit itself, residuals, the scan.
+
+A fit takes the charging transient of a step and the decay after it (or a pulse's
+decay) as segments with shared time constants (core.expfit, variable projection).
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+
+from passivefit.analysis.windows import span
+from passivefit.core.steps import Step
+from passivefit.model.results import GroupAverage, Segment
+
+KEEP_FULL_S, BIN_FACTOR = 5e-3, 1.05  # fit samples at full rate up to 5 ms, then 5 % bins
+FIT_ERRORS = (ValueError, np.linalg.LinAlgError, RuntimeError)
+
+
+def fit_segments(v: np.ndarray, fs: float, step: Step, wins: dict):
+    """Fit segments (t from their edge, y) and their drawing records."""
+    from passivefit.core.expfit import Segment as FitSegment
+    from passivefit.core.expfit import decimate_tail
+
+
+    segs, records = [], []
+    edges = {"fit": step.onset_s, "fit_off": step.offset_s}
+    for name in ("fit", "fit_off"):
+        if name not in wins:
+            continue
+        a, b = span(wins[name], fs, v.size)
+        if b - a < 20:
+            continue
+        t = np.arange(a, b) / fs - edges[name]
+        segs.append(FitSegment(*decimate_tail(t, v[a:b], KEEP_FULL_S, BIN_FACTOR)))
+        records.append(Segment(edges[name], a / fs, (b - 1) / fs, len(records),
+                               charging=name == "fit"))
+    return segs, tuple(records)
+
+
+def fit_exponentials(segs, components: str, tau_init=None, max_components: int = 3,
+                     choice: dict | None = None):
+    """Fit 1–3 exponentials; with "auto", the chooser's record goes into `choice`."""
+    from passivefit.core import expfit
+
+    if components == "auto":
+        fit, record = expfit.fit_auto(segs, max_components=max_components, tau_init=tau_init)
+        if choice is not None:
+            choice.update(record)
+        return fit
+    return expfit.fit_exponentials(segs, int(components), tau_init=tau_init)
+
+
+def response_amplitudes(fit, segment: int, kind: str) -> tuple[float, ...]:
+    """Component amplitudes at the edge, signed in the direction of the response.
+
+    Charging: V(t) = V∞ − Σ c_n e^(−t/τn); decay: V(t) = V_base + Σ c_n e^(−t/τn).
+    """
+    a = np.asarray(fit.amplitudes[segment], dtype=float)
+    return tuple(float(x) for x in (-a if kind == "step" else a))
+
+
+def onset_amplitudes(fit, g: GroupAverage) -> tuple[float, ...]:
+    """Response-direction amplitudes of the group's first transient (charging, or decay)."""
+    return response_amplitudes(fit, g.segments[0].index, g.step.kind)
+
+
+def residual(v: np.ndarray, fit, seg: Segment, fs: float) -> tuple[np.ndarray, np.ndarray]:
+    """(sample times in s, data − model in V) over one fitted segment at full resolution."""
+    samples = seg.samples(fs)
+    t = np.arange(samples.start, samples.stop) / fs
+    return t, v[samples] - fit.evaluate(seg.index, t - seg.edge_s)
+
+
+def fit_average(g: GroupAverage, fs: float, components: str, tau_init=None,
+                choice: dict | None = None):
+    """Fit the combined response's transients with shared time constants.
+
+    Returns the fit and `g` with its segment records filled in; `choice` receives the
+    record of how many components were chosen and why ("auto").
+    """
+    segs, records = fit_segments(g.v_V, fs, g.step, g.windows_s)
+    if not segs:
+        raise ValueError("no fit window holds enough samples")
+    return (fit_exponentials(segs, components, tau_init, choice=choice),
+            replace(g, segments=records))
+
+
+def fit_start_scan(g: GroupAverage, fs: float, n_components: int, tau_init,
+                   n_starts: int = 10, span_s: float = 4e-3) -> dict:
+    """τ0 and τ1 refitted from a series of later fit starts (for the plateau check)."""
+    edges = {"fit": g.step.onset_s, "fit_off": g.step.offset_s}  # as in fit_segments
+    starts = g.fit_start_s + np.linspace(0.0, span_s, n_starts)
+    rows = []
+    for s0 in starts:
+        wins = dict(g.windows_s)
+        for name in edges.keys() & wins.keys():
+            wins[name] = (edges[name] + s0, wins[name][1])
+        try:
+            fit, _ = fit_average(replace(g, windows_s=wins), fs, str(n_components), tau_init)
+            taus = list(fit.taus) + [np.nan] * 2
+            ci = list(fit.tau_ci95) + [np.nan] * 2
+            rows.append((s0, taus[0], ci[0], taus[1], ci[1]))
+        except FIT_ERRORS:
+            rows.append((s0, np.nan, np.nan, np.nan, np.nan))
+    a = np.array(rows)
+    return {"start_s": a[:, 0], "tau0_s": a[:, 1], "tau0_ci95_s": a[:, 2],
+            "tau1_s": a[:, 3], "tau1_ci95_s": a[:, 4]}

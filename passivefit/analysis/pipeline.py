@@ -1,0 +1,288 @@
+"""`analyze()`: Recording + Settings → RecordingResult, stage by stage, top to bottom.
+
+1. steps: each sweep's step (windows.sweep_steps);
+2. first look: the accepted sweeps combined and fitted once, for the fit start after
+   0.8 τ1 and start values (pool.first_look);
+3. sweeps: each sweep fitted and tested (sweep.analyze_sweep), outliers rejected, the
+   person's decisions applied;
+4. cell: the accepted sweeps combined (pool), the exponential fit, the ball-and-stick
+   fit (cable), bootstrap CIs (uncertainty), bridge, R_in and sag, time constants,
+   checks, cable values (summarize_cell).
+
+Every stage returns new values; the cell's values are SI, keyed by schema quantity, and
+become display units only in `CellResult.to_dict()`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from passivefit.analysis import checks
+from passivefit.analysis.cable import (
+    bessel_delay_s,
+    bridge_of,
+    cable_init,
+    cable_values,
+    fit_cable,
+    model_tau1_ci,
+)
+from passivefit.analysis.fits import FIT_ERRORS, fit_average, fit_start_scan, onset_amplitudes
+from passivefit.analysis.pool import average_of, first_look, sweep_pool
+from passivefit.analysis.sweep import (
+    analyze_sweep,
+    apply_decisions,
+    baseline_only,
+    reject_outliers,
+    with_bridge_removed,
+)
+from passivefit.analysis.uncertainty import CableContext, bootstrap, halfwidth
+from passivefit.analysis.windows import span, sweep_steps
+from passivefit.core.qc import Flag
+from passivefit.io.recording import LoadError, Recording
+from passivefit.model import schema as S
+from passivefit.model.results import CellResult, GroupAverage, RecordingResult, SweepFit
+from passivefit.model.settings import Settings
+
+MS, MOHM = 1e-3, 1e6
+
+
+def analyze(recording: Recording, settings: Settings | None = None) -> RecordingResult:
+    """Fit every sweep and the cell; the one entry point for CLI, GUI, batch and tests."""
+    settings = settings or Settings()
+    fs = recording.sample_rate_hz
+    steps = sweep_steps(recording, settings)
+    chosen = [(s, st) for s, st in zip(recording.sweeps, steps, strict=True)
+              if settings.sweeps is None or s.index in settings.sweeps]
+    if not chosen:
+        raise LoadError(recording.path, f"none of the sweeps {list(settings.sweeps or [])} exist; "
+                        f"the file has sweeps 0-{len(recording.sweeps) - 1}")
+    voltages = {s.index: s.voltage for s, _ in chosen}
+
+    screened = [baseline_only(s.voltage, st, s.index, fs, settings) for s, st in chosen]
+    start, tau_init = first_look(screened, voltages, fs, settings)
+    effective = settings if start is None else replace(settings, fit_start_ms=start / MS)
+    fits = [analyze_sweep(s.voltage, st, s.index, fs, effective, tau_init) for s, st in chosen]
+    fits = apply_decisions(reject_outliers(fits), effective)
+    delay = bessel_delay_s(settings.filter_hz or _metadata_float(recording, "filter_hz"))
+    cell = summarize_cell(fits, voltages, fs, effective, settings, delay)
+    return RecordingResult(
+        source={"path": recording.path, "sha256": recording.sha256, "format": recording.format,
+                "sweep_count": len(recording.sweeps)},
+        settings=settings, sweeps=cell.sweeps, cell=CellResult.from_si(cell.values),
+        flags=tuple(cell.flags), effective_settings=effective, protocol=cell.protocol,
+        average=cell.average, cable_fit=cell.cable_fit, cell_fit=cell.cell_fit,
+        peel=cell.peel, scan=cell.scan, vi=cell.vi)
+
+
+def _metadata_float(recording: Recording, key: str) -> float | None:
+    try:
+        value = float(recording.metadata.get(key))
+    except (TypeError, ValueError):
+        return None
+    return value if np.isfinite(value) and value > 0 else None
+
+
+@dataclass
+class CellSummary:
+    """The cell stage's output: SI values by quantity, flags, sweeps (with the bridge
+    taken out where it was), and the arrays behind the values for drawing."""
+
+    sweeps: tuple[SweepFit, ...]
+    values: dict = field(default_factory=dict)
+    flags: list[Flag] = field(default_factory=list)
+    protocol: str = "step"
+    average: GroupAverage | None = None
+    cell_fit: object | None = None
+    cable_fit: object | None = None
+    peel: object | None = None
+    scan: dict | None = None
+    vi: dict | None = None
+
+
+def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
+                   settings: Settings, asked: Settings | None = None,
+                   delay_s: float = 0.0) -> CellSummary:
+    """Cell-level values from the accepted sweeps.
+
+    `settings` hold the fit start used for the exponential fits; the cable-model fit
+    starts where the person `asked` (default: after the artefact) and shifts time zero
+    by the filter delay `delay_s`.
+    """
+    used = [f for f in fits if f.accepted]
+    out = CellSummary(tuple(fits), {S.N_SWEEPS_USED: len(used)},
+                      protocol=used[0].step.kind if used else "step")
+    if not used:
+        out.flags.append(S.CELL_NO_SWEEPS.make())
+        return out
+    if len(used) < 3:
+        out.flags.append(S.CELL_FEW_SWEEPS.make(len(used)))
+    out.values[S.V_REST] = np.mean([f.v_rest_V for f in used])
+
+    pool = sweep_pool(fits, voltages)
+    avg = average_of(pool, pool.combine(), fs, settings)
+    choice: dict = {}
+    try:
+        fit, avg = fit_average(avg, fs, settings.components, choice=choice)
+        if not fit.success:
+            raise ValueError(fit.message)
+    except FIT_ERRORS as exc:
+        out.flags.append(S.FIT_FAILED.make(problem=exc))
+        fit = None
+    out.values[S.COMPONENTS_REASON] = choice.get("reason", f"set to {settings.components}")
+    avg_cable = average_of(pool, avg.v_V, fs, asked or settings)
+    bs = None
+    if fit is not None:
+        bs, problem = fit_cable(avg_cable, fs, cable_init(fit, pool.step), delay_s)
+        out.flags.extend([problem] if problem else [])
+    out.average, out.cable_fit, out.cell_fit = avg, bs, fit
+    out.values[S.FIT_START] = avg.fit_start_s
+    boot = None
+    if fit is not None and settings.bootstrap and len(pool.indices) >= 3:
+        cable = None if bs is None else CableContext(avg_cable, bs, delay_s)
+        boot = bootstrap(pool, avg, fs, fit, settings.bootstrap, cable)
+    out.values[S.CI_METHOD] = "bootstrap over sweeps" if boot is not None else "fit covariance"
+    cis = _cable_cis(bs, boot)
+
+    values, flags, fits = _bridge_correction(fits, fit, bs, avg, boot, cis, settings)
+    out.values.update(values)
+    out.flags.extend(flags)
+    out.sweeps = tuple(fits)
+    used = [f for f in fits if f.accepted]
+    values, out.vi, flags = checks.input_resistance(used)
+    out.values.update(values)
+    out.flags.extend(flags)
+    values, flags = checks.sag(used)
+    out.values.update(values)
+    out.flags.extend(flags)
+    if fit is None:
+        return out
+
+    values, flags = _time_constants(fit, bs, avg, boot, fs)
+    out.values.update(values)
+    out.flags.extend(flags)
+    tau1 = values.get(S.TAU1)
+    out.flags.extend(checks.sweep_spread(used, fit))
+    out.flags.extend(checks.residual_structure(fit, avg, fs))
+    out.flags.extend(checks.onset_offset(avg, fs, fit))
+    out.scan = fit_start_scan(avg, fs, len(fit.taus), fit.taus)
+    if tau1 is not None:
+        out.flags.extend(checks.scan_drift(out.scan))
+    out.peel = _peel(avg, avg_cable, fs, fit)
+    r_in = out.values.get(S.R_IN)
+    values, flags = cable_values(fit, bs, avg, r_in if r_in and r_in > 0 else None, tau1, cis,
+                                 _L_cyl_samples(boot, bs is not None))
+    out.values.update(values)
+    out.flags.extend(flags)
+    if settings.area_um2 and out.values.get(S.C_TOTAL):
+        from passivefit.core import cable
+
+        cm, rm = cable.specific_membrane(out.values[S.C_TOTAL], float(fit.taus[0]),
+                                         settings.area_um2 * 1e-12)
+        out.values[S.CM], out.values[S.RM] = cm, rm
+    return out
+
+
+def _cable_cis(bs, boot: dict | None) -> dict[str, float | None]:
+    """95 % CI half-widths of L and ρ: the larger of the bootstrap (few resamples) and the
+    fit-covariance ones; None without a cable fit."""
+    if bs is None:
+        return {S.L_BS.key: None, S.RHO.key: None}
+    return {S.L_BS.key: max(halfwidth(boot, "L") or 0.0, bs.L_ci95),
+            S.RHO.key: max(halfwidth(boot, "rho") or 0.0, bs.rho_ci95)}
+
+
+def _L_cyl_samples(boot: dict | None, cable: bool) -> np.ndarray | None:
+    """L_cyl of every bootstrap resample (its τ1 from the cable fit when there is one)."""
+    from passivefit.core import cable as cable_theory
+
+    if boot is None:
+        return None
+    pairs = zip(boot["tau0"], boot["tau1_model" if cable else "tau1"], strict=True)
+    return np.array([cable_theory.cylinder_L(t0, t1) if 0 < t1 < t0 else np.nan
+                     for t0, t1 in pairs])
+
+
+def _bridge_correction(fits: list[SweepFit], fit, bs, avg: GroupAverage, boot: dict | None,
+                       cis: dict, settings: Settings
+                       ) -> tuple[dict, list[Flag], list[SweepFit]]:
+    """The bridge jump and, when it is real, the sweeps with it taken out of their R_in.
+
+    It is subtracted only when the exponential fit shows a second component, the
+    ball-and-stick fit resolves L, and the jump is larger than its own 95 % CI from the
+    bootstrap over sweeps (no bootstrap, no correction): an unresolved cable model cannot
+    tell a bridge error from fast dendritic charging or noise.
+    """
+    bridge = bridge_of(bs, avg)
+    values: dict = {S.BRIDGE: bridge}
+    if bridge is None:
+        return values, [], fits
+    ci = halfwidth(boot, "bridge")
+    values[S.BRIDGE_CI] = ci
+    n_taus = len(fit.taus) if fit is not None else 0
+    resolved = ci is not None and n_taus >= 2 and cis[S.L_BS.key] < bs.L and abs(bridge) > ci
+    if not resolved:
+        flags = ([S.CELL_BRIDGE_UNCERTAIN.make(bridge / MOHM)] if abs(bridge) > 5 * MOHM
+                 else [])
+        return values, flags, fits
+    flags = []
+    if abs(bridge) > 5 * MOHM:
+        what = "subtracted from" if settings.correct_bridge else "left in"
+        flags.append(S.CELL_BRIDGE.make(bridge / MOHM, what=what))
+    if settings.correct_bridge:
+        fits = [with_bridge_removed(f, bridge) for f in fits]
+    return values, flags, fits
+
+
+def _time_constants(fit, bs, avg: GroupAverage, boot: dict | None, fs: float
+                    ) -> tuple[dict, list[Flag]]:
+    """τ0, τ1 (τ2) with CIs and the component amplitudes of the reference step."""
+    n = len(fit.taus)
+    hw = halfwidth(boot, "tau0")
+    amps = onset_amplitudes(fit, avg)
+    values: dict = {S.N_COMPONENTS: n, S.TAU0: fit.taus[0],
+                    S.TAU0_CI: hw if hw is not None else fit.tau_ci95[0],
+                    S.C0: amps[0], S.REF_STEP: avg.amplitude_A}
+    if n >= 2:
+        values[S.C1] = amps[1]
+        values[S.TAU1_EXP] = fit.taus[1]
+    if n >= 3:
+        values[S.TAU2] = fit.taus[2]
+    if n < 2:  # the data show no second component: no τ1 from any model
+        return values, [S.FIT_TAU1_UNRESOLVED.make(reason="one_component")]
+    if bs is not None:
+        # the ball-and-stick fit uses the early transient with every equalizing mode in it,
+        # so its τ1 is far more precise than two free exponentials fitted late enough to be
+        # free of τ2, τ3 … (benchmarks/bench_cell.py)
+        values[S.TAU1_SOURCE] = "ball-and-stick fit"
+        tau1, tau1_ci = float(bs.taus_s[1]), max(halfwidth(boot, "tau1_model") or 0.0,
+                                                  model_tau1_ci(bs))
+    else:
+        values[S.TAU1_SOURCE] = "exponential fit"
+        hw = halfwidth(boot, "tau1")
+        tau1, tau1_ci = float(fit.taus[1]), hw if hw is not None else float(fit.tau_ci95[1])
+    if tau1 < 3 / fs:
+        return values, [S.FIT_TAU1_UNRESOLVED.make(tau1 / MS, reason="too_fast")]
+    if tau1_ci is None or not np.isfinite(tau1_ci) or tau1_ci > tau1:
+        return values, [S.FIT_TAU1_UNRESOLVED.make(tau1 / MS, reason="wide_ci")]
+    values[S.TAU1], values[S.TAU1_CI] = tau1, tau1_ci
+    return values, []
+
+
+def _peel(g: GroupAverage, early: GroupAverage, fs: float, fit):
+    """Automated peel of the first transient, from the early (artefact-end) fit start so
+    the fast components are in view; its asymptote from the exponential fit."""
+    from passivefit.core import peel
+
+    seg = g.segments[0]
+    name = "fit" if g.step.kind == "step" else "fit_off"
+    a, b = span(early.windows_s[name], fs, g.v_V.size)
+    t = np.arange(a, b) / fs - seg.edge_s
+    try:
+        # the first line from 10 % of its span, ending 5 noise sds above the floor: the log
+        # of a remainder near the noise is biased, which tilts τ0 and then spoils τ1
+        return peel.peel(t, g.v_V[a:b], float(fit.offsets[seg.index]),
+                         n_components=max(2, len(fit.taus)), snr=5.0, late_start=0.1)
+    except (ValueError, np.linalg.LinAlgError):
+        return None

@@ -1,0 +1,106 @@
+"""The accepted sweeps combined into one response, and the first look at it.
+
+Under linearity sweep k is base_k + I_k·h(t); the least-squares h over a set of sweeps
+is Σ I_k (v_k − base_k) / Σ I_k². The combined response is shown and fitted as
+base + I_ref·h, scaled to the reference step I_ref (the largest hyperpolarizing step,
+else the largest step).
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+from passivefit.analysis.fits import FIT_ERRORS, fit_average
+from passivefit.analysis.windows import MIN_FIT_START_S, artefact_end_s, resolve_windows, span
+from passivefit.core import steady
+from passivefit.core.steps import Step
+from passivefit.model.results import GroupAverage, SweepFit
+from passivefit.model.settings import Settings
+
+MS = 1e-3
+
+#: The fit starts this many τ1 after the edge, where τ2, τ3 … have decayed enough that two
+#: exponentials describe the transient: bias of τ1 ≈ −1.4 % at 0.78 τ1 for a ball-and-stick
+#: with L = 1, ρ = 5 behind a 5 kHz Bessel filter (noiseless, benchmarks/bench_fit.py).
+START_TAU1 = 0.8
+
+
+@dataclass(frozen=True)
+class SweepPool:
+    """Accepted sweeps of one step timing, ready to be combined (and resampled)."""
+
+    step: Step                  # timing of the pool, with amplitude I_ref
+    indices: tuple[int, ...]
+    currents: np.ndarray        # A, per sweep
+    deflections: np.ndarray     # V, per sweep × sample, baseline removed
+    base: float                 # V, mean baseline
+
+    def combine(self, pick: np.ndarray | None = None) -> np.ndarray:
+        """The combined response (V) of all sweeps, or of the sweeps at positions `pick`."""
+        i = self.currents if pick is None else self.currents[pick]
+        d = self.deflections if pick is None else self.deflections[pick]
+        return self.base + self.step.amplitude_A * (i @ d) / (i @ i)
+
+
+def sweep_pool(fits: list[SweepFit], voltages: dict[int, np.ndarray]) -> SweepPool | None:
+    """The accepted sweeps of the most common step timing; None without any."""
+    used = [f for f in fits if f.accepted and f.step is not None]
+    if not used:
+        return None
+
+    def timing(f: SweepFit) -> tuple:
+        return (f.step.onset, f.step.offset, voltages[f.index].size)
+
+    common = Counter(timing(f) for f in used).most_common(1)[0][0]
+    members = [f for f in used if timing(f) == common]
+    currents = np.array([f.step.amplitude_A for f in members])
+    bases = np.array([f.v_rest_V for f in members])
+    deflections = np.stack([f.corrected(voltages[f.index], members[0].step.sample_rate_hz)
+                            for f in members]) - bases[:, None]
+    i_ref = currents.min() if np.any(currents < 0) else currents.max()
+    return SweepPool(replace(members[0].step, amplitude_A=float(i_ref)),
+                     tuple(f.index for f in members), currents, deflections, float(bases.mean()))
+
+
+def average_of(pool: SweepPool, v: np.ndarray, fs: float, settings: Settings) -> GroupAverage:
+    """The combined response `v` of `pool` with its windows; the fit starts as set, else
+    after the artefact of the first fitted edge."""
+    step = pool.step
+    w = settings.windows
+    guess = resolve_windows(step, v.size, fs, w, MIN_FIT_START_S)
+    b0, b1 = span(guess["baseline"], fs, v.size)
+    v_base = steady.robust_level(v[b0:b1])
+    if settings.fit_start_ms is not None:
+        start = settings.fit_start_ms * MS
+    else:
+        edge = step.onset if step.kind == "step" else step.offset
+        start = artefact_end_s(v, edge, fs, steady.noise_sd(v[b0:b1]))
+    wins = resolve_windows(step, v.size, fs, w, start)
+    return GroupAverage(step, pool.indices, v, v_base, wins)
+
+
+def first_look(screened: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
+               settings: Settings) -> tuple[float | None, tuple[float, ...] | None]:
+    """Fit start (s after the edge, None = as set) and start values for the sweep fits.
+
+    A first fit of all sweeps combined, from the end of the artefact, gives τ1; for steps
+    the automatic start moves to START_TAU1·τ1 when that is later (capped at 5 ms).
+    """
+    pool = sweep_pool(screened, voltages)
+    if pool is None:
+        return None, None
+    avg = average_of(pool, pool.combine(), fs, settings)
+    try:
+        fit, avg = fit_average(avg, fs, settings.components)
+    except FIT_ERRORS:
+        return None, None
+    if not fit.success:
+        return None, None
+    taus = tuple(float(t) for t in fit.taus)
+    if settings.fit_start_ms is not None or pool.step.kind == "pulse" or len(taus) < 2:
+        return None, taus  # pulses weight τ1 strongly: fit from the artefact on
+    artefact = avg.fit_start_s
+    return float(np.clip(START_TAU1 * taus[1], artefact, 5e-3)), taus

@@ -1,0 +1,224 @@
+"""One sweep: baseline, drift, steady state, R_in, sag, the fitted transients, and the
+tests that reject it (action potential, event, drift, failed fit)."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+
+from passivefit.analysis.fits import (
+    FIT_ERRORS,
+    fit_exponentials,
+    fit_segments,
+    residual,
+    response_amplitudes,
+)
+from passivefit.analysis.windows import (
+    MIN_FIT_START_S,
+    SPIKE_V,
+    fit_start_after_artefact,
+    resolve_windows,
+    span,
+)
+from passivefit.core import steady
+from passivefit.core.qc import Flag
+from passivefit.core.steps import Step
+from passivefit.model import schema as S
+from passivefit.model.results import SweepFit
+from passivefit.model.settings import Settings
+
+MV = 1e-3
+EVENT_Z = 6.0        # 1-ms-smoothed residual this many robust sds away: an event, not noise
+DRIFT_V = 1e-3       # baseline change over a sweep beyond which the sweep is rejected
+TAIL_S = 0.2         # the last tenth of a tail at least this long is back at baseline
+
+
+def event_z(resid: np.ndarray, fs: float) -> float:
+    """Largest fast excursion of the residual, in robust sds of itself.
+
+    The residual smoothed over 1 ms minus its 25-ms running mean: events (ms rise,
+    tens of ms decay) stand out, slow misfit such as sag does not. The first 10 ms are
+    left out: misfit of the fast components lives there (see the residual-structure flag).
+    """
+    resid = resid[int(10e-3 * fs):]
+    if resid.size < int(30e-3 * fs):
+        return 0.0
+    fast = steady.smooth(resid, max(1, int(1e-3 * fs))) - steady.smooth(resid, int(25e-3 * fs))
+    centred = fast - np.median(fast)
+    spread = 1.4826 * np.median(np.abs(centred))
+    return float(np.max(np.abs(centred)) / max(spread, 1e-9))
+
+
+def baseline_drift(v: np.ndarray, step: Step, fs: float, v_base: float,
+                   base_window: tuple[int, int]) -> tuple[float, float, float] | None:
+    """(drift in V, slope in V/s, reference time in s) of a sweep's baseline.
+
+    The drift is the level at the end of the sweep minus the baseline before the step; the
+    slope joins the centres of the two windows. Measured only when the sweep goes on for
+    at least TAIL_S after the step, so the decay is over in its last tenth; None otherwise.
+    """
+    tail = v.size - step.offset
+    if tail / fs < TAIL_S:
+        return None
+    drift = steady.robust_level(v[v.size - tail // 10:]) - v_base
+    t_ref = 0.5 * (base_window[0] + base_window[1]) / fs
+    t_end = (v.size - tail / 20) / fs
+    return drift, drift / (t_end - t_ref), t_ref
+
+
+def baseline_only(v: np.ndarray, step: Step | None, index: int, fs: float,
+                  settings: Settings) -> SweepFit:
+    """A sweep with its step and baseline only, unfitted: enough to pool sweeps."""
+    if step is None:
+        return SweepFit(index, False, "no step in this sweep", None)
+    wins = resolve_windows(step, v.size, fs, settings.windows_for(index), MIN_FIT_START_S)
+    b0, b1 = span(wins["baseline"], fs, v.size)
+    if b1 - b0 < 10:
+        return SweepFit(index, False, "no baseline before the step", step)
+    return SweepFit(index, np.max(v) < SPIKE_V, None, step, v_rest_V=steady.robust_level(v[b0:b1]))
+
+
+def _fit_sweep(v: np.ndarray, fs: float, step: Step, wins: dict, settings: Settings,
+               tau_init: tuple[float, ...] | None):
+    """(fit, segment records, None) or (None, (), the reason the fit failed)."""
+    try:
+        segs, records = fit_segments(v, fs, step, wins)
+        if not segs:
+            raise ValueError("the fit window holds too few samples")
+        if tau_init is not None and settings.components == "auto":
+            n = min(len(tau_init), 2)
+            fit = fit_exponentials(segs, str(n), tau_init=tau_init[:n])
+            if not fit.success and n == 2:  # a small step may not show τ1: one exponential
+                fit = fit_exponentials(segs, "1", tau_init=tau_init[:1])
+        else:  # single sweeps rarely resolve a third component: "auto" stops at two here
+            fit = fit_exponentials(segs, settings.components, max_components=2)
+        if not fit.success:
+            raise ValueError(fit.message)
+    except FIT_ERRORS as exc:
+        return None, (), f"fit failed: {exc}"
+    return fit, records, None
+
+
+def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
+                  settings: Settings, tau_init: tuple[float, ...] | None = None) -> SweepFit:
+    """Baseline, steady state, fitted transients and tests of one sweep.
+
+    `tau_init` (s), from a fit of the combined sweeps, starts the fit there and fixes the
+    number of components (at most two: single sweeps rarely resolve a third).
+    """
+    if step is None:
+        return SweepFit(index, False, "no step in this sweep", None)
+    flags: list[Flag] = []
+    w = settings.windows_for(index)
+    guess = resolve_windows(step, v.size, fs, w, MIN_FIT_START_S)
+    b0, b1 = span(guess["baseline"], fs, v.size)
+    if b1 - b0 < 10:
+        return SweepFit(index, False, "no baseline before the step", step)
+    v_base = steady.robust_level(v[b0:b1])
+    drift = baseline_drift(v, step, fs, v_base, (b0, b1))
+    trend = (0.0, 0.0)
+    if drift is not None and settings.correct_drift:
+        trend = drift[1:]
+        v = v - trend[0] * (np.arange(v.size) / fs - trend[1])
+        v_base = steady.robust_level(v[b0:b1])
+    noise = steady.noise_sd(v[b0:b1])
+    wins = resolve_windows(step, v.size, fs, w,
+                           fit_start_after_artefact(v, step, fs, noise, settings))
+    fit, records, fit_error = _fit_sweep(v, fs, step, wins, settings, tau_init)
+
+    v_ss = dv = r_in = bridge = sag = rmse = None
+    amps: tuple[float, ...] = ()
+    if step.kind == "step":
+        s0, s1 = span(wins["steady"], fs, v.size)
+        v_ss = steady.robust_level(v[s0:s1]) if s1 - s0 >= 5 else None
+        if fit is not None:
+            amps = response_amplitudes(fit, 0, "step")
+            v_inf = float(fit.offsets[0])
+            jump = float(fit.evaluate(0, np.zeros(1))[0]) - v_base
+            bridge = jump / step.amplitude_A
+            model_in_steady = fit.evaluate(0, np.arange(s0, s1) / fs - step.onset_s)
+            unsettled = abs(np.mean(model_in_steady) - v_inf) / max(abs(v_inf - v_base), 1e-9)
+            if v_ss is None or unsettled > 0.01:
+                flags.append(S.STEADY_NOT_REACHED.make(unsettled))
+                v_ss = v_inf
+        if v_ss is not None:
+            dv = v_ss - v_base
+            r_in = dv / step.amplitude_A    # the cell's bridge estimate is subtracted later
+            width = max(1, int(2e-3 * fs))
+            smooth_noise = steady.noise_sd(steady.smooth(v[b0:b1], width)[width:-width])
+            sag = steady.sag_ratio(v[step.onset: step.offset], v_base, v_ss, width, smooth_noise)
+    elif fit is not None:
+        amps = response_amplitudes(fit, 0, "pulse")
+
+    drift = drift[0] if drift is not None else None
+    if drift is not None and abs(drift) > 0.25 * DRIFT_V:
+        done = "subtracted as a straight line" if settings.correct_drift else "not corrected"
+        flags.append(S.SWEEP_DRIFT.make(drift / MV, done=done))
+    accepted, reason = True, None
+    if fit_error:
+        accepted, reason = False, fit_error
+    elif drift is not None and abs(drift) > max(DRIFT_V, 0.25 * abs(dv or 0.0)):
+        accepted, reason = False, (f"the baseline drifts {drift / MV:+.1f} mV between the "
+                                   "start and the end of the sweep")
+    elif np.max(v) >= SPIKE_V:
+        accepted, reason = False, f"action potential (peak {np.max(v) / MV:.0f} mV)"
+    elif fit is not None:
+        resids = [residual(v, fit, r, fs)[1] for r in records]
+        rmse = float(np.sqrt(np.mean(np.concatenate(resids) ** 2)))
+        worst = max(event_z(r, fs) for r in resids)
+        if worst > EVENT_Z:
+            accepted, reason = False, "spontaneous event in the fit window"
+            flags.append(S.SWEEP_EVENT.make(worst))
+    return SweepFit(
+        index=index, accepted=accepted, reject_reason=reason, step=step,
+        v_rest_V=v_base, dv_ss_V=dv, r_in_ohm=r_in,
+        taus_s=tuple(float(t) for t in fit.taus) if fit is not None else (),
+        amps_V=amps, rmse_V=rmse,
+        bridge_ohm=bridge, sag=sag, noise_V=noise, drift_V=drift, trend=trend, windows_s=wins,
+        segments=records, fit=fit, flags=tuple(flags),
+    )
+
+
+def reject_outliers(fits: list[SweepFit]) -> list[SweepFit]:
+    """Reject sweeps whose baseline or noise stands far from the others'."""
+    ok = [f for f in fits if f.accepted]
+    if len(ok) < 4:
+        return fits
+    base = np.array([f.v_rest_V for f in ok])
+    noise = np.array([f.rmse_V for f in ok])
+    med_base = np.median(base)
+    spread = max(1.4826 * np.median(np.abs(base - med_base)), 0.5 * MV)
+    med_noise = np.median(noise)
+    out = []
+    for f in fits:
+        reason = None
+        if f.accepted and abs(f.v_rest_V - med_base) > max(5 * spread, 3 * MV):
+            reason = (f"baseline {f.v_rest_V / MV:.1f} mV far from the others' "
+                      f"{med_base / MV:.1f} mV")
+        elif f.accepted and f.rmse_V > 3 * med_noise:
+            reason = f"noise {f.rmse_V / MV:.2f} mV, over 3× the others' {med_noise / MV:.2f} mV"
+        out.append(replace(f, accepted=False, reject_reason=reason) if reason else f)
+    return out
+
+
+def apply_decisions(fits: list[SweepFit], settings: Settings) -> list[SweepFit]:
+    """A person's accept/reject overrides the automatic tests."""
+    out = []
+    for f in fits:
+        decision = settings.decision_for(f.index)
+        if decision is None or f.step is None or (decision[0] and f.fit is None):
+            out.append(f)
+        else:
+            accepted, reason = decision
+            out.append(replace(f, accepted=accepted,
+                               reject_reason=None if accepted else (reason or "rejected by hand")))
+    return out
+
+
+def with_bridge_removed(f: SweepFit, bridge_ohm: float) -> SweepFit:
+    """The sweep with the bridge jump taken out of its deflection and R_in."""
+    if f.dv_ss_V is None:
+        return f
+    dv = f.dv_ss_V - bridge_ohm * f.step.amplitude_A
+    return replace(f, dv_ss_V=dv, r_in_ohm=dv / f.step.amplitude_A)

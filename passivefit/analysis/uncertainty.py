@@ -1,0 +1,78 @@
+"""95 % confidence intervals: a bootstrap over sweeps (resample the accepted sweeps with
+replacement, refit the combined response) and its percentile half-widths."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+from passivefit.analysis.cable import bridge_of, fit_cable
+from passivefit.analysis.fits import FIT_ERRORS, fit_average
+from passivefit.analysis.pool import SweepPool
+from passivefit.analysis.windows import span
+from passivefit.core import steady
+from passivefit.core.qc import percentile_halfwidth
+from passivefit.model.results import GroupAverage
+
+#: Ball-and-stick refits in the bootstrap (each costs ~10 ms); their CI is the larger of
+#: the bootstrap's and the fit covariance's.
+CABLE_BOOTSTRAP = 12
+
+
+@dataclass(frozen=True)
+class CableContext:
+    """What the bootstrap needs to refit the ball-and-stick model of a resample."""
+
+    average: GroupAverage      # the combined response with the cable-fit windows
+    fit: object                # core.cablefit.BallStickFit of the full data
+    delay_s: float
+
+
+def _baseline(v: np.ndarray, g: GroupAverage, fs: float) -> float:
+    """Baseline level (V) of `v` in the baseline window of `g`."""
+    a, b = span(g.windows_s["baseline"], fs, v.size)
+    return steady.robust_level(v[a:b])
+
+
+def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
+              cable: CableContext | None = None, seed: int = 0) -> dict[str, np.ndarray]:
+    """Cell values refitted on sweeps resampled with replacement.
+
+    With `cable`, the first CABLE_BOOTSTRAP resamples also refit the ball-and-stick
+    model; a resample whose fit fails, or is not refitted, gives NaN there.
+    """
+    rng = np.random.default_rng(seed)
+    n = len(fit.taus)
+    out: dict[str, list[float]] = {k: [] for k in ("tau0", "tau1", "tau1_model", "L", "rho",
+                                                   "bridge")}
+    for _ in range(n_boot):
+        pick = rng.integers(0, len(pool.indices), len(pool.indices))
+        if np.all(pool.currents[pick] == 0):
+            continue
+        v = pool.combine(pick)
+        try:
+            boot, _ = fit_average(replace(g, v_V=v), fs, str(n), tau_init=fit.taus)
+        except FIT_ERRORS:
+            continue
+        if not boot.success:
+            continue
+        out["tau0"].append(boot.taus[0])
+        out["tau1"].append(boot.taus[1] if n > 1 else np.nan)
+        bs = bridge = None
+        if cable is not None and len(out["tau0"]) <= CABLE_BOOTSTRAP:
+            bs0 = cable.fit
+            bs, _ = fit_cable(replace(cable.average, v_V=v), fs, (bs0.tau0_s, bs0.L, bs0.rho),
+                              cable.delay_s)
+            bridge = bridge_of(bs, replace(cable.average,
+                                           v_base_V=_baseline(v, cable.average, fs)))
+        out["tau1_model"].append(bs.taus_s[1] if bs else np.nan)
+        out["L"].append(bs.L if bs else np.nan)
+        out["rho"].append(bs.rho if bs else np.nan)
+        out["bridge"].append(np.nan if bridge is None else bridge)
+    return {k: np.asarray(v, dtype=float) for k, v in out.items()}
+
+
+def halfwidth(boot: dict | None, name: str) -> float | None:
+    """The bootstrap's 95 % half-width of `name`; None without a bootstrap."""
+    return percentile_halfwidth(boot[name]) if boot is not None else None

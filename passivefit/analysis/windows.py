@@ -1,0 +1,99 @@
+"""Where each sweep's step is and which parts of the sweep each measurement reads.
+
+All windows are absolute (start, end) times in s within the sweep: the baseline before
+the step, the steady state at its end, the fit of the charging transient and of the
+decay after the step ("fit", "fit_off").
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from passivefit.core.steps import Step, find_step
+from passivefit.io.recording import LoadError, Recording
+from passivefit.model.settings import Settings, Windows
+
+MS = 1e-3
+SPIKE_V = -0.010          # a sweep reaching this potential fired an action potential
+GUARD_S = 0.5e-3         # keep windows this far from step edges
+MIN_FIT_START_S = 0.3e-3  # earliest automatic fit start after an edge
+
+
+def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
+    """The step of every sweep: from the user's StepSpec, else from the current trace."""
+    fs = recording.sample_rate_hz
+    if settings.step is not None:
+        rec = recording.with_step(settings.step)
+    elif recording.has_current:
+        rec = recording
+    else:
+        raise LoadError(recording.path, "no step found: this file carries no command or current "
+                        "waveform; give `--step ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]`")
+    steps = [find_step(s.current, fs) for s in rec.sweeps]
+    if all(s is None for s in steps):
+        raise LoadError(recording.path, "no current step found in any sweep; give `--step "
+                        "ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]` if the waveform is wrong")
+    return steps
+
+
+def artefact_end_s(v: np.ndarray, edge: int, fs: float, noise: float) -> float:
+    """Time after a step edge at which the electrode/filter artefact has settled, in s.
+
+    The artefact is the fast jump at the edge and the filter's ringing: the second
+    difference of the voltage stays far above its baseline noise while it lasts.
+    """
+    n = min(int(5e-3 * fs), v.size - edge - 2)
+    if n < 4:
+        return MIN_FIT_START_S
+    d2 = np.abs(np.diff(v[edge - 1: edge + n + 1], 2))
+    pre = np.abs(np.diff(v[max(0, edge - int(0.02 * fs)): edge - 1], 2))
+    level = 6.0 * (np.median(pre) / 0.6745 if pre.size > 10 else noise)
+    loud = np.flatnonzero(d2 > level)
+    settle = (loud[-1] + 3) / fs if loud.size else 0.0
+    return float(np.clip(settle, max(MIN_FIT_START_S, 8 / fs), 3e-3))
+
+
+def resolve_windows(step: Step, n_samples: int, fs: float, w: Windows,
+                    fit_start_s: float) -> dict:
+    """Absolute (start, end) times in s of the baseline, steady and fit windows."""
+    on, off, end = step.onset / fs, step.offset / fs, n_samples / fs
+    duration = off - on
+
+    def absolute(rel_ms):
+        return (on + rel_ms[0] * MS, on + rel_ms[1] * MS)
+
+    base = absolute(w.baseline_ms) if w.baseline_ms else (max(0.0, on - 0.1), on - GUARD_S / 2)
+    out = {"baseline": base}
+    if step.kind == "step":
+        out["steady"] = (absolute(w.steady_ms) if w.steady_ms
+                         else (off - max(0.2 * duration, min(duration, 2e-3)), off - GUARD_S / 2))
+        fit = absolute(w.fit_ms) if w.fit_ms else (on + fit_start_s, off - GUARD_S / 2)
+        out["fit"] = fit
+        tail = min(end, off + duration + 0.1)
+        out["fit_off"] = (off + (fit[0] - on), tail)
+    else:
+        fit = absolute(w.fit_ms) if w.fit_ms else (off + fit_start_s, end)
+        out["fit_off"] = fit
+    return out
+
+
+def sample_index(t_s: float, fs: float, n: int) -> int:
+    """The sample at time `t_s` (s), clipped to 0…n."""
+    return int(np.clip(round(t_s * fs), 0, n))
+
+
+def span(window: tuple[float, float], fs: float, n: int) -> tuple[int, int]:
+    """Sample indices (start, stop) of an absolute window."""
+    return sample_index(window[0], fs, n), sample_index(window[1], fs, n)
+
+
+def fit_start_after_artefact(v: np.ndarray, step: Step, fs: float, noise: float,
+                             settings: Settings) -> float:
+    """The fit start after each edge, in s: as set, else where the artefact has settled
+    (for a pulse, after both of its edges)."""
+    if settings.fit_start_ms is not None:
+        return settings.fit_start_ms * MS
+    start = artefact_end_s(v, step.onset, fs, noise)
+    if step.kind == "pulse":
+        start = max(start, artefact_end_s(v, step.offset, fs, noise))
+    return start
