@@ -1,4 +1,4 @@
-"""`passivefit batch PATH ... --db URL`: folders of recordings → analyses → cell database.
+"""Folders of recordings → analyses → cell database (the `passivefit batch` command's work).
 
 How a batch runs:
 
@@ -24,132 +24,24 @@ running the same command again analyses the rest and skips what is stored.
 
 from __future__ import annotations
 
-import argparse
 import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from passivefit.commands.analyze import add_settings_arguments
+from passivefit.io.metadata import MetadataTable
+from passivefit.model import schema as S
+from passivefit.model.errors import InputError
+from passivefit.model.schema import METADATA_KEYS
 
 RECORDING_SUFFIXES = (".abf", ".nwb", ".csv", ".tsv")
-METADATA_COLUMNS = ("file", "cell_id", "date", "preparation", "region", "cell_type",
-                    "temperature_C", "internal_solution", "notes")
 # First header cell of CSV files that passivefit writes itself (sheets, metadata).
 _OWN_CSV_HEADERS = ("source_path", "file")
-
-
-def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("paths", nargs="+", metavar="PATH", help="recording files or folders")
-    p.add_argument("--db", required=True, metavar="URL",
-                   help="database: an SQLite file path, sqlite:///FILE or "
-                        "postgresql+psycopg://USER@HOST/DB")
-    p.add_argument("--workers", type=int, metavar="N",
-                   help="analysis processes (default: min(2, CPUs))")
-    p.add_argument("--sheet", metavar="FILE",
-                   help="also write the current results of these files to FILE "
-                        "(.csv/.tsv, .xlsx or .json)")
-    p.add_argument("--metadata", metavar="FILE.csv",
-                   help="cell metadata: a `file` column plus any of " + ", ".join(
-                       METADATA_COLUMNS[1:]))
-    p.add_argument("--reports", metavar="DIR",
-                   help="also write a PDF report per analysed recording into DIR "
-                        "(<file stem>-<hash prefix>.pdf; slower)")
-    p.add_argument("--reanalyse", action="store_true",
-                   help="analyse files already in the database again and store a new "
-                        "revision (earlier analyses are kept)")
-    add_settings_arguments(p)
-
-
-# ---------------------------------------------------------------------------- metadata
-@dataclass
-class MetadataTable:
-    """Rows of a metadata CSV keyed by the resolved file path and by bare file name."""
-
-    by_path: dict[str, dict] = field(default_factory=dict)
-    by_name: dict[str, dict] = field(default_factory=dict)
-    used: set[str] = field(default_factory=set)
-
-    def lookup(self, path: Path) -> dict:
-        key = str(path.resolve())
-        row = self.by_path.get(key) or self.by_name.get(path.name)
-        if row is None:
-            return {}
-        self.used.add(row["file"])
-        return {k: v for k, v in row.items() if k != "file"}
-
-    def unused(self) -> int:
-        """Number of rows that matched none of the files seen so far."""
-        listed = {row["file"] for row in (*self.by_path.values(), *self.by_name.values())}
-        return len(listed - self.used)
-
-
-def read_metadata(path: str) -> MetadataTable:
-    """Read and check a metadata CSV; any problem is a one-line UsageError.
-
-    The CSV has a header row with a ``file`` column (a file name, or a path relative
-    to the CSV's folder, or an absolute path) and any of the cell columns
-    ``cell_id, date (YYYY-MM-DD), preparation, region, cell_type, temperature_C,
-    internal_solution, notes``. Empty cells mean "not known".
-    """
-    import csv
-    from datetime import date
-
-    from passivefit.cli import UsageError
-
-    source = Path(path)
-    where = f"`--metadata` {path}"
-    try:
-        with open(source, newline="", encoding="utf-8-sig") as f:
-            rows = list(csv.reader(f))
-    except (OSError, UnicodeDecodeError, csv.Error) as exc:
-        raise UsageError(f"{where}: cannot read it ({exc})") from None
-    rows = [r for r in rows if any(cell.strip() for cell in r)]
-    if not rows:
-        raise UsageError(f"{where}: the file is empty; give a header row such as "
-                         "file,cell_id,region")
-    header = [h.strip() for h in rows[0]]
-    unknown = [h for h in header if h not in METADATA_COLUMNS]
-    if unknown:
-        raise UsageError(f"{where}: unknown column(s) {', '.join(map(repr, unknown))}; "
-                         f"allowed: {', '.join(METADATA_COLUMNS)}")
-    if "file" not in header or len(set(header)) != len(header):
-        raise UsageError(f"{where}: the header needs one `file` column and no repeated "
-                         f"names (found {', '.join(header)})")
-    table = MetadataTable()
-    for line, raw in enumerate(rows[1:], start=2):
-        if len(raw) != len(header):
-            raise UsageError(f"{where} row {line}: {len(raw)} fields, the header has "
-                             f"{len(header)}; quote values that contain commas")
-        row = {h: v.strip() or None for h, v in zip(header, raw, strict=True)}
-        if not row["file"]:
-            raise UsageError(f"{where} row {line}: the `file` cell is empty")
-        if row.get("temperature_C") is not None:
-            try:
-                row["temperature_C"] = float(row["temperature_C"])
-            except ValueError:
-                raise UsageError(f"{where} row {line}: temperature_C {row['temperature_C']!r} "
-                                 "is not a number; give degrees Celsius, e.g. 32") from None
-        if row.get("date") is not None:
-            try:
-                date.fromisoformat(row["date"])
-            except ValueError:
-                raise UsageError(f"{where} row {line}: date {row['date']!r} is not "
-                                 "YYYY-MM-DD, e.g. 2026-11-03") from None
-        resolved = str((source.parent / row["file"]).resolve())
-        if resolved in table.by_path:
-            raise UsageError(f"{where} row {line}: {row['file']!r} is listed twice")
-        table.by_path[resolved] = row
-        if "/" not in row["file"] and "\\" not in row["file"]:
-            table.by_name.setdefault(row["file"], row)
-    return table
 
 
 # ---------------------------------------------------------------------------- scanning
 def find_recordings(paths: list[str], exclude: set[Path]) -> list[Path]:
     """Recording files under `paths` (files given directly are always kept), sorted."""
-    from passivefit.cli import UsageError
-
     found: dict[Path, None] = {}
     for given in paths:
         p = Path(given).absolute()  # stored paths must mean the same file later
@@ -160,7 +52,7 @@ def find_recordings(paths: list[str], exclude: set[Path]) -> list[Path]:
                 if _is_candidate(candidate, p, exclude):
                     found[candidate] = None
         else:
-            raise UsageError(f"{given}: no such file or folder")
+            raise BatchError(f"{given}: no such file or folder")
     return list(found)
 
 
@@ -185,19 +77,20 @@ def _is_own_csv(path: Path) -> bool:
     return head in _OWN_CSV_HEADERS
 
 
-def _excluded_paths(args: argparse.Namespace) -> set[Path]:
+def _excluded_paths(db: str, sheet: str | None, metadata: str | None) -> set[Path]:
+    """The batch's own files, never taken for recordings."""
     from passivefit.store.database import database_url
 
     out: set[Path] = set()
-    url = database_url(args.db)
+    url = database_url(db)
     if url.startswith("sqlite:///"):
-        db = Path(url[len("sqlite:///"):])
-        out |= {db, Path(f"{db}-wal"), Path(f"{db}-shm")}
-    if args.sheet:
-        sheet = Path(args.sheet).resolve()
-        out |= {sheet, sheet.with_name(f"{sheet.stem}_sweeps{sheet.suffix}")}
-    if args.metadata:
-        out.add(Path(args.metadata).resolve())
+        path = Path(url[len("sqlite:///"):])
+        out |= {path, Path(f"{path}-wal"), Path(f"{path}-shm")}
+    if sheet:
+        resolved = Path(sheet).resolve()
+        out |= {resolved, resolved.with_name(f"{resolved.stem}_sweeps{resolved.suffix}")}
+    if metadata:
+        out.add(Path(metadata).resolve())
     return out
 
 
@@ -242,8 +135,7 @@ def report_path(folder: str, recording) -> Path:
 
 
 def _plain_metadata(metadata: dict) -> dict:
-    keys = METADATA_COLUMNS[1:]
-    return {k: metadata[k] for k in keys if isinstance(metadata.get(k), str | int | float)}
+    return {k: metadata[k] for k in METADATA_KEYS if isinstance(metadata.get(k), str | int | float)}
 
 
 # ---------------------------------------------------------------------------- progress
@@ -284,42 +176,51 @@ class BatchSummary:
     failed: list[tuple[str, str]] = field(default_factory=list)
     sweeps: int = 0
     hashes: list[str] = field(default_factory=list)
+    seconds: float = 0.0
+    unused_metadata: int = 0
 
 
-def run(args: argparse.Namespace) -> int:
-    from passivefit.cli import UsageError
-    from passivefit.commands.analyze import settings_from
+class BatchError(InputError):
+    """Options or paths a batch cannot start with (nothing has been written)."""
+
+
+def run_batch(paths: list[str], db: str, settings, *, workers: int | None = None,
+              sheet: str | None = None, metadata: str | None = None,
+              reports: str | None = None, reanalyse: bool = False) -> BatchSummary:
+    """Analyse every recording under `paths` into the database `db`.
+
+    Everything is checked before anything is written: bad options, an unreadable
+    metadata sheet or a missing path raise `BatchError` / `MetadataError`, a database
+    that cannot be opened `StoreError`.
+    """
     from passivefit.export.sheets import SHEET_SUFFIXES
-    from passivefit.store.database import StoreError, open_database
+    from passivefit.io.metadata import read_metadata
+    from passivefit.store.database import open_database
 
-    settings = settings_from(args)
-    workers = args.workers if args.workers is not None else _default_workers()
+    workers = workers if workers is not None else _default_workers()
     if workers < 1:
-        raise UsageError(f"`--workers` must be at least 1, not {workers}")
-    if args.sheet and Path(args.sheet).suffix.lower() not in SHEET_SUFFIXES:
-        raise UsageError(f"`--sheet` {args.sheet}: use one of {', '.join(SHEET_SUFFIXES)}")
-    metadata = read_metadata(args.metadata) if args.metadata else MetadataTable()
-    if args.reports:
+        raise BatchError(f"`--workers` must be at least 1, not {workers}")
+    if sheet and Path(sheet).suffix.lower() not in SHEET_SUFFIXES:
+        raise BatchError(f"`--sheet` {sheet}: use one of {', '.join(SHEET_SUFFIXES)}")
+    table = read_metadata(metadata) if metadata else MetadataTable()
+    if reports:
         try:
-            Path(args.reports).mkdir(parents=True, exist_ok=True)
+            Path(reports).mkdir(parents=True, exist_ok=True)
         except OSError as exc:
-            raise UsageError(f"`--reports` {args.reports}: cannot create the folder "
+            raise BatchError(f"`--reports` {reports}: cannot create the folder "
                              f"({exc.strerror})") from None
-    files = find_recordings(args.paths, _excluded_paths(args))
-    try:
-        database = open_database(args.db, create=True)
-    except StoreError as exc:
-        raise UsageError(str(exc)) from None
+    files = find_recordings(paths, _excluded_paths(db, sheet, metadata))
+    database = open_database(db, create=True)
     started = time.perf_counter()
     try:
-        summary = _run_files(files, settings, database, metadata, workers, args.reanalyse,
-                             args.reports)
-        if args.sheet:
-            _write_sheet(database, summary.hashes, args.sheet)
+        summary = _run_files(files, settings, database, table, workers, reanalyse, reports)
+        if sheet:
+            _write_sheet(database, summary.hashes, sheet)
     finally:
         database.close()
-    _report(summary, metadata, time.perf_counter() - started)
-    return 1 if summary.failed else 0
+    summary.seconds = time.perf_counter() - started
+    summary.unused_metadata = table.unused()
+    return summary
 
 
 def _default_workers() -> int:
@@ -418,8 +319,8 @@ def _store_outcome(outcome: FileOutcome, database, metadata: MetadataTable, dige
         summary.sweeps += len(outcome.result.get("sweeps", ()))
         cell = outcome.result.get("cell") or {}
         progress.update("stored", outcome.path, f"{len(outcome.result.get('sweeps', ()))} "
-                        f"sweeps, tau0 {_fmt(cell.get('tau0_ms'))} ms, R_in "
-                        f"{_fmt(cell.get('r_in_MOhm'))} MOhm")
+                        f"sweeps, tau0 {_fmt(cell.get(S.TAU0.key))} ms, R_in "
+                        f"{_fmt(cell.get(S.R_IN.key))} MOhm")
     else:
         summary.skipped.append(outcome.path)
         progress.update("skipped", outcome.path, "stored meanwhile by another writer")
@@ -431,23 +332,9 @@ def _fmt(value) -> str:
 
 def _write_sheet(database, hashes: list[str], sheet: str) -> None:
     from passivefit.export.sheets import write_sheet
-    from passivefit.store.commands import annotations_of
+    from passivefit.store.database import annotations_of
 
     wanted = set(hashes)
     rows = [r for r in database.current_analyses() if r.recording["sha256"] in wanted]
     written = write_sheet([r.result for r in rows], sheet, annotations=annotations_of(rows))
     print("sheet: " + ", ".join(str(p) for p in written))
-
-
-def _report(summary: BatchSummary, metadata: MetadataTable, seconds: float) -> None:
-    total = len(summary.stored) + len(summary.skipped) + len(summary.failed)
-    rate = f", {summary.sweeps / seconds:.0f} sweeps/s" if summary.sweeps and seconds > 0 else ""
-    print(f"batch: {total} files: {len(summary.stored)} analysed ({summary.sweeps} sweeps), "
-          f"{len(summary.skipped)} skipped, {len(summary.failed)} failed in {seconds:.1f} s{rate}")
-    if metadata.unused():
-        print(f"note: {metadata.unused()} metadata rows matched none of these files",
-              file=sys.stderr)
-    if summary.failed:
-        print("failed files:", file=sys.stderr)
-        for path, reason in summary.failed:
-            print(f"  {path}: {reason}", file=sys.stderr)

@@ -23,7 +23,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from passivefit.core import cable
-from passivefit.io.recording import Recording, Sweep
+from passivefit.model import schema as S
+from passivefit.model.recording import Recording, Sweep
 
 __all__ = [
     "BallStick",
@@ -258,15 +259,15 @@ class BallStick:
         ratios_c = self.pulse_ratios(1)
         ratios_b = self.step_ratios(1)
         return {
-            "tau0_ms": float(taus[0] * 1e3),
-            "tau1_ms": float(taus[1] * 1e3),
-            "tau2_ms": float(taus[2] * 1e3),
+            S.TAU0.key: float(taus[0] * 1e3),
+            S.TAU1.key: float(taus[1] * 1e3),
+            S.TAU2.key: float(taus[2] * 1e3),
             "tau3_ms": float(taus[3] * 1e3),
             "L": float(self.L),
             "rho": float(self.rho),
-            "r_in_MOhm": float(self.r_in_ohm * 1e-6),
-            "c_total_pF": float(self.c_total_F * 1e12),
-            "c_tau_pF": float(self.c_tau_F * 1e12),
+            S.R_IN.key: float(self.r_in_ohm * 1e-6),
+            S.C_TOTAL.key: float(self.c_total_F * 1e12),
+            S.C_TAU.key: float(self.c_tau_F * 1e12),
             "b1_over_b0": float(ratios_b[0]),
             "c1_over_c0": float(ratios_c[0]),
             "b0_over_vinf": float(self.b0_over_vinf()),
@@ -471,8 +472,8 @@ def _protocol_truth(
         taus, gains = cell.modes(2)
         held = gains * taus * -np.expm1(-d / taus) * protocol.amplitude_A
         out["charge_pC"] = float(protocol.amplitude_A * d * 1e12)
-        out["c0_mV"] = float(held[0] * 1e3)  # decay amplitudes, time zero at pulse end
-        out["c1_mV"] = float(held[1] * 1e3)
+        out[S.C0.key] = float(held[0] * 1e3)  # decay amplitudes, time zero at pulse end
+        out[S.C1.key] = float(held[1] * 1e3)
         out["c1_over_c0_square"] = float(held[1] / held[0])
     return out
 
@@ -595,8 +596,8 @@ def simulate_recording(
     truth.update(
         {
             "cell_id": cell_id,
-            "v_rest_mV": float(v_rest_V * 1e3),
-            "bridge_MOhm": float(bridge_ohm * 1e-6),
+            S.V_REST.key: float(v_rest_V * 1e3),
+            S.BRIDGE.key: float(bridge_ohm * 1e-6),
             "electrode_tau_ms": float(electrode_tau_s * 1e3),
             "noise_sd_mV": float(noise_sd_V * 1e3),
             "filter_hz": None if filter_hz is None else float(filter_hz),

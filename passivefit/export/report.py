@@ -22,7 +22,8 @@ from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
 
-from passivefit.export.provenance import result_settings_hash
+from passivefit.model import schema as S
+from passivefit.model.provenance import result_settings_hash
 
 MS, MV, PA = 1e-3, 1e-3, 1e-12
 A4_PORTRAIT = (8.27, 11.69)
@@ -30,22 +31,8 @@ RASTER_DPI = 150  # dense traces are embedded as images at this resolution; text
 FIT_COLOUR, DATA_COLOUR, REJECT_COLOUR, MODE_COLOURS = (
     "#c0392b", "#3b4a5a", "#e6a3a3", ("#1f6f8b", "#d4881e", "#5c8a3a"))
 
-# (label, value key, CI key, unit) of the values table, in DESIGN.md order.
-VALUE_ROWS = (
-    ("Resting potential V_rest", "v_rest_mV", None, "mV"),
-    ("Input resistance R_in", "r_in_MOhm", None, "MΩ"),
-    ("Membrane time constant τ0", "tau0_ms", "tau0_ci95_ms", "ms"),
-    ("First equalizing τ1", "tau1_ms", "tau1_ci95_ms", "ms"),
-    ("Amplitude C0", "c0_mV", None, "mV"),
-    ("Amplitude C1", "c1_mV", None, "mV"),
-    ("L, equivalent cylinder", "L_cyl", "L_cyl_ci95", ""),
-    ("L, ball-and-stick", "L_bs", "L_ci95", ""),
-    ("ρ, ball-and-stick", "rho", "rho_ci95", ""),
-    ("C = τ0/R_in", "c_tau_pF", None, "pF"),
-    ("C total (cable-corrected)", "c_total_pF", None, "pF"),
-    ("Sag ratio (steady/peak)", "sag_ratio", None, ""),
-    ("Sweeps used", "n_sweeps_used", None, ""),
-)
+# The values table: what a physiologist reads first, then the number of sweeps used.
+VALUE_ROWS = (*S.SUMMARY, S.N_SWEEPS_USED)
 
 CAUTIONS = """\
 How to read these numbers. τ0, τ1, L, ρ and the capacitances rest on assumptions that a \
@@ -246,7 +233,7 @@ def _draw_semilog(ax, result, fs: float) -> None:
 def _draw_residuals(ax, result, fs: float) -> None:
     import numpy as np
 
-    from passivefit.analysis import residual
+    from passivefit.analysis.fits import residual
 
     g, fit = result.average, result.cell_fit
     if g is None or fit is None or not g.segments:
@@ -299,8 +286,8 @@ def _draw_scan(ax0, ax1, result, data: dict) -> None:
         _unavailable(ax1, "no fit-start scan")
         return
     start = np.asarray(scan["start_s"]) / MS
-    for ax, key, name, chosen in ((ax0, "tau0", "τ0", data["cell"].get("tau0_ms")),
-                                  (ax1, "tau1", "τ1", data["cell"].get("tau1_ms"))):
+    for ax, key, name, chosen in ((ax0, "tau0", "τ0", data["cell"].get(S.TAU0.key)),
+                                  (ax1, "tau1", "τ1", data["cell"].get(S.TAU1.key))):
         value = np.asarray(scan[f"{key}_s"]) / MS
         ci = np.asarray(scan[f"{key}_ci95_s"]) / MS
         if not np.any(np.isfinite(value)):
@@ -386,12 +373,12 @@ def _numbers_pages(pdf, recording, data: dict, when: datetime) -> None:
 
 def _value_rows(cell: Mapping) -> list[tuple[str, str, str]]:
     rows = []
-    for label, key, ci_key, unit in VALUE_ROWS:
-        value = cell.get(key)
+    for q in VALUE_ROWS:
+        value = cell.get(q.key)
         text = "— (not estimable: see flags)" if value is None else _fmt(value)
-        if value is not None and ci_key and cell.get(ci_key) is not None:
-            text += f" ± {_fmt(cell[ci_key], 2)}"
-        rows.append((label, text, unit))
+        if value is not None and q.ci and cell.get(q.ci) is not None:
+            text += f" ± {_fmt(cell[q.ci], 2)}"
+        rows.append((q.title or q.label, text, q.unit))
     return rows
 
 
@@ -411,15 +398,15 @@ def _flag_lines(data: dict) -> list[str]:
 
 
 def _sweep_lines(sweeps: Sequence[Mapping]) -> list[str]:
-    lines = [f"{'#':>3} {'step pA':>8} {'V_rest mV':>9} {'R_in MΩ':>8} {'τ0 ms':>7} "
-             f"{'τ1 ms':>7} {'rmse mV':>8}  status"]
+    widths = (3, 8, 9, 8, 7, 7, 8)
+    columns = tuple(zip(S.SWEEP_TABLE, widths, strict=True))
+    lines = [" ".join(f"{f'{q.label} {q.unit}'.strip():>{w}}" for q, w in columns) + "  status"]
     for s in sweeps:
-        status = "ok" if s["accepted"] else f"rejected: {s.get('reject_reason') or ''}"
-        cells = [_fmt(s.get(k)) if s.get(k) is not None else "—"
-                 for k in ("step_pA", "v_rest_mV", "r_in_MOhm", "tau0_ms", "tau1_ms",
-                           "rmse_mV")]
-        lines.append(f"{s['index']:>3} {cells[0]:>8} {cells[1]:>9} {cells[2]:>8} {cells[3]:>7} "
-                     f"{cells[4]:>7} {cells[5]:>8}  {textwrap.shorten(status, 60)}")
+        status = ("ok" if s[S.ACCEPTED.key]
+                  else f"rejected: {s.get(S.REJECT_REASON.key) or ''}")
+        cells = [_fmt(s.get(q.key)) if s.get(q.key) is not None else "—" for q, _ in columns]
+        lines.append(" ".join(f"{c:>{w}}" for c, (_, w) in zip(cells, columns, strict=True))
+                     + f"  {textwrap.shorten(status, 60)}")
     return lines
 
 

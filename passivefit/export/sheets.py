@@ -14,9 +14,9 @@ CSV (or TSV) writes the cells to ``FILE.csv`` and the sweeps to
 ``FILE_sweeps.csv`` beside it: two plain rectangular tables that any program reads
 without knowing our layout. XLSX writes the sheets ``cells``, ``sweeps``, ``flags``
 and ``provenance`` (version, settings, hash, analysis time), each with a row of
-units under the header (read from the key names: ``_mV``, ``_MOhm``, ``_ms``,
-``_pF``, ``_pA``). JSON writes the list of result objects unchanged (plus an
-``annotations`` object per result when annotations are given).
+units under the header (from the schema, `passivefit.model.schema`). JSON writes the
+list of result objects unchanged (plus an ``annotations`` object per result when
+annotations are given).
 Files are written to a temporary name and renamed, so a reader never sees half a file.
 """
 
@@ -30,18 +30,12 @@ from collections.abc import Mapping, Sequence
 from datetime import datetime
 from pathlib import Path
 
-from passivefit.export.provenance import flags_text, result_settings_hash, unit_of
+from passivefit.model import schema as S
+from passivefit.model.provenance import flags_text, result_settings_hash, unit_of
 
-# Column order of the cell keys (DESIGN.md); keys not listed follow in their own order.
-CELL_KEY_ORDER = (
-    "v_rest_mV", "r_in_MOhm", "tau0_ms", "tau0_ci95_ms", "tau1_ms", "tau1_ci95_ms",
-    "c0_mV", "c1_mV", "L_cyl", "L_bs", "L_ci95", "rho", "rho_ci95", "c_tau_pF",
-    "c_total_pF", "sag_ratio", "n_sweeps_used",
-)
-SWEEP_KEY_ORDER = (
-    "index", "accepted", "reject_reason", "step_pA", "v_rest_mV", "r_in_MOhm",
-    "tau0_ms", "tau1_ms", "c0_mV", "c1_mV", "rmse_mV", "flags",
-)
+# Column order: the contract's keys first; keys not listed follow in their own order.
+CELL_KEY_ORDER = tuple(q.key for q in S.CELL_CORE)
+SWEEP_KEY_ORDER = (*(q.key for q in S.SWEEP_CORE), S.FLAGS_KEY)
 SOURCE_COLUMNS = ("source_path", "source_sha256", "source_format")
 SHEET_SUFFIXES = (".csv", ".tsv", ".xlsx", ".json")
 

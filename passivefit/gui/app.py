@@ -7,6 +7,8 @@ from pathlib import Path
 
 from PySide6 import QtCore, QtWidgets
 
+from passivefit.model.errors import InputError
+
 SNAPSHOT_SIZE = (1400, 900)
 QUIET_MESSAGES = ("This plugin does not support propagateSizeHints()",)
 
@@ -63,13 +65,16 @@ def make_app() -> QtWidgets.QApplication:
     return app
 
 
+class WindowError(InputError):
+    """The window could not show what it was asked to (the message says why)."""
+
+
 def run_window(paths, settings, snapshot: str | Path | None = None) -> int:
     """Open the window on `paths`; with `snapshot`, analyse, render a PNG and return.
 
-    Returns the exit status (2 when the first recording cannot be opened in
-    snapshot mode).
+    Returns Qt's exit status; raises `WindowError` when the first recording cannot be
+    opened in snapshot mode.
     """
-    from passivefit.cli import EXIT_BAD_INPUT, error_line
     from passivefit.gui.window import ReviewWindow
 
     app = make_app()
@@ -87,8 +92,8 @@ def run_window(paths, settings, snapshot: str | Path | None = None) -> int:
             app.processEvents()
             window.snapshot(snapshot)
         else:
-            print(error_line(None, window.last_error), file=sys.stderr)
-            status = EXIT_BAD_INPUT
+            _dispose(app, window)
+            raise WindowError(window.last_error)
     _dispose(app, window)
     return status
 

@@ -8,8 +8,8 @@ from __future__ import annotations
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from passivefit.commands.analyze import CELL_ROWS
 from passivefit.gui import theme
+from passivefit.model import schema as S
 
 Qt = QtCore.Qt
 
@@ -84,7 +84,7 @@ class Header(QtWidgets.QWidget):
         if result is None or busy:
             self._set("busy", "analysing…")
             return
-        used = result.cell.values.get("n_sweeps_used") or 0
+        used = result.cell.values.get(S.N_SWEEPS_USED.key) or 0
         if used == 0:
             self._set("none", "no usable sweeps")
         elif result.flags:
@@ -115,22 +115,22 @@ class CellCard(QtWidgets.QFrame):
         grid.setVerticalSpacing(3)
         layout.addLayout(grid)
         self.values: dict[str, QtWidgets.QLabel] = {}
-        rows = (len(CELL_ROWS) + 1) // 2
-        for k, (label, key, _ci, unit) in enumerate(CELL_ROWS):
+        rows = (len(S.SUMMARY) + 1) // 2
+        for k, q in enumerate(S.SUMMARY):
             row, col = k % rows, (k // rows) * 3
-            quantity = QtWidgets.QLabel(label)
+            quantity = QtWidgets.QLabel(q.label)
             quantity.setObjectName("quantity")
             value = QtWidgets.QLabel("—")
             value.setObjectName("value")
             value.setTextFormat(Qt.TextFormat.RichText)
             value.setAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
             value.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
-            unit_label = QtWidgets.QLabel(unit)
+            unit_label = QtWidgets.QLabel(q.unit)
             unit_label.setObjectName("unit")
             grid.addWidget(quantity, row, col)
             grid.addWidget(value, row, col + 1)
             grid.addWidget(unit_label, row, col + 2)
-            self.values[key] = value
+            self.values[q.key] = value
         grid.setColumnStretch(1, 1)
         grid.setColumnStretch(4, 1)
         grid.setColumnMinimumWidth(2, 26)
@@ -141,21 +141,21 @@ class CellCard(QtWidgets.QFrame):
 
     def show_result(self, result, busy: bool) -> None:
         cell = result.cell.to_dict() if result is not None else {}
-        for _label, key, ci, _unit in CELL_ROWS:
-            text = fmt(cell.get(key))
-            if ci and cell.get(ci) is not None and cell.get(key) is not None:
+        for q in S.SUMMARY:
+            text = fmt(cell.get(q.key))
+            if q.ci and cell.get(q.ci) is not None and cell.get(q.key) is not None:
                 text += (f"<span style='font-weight:400; font-size:9pt; color:{theme.MUTED}'>"
-                         f" ± {fmt(cell[ci], 2)}</span>")
-            self.values[key].setText(text)
+                         f" ± {fmt(cell[q.ci], 2)}</span>")
+            self.values[q.key].setText(text)
         if result is None:
             self.footer.setText("")
             return
-        used, total = cell.get("n_sweeps_used") or 0, len(result.sweeps)
+        used, total = cell.get(S.N_SWEEPS_USED.key) or 0, len(result.sweeps)
         bits = [f"{used} of {total} sweeps used"]
-        if cell.get("ci_method"):
-            bits.append(f"± = 95 % CI ({cell['ci_method']})")
-        if cell.get("r_in_method"):
-            bits.append(f"R_in by {cell['r_in_method']}")
+        if cell.get(S.CI_METHOD.key):
+            bits.append(f"± = 95 % CI ({cell[S.CI_METHOD.key]})")
+        if cell.get(S.R_IN_METHOD.key):
+            bits.append(f"R_in by {cell[S.R_IN_METHOD.key]}")
         if busy:
             bits.append("updating…")
         self.footer.setText(" · ".join(bits))
@@ -278,8 +278,8 @@ class WindowsBar(QtWidgets.QFrame):
 
 
 # ----------------------------------------------------------------------------- sweeps
-SWEEP_COLUMNS = ("#", "step\npA", "V_rest\nmV", "R_in\nMΩ", "τ0\nms", "τ1\nms",
-                 "rmse\nmV", "kept")
+SWEEP_COLUMNS = (*(f"{q.label}\n{q.unit}".strip() for q in S.SWEEP_TABLE), "kept")
+DIGITS = {S.TAU1: 3, S.RMSE: 2}
 
 
 class SweepTable(QtWidgets.QTableWidget):
@@ -328,11 +328,10 @@ class SweepTable(QtWidgets.QTableWidget):
         if row is None:
             return
         fit = state.sweep_fit(index)
-        d = fit.to_dict() if fit is not None else {"index": index}
+        d = fit.to_dict() if fit is not None else {}
         status = state.status(index)
-        cells = [str(index), fmt(d.get("step_pA")), fmt(d.get("v_rest_mV")),
-                 fmt(d.get("r_in_MOhm")), fmt(d.get("tau0_ms")), fmt(d.get("tau1_ms"), 3),
-                 fmt(d.get("rmse_mV"), 2), _status_text(status)]
+        cells = [str(index), *(fmt(d.get(q.key), DIGITS.get(q, 4)) for q in S.SWEEP_TABLE[1:]),
+                 _status_text(status)]
         back = None
         if status is not None and not status.accepted:
             back = QtGui.QColor(theme.ROW_REJECTED)

@@ -15,6 +15,7 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
 from passivefit.gui import theme
+from passivefit.model import schema as S
 
 MS, MV, PA = 1e-3, 1e-3, 1e-12
 STAGE_COLOURS = (theme.TEAL, theme.TERRACOTTA, "#7a5ea8")
@@ -247,7 +248,7 @@ class TraceView(QtWidgets.QWidget):
         """(time in ms, data − model in mV) over each fitted segment."""
         if fit is None or fit.fit is None or self._v is None:
             return []
-        from passivefit.analysis import residual
+        from passivefit.analysis.fits import residual
 
         v = fit.corrected(self._v, self._fs)  # as the fit saw it (drift taken out)
         return [(t / MS, r / MV) for t, r in (residual(v, fit.fit, seg, self._fs)
@@ -343,7 +344,7 @@ class ScanView(QtWidgets.QWidget):
 
     def show_result(self, result) -> None:
         scan = result.scan if result is not None else None
-        for plot, key, cell_key in ((self.tau0, "tau0", "tau0_ms"), (self.tau1, "tau1", "tau1_ms")):
+        for plot, key, q in ((self.tau0, "tau0", S.TAU0), (self.tau1, "tau1", S.TAU1)):
             plot.clear()
             if scan is None or not np.any(np.isfinite(scan[f"{key}_s"])):
                 _note(plot, f"no {key.replace('tau', 'τ')} scan")
@@ -357,7 +358,7 @@ class ScanView(QtWidgets.QWidget):
                                          pen=pg.mkPen(colour, width=1)))
             plot.plot(x[ok], y[ok], pen=pg.mkPen(colour, width=1), symbol="o", symbolSize=5,
                       symbolPen=None, symbolBrush=pg.mkBrush(colour))
-            value = result.cell.values.get(cell_key)
+            value = result.cell.values.get(q.key)
             if value is not None:
                 plot.addItem(pg.InfiniteLine(angle=0, pos=value, pen=pg.mkPen(
                     theme.EDGE, style=QtCore.Qt.PenStyle.DashLine)))

@@ -13,7 +13,6 @@ from pathlib import Path
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from passivefit.analysis import Settings
 from passivefit.gui import theme
 from passivefit.gui.panels import (
     CellCard,
@@ -29,6 +28,8 @@ from passivefit.gui.plots import ScanView, SemilogView, TraceView, VIView
 from passivefit.gui.state import WINDOW_NAMES, ReviewState, expand_paths
 from passivefit.gui.worker import AnalysisRunner
 from passivefit.io.recording import LoadError, StepSpec
+from passivefit.model import schema as S
+from passivefit.model.settings import Settings
 
 Qt = QtCore.Qt
 MAX_RECENT = 10
@@ -474,10 +475,8 @@ class ReviewWindow(QtWidgets.QMainWindow):
         return outcome.status
 
     def _cell_metadata(self) -> dict:
-        from passivefit.batch import METADATA_COLUMNS
-
         md = self.state.recording.metadata or {}
-        return {k: md[k] for k in METADATA_COLUMNS[1:] if isinstance(md.get(k), str | int | float)}
+        return {k: md[k] for k in S.METADATA_KEYS if isinstance(md.get(k), str | int | float)}
 
     def _annotations(self) -> dict:
         return {**self._cell_metadata(), "review_file": str(self.state.review_file)}

@@ -25,7 +25,8 @@ from sqlalchemy.engine import Engine, make_url
 from sqlalchemy.exc import IntegrityError, OperationalError
 from sqlalchemy.orm import Session
 
-from passivefit.export.provenance import flags_text, result_settings_hash
+from passivefit.model import schema as S
+from passivefit.model.provenance import flags_text, result_settings_hash
 from passivefit.store.models import (
     ANALYSIS_VALUE_KEYS,
     CELL_METADATA_KEYS,
@@ -218,8 +219,8 @@ class Database:
         query = select(SweepRow).where(SweepRow.analysis_pk == analysis_id).order_by(
             SweepRow.sweep_index)
         with Session(self.engine) as session, session.begin():
-            return [_columns(row, ("sweep_index", "accepted", "reject_reason", *SWEEP_VALUE_KEYS,
-                                   "flags")) for row in session.scalars(query)]
+            return [_columns(row, ("sweep_index", "accepted", S.REJECT_REASON.key,
+                                   *SWEEP_VALUE_KEYS, "flags")) for row in session.scalars(query)]
 
     # ------------------------------------------------------------------ writing
     def store(
@@ -363,13 +364,13 @@ def _analysis_row(result: Mapping, digest: str, version: str, when: datetime,
     row = AnalysisRow(
         settings_hash=digest, settings=dict(result["settings"]), passivefit_version=version,
         revision=revision, analysed_at=when, is_current=True,
-        n_sweeps_used=_int_or_none(cell.get("n_sweeps_used")),
+        n_sweeps_used=_int_or_none(cell.get(S.N_SWEEPS_USED.key)),
         flags=flags_text(result.get("flags", ())), result=_json_safe(result),
         **{key: _float_or_none(cell.get(key)) for key in ANALYSIS_VALUE_KEYS},
     )
     row.sweeps = [
         SweepRow(sweep_index=int(s["index"]), accepted=bool(s["accepted"]),
-                 reject_reason=s.get("reject_reason"), flags=flags_text(s.get("flags", ())),
+                 reject_reason=s.get(S.REJECT_REASON.key), flags=flags_text(s.get("flags", ())),
                  **{key: _float_or_none(s.get(key)) for key in SWEEP_VALUE_KEYS})
         for s in result.get("sweeps", ())
     ]
@@ -414,6 +415,12 @@ def _current(analysis: AnalysisRow, recording: RecordingRow, cell: CellRow | Non
     recording_values["first_seen"] = _utc(recording.first_seen)
     analysis_values = _columns(analysis, (
         "id", "settings_hash", "passivefit_version", "revision", *ANALYSIS_VALUE_KEYS,
-        "n_sweeps_used", "flags"))
+        S.N_SWEEPS_USED.key, "flags"))
     analysis_values["analysed_at"] = _utc(analysis.analysed_at)
     return CurrentAnalysis(cell_values, recording_values, analysis_values, dict(analysis.result))
+
+
+def annotations_of(rows) -> list[dict]:
+    """Per-row sheet columns from the database: cell metadata, analysis time, revision."""
+    return [{**r.cell, "analysed_at": r.analysis["analysed_at"],
+             "revision": r.analysis["revision"]} for r in rows]

@@ -26,23 +26,29 @@ from sqlalchemy import (
 from sqlalchemy.dialects.postgresql import JSONB
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
 
+from passivefit.model import schema as S
+
 SCHEMA_VERSION = 1
 
 JsonType = JSON().with_variant(JSONB(), "postgresql")
 
 # Key values of a cell result copied into `analyses` columns (names as in to_dict()).
-ANALYSIS_VALUE_KEYS = (
-    "v_rest_mV", "r_in_MOhm", "tau0_ms", "tau1_ms", "L_cyl", "L_bs", "rho",
-    "c_tau_pF", "c_total_pF", "sag_ratio",
-)
+ANALYSIS_VALUE_KEYS = tuple(q.key for q in S.COLUMNS)
 # Key values of a sweep result copied into `sweeps` columns.
-SWEEP_VALUE_KEYS = (
-    "step_pA", "v_rest_mV", "r_in_MOhm", "tau0_ms", "tau1_ms", "c0_mV", "c1_mV", "rmse_mV",
-)
+SWEEP_VALUE_KEYS = tuple(q.key for q in S.SWEEP_COLUMNS)
 # Cell metadata columns, filled from the recording file and the metadata CSV.
-CELL_METADATA_KEYS = (
-    "date", "preparation", "region", "cell_type", "temperature_C", "internal_solution", "notes",
-)
+CELL_METADATA_KEYS = tuple(m.key for m in S.METADATA if m is not S.CELL_ID)
+
+
+def _float_columns(keys) -> dict:
+    """One nullable float column per key (the schema's value columns)."""
+    return {key: mapped_column(key, Float, nullable=True) for key in keys}
+
+
+def _metadata_columns() -> dict:
+    """The cell's metadata columns: text, or a float for numbers."""
+    return {m.key: mapped_column(m.key, Float if m.kind == "number" else Text, nullable=True)
+            for m in S.METADATA if m is not S.CELL_ID}
 
 
 class Base(DeclarativeBase):
@@ -63,13 +69,7 @@ class CellRow(Base):
 
     id: Mapped[int] = mapped_column(primary_key=True)
     cell_id: Mapped[str] = mapped_column(Text, unique=True)
-    date: Mapped[str | None] = mapped_column(Text)  # ISO YYYY-MM-DD when the source gives one
-    preparation: Mapped[str | None] = mapped_column(Text)
-    region: Mapped[str | None] = mapped_column(Text)
-    cell_type: Mapped[str | None] = mapped_column(Text)
-    temperature_C: Mapped[float | None] = mapped_column(Float)
-    internal_solution: Mapped[str | None] = mapped_column(Text)
-    notes: Mapped[str | None] = mapped_column(Text)
+    locals().update(_metadata_columns())  # date (ISO YYYY-MM-DD), region, ...
 
     recordings: Mapped[list[RecordingRow]] = relationship(back_populates="cell")
 
@@ -105,16 +105,7 @@ class AnalysisRow(Base):
     revision: Mapped[int] = mapped_column(Integer)
     analysed_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
     is_current: Mapped[bool] = mapped_column(Boolean)
-    v_rest_mV: Mapped[float | None] = mapped_column(Float)
-    r_in_MOhm: Mapped[float | None] = mapped_column(Float)
-    tau0_ms: Mapped[float | None] = mapped_column(Float)
-    tau1_ms: Mapped[float | None] = mapped_column(Float)
-    L_cyl: Mapped[float | None] = mapped_column(Float)
-    L_bs: Mapped[float | None] = mapped_column(Float)
-    rho: Mapped[float | None] = mapped_column(Float)
-    c_tau_pF: Mapped[float | None] = mapped_column(Float)
-    c_total_pF: Mapped[float | None] = mapped_column(Float)
-    sag_ratio: Mapped[float | None] = mapped_column(Float)
+    locals().update(_float_columns(ANALYSIS_VALUE_KEYS))
     n_sweeps_used: Mapped[int | None] = mapped_column(Integer)
     flags: Mapped[str] = mapped_column(Text)
     result: Mapped[dict] = mapped_column(JsonType)
@@ -139,14 +130,7 @@ class SweepRow(Base):
     sweep_index: Mapped[int] = mapped_column(Integer)
     accepted: Mapped[bool] = mapped_column(Boolean)
     reject_reason: Mapped[str | None] = mapped_column(Text)
-    step_pA: Mapped[float | None] = mapped_column(Float)
-    v_rest_mV: Mapped[float | None] = mapped_column(Float)
-    r_in_MOhm: Mapped[float | None] = mapped_column(Float)
-    tau0_ms: Mapped[float | None] = mapped_column(Float)
-    tau1_ms: Mapped[float | None] = mapped_column(Float)
-    c0_mV: Mapped[float | None] = mapped_column(Float)
-    c1_mV: Mapped[float | None] = mapped_column(Float)
-    rmse_mV: Mapped[float | None] = mapped_column(Float)
+    locals().update(_float_columns(SWEEP_VALUE_KEYS))
     flags: Mapped[str] = mapped_column(Text)
 
     analysis: Mapped[AnalysisRow] = relationship(back_populates="sweeps")

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import re
 
+from passivefit.model import schema as S
 from passivefit.store.models import (
     ANALYSIS_VALUE_KEYS,
     CELL_METADATA_KEYS,
@@ -35,7 +36,7 @@ def _columns() -> dict:
     cols |= {"path": RecordingRow.path, "format": RecordingRow.format,
              "sha256": RecordingRow.sha256, "sweep_count": RecordingRow.sweep_count}
     cols |= {k: getattr(AnalysisRow, k) for k in ANALYSIS_VALUE_KEYS}
-    cols |= {"n_sweeps_used": AnalysisRow.n_sweeps_used, "flags": AnalysisRow.flags,
+    cols |= {S.N_SWEEPS_USED.key: AnalysisRow.n_sweeps_used, "flags": AnalysisRow.flags,
              "passivefit_version": AnalysisRow.passivefit_version,
              "settings_hash": AnalysisRow.settings_hash}
     return cols
@@ -43,7 +44,7 @@ def _columns() -> dict:
 
 FILTER_COLUMNS = _columns()
 NUMERIC_COLUMNS = frozenset(
-    {"temperature_C", "sweep_count", "n_sweeps_used", *ANALYSIS_VALUE_KEYS})
+    {"temperature_C", "sweep_count", S.N_SWEEPS_USED.key, *ANALYSIS_VALUE_KEYS})
 
 
 def parse_where(text: str) -> list:

@@ -10,10 +10,9 @@ from __future__ import annotations
 import argparse
 import sys
 
+from passivefit.model import schema as S
+
 PLOT_SUFFIXES = (".png", ".pdf", ".svg")
-# (analysis column, axis label); the L panel falls back to L_cyl when no L_bs exists.
-PLOT_PANELS = (("tau0_ms", "τ0 (ms)"), ("r_in_MOhm", "R_in (MΩ)"), ("L_bs", "L (ball-and-stick)"),
-               ("c_total_pF", "C total (pF)"))
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -68,17 +67,12 @@ def _check_target(args: argparse.Namespace) -> None:
                              "preparation, date")
 
 
-def annotations_of(rows) -> list[dict]:
-    """Per-row sheet columns from the database: cell metadata, analysis time, revision."""
-    return [{**r.cell, "analysed_at": r.analysis["analysed_at"],
-             "revision": r.analysis["revision"]} for r in rows]
-
-
 # ---------------------------------------------------------------------------- list
 def _list(args, database, rows) -> int:
     counts = database.analysis_counts()
-    columns = [("cell_id", "cell_id", 20), ("region", "region", 12), ("tau0_ms", "tau0_ms", 8),
-               ("r_in_MOhm", "r_in_MOhm", 9), ("L_bs", "L_bs", 6), ("n_sweeps_used", "sweeps", 6),
+    columns = [(S.CELL_ID.key, S.CELL_ID.key, 20), ("region", "region", 12),
+               (S.TAU0.key, S.TAU0.key, 8), (S.R_IN.key, S.R_IN.key, 9),
+               (S.L_BS.key, S.L_BS.key, 6), (S.N_SWEEPS_USED.key, "sweeps", 6),
                ("revs", "revs", 4), ("analysed", "analysed", 10)]
     print("  ".join(f"{header:<{width}}" for _, header, width in columns) + "  path")
     for r in rows:
@@ -86,7 +80,7 @@ def _list(args, database, rows) -> int:
                   "analysed": r.analysis["analysed_at"].date().isoformat()}
         cells = [_cell_text(values.get(key), width) for key, _, width in columns]
         print("  ".join(cells) + "  " + r.recording["path"])
-    n_cells = len({r.cell["cell_id"] for r in rows})
+    n_cells = len({r.cell[S.CELL_ID.key] for r in rows})
     print(f"{len(rows)} recordings, {n_cells} cells")
     return 0
 
@@ -104,6 +98,7 @@ def _cell_text(value, width: int) -> str:
 # ---------------------------------------------------------------------------- export
 def _export(args, database, rows) -> int:
     from passivefit.export.sheets import write_sheet
+    from passivefit.store.database import annotations_of
 
     written = write_sheet([r.result for r in rows], args.file, annotations=annotations_of(rows))
     print(f"{len(rows)} recordings → " + ", ".join(str(p) for p in written))
@@ -112,44 +107,12 @@ def _export(args, database, rows) -> int:
 
 # ---------------------------------------------------------------------------- plot
 def _plot(args, database, rows) -> int:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-    import numpy as np
+    from passivefit.export.dbplot import plot_by_group
 
     if not rows:
         print("passivefit: no analyses match; nothing to plot", file=sys.stderr)
         return 1
-    groups = sorted({_group(r, args.by) for r in rows})
-    panels = list(PLOT_PANELS)
-    if all(r.analysis["L_bs"] is None for r in rows):
-        panels[2] = ("L_cyl", "L (equivalent cylinder)")
-    fig, axes = plt.subplots(2, 2, figsize=(9, 7), layout="constrained")
-    rng = np.random.default_rng(0)  # jitter only; fixed so the figure is reproducible
-    for ax, (key, label) in zip(axes.flat, panels, strict=True):
-        data = [[r.analysis[key] for r in rows
-                 if _group(r, args.by) == g and r.analysis[key] is not None] for g in groups]
-        positions = np.arange(1, len(groups) + 1)
-        filled = [(p, d) for p, d in zip(positions, data, strict=True) if d]
-        if filled:
-            ax.boxplot([d for _, d in filled], positions=[p for p, _ in filled], widths=0.5,
-                       showfliers=False, medianprops={"color": "#b5472d"})
-        for p, d in filled:
-            ax.scatter(p + rng.uniform(-0.12, 0.12, len(d)), d, s=14, color="#2b6f8f",
-                       alpha=0.8, zorder=3)
-        ax.set_xticks(positions, [f"{g}\n(n={len(d)})" for g, d in zip(groups, data,
-                                                                          strict=True)])
-        ax.set_ylabel(label)
-        ax.grid(axis="y", alpha=0.3)
-    fig.suptitle(f"Current analyses by {args.by} ({len(rows)} recordings)")
-    fig.savefig(args.file)
-    plt.close(fig)
-    print(f"{len(rows)} recordings in {len(groups)} groups → {args.file}")
+    n_groups = plot_by_group([(r.cell, r.recording, r.analysis) for r in rows], args.by,
+                             args.file)
+    print(f"{len(rows)} recordings in {n_groups} groups → {args.file}")
     return 0
-
-
-def _group(row, key: str) -> str:
-    merged = {**row.cell, **row.recording, **row.analysis}
-    value = merged.get(key)
-    return "(none)" if value is None else str(value)

@@ -12,10 +12,10 @@ import argparse
 import os
 import sys
 
+from passivefit.cli.options import add_settings_arguments, settings_from
+
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    from passivefit.commands.analyze import add_settings_arguments
-
     p.add_argument("paths", nargs="*", metavar="PATH",
                    help="recordings or folders (default: the bundled simulated sample)")
     p.add_argument("--snapshot", metavar="FILE.png",
@@ -31,8 +31,6 @@ def display_available() -> bool:
 
 
 def run(args: argparse.Namespace) -> int:
-    from passivefit.commands.analyze import settings_from
-
     settings = settings_from(args)
     paths = args.paths or [str(_bundled_sample())]
     if args.snapshot:
@@ -47,9 +45,14 @@ def run(args: argparse.Namespace) -> int:
               "window; here is the analysis as text (use --snapshot FILE.png for a picture)",
               file=sys.stderr)
         return _print_tables(paths, settings)
-    from passivefit.gui.app import run_window
+    from passivefit.cli import EXIT_BAD_INPUT, error_line
+    from passivefit.gui.app import WindowError, run_window
 
-    return run_window(paths, settings, args.snapshot)
+    try:
+        return run_window(paths, settings, args.snapshot)
+    except WindowError as exc:
+        print(error_line(None, str(exc)), file=sys.stderr)
+        return EXIT_BAD_INPUT
 
 
 def _bundled_sample():
@@ -62,7 +65,7 @@ def _print_tables(paths: list[str], settings) -> int:
     from pathlib import Path
 
     from passivefit.cli import EXIT_BAD_INPUT, error_line
-    from passivefit.commands.analyze import format_table, load_and_analyze
+    from passivefit.cli.analyze import format_table, load_and_analyze
     from passivefit.gui.state import expand_paths
     from passivefit.io.recording import LoadError
 

@@ -1,7 +1,9 @@
 """The `passivefit` command: analyze, batch, gui, db, demo.
 
-Heavy modules are imported inside each command so `passivefit analyze` starts fast
-and never imports Qt.
+Every command lives in this package, and only here are errors turned into exit codes and
+one-line messages: the rest of passivefit raises domain errors (`LoadError`,
+`InputError`, `StoreError`). Heavy modules are imported inside each command so
+`passivefit analyze` starts fast and never imports Qt.
 """
 
 from __future__ import annotations
@@ -16,7 +18,7 @@ EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT = 0, 1, 2
 
 
 class UsageError(ValueError):
-    """A problem with the command line or the input, reported in one line (exit 2)."""
+    """A problem with the command line, reported in one line (exit 2)."""
 
 
 def error_line(path: str | None, message: str) -> str:
@@ -42,12 +44,11 @@ def build_parser(command: str | None = None) -> argparse.ArgumentParser:
 
 # (name, module, one-line help). Each module has add_arguments(parser) and run(args) -> int.
 COMMANDS = [
-    ("analyze", "passivefit.commands.analyze",
-     "fit one recording and print its passive properties"),
-    ("gui", "passivefit.commands.gui", "open the review window on recordings"),
-    ("batch", "passivefit.batch", "analyse folders of recordings into a cell database"),
-    ("db", "passivefit.store.commands", "list, export and plot the cell database"),
-    ("demo", "passivefit.commands.demo", "write the simulated sample recordings to a folder"),
+    ("analyze", "passivefit.cli.analyze", "fit one recording and print its passive properties"),
+    ("gui", "passivefit.cli.gui", "open the review window on recordings"),
+    ("batch", "passivefit.cli.batch", "analyse folders of recordings into a cell database"),
+    ("db", "passivefit.cli.db", "list, export and plot the cell database"),
+    ("demo", "passivefit.cli.demo", "write the simulated sample recordings to a folder"),
 ]
 
 
@@ -67,17 +68,17 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return EXIT_BAD_INPUT
+    from passivefit.io.recording import LoadError
+    from passivefit.model.errors import InputError
+
     try:
         return int(_command_module(args._module).run(args) or 0)
-    except UsageError as exc:
+    except LoadError as exc:
+        print(error_line(exc.path, exc.reason), file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except (UsageError, InputError) as exc:
         print(error_line(None, str(exc)), file=sys.stderr)
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print("passivefit: interrupted", file=sys.stderr)
         return 130
-
-
-if __name__ == "__main__":  # `python -m passivefit.cli`: run the imported module's main, so
-    from passivefit.cli import main as _main  # its exception classes are the ones raised
-
-    sys.exit(_main())

@@ -1,0 +1,73 @@
+"""`passivefit analyze PATH`: fit one recording and print its passive properties."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+
+from passivefit.cli.options import add_settings_arguments, settings_from
+from passivefit.model import schema as S
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("path", help="recording (.abf, .nwb, .csv, .tsv)")
+    p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.add_argument("--out", metavar="FILE", help="also write the JSON result to FILE")
+    add_settings_arguments(p)
+
+
+def load_and_analyze(path: str, settings):
+    """Load and analyse one file; LoadError for anything wrong with the input."""
+    from passivefit.analysis import analyze
+    from passivefit.io import load
+
+    return analyze(load(path), settings)
+
+
+def run(args: argparse.Namespace) -> int:
+    result = load_and_analyze(args.path, settings_from(args))
+    data = result.to_dict()
+    if args.out:
+        with open(args.out, "w") as f:
+            json.dump(data, f, indent=2)
+    if args.json:
+        json.dump(data, sys.stdout, indent=2)
+        sys.stdout.write("\n")
+    else:
+        sys.stdout.write(format_table(data))
+    return 0
+
+
+SWEEP_WIDTHS = tuple(zip(S.SWEEP_TABLE, (5, 7, 9, 7, 6, 6, 7), strict=True))
+DIGITS = {S.TAU1: 3, S.RMSE: 2}
+
+
+def _heading(q: S.Quantity) -> str:
+    return "sweep" if q is S.INDEX else f"{q.label} {q.unit}".strip()
+
+
+def _fmt(x, digits: int = 4) -> str:
+    return "—" if x is None else f"{x:.{digits}g}"
+
+
+def format_table(data: dict) -> str:
+    """A short human-readable summary of an analysis."""
+    cell, src = data["cell"], data["source"]
+    lines = [f"{src['path']}  ({src['format']}, {src['sweep_count']} sweeps, "
+             f"{cell[S.N_SWEEPS_USED.key]} used)", ""]
+    for q in S.SUMMARY:
+        value = _fmt(cell.get(q.key))
+        if q.ci and cell.get(q.ci) is not None:
+            value += f" ± {_fmt(cell[q.ci], 2)}"
+        lines.append(f"  {q.label:<20} {value:>18} {q.unit}")
+    lines += ["", "  " + "  ".join(f"{_heading(q):>{w}}" for q, w in SWEEP_WIDTHS) + "  status"]
+    for s in data["sweeps"]:
+        status = "ok" if s[S.ACCEPTED.key] else f"rejected: {s[S.REJECT_REASON.key]}"
+        cells = [f"{_fmt(s[q.key], DIGITS.get(q, 4)):>{w}}" for q, w in SWEEP_WIDTHS]
+        lines.append("  " + "  ".join(cells) + f"  {status}")
+    if data["flags"]:
+        lines += ["", "  flags:"] + [f"    [{f['code']}] {f['message']}"
+                                     + (f" = {f['value']:.3g}" if f.get("value") is not None
+                                        else "") for f in data["flags"]]
+    return "\n".join(lines) + "\n"
