@@ -168,9 +168,9 @@ def test_bridge_is_not_subtracted_when_the_cable_fit_cannot_resolve_it():
 
 
 def test_bootstrap_runs_when_the_cable_fit_fails(monkeypatch):
-    import passivefit.analysis as analysis
+    from passivefit.analysis import pipeline
 
-    monkeypatch.setattr(analysis, "fit_cable", lambda *args, **kwargs: None)
+    monkeypatch.setattr(pipeline, "fit_cable", lambda *args, **kwargs: (None, None))
     rec, truth = simulate(n_sweeps=5)
     data = analyze(rec, Settings()).to_dict()
     assert data["cell"]["tau0_ms"] == pytest.approx(truth["tau0_ms"], rel=0.02)

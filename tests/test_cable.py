@@ -140,9 +140,9 @@ def test_tau2_ratio_range():
             qs.append(q)
             assert 4.0 <= q <= 9.0
             assert not [
-                f
-                for f in cable.plausibility_flags(tau0=1.0, tau1=1 / r1, tau2=1 / r2)
-                if f.code == "cable.tau2_ratio"
+                check
+                for check, _, _ in cable.implausible(tau0=1.0, tau1=1 / r1, tau2=1 / r2)
+                if check == "tau2_ratio"
             ]
     assert min(qs) < 4.1 and max(qs) > 8.5  # the grid reaches both ends of the range
 
@@ -274,25 +274,20 @@ def test_errors_are_clear():
     assert issubclass(CableFitError, ValueError)
 
 
-def test_plausibility_flags():
-    flags = cable.plausibility_flags(
+def test_implausible():
+    found = cable.implausible(
         tau0=20e-3, tau1=2e-3, tau2=1.5e-3, c1_over_c0=2.3, b1_over_b0=0.25, L=4.0, rho=0.05
     )
-    codes = [f.code for f in flags]
-    assert codes == [
-        "cable.tau2_ratio",
-        "cable.shunt_suspected",
-        "cable.shunt_suspected",
-        "cable.L_range",
-        "cable.rho_range",
-    ]
-    assert all(f.message and f.value is not None for f in flags)
-    assert "somatic shunt or non-uniform membrane" in flags[1].message
+    assert [check for check, _, _ in found] == [
+        "tau2_ratio", "shunt_pulse", "shunt_step", "L_range", "rho_range"]
+    assert [value for _, value, _ in found] == pytest.approx(
+        [(20 / 1.5 - 1) / (20 / 2 - 1), 2.3, 0.25, 4.0, 0.05])
+    assert found[2][2] == {"limit": pytest.approx(0.2)}  # 2*tau1/tau0
     # a uniform ball-and-stick in the usual range raises none (REFERENCES.md §2 [der])
     cell = BallStick.from_electrotonic(0.02, 1.0, 5.0, 100e6)
     tau0, tau1, tau2 = cell.taus(3)
     assert (
-        cable.plausibility_flags(
+        cable.implausible(
             tau0=tau0,
             tau1=tau1,
             tau2=tau2,
@@ -304,4 +299,4 @@ def test_plausibility_flags():
         == []
     )
     # missing values are skipped, not flagged
-    assert cable.plausibility_flags(tau0=20e-3, tau1=None, L=None) == []
+    assert cable.implausible(tau0=20e-3, tau1=None, L=None) == []

@@ -9,8 +9,8 @@ import math
 
 import pytest
 
-from passivefit.export.provenance import flags_text, settings_hash, unit_of
 from passivefit.export.sheets import write_sheet
+from passivefit.model.provenance import flags_text, settings_hash, unit_of
 
 SETTINGS = {"components": "auto", "fit_start_ms": None, "sweeps": None, "step": None}
 
