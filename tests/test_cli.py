@@ -1,4 +1,4 @@
-"""The `passivefit` command: the JSON contract of DESIGN.md and one-line errors."""
+"""The `passivefit` command: the JSON contract (README, "The JSON result"), one-line errors."""
 
 import json
 import subprocess
@@ -113,7 +113,7 @@ def test_analyze_never_imports_qt():
 
 
 def test_core_io_and_analysis_do_not_import_qt():
-    """The numerical core and the readers stay Qt-free (DESIGN.md layers)."""
+    """The numerical core and the readers stay Qt-free (README, "Project layout")."""
     root = Path(__file__).resolve().parent.parent / "passivefit"
     files = [*root.glob("core/*.py"), *root.glob("io/*.py"), root / "analysis.py",
              root / "simulate.py"]
