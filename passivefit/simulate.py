@@ -2,7 +2,7 @@
 
 A :class:`BallStick` is a lumped soma plus one uniform equivalent cylinder with a
 sealed far end, uniform Rm, Cm and Ri. Its somatic impulse response is the exact
-eigen-expansion h(t) = sum_n g_n exp(-t/tau_n) (REFERENCES.md §2);
+eigen-expansion h(t) = sum_n g_n exp(-t/tau_n) (docs/references.md §3);
 :func:`compartmental_modes` gives the same modes by an independent route (a fine
 compartmental discretisation, eigen-decomposed). :meth:`BallStick.soma_response`
 is exact for a current held constant over each sample (zero-order hold).
@@ -120,7 +120,8 @@ class BallStick:
 
         Notes
         -----
-        lambda = sqrt(Rm*d/(4*Ri)), G_inf = (pi/2)*d^(3/2)/sqrt(Rm*Ri) (REFERENCES.md, notation).
+        lambda = sqrt(Rm*d/(4*Ri)), G_inf = (pi/2)*d^(3/2)/sqrt(Rm*Ri)
+        (docs/references.md §1, notation).
         """
         rm = rm_ohm_cm2 * 1e-4  # Ohm*m^2
         ri = ri_ohm_cm * 1e-2  # Ohm*m
@@ -155,7 +156,7 @@ class BallStick:
 
     @property
     def c_tau_F(self) -> float:
-        """tau0/R_N, in F (underestimates c_total_F; REFERENCES.md §3)."""
+        """tau0/R_N, in F (underestimates c_total_F; docs/references.md §4)."""
         return self.tau0_s / self.r_in_ohm
 
     def alphas(self, n: int) -> np.ndarray:
@@ -194,7 +195,7 @@ class BallStick:
         taus_s : ndarray
             Time constants, slowest first, in s.
         gains_V_per_C : ndarray
-            g_n, in V/C (g_0 = 1/C_total, g_n = g_0*C_n/C_0; REFERENCES.md §2).
+            g_n, in V/C (g_0 = 1/C_total, g_n = g_0*C_n/C_0; docs/references.md §3).
         """
         if n_modes < 1:
             raise ValueError(f"`n_modes` must be >= 1, got {n_modes}")

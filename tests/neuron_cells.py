@@ -47,7 +47,7 @@ def neuron_step_mV(soma_um: float, dend_diam_um: float, dend_len_um: float, *,
 def morphology_truth(soma_um: float, dend_diam_um: float, dend_len_um: float) -> dict:
     """τ0 (s), L, ρ and C_total (F) of the cell from its morphology and membrane constants.
 
-    λ = √(Rm·d/(4·Ri)), G∞ = (π/2)·d^(3/2)/√(Rm·Ri) (REFERENCES.md notation, Rall 1959
+    λ = √(Rm·d/(4·Ri)), G∞ = (π/2)·d^(3/2)/√(Rm·Ri) (docs/references.md §1 notation, Rall 1959
     [mem], re-derived [der]); ρ = G∞·tanh(L)/G_soma (Rall 1969 definition [pub]);
     τ0 = Rm·Cm; C_total = membrane area × Cm.
     """

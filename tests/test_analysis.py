@@ -1,6 +1,6 @@
 """End-to-end accuracy of the analysis on simulated ball-and-stick cells with known truth.
 
-The simulated cells are checked against REFERENCES.md and NEURON in test_simulate.py and
+The simulated cells are checked against docs/references.md and NEURON in test_simulate.py and
 test_neuron_crosscheck.py; here the analysis must recover what they were made with.
 """
 
@@ -45,7 +45,7 @@ def test_typical_cell_cable_values(typical):
     assert cell["L_bs"] == pytest.approx(truth["L"], rel=0.10)
     assert cell["rho"] == pytest.approx(truth["rho"], rel=0.35)
     assert cell["c_total_pF"] == pytest.approx(truth["c_total_pF"], rel=0.08)
-    # REFERENCES.md §2–§3 [der]: for finite ρ the cylinder formula overestimates L and
+    # docs/references.md §3–§4 [der]: for finite ρ the cylinder formula overestimates L and
     # τ0/R_in underestimates the total capacitance.
     assert cell["L_cyl"] > truth["L"]
     assert cell["c_tau_pF"] < 0.95 * cell["c_total_pF"]
@@ -179,7 +179,7 @@ def test_bootstrap_runs_when_the_cable_fit_fails(monkeypatch):
 
 
 def test_membrane_area_gives_specific_capacitance_and_resistance():
-    # Worked numbers of REFERENCES.md §4 [der]: Rm = 20 kΩ·cm², Cm = 1 µF/cm² (common
+    # Worked numbers of docs/references.md §5.4 [der]: Rm = 20 kΩ·cm², Cm = 1 µF/cm² (common
     # practice, no source) → a cell's area follows from C_total = Cm · area.
     rec, truth = simulate(n_sweeps=10)
     area_um2 = truth["c_total_pF"] * 1e-12 / 1e-6 * 1e8   # F / (F/cm²) → cm² → µm²

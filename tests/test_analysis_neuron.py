@@ -3,9 +3,9 @@ passivefit analyses the noisy sweeps and must recover the cell's passive propert
 
 NEURON is used only to simulate the cable (see test_neuron_crosscheck.py). The expected
 values come from the cell's morphology and membrane constants, not from passivefit:
-τ0 = Rm·Cm; L = ℓ/λ with λ = √(Rm·d/(4·Ri)) (REFERENCES.md notation [der]); the total
+τ0 = Rm·Cm; L = ℓ/λ with λ = √(Rm·d/(4·Ri)) (docs/references.md §1 notation [der]); the total
 capacitance = membrane area × Cm; τ1 and ρ from the ball-and-stick relations of
-REFERENCES.md §2 [der] (Rall 1969, Biophys J 9:1483 [pub] for the definition of ρ).
+docs/references.md §3 [der] (Rall 1969, Biophys J 9:1483 [pub] for the definition of ρ).
 """
 
 from __future__ import annotations
@@ -67,8 +67,8 @@ def test_cable_values_match_the_neuron_cell(result):
     assert cell["L_bs"] == pytest.approx(want["L"], rel=0.10)
     assert cell["rho"] == pytest.approx(want["rho"], rel=0.35)
     assert cell["c_total_pF"] == pytest.approx(want["c_total_pF"], rel=0.08)
-    assert cell["L_cyl"] > want["L"]                    # REFERENCES.md §2 [der]
-    assert cell["c_tau_pF"] < cell["c_total_pF"]        # REFERENCES.md §3 [der]
+    assert cell["L_cyl"] > want["L"]                    # docs/references.md §3 [der]
+    assert cell["c_tau_pF"] < cell["c_total_pF"]        # docs/references.md §4 [der]
 
 
 def test_input_resistance_matches_neuron_steady_state(result):

@@ -26,7 +26,7 @@ LAYERS = (
     ("analysis",),
     ("io", "simulate"),
     ("model",),
-    ("core",),
+    ("core", "resources"),
 )
 LAYER_OF = {name: depth for depth, names in enumerate(LAYERS) for name in names}
 TOP_LEVEL = {"__init__", "__main__"}   # the package itself: version, `python -m`
@@ -66,6 +66,16 @@ def test_layers_point_down():
             if target not in LAYER_OF or LAYER_OF[target] <= LAYER_OF[part]:
                 wrong.append(f"{path.relative_to(ROOT)} imports {name}")
     assert not wrong, "imports that point up or sideways:\n" + "\n".join(wrong)
+
+
+def test_every_package_is_installed():
+    """pyproject.toml lists the packages (resources/ is mapped in): none may be missing."""
+    import tomllib
+
+    listed = set(tomllib.loads((ROOT / "pyproject.toml").read_text())["tool"]["setuptools"]
+                 ["packages"])
+    found = {".".join(p.parent.relative_to(ROOT).parts) for p in PACKAGE.rglob("__init__.py")}
+    assert found | {"passivefit.resources"} == listed
 
 
 def test_qt_only_in_the_window():

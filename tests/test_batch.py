@@ -95,8 +95,8 @@ def test_batch_stores_every_file_and_skips_them_on_rerun(lab, tmp_path, run_batc
         assert row.cell["cell_id"] == truth["cell_id"]  # from the file's own metadata
         assert row.cell["temperature_C"] == 32.0 and row.cell["date"] == path.stem[4:14]
         errors.append(abs(row.analysis["tau0_ms"] / truth["tau0_ms"] - 1))
-    # Each stored τ0 belongs to its own file: τ0 = τm for a ball-and-stick (REFERENCES.md
-    # §2 [der]) and the simulated τm differ by 2 ms (~10 %) from file to file, so rows
+    # Each stored τ0 belongs to its own file: τ0 = τm for a ball-and-stick (docs/references.md
+    # §3 [der]) and the simulated τm differ by 2 ms (~10 %) from file to file, so rows
     # stored against the wrong recording would put the median error near 10 %.
     assert sorted(errors)[N_FILES // 2] < 0.03
 

@@ -1,4 +1,4 @@
-"""Cable-theory relations (passivefit.core.cable) against REFERENCES.md and an
+"""Cable-theory relations (passivefit.core.cable) against docs/references.md and an
 independent compartmental model."""
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ def assert_printed(value: float, printed: str) -> None:
     assert abs(value - float(printed)) <= 0.5 * 10.0**-decimals + 1e-12, (value, printed)
 
 
-# REFERENCES.md §4 cylinder table [der]
+# docs/references.md §5.1 cylinder table [der]
 CYLINDER_TABLE = [
     # L, tau0/tau1, tau0/tau2, B0/Vinf = tanh L/L, step B1/B0, coth L
     ("0.5", "40.478", "158.91", "0.92423", "0.04941", "2.16395"),
@@ -29,7 +29,7 @@ CYLINDER_TABLE = [
     ("2.0", "3.4674", "10.870", "0.48201", "0.57680", "1.03731"),
 ]
 
-# REFERENCES.md §4 ball-and-stick table [der]
+# docs/references.md §5.2 ball-and-stick table [der]
 BALLSTICK_TABLE = [
     # L, rho, alpha1*L, tau0/tau1, naive pi/alpha1, pulse C1/C0, step B1/B0, B0/Vinf
     ("1", "1", "2.1244", "5.5131", "1.4788", "0.8045", "0.1459", "0.8647"),
@@ -47,24 +47,24 @@ WORKED = dict(
 
 @pytest.mark.parametrize("row", CYLINDER_TABLE, ids=lambda r: f"L={r[0]}")
 def test_cylinder_table(row):
-    # REFERENCES.md §4 cylinder table [der]
+    # docs/references.md §5.1 cylinder table [der]
     L = float(row[0])
     ratios = cable.ballstick_tau_ratios(L, math.inf, 2)
     assert_printed(ratios[0], row[1])
     assert_printed(ratios[1], row[2])
     assert_printed(cable.b0_over_vinf(L, math.inf), row[3])
     assert_printed(cable.step_ratio(L, math.inf), row[4])
-    # coth L = R_N/R_inf of a bare cylinder built from morphology (REFERENCES.md §1 [der])
+    # coth L = R_N/R_inf of a bare cylinder built from morphology (docs/references.md §2 [der])
     cell = BallStick.from_morphology(**WORKED, dend_length_m=L * 1e-3)
     assert_printed(cell.r_in_ohm * cell.g_inf_S, row[5])
-    # and L comes back from the table's own tau0/tau1 (REFERENCES.md §1, Rall 1969 [pub])
+    # and L comes back from the table's own tau0/tau1 (docs/references.md §2, Rall 1969 [pub])
     assert_allclose(cable.cylinder_L(1.0, 1.0 / float(row[1])), L, rtol=5e-5)
     assert_allclose(cable.cylinder_L(1.0, 1.0 / float(row[2]), n=2), L, rtol=5e-5)
 
 
 @pytest.mark.parametrize("row", BALLSTICK_TABLE, ids=lambda r: f"L={r[0]}-rho={r[1]}")
 def test_ballstick_table(row):
-    # REFERENCES.md §4 ball-and-stick table [der]
+    # docs/references.md §5.2 ball-and-stick table [der]
     L, rho = float(row[0]), float(row[1])
     alpha1 = cable.ballstick_alphas(L, rho, 1)[0]
     assert_printed(alpha1 * L, row[2])
@@ -73,14 +73,14 @@ def test_ballstick_table(row):
     assert_printed(cable.pulse_ratio(L, rho), row[5])
     assert_printed(cable.step_ratio(L, rho), row[6])
     assert_printed(cable.b0_over_vinf(L, rho), row[7])
-    # last column also = (tau0/R_N)/C_total (REFERENCES.md §3 [der])
+    # last column also = (tau0/R_N)/C_total (docs/references.md §4 [der])
     cell = BallStick.from_electrotonic(0.02, L, rho, 150e6)
     assert_printed(cell.c_tau_F / cell.c_total_F, row[7])
 
 
 @pytest.mark.parametrize("L", [0.3, 1.0, 2.5])
 def test_cylinder_sum_identity(L):
-    # REFERENCES.md §1: 1 + 2*sum 1/(1 + (n pi/L)^2) = L coth L [der]
+    # docs/references.md §2: 1 + 2*sum 1/(1 + (n pi/L)^2) = L coth L [der]
     n = 20000
     terms = 1.0 / cable.ballstick_tau_ratios(L, math.inf, n)
     tail = 2.0 * L**2 / (math.pi**2 * (n + 0.5))  # sum over n' > n of 2 L^2/(n' pi)^2
@@ -89,7 +89,7 @@ def test_cylinder_sum_identity(L):
 
 @pytest.mark.parametrize(("L", "rho"), [(0.5, 1.0), (1.0, 5.0), (2.0, 0.5), (1.0, math.inf)])
 def test_step_amplitudes_sum_to_steady_state(L, rho):
-    # V_inf = sum_n B_n at t = 0: REFERENCES.md §1/§2 charging curve
+    # V_inf = sum_n B_n at t = 0: docs/references.md §2/§3 charging curve
     # V = V_inf - sum B_n exp(-t/tau_n) [der]
     n = 20000
     total = cable.b0_over_vinf(L, rho) * (1.0 + cable.step_ratios(L, rho, n).sum())
@@ -99,7 +99,7 @@ def test_step_amplitudes_sum_to_steady_state(L, rho):
 
 
 def test_worked_numbers():
-    # REFERENCES.md §4 worked numbers [der]: Rm 20 kOhm cm2, Ri 100 Ohm cm, d 2 um
+    # docs/references.md §5.4 worked numbers [der]: Rm 20 kOhm cm2, Ri 100 Ohm cm, d 2 um
     long_cell = BallStick.from_morphology(**WORKED, dend_length_m=1e-3)
     lam_m = 1e-3 / long_cell.L
     assert_allclose(lam_m * 1e3, 1.000, atol=5e-4)
@@ -107,18 +107,19 @@ def test_worked_numbers():
     assert_allclose(long_cell.r_in_ohm * 1e-6, 417.95, atol=0.005)
     short_cell = BallStick.from_morphology(**WORKED, dend_length_m=0.5e-3)
     assert_allclose(short_cell.r_in_ohm * 1e-6, 688.81, atol=0.005)
-    # tau0 = 20 ms, tau1 = 2 ms -> L = pi/3 = 1.0472 (REFERENCES.md §4 [der])
+    # tau0 = 20 ms, tau1 = 2 ms -> L = pi/3 = 1.0472 (docs/references.md §5.4 [der])
     assert_allclose(cable.cylinder_L(20e-3, 2e-3), math.pi / 3, rtol=1e-12)
     assert_printed(cable.cylinder_L(20e-3, 2e-3), "1.0472")
 
 
 def test_rho_limits():
-    # REFERENCES.md §2: rho -> inf gives alpha_n L -> n pi; rho -> 0 gives (n - 1/2) pi [der]
+    # docs/references.md §3: rho -> inf gives alpha_n L -> n pi; rho -> 0 gives (n - 1/2) pi [der]
     n = np.arange(1, 6)
     for L in (0.5, 1.0, 2.0):
         assert_allclose(cable.ballstick_alphas(L, 1e9, 5) * L, n * math.pi, rtol=1e-8)
         assert_allclose(cable.ballstick_alphas(L, 1e-9, 5) * L, (n - 0.5) * math.pi, rtol=1e-8)
-        # cylinder limits of the amplitude ratios: C_n/C_0 = 2, B_n/B_0 = 2 tau_n/tau0 (§1)
+        # cylinder limits of the amplitude ratios: C_n/C_0 = 2, B_n/B_0 = 2 tau_n/tau0
+        # (docs/references.md §2)
         assert_allclose(cable.pulse_ratios(L, 1e9, 5), 2.0, rtol=1e-6)
         assert_allclose(
             cable.step_ratios(L, math.inf, 5),
@@ -131,7 +132,7 @@ def test_rho_limits():
 
 
 def test_tau2_ratio_range():
-    # REFERENCES.md §2: (tau0/tau2 - 1)/(tau0/tau1 - 1) in [4, 9] [der]
+    # docs/references.md §3: (tau0/tau2 - 1)/(tau0/tau1 - 1) in [4, 9] [der]
     qs = []
     for L in (0.2, 0.5, 1.0, 2.0, 3.0):
         for rho in (0.01, 0.3, 1.0, 5.0, 30.0, 1e4):
@@ -159,7 +160,7 @@ GRID = [(float(r[0]), float(r[1])) for r in BALLSTICK_TABLE] + [
 
 @pytest.mark.parametrize(("L", "rho"), GRID)
 def test_estimate_ballstick_round_trip(L, rho):
-    # (L, rho) -> (tau0, tau1, ratio) -> (L, rho), REFERENCES.md §2 estimation [der]
+    # (L, rho) -> (tau0, tau1, ratio) -> (L, rho), docs/references.md §3 estimation [der]
     tau0 = 0.025
     tau1 = tau0 / cable.ballstick_tau_ratios(L, rho, 1)[0]
     for kind, ratio in (("pulse", cable.pulse_ratio(L, rho)), ("step", cable.step_ratio(L, rho))):
@@ -174,7 +175,7 @@ def test_estimate_ballstick_round_trip(L, rho):
 
 
 def test_square_pulse_factor_against_compartmental_model():
-    # Square-pulse factor (REFERENCES.md §1 [der]) vs decay amplitudes of an independent
+    # Square-pulse factor (docs/references.md §2 [der]) vs decay amplitudes of an independent
     # compartmental model: C_n' = I g_n tau_n (1 - exp(-D/tau_n)) at the pulse end.
     cell = BallStick.from_electrotonic(0.02, 1.2, 3.0, 200e6)
     taus, gains = compartmental_modes(cell, 800)
@@ -187,7 +188,7 @@ def test_square_pulse_factor_against_compartmental_model():
 
 
 def test_cylinder_overestimates_L_and_c_tau_underestimates_capacitance():
-    # REFERENCES.md §2 (naive pi/alpha1 overestimates L) and §3 (tau0/R_N < C_total) [der]
+    # docs/references.md §3 (naive pi/alpha1 overestimates L) and §4 (tau0/R_N < C_total) [der]
     for L, rho in GRID:
         cell = BallStick.from_electrotonic(0.02, L, rho, 100e6)
         tau0, tau1 = cell.taus(2)
@@ -198,7 +199,7 @@ def test_cylinder_overestimates_L_and_c_tau_underestimates_capacitance():
 
 
 def test_rho_and_capacitance_from_amplitudes():
-    # REFERENCES.md §2 "independent rho from amplitudes" and §3 unbiased C_total [der],
+    # docs/references.md §3 "independent rho from amplitudes" and §4 unbiased C_total [der],
     # with amplitudes taken from the independent compartmental model.
     cell = BallStick.from_electrotonic(0.03, 0.9, 4.0, 250e6)
     taus, gains = compartmental_modes(cell, 1000)
@@ -233,7 +234,8 @@ def test_cylinder_L_ci_matches_section5_and_numeric_derivative():
     d0 = (cable.cylinder_L(tau0 + h0, tau1) - cable.cylinder_L(tau0 - h0, tau1)) / (2 * h0)
     d1 = (cable.cylinder_L(tau0, tau1 + h1) - cable.cylinder_L(tau0, tau1 - h1)) / (2 * h1)
     assert_allclose(half, math.hypot(d0 * ci0, d1 * ci1), rtol=1e-6)
-    # REFERENCES.md §5: dL/L = 1/2 tau0/(tau0 - tau1) sqrt((dtau0/tau0)^2 + (dtau1/tau1)^2) [der]
+    # docs/references.md §6 [der]:
+    # dL/L = 1/2 tau0/(tau0 - tau1) sqrt((dtau0/tau0)^2 + (dtau1/tau1)^2)
     rel = 0.5 * tau0 / (tau0 - tau1) * math.hypot(ci0 / tau0, ci1 / tau1)
     assert_allclose(half / cable.cylinder_L(tau0, tau1), rel, rtol=1e-12)
 
@@ -262,7 +264,7 @@ def test_errors_are_clear():
         cable.cylinder_L(20e-3, None)
     with pytest.raises(CableFitError, match="larger than a uniform ball-and-stick allows"):
         cable.estimate_ballstick(20e-3, 2e-3, 2.1, "pulse")
-    # B1/B0 > 2 tau1/tau0 is the step form of the same limit (REFERENCES.md §2 [der])
+    # B1/B0 > 2 tau1/tau0 is the step form of the same limit (docs/references.md §3 [der])
     with pytest.raises(CableFitError, match=r"B1/B0.*somatic shunt"):
         cable.estimate_ballstick(20e-3, 2e-3, 0.21, "step")
     with pytest.raises(CableFitError, match="must be a finite positive"):
@@ -283,7 +285,7 @@ def test_implausible():
     assert [value for _, value, _ in found] == pytest.approx(
         [(20 / 1.5 - 1) / (20 / 2 - 1), 2.3, 0.25, 4.0, 0.05])
     assert found[2][2] == {"limit": pytest.approx(0.2)}  # 2*tau1/tau0
-    # a uniform ball-and-stick in the usual range raises none (REFERENCES.md §2 [der])
+    # a uniform ball-and-stick in the usual range raises none (docs/references.md §3 [der])
     cell = BallStick.from_electrotonic(0.02, 1.0, 5.0, 100e6)
     tau0, tau1, tau2 = cell.taus(3)
     assert (

@@ -58,7 +58,8 @@ def test_mode_table_matches_bracketed_roots(L, rho):
     assert rate[0] == 1.0 and ratio[0] == 1.0
 
 
-# REFERENCES.md §4 ball-and-stick table [der]: L, rho, alpha1*L, tau0/tau1, step B1/B0, B0/V_inf
+# docs/references.md §5.2 ball-and-stick table [der]:
+# L, rho, alpha1*L, tau0/tau1, step B1/B0, B0/V_inf
 TABLE = [
     (1.0, 1.0, 2.1244, 5.5131, 0.1459, 0.8647),
     (1.0, 2.0, 2.4009, 6.7645, 0.1842, 0.8273),
@@ -71,18 +72,19 @@ TABLE = [
 
 @pytest.mark.parametrize(("L", "rho", "a1L", "t0_t1", "b1_b0", "b0_vinf"), TABLE)
 def test_mode_table_reproduces_reference_table(L, rho, a1L, t0_t1, b1_b0, b0_vinf):
-    # REFERENCES.md §4 ball-and-stick table [der]
+    # docs/references.md §5.2 ball-and-stick table [der]
     rate, ratio = cablefit.mode_table(L, rho, 3)
     assert math.sqrt(rate[1] - 1.0) * L == pytest.approx(a1L, abs=1e-4)
     assert rate[1] == pytest.approx(t0_t1, abs=1e-4)
     assert ratio[1] == pytest.approx(b1_b0, abs=1e-4)
-    # sum of all charging amplitudes is V_inf: sum_n B_n/B_0 = V_inf/B0 (REFERENCES.md §2 [der])
+    # sum of all charging amplitudes is V_inf: sum_n B_n/B_0 = V_inf/B0
+    # (docs/references.md §3 [der])
     _, many = cablefit.mode_table(L, rho, 20_000)
     assert 1.0 / many.sum() == pytest.approx(b0_vinf, abs=1e-4)
 
 
 def test_cylinder_limit_identity():
-    # REFERENCES.md §1 identity [der]: 1 + 2*sum 1/(1 + (n pi/L)^2) = L coth L, i.e. for a
+    # docs/references.md §2 identity [der]: 1 + 2*sum 1/(1 + (n pi/L)^2) = L coth L, i.e. for a
     # bare cylinder (rho = inf) sum_n B_n/B_0 = L coth L; the tail beyond 20000 modes ~ 1e-5
     for L in (0.5, 1.0, 2.0):
         rate, ratio = cablefit.mode_table(L, math.inf, 20_000)
@@ -110,7 +112,7 @@ def test_exact_recovery_noiseless(L, rho, start_ms):
     # no bridge error was simulated: the offset is baseline + I*R_N exactly
     assert fit.bridge_jump_V(0, -0.070) / I_STEP == pytest.approx(0.0, abs=1e3)  # < 1 kOhm
     assert fit.v_inf_membrane_V[0] == pytest.approx(I_STEP * R_IN, rel=1e-4)
-    # C_total = I*tau0/B0 (REFERENCES.md §3 [der]) against the simulated cell's capacitance
+    # C_total = I*tau0/B0 (docs/references.md §4 [der]) against the simulated cell's capacitance
     assert fit.c_total_F(0, I_STEP) == pytest.approx(cell.c_total_F, rel=1e-4)
     assert fit.c_total_F(1, I_STEP) == pytest.approx(cell.c_total_F, rel=1e-4)
 
@@ -146,7 +148,7 @@ def test_known_offset_and_unbinned_samples():
 
 
 def test_decay_after_brief_square_pulse():
-    # decay after a 0.5-ms pulse: amplitudes b0*r_n*(1 - exp(-D/tau_n)) (REFERENCES.md §1
+    # decay after a 0.5-ms pulse: amplitudes b0*r_n*(1 - exp(-D/tau_n)) (docs/references.md §2
     # square pulse [der]); b0 is still I*tau0/C_total
     L, rho, d = 1.0, 2.0, 0.5e-3
     cell = BallStick.from_electrotonic(TAU_M, L, rho, R_IN)
@@ -162,7 +164,7 @@ def test_decay_after_brief_square_pulse():
     assert fit.c_total_F(0, 1e-9) == pytest.approx(cell.c_total_F, rel=1e-4)
     # at the pulse end the sum over all modes is the voltage the pulse left
     assert fit.evaluate(0, np.array([0.0]))[0] == pytest.approx(v[end], rel=1e-6)
-    # square-pulse C1/C0 (REFERENCES.md §1 [der]) of the fit against the simulator's truth
+    # square-pulse C1/C0 (docs/references.md §2 [der]) of the fit against the simulator's truth
     taus, gains = cell.modes(2)
     held = gains * taus * -np.expm1(-d / taus)
     c0, c1 = fit.b0_V[0] * np.array([1.0, fit.b_ratios[0]]) * -np.expm1(-d / fit.taus_s[:2])
@@ -172,7 +174,8 @@ def test_decay_after_brief_square_pulse():
 def test_initial_guess_fallbacks():
     # cable.estimate_ballstick when it has a solution ...
     tau0, L, rho = cablefit.initial_guess(0.022, 0.022 / 8.5378, 0.2034)
-    assert (L, rho) == pytest.approx((1.0, 5.0), rel=1e-3)  # REFERENCES.md §4 table row [der]
+    # docs/references.md §5.2 table row [der]
+    assert (L, rho) == pytest.approx((1.0, 5.0), rel=1e-3)
     # ... else 0.9 x the cylinder L and rho = 3 (a ratio too large for a uniform cell)
     tau0, L, rho = cablefit.initial_guess(0.022, 0.022 / 10.0, 0.5)
     assert L == pytest.approx(0.9 * math.pi / 3.0) and rho == 3.0

@@ -1,4 +1,4 @@
-"""The `passivefit` command: the JSON contract of DESIGN.md and one-line errors."""
+"""The `passivefit` command: the JSON contract (README, "The JSON result"), one-line errors."""
 
 import json
 import subprocess

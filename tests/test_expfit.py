@@ -176,7 +176,7 @@ def test_decimate_tail_weights_count_samples():
     [(1, 7.2), (2, 2.0), (3, 1.1), (5, 0.71), (10, 0.53)],
 )
 def test_crlb_offset_unknown_matches_reference(n_tau, expected_percent):
-    # REFERENCES.md §5 precision, offset unknown vs record length [der]
+    # docs/references.md §6 precision, offset unknown vs record length [der]
     tau, dt = 0.030, 0.05e-3
     t = np.arange(0.0, n_tau * tau, dt)
     sd = crlb_taus(t, 0.04, [tau], [1.0], offset_known=False)[0]
@@ -184,7 +184,8 @@ def test_crlb_offset_unknown_matches_reference(n_tau, expected_percent):
 
 
 def test_crlb_offset_known_long_record_matches_formula():
-    # REFERENCES.md §5: sd(tau)/tau ~ (sigma/A) sqrt(8 dt / tau), offset known, record >> tau [der]
+    # docs/references.md §6: sd(tau)/tau ~ (sigma/A) sqrt(8 dt / tau), offset known,
+    # record >> tau [der]
     tau, dt, sigma, amp = 0.030, 0.05e-3, 0.04, 1.0
     t = np.arange(0.0, 20 * tau, dt)
     sd = crlb_taus(t, sigma, [tau], [amp], offset_known=True)[0]
@@ -225,7 +226,7 @@ def test_fit_auto_picks_two_for_clear_double_exponential():
 
 
 def ball_and_stick_step(L, rho, tau0, t, n_modes=300):
-    """Somatic step response (V per V_inf scale) from REFERENCES.md §2 formulas [der]."""
+    """Somatic step response (V per V_inf scale) from docs/references.md §3 formulas [der]."""
     rho_inf = rho / np.tanh(L)
     alpha = np.array(
         [0.0]
@@ -249,14 +250,14 @@ def ball_and_stick_step(L, rho, tau0, t, n_modes=300):
 def test_ball_and_stick_late_start_recovers_table_and_early_start_biases_tau1():
     t = np.arange(0.0, 0.2, 1e-5)
     y, taus, b = ball_and_stick_step(1.0, 5.0, 0.020, t)
-    # REFERENCES.md §4 ball-and-stick table, L = 1, rho = 5:
+    # docs/references.md §5.2 ball-and-stick table, L = 1, rho = 5:
     # tau0/tau1 = 8.5378, step B1/B0 = 0.2034 [der]
     assert taus[0] / taus[1] == pytest.approx(8.5378, rel=1e-4)
     scan = fit_start_scan([Segment(t, y)], [0.5e-3, 2e-3, 4e-3, 8e-3], 2)
     late = fit_exponentials([Segment(t[t >= 8e-3], y[t >= 8e-3])], 2)
     assert late.taus[0] / late.taus[1] == pytest.approx(8.5378, rel=1e-3)
     assert late.amplitudes[0, 1] / late.amplitudes[0, 0] == pytest.approx(0.2034, rel=2e-3)
-    # REFERENCES.md §5: an early 2-exp start absorbs tau2.. into tau1 and biases it low [der]
+    # docs/references.md §6: an early 2-exp start absorbs tau2.. into tau1 and biases it low [der]
     bias = scan["tau1"] / taus[1] - 1
     assert np.all(bias < 0) and np.all(np.diff(bias) > 0)
     assert bias[0] < -0.03 and abs(bias[-1]) < 1e-3

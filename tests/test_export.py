@@ -20,9 +20,9 @@ def example_result(name: str = "LOL-2026-11-03-c1", *, tau0_ms: float = 22.0,
                    reject: int | None = 3, digest: str | None = None) -> dict:
     """A `RecordingResult.to_dict()` object of the invented Lindqvist-Okafor lab.
 
-    Values are in the range of CA1 pyramidal cells (REFERENCES.md §7, Pike et al.
+    Values are in the range of CA1 pyramidal cells (docs/references.md §8, Pike et al.
     2000 [pub]); L_cyl follows from τ0/τ1 by the equivalent-cylinder relation
-    (REFERENCES.md §1, Rall 1969 [pub]) so the object is self-consistent.
+    (docs/references.md §2, Rall 1969 [pub]) so the object is self-consistent.
     """
     L_cyl = math.pi / math.sqrt(tau0_ms / tau1_ms - 1.0)
     sweeps = []

@@ -53,7 +53,7 @@ def test_analytic_and_compartmental_modes_agree(name):
 
 @pytest.mark.parametrize("name", CELLS)
 def test_impulse_modes_match_cable_theory(name):
-    # g_0 = 1/C_total and the tau0 amplitude share B0/V_inf (REFERENCES.md §2/§3 [der])
+    # g_0 = 1/C_total and the tau0 amplitude share B0/V_inf (docs/references.md §3/§4 [der])
     cell = CELLS[name]
     taus, gains = cell.modes(50)
     assert_allclose(gains[0], 1.0 / cell.c_total_F, rtol=1e-12)
@@ -62,20 +62,20 @@ def test_impulse_modes_match_cable_theory(name):
 
 
 def test_step_response_of_a_cylinder_matches_rall_table():
-    # REFERENCES.md §4: cylinder L = 1 at X = 0, V/V_inf = 0.2630/0.5375/0.7198/0.8969 [der]
+    # docs/references.md §5.3: cylinder L = 1 at X = 0, V/V_inf = 0.2630/0.5375/0.7198/0.8969 [der]
     dt, tau = 1e-4, 1.0
     T = np.array([0.1, 0.5, 1.0, 2.0])
     idx = np.round(T / (dt / tau)).astype(int)
     cell = BallStick.cylinder(tau, 1.0, 1.0)
     v = cell.soma_response(np.ones(idx[-1] + 1), dt)
     assert_allclose(v[idx], [0.2630, 0.5375, 0.7198, 0.8969], atol=5e-5)
-    # semi-infinite cylinder erf(sqrt T) (Jack, Noble & Tsien 1975 [mem]; REFERENCES.md §4):
+    # semi-infinite cylinder erf(sqrt T) (Jack, Noble & Tsien 1975 [mem]; docs/references.md §5.3):
     # a cylinder of L = 10 is semi-infinite for T <= 2 at this precision
     long_cell = BallStick.cylinder(tau, 10.0, 1.0)
     v = long_cell.soma_response(np.ones(idx[-1] + 1), dt) / long_cell.r_in_ohm
     assert_allclose(v[idx], erf(np.sqrt(T)), atol=1e-6)
     assert_allclose(v[idx], [0.3453, 0.6827, 0.8427, 0.9545], atol=5e-5)
-    # isopotential cell 1 - exp(-T) (REFERENCES.md §4 [der]): vanishing dendrite
+    # isopotential cell 1 - exp(-T) (docs/references.md §5.3 [der]): vanishing dendrite
     iso = BallStick.from_electrotonic(tau, 1.0, 1e-9, 1.0)
     v = iso.soma_response(np.ones(idx[-1] + 1), dt)
     assert_allclose(v[idx], -np.expm1(-T), atol=1e-8)
@@ -161,9 +161,9 @@ def test_recording_shape_units_and_metadata():
         [20.0, cell.taus(2)[1] * 1e3, 200.0, 1.0, 5.0, cell.c_total_F * 1e12, 100.0],
         rtol=1e-12,
     )
-    assert_allclose(truth["L_cyl_naive"], 1.1443, atol=5e-5)  # REFERENCES.md §4 [der]
-    assert_allclose(truth["b1_over_b0"], 0.2034, atol=5e-5)  # REFERENCES.md §4 [der]
-    assert_allclose(truth["c1_over_c0"], 1.7365, atol=5e-5)  # REFERENCES.md §4 [der]
+    assert_allclose(truth["L_cyl_naive"], 1.1443, atol=5e-5)  # docs/references.md §5.2 [der]
+    assert_allclose(truth["b1_over_b0"], 0.2034, atol=5e-5)  # docs/references.md §5.2 [der]
+    assert_allclose(truth["c1_over_c0"], 1.7365, atol=5e-5)  # docs/references.md §5.2 [der]
     decoded = json.loads(truth_to_json(truth))
     assert decoded["tau0_ms"] == truth["tau0_ms"] and decoded["amplitudes_pA"][0] == -50.0
     assert simulate(metadata={"temperature_C": 22.0})[0].metadata["temperature_C"] == 22.0
@@ -241,7 +241,7 @@ def test_pulse_protocol_truth():
     )
     assert truth["protocol"] == "pulse" and truth["charge_pC"] == pytest.approx(0.5)
     assert np.count_nonzero(rec.sweeps[0].current) == 10
-    # square-pulse amplitudes at the pulse end: REFERENCES.md §1 duration factor [der]
+    # square-pulse amplitudes at the pulse end: docs/references.md §2 duration factor [der]
     factor = cable.square_pulse_factor(cell.taus(2)[0], cell.taus(2)[1], 0.5e-3)
     assert_allclose(truth["c1_over_c0_square"], truth["c1_over_c0"] * factor, rtol=1e-12)
     # the simulated decay from the pulse end carries that C0 late on

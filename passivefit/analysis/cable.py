@@ -1,5 +1,5 @@
 """The cable interpretation: ball-and-stick fit of the combined response, the bridge
-jump, L, ρ and the capacitances (REFERENCES.md §1–§3)."""
+jump, L, ρ and the capacitances (docs/references.md §2–§4)."""
 
 from __future__ import annotations
 
@@ -90,7 +90,7 @@ def model_tau1_ci(bs) -> float:
 
 
 def rho_cross_check(bs, v_inf: float) -> tuple[dict, list[Flag]]:
-    """ρ from the amplitudes (steady deflection vs B0, REFERENCES.md §2) against the
+    """ρ from the amplitudes (steady deflection vs B0, docs/references.md §3) against the
     fit's ρ."""
     from passivefit.core import cable
 
@@ -134,7 +134,7 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
             more, more_flags = rho_cross_check(bs, r_in * step.amplitude_A)
             values.update(more)
             flags.extend(more_flags)
-    elif kind == "step":  # no cable fit: I·τ0/B0 of the exponential fit (REFERENCES.md §3)
+    elif kind == "step":  # no cable fit: I·τ0/B0 of the exponential fit (docs/references.md §4)
         c0 = onset_amplitudes(fit, g)[0]
         if c0 * step.amplitude_A > 0:
             values[S.C_TOTAL] = cable.c_total_step(step.amplitude_A, tau0, c0)

@@ -2,7 +2,7 @@
 
 Rall's finite equivalent cylinder and the ball-and-stick (a lumped soma plus one
 uniform cylinder with a sealed far end, uniform membrane time constant), following
-the formulas collected in ``REFERENCES.md`` §1–§3.
+the formulas collected in ``docs/references.md`` §2–§4.
 
 Units: times in s, resistances in Ohm, capacitances in F, charges in C, voltages in
 V; L, rho and the alphas are dimensionless. ``rho = G_D / G_S`` with
@@ -157,7 +157,7 @@ def _alphas_from_s(L: float, s: float, n: int) -> np.ndarray:
 def ballstick_alphas(L: float, rho: float, n: int) -> np.ndarray:
     """First `n` roots of the ball-and-stick eigenvalue equation tan(alpha*L) = -alpha*tanh(L)/rho.
 
-    REFERENCES.md §2: alpha_k*L lies in ((k - 1/2)*pi, k*pi]; tau0/tau_k = 1 + alpha_k^2.
+    docs/references.md §3: alpha_k*L lies in ((k - 1/2)*pi, k*pi]; tau0/tau_k = 1 + alpha_k^2.
 
     Parameters
     ----------
@@ -177,7 +177,7 @@ def ballstick_alphas(L: float, rho: float, n: int) -> np.ndarray:
 
 
 def ballstick_tau_ratios(L: float, rho: float, n: int) -> np.ndarray:
-    """tau0/tau_k = 1 + alpha_k^2 for k = 1..n (REFERENCES.md §2)."""
+    """tau0/tau_k = 1 + alpha_k^2 for k = 1..n (docs/references.md §3)."""
     return 1.0 + ballstick_alphas(L, rho, n) ** 2
 
 
@@ -187,7 +187,7 @@ def _pulse_ratio_s(alpha: np.ndarray | float, L: float, s: float) -> np.ndarray 
 
 
 def pulse_ratios(L: float, rho: float, n: int) -> np.ndarray:
-    """Somatic brief-pulse amplitude ratios C_k/C_0 for k = 1..n (REFERENCES.md §2)."""
+    """Somatic brief-pulse amplitude ratios C_k/C_0 for k = 1..n (docs/references.md §3)."""
     return pulse_ratios_from_alphas(ballstick_alphas(L, rho, n), L, rho)
 
 
@@ -215,9 +215,9 @@ def step_ratio(L: float, rho: float, n: int = 1) -> float:
 
 
 def b0_over_vinf(L: float, rho: float) -> float:
-    """B0/V_inf = (1 + rho)/(1 + rho*L*coth L) (REFERENCES.md §2); tanh(L)/L for a cylinder.
+    """B0/V_inf = (1 + rho)/(1 + rho*L*coth L) (docs/references.md §3); tanh(L)/L for a cylinder.
 
-    Also equals (tau0/R_N)/C_total (REFERENCES.md §3).
+    Also equals (tau0/R_N)/C_total (docs/references.md §4).
     """
     s = _soma_over_ginf(float(L), float(rho))
     return (s + math.tanh(L)) / (s + L)
@@ -227,7 +227,7 @@ def square_pulse_factor(tau0: float, tau_n: float, duration_s: float) -> float:
     """Factor by which a square pulse of duration D scales C_n/C_0 of a brief pulse.
 
     tau_n*(1 - exp(-D/tau_n)) / (tau0*(1 - exp(-D/tau0))), for amplitudes of the decay
-    measured from the pulse end (REFERENCES.md §1, square pulse); tends to 1 as D -> 0.
+    measured from the pulse end (docs/references.md §2, square pulse); tends to 1 as D -> 0.
     """
     t0, tn = _positive("tau0", tau0), _positive("tau_n", tau_n)
     d = _positive("duration_s", duration_s)
@@ -261,7 +261,7 @@ def estimate_ballstick(
 ) -> tuple[float, float]:
     """L and rho of a uniform ball-and-stick from tau0, tau1 and the first amplitude ratio.
 
-    REFERENCES.md §2: with alpha1 = sqrt(tau0/tau1 - 1), L is searched in
+    docs/references.md §3: with alpha1 = sqrt(tau0/tau1 - 1), L is searched in
     (pi/(2*alpha1), pi/alpha1); for each trial L, rho_inf = -alpha1*cot(alpha1*L), and
     the brief-pulse ratio C1/C0 it implies is matched to the measured one (brentq).
     Then rho = rho_inf*tanh(L).
@@ -388,7 +388,7 @@ def _difference(f, x0: np.ndarray, step: np.ndarray, y0: np.ndarray) -> np.ndarr
 
 
 def rho_from_amplitudes_step(v_inf: float, b0: float, L: float) -> float:
-    """rho from the step amplitudes: (V_inf - B0)/(B0*L*coth L - V_inf) (REFERENCES.md §2).
+    """rho from the step amplitudes: (V_inf - B0)/(B0*L*coth L - V_inf) (docs/references.md §3).
 
     Parameters
     ----------
@@ -406,7 +406,8 @@ def rho_from_amplitudes_step(v_inf: float, b0: float, L: float) -> float:
 
 
 def rho_from_amplitudes_pulse(q: float, r_n: float, c0: float, tau0: float, L: float) -> float:
-    """rho from pulse amplitudes: (Q*R_N - C0*tau0)/(C0*tau0*L*coth L - Q*R_N) (REFERENCES.md §2).
+    """rho from pulse amplitudes: (Q*R_N - C0*tau0)/(C0*tau0*L*coth L - Q*R_N)
+    (docs/references.md §3).
 
     Parameters
     ----------
@@ -442,12 +443,12 @@ def _positive_rho(num: float, den: float, what: str) -> float:
 
 def c_tau(tau0: float, r_in: float) -> float:
     """tau0/R_in, in F: the voltage-weighted capacitance; underestimates C_total in a
-    non-isopotential cell (REFERENCES.md §3)."""
+    non-isopotential cell (docs/references.md §4)."""
     return _positive("tau0", tau0) / _positive("r_in", r_in)
 
 
 def c_total_step(i_step: float, tau0: float, b0: float) -> float:
-    """Total capacitance from a step, I*tau0/B0, in F (REFERENCES.md §3; uniform tau_m).
+    """Total capacitance from a step, I*tau0/B0, in F (docs/references.md §4; uniform tau_m).
 
     `i_step` (A) and `b0` (V, amplitude of the tau0 component) must have the same sign.
     """
@@ -456,7 +457,7 @@ def c_total_step(i_step: float, tau0: float, b0: float) -> float:
 
 
 def c_total_pulse(q: float, c0: float) -> float:
-    """Total capacitance from a brief pulse, Q/C0, in F (REFERENCES.md §3; uniform tau_m)."""
+    """Total capacitance from a brief pulse, Q/C0, in F (docs/references.md §4; uniform tau_m)."""
     c = q / c0 if c0 != 0 else math.nan
     return _positive("Q/C0 (charge and C0 must have the same sign)", c)
 
@@ -505,8 +506,8 @@ def implausible(
 
     Checks (each only when its inputs are given and finite): the tau2 ratio
     (tau0/tau2 - 1)/(tau0/tau1 - 1) within [4, 9]; brief-pulse C1/C0 <= 2 and step
-    B1/B0 <= 2*tau1/tau0 (REFERENCES.md §2, signs of a shunt); L within 0.1–3 and
-    rho within 0.1–100 (REFERENCES.md §7 ranges, common practice).
+    B1/B0 <= 2*tau1/tau0 (docs/references.md §3, signs of a shunt); L within 0.1–3 and
+    rho within 0.1–100 (docs/references.md §8 ranges, common practice).
 
     Returns
     -------

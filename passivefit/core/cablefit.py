@@ -1,7 +1,7 @@
 """Direct fit of the ball-and-stick model to somatic current-clamp transients.
 
 Instead of free exponentials, the somatic voltage is fitted with the full eigen-expansion
-of a uniform ball-and-stick (REFERENCES.md §2), whose mode shapes depend on three
+of a uniform ball-and-stick (docs/references.md §3), whose mode shapes depend on three
 nonlinear parameters only, tau0, L and rho. With ``r_n = B_n/B_0`` (``r_0 = 1``) and
 ``tau_n = tau0/(1 + alpha_n^2)``:
 
@@ -13,11 +13,11 @@ nonlinear parameters only, tau0, L and rho. With ``r_n = B_n/B_0`` (``r_0 = 1``)
 
       V(t) = offset + b0 * sum_n r_n (1 - exp(-D/tau_n)) exp(-t/tau_n)
 
-  (REFERENCES.md §1 "Decay after a step of duration D", which carries over to the
+  (docs/references.md §2 "Decay after a step of duration D", which carries over to the
   ball-and-stick mode by mode; ``D = None`` means a long step, factor 1).
 
 ``b0`` is always the tau0 amplitude of the charging curve of the same current, I*tau0/C_total
-(REFERENCES.md §3), so it has the sign of the current and gives C_total; the membrane part of
+(docs/references.md §4), so it has the sign of the current and gives C_total; the membrane part of
 the steady deflection is ``b0 / b0_over_vinf(L, rho)``. The rest of a charging transient's
 offset, relative to the baseline, is the instantaneous (bridge) jump.
 
@@ -34,7 +34,7 @@ model in time.
 
 The sum is truncated where it has converged for the fitted times: every mode with
 ``t_min/tau_n < 30`` is kept (the others are below e^-30 of their amplitude); at t = 0 the
-model uses the exact sum ``sum_n r_n = V_inf/B0`` (REFERENCES.md §2, B0/V_inf).
+model uses the exact sum ``sum_n r_n = V_inf/B0`` (docs/references.md §3, B0/V_inf).
 
 Units are SI: s, V, A, F.
 """
@@ -153,7 +153,7 @@ def mode_table(L: float, rho: float, n_modes: int) -> tuple[np.ndarray, np.ndarr
     rate_ratio : numpy.ndarray
         tau0/tau_n = 1 + alpha_n^2, n = 0..n_modes (first entry 1).
     b_ratio : numpy.ndarray
-        B_n/B_0 of the step charging curve (first entry 1; REFERENCES.md §2).
+        B_n/B_0 of the step charging curve (first entry 1; docs/references.md §3).
     """
     s = math.tanh(L) / rho  # G_S/G_inf (0 for a bare cylinder)
     alphas = _roots(s / L, int(n_modes)) / L
@@ -588,7 +588,7 @@ class BallStickFit:
         rate, ratio = mode_table(self.L, self.rho, n)
         amps = _shape_amplitudes(rate, ratio, self.tau0_s, (kind,), np.array([duration]))[0]
         shape = np.exp(-u[..., None] * (rate / self.tau0_s)) @ amps
-        # at the edge add the modes left out: sum_n r_n = V_inf/B0 (REFERENCES.md §2); their
+        # at the edge add the modes left out: sum_n r_n = V_inf/B0 (docs/references.md §3); their
         # tau_n < duration/30, so a pulse charged them fully
         tail = 1.0 / cable.b0_over_vinf(self.L, self.rho) - ratio.sum()
         shape = np.where(u == 0, shape + (-tail if kind == "charge" else tail), shape)
@@ -608,7 +608,7 @@ class BallStickFit:
         return float(self.offset_V[segment_index] - v_base_V - self.v_inf_membrane_V[segment_index])
 
     def c_total_F(self, segment_index: int, current_A: float) -> float:
-        """Total membrane capacitance I*tau0/b0, in F (REFERENCES.md §3, uniform tau_m).
+        """Total membrane capacitance I*tau0/b0, in F (docs/references.md §4, uniform tau_m).
 
         ``current_A`` is the step (or pulse) current of that segment, in A.
         """

@@ -5,7 +5,7 @@ Fit that line (weighted least squares on the log), subtract its extrapolation,
 and repeat on the early part for the next, faster exponential. The result is a
 starting guess for :mod:`passivefit.core.expfit` and a picture to draw; it is
 never the final answer: peeling is biased relative to least squares
-(REFERENCES.md §6, D'Aguanno et al. 1986 [mem]).
+(docs/references.md §7, D'Aguanno et al. 1986 [mem]).
 
 Peeling runs on geometric bins of the data (:func:`geometric_bins`; widths grow
 in proportion to time, so early samples stay single and late ones are averaged),

@@ -24,6 +24,7 @@ from pathlib import Path
 
 from passivefit.model import schema as S
 from passivefit.model.provenance import result_settings_hash
+from passivefit.resources import read_json
 
 MS, MV, PA = 1e-3, 1e-3, 1e-12
 A4_PORTRAIT = (8.27, 11.69)
@@ -34,26 +35,7 @@ FIT_COLOUR, DATA_COLOUR, REJECT_COLOUR, MODE_COLOURS = (
 # The values table: what a physiologist reads first, then the number of sweeps used.
 VALUE_ROWS = (*S.SUMMARY, S.N_SWEEPS_USED)
 
-CAUTIONS = """\
-How to read these numbers. τ0, τ1, L, ρ and the capacitances rest on assumptions that a \
-real neuron meets only in part:
-• A passive, uniform membrane: the same specific resistance and capacitance everywhere and \
-no voltage-dependent conductance active over the range of the responses. Check the sag \
-ratio, the straightness of the V–I relation and the agreement of depolarizing and \
-hyperpolarizing steps. An h-type sag or other active current shortens the apparent τ0 and \
-lowers R_in.
-• Small, linear responses (a few mV) from a stable resting potential.
-• A cell that reduces to an equivalent cylinder (L_cyl) or to a soma plus one cylinder with \
-a sealed end (ball-and-stick: L_bs, ρ). Tapering, branches of unequal length and \
-non-uniform membrane break that reduction: τ1 then mixes several modes and L is an index of \
-electrotonic spread, not an anatomical length.
-• How violations bias the cable values: a somatic shunt (seal leak, damage at the electrode) \
-shortens τ0 below the membrane time constant, which lowers τ0/τ1 and inflates L and ρ; a \
-fit started inside the electrode artefact or before faster modes have died out biases τ1 \
-low and so L low (the fit-start scan should show a plateau). A bridge-balance error biases \
-R_in but not the time constants. τ0/R_in underestimates the total capacitance of a \
-non-isopotential cell; the cable-corrected value assumes a uniform τm.
-For research use only; not for clinical or diagnostic use."""
+CAUTIONS = "\n".join(read_json("report_texts.json")["cautions"])  # resources/report_texts.json
 
 
 def write_report(cells: Sequence[tuple], path: str | Path, *,

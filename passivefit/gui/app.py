@@ -5,7 +5,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from PySide6 import QtCore, QtWidgets
+from PySide6 import QtCore, QtGui, QtWidgets
 
 from passivefit.model.errors import InputError
 
@@ -55,12 +55,14 @@ def make_app() -> QtWidgets.QApplication:
     import pyqtgraph as pg
 
     from passivefit.gui import theme
+    from passivefit.resources import resource_path
 
     QtCore.qInstallMessageHandler(_qt_messages)
     guard_bool_refcounts()
     app = QtWidgets.QApplication.instance() or QtWidgets.QApplication(sys.argv[:1])
     app.setApplicationName("passivefit")
     app.setOrganizationName("passivefit")
+    app.setWindowIcon(QtGui.QIcon(str(resource_path("icon.svg"))))  # resources/icon.svg
     pg.setConfigOptions(antialias=True, background=theme.CARD, foreground=theme.INK)
     return app
 
