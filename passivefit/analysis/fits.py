@@ -89,21 +89,13 @@ def fit_average(g: GroupAverage, fs: float, components: str, tau_init=None,
 
 def fit_start_scan(g: GroupAverage, fs: float, n_components: int, tau_init,
                    n_starts: int = 10, span_s: float = 4e-3) -> dict:
-    """τ0 and τ1 refitted from a series of later fit starts (for the plateau check)."""
-    edges = {"fit": g.step.onset_s, "fit_off": g.step.offset_s}  # as in fit_segments
+    """τ0 and τ1 refitted from a series of later fit starts (for the plateau check):
+    core.expfit.fit_start_scan over the combined response's segments."""
+    from passivefit.core import expfit
+
+    segs, _ = fit_segments(g.v_V, fs, g.step, g.windows_s)
     starts = g.fit_start_s + np.linspace(0.0, span_s, n_starts)
-    rows = []
-    for s0 in starts:
-        wins = dict(g.windows_s)
-        for name in edges.keys() & wins.keys():
-            wins[name] = (edges[name] + s0, wins[name][1])
-        try:
-            fit, _ = fit_average(replace(g, windows_s=wins), fs, str(n_components), tau_init)
-            taus = list(fit.taus) + [np.nan] * 2
-            ci = list(fit.tau_ci95) + [np.nan] * 2
-            rows.append((s0, taus[0], ci[0], taus[1], ci[1]))
-        except FIT_ERRORS:
-            rows.append((s0, np.nan, np.nan, np.nan, np.nan))
-    a = np.array(rows)
-    return {"start_s": a[:, 0], "tau0_s": a[:, 1], "tau0_ci95_s": a[:, 2],
-            "tau1_s": a[:, 3], "tau1_ci95_s": a[:, 4]}
+    scan = expfit.fit_start_scan(segs, starts, n_components, tau_init)
+    nan = np.full(starts.size, np.nan)
+    return {"start_s": starts, "tau0_s": scan["tau0"], "tau0_ci95_s": scan["tau0_ci"],
+            "tau1_s": scan.get("tau1", nan), "tau1_ci95_s": scan.get("tau1_ci", nan)}
