@@ -205,17 +205,20 @@ def _edges(f: np.ndarray, fs: float, threshold: float) -> tuple[list[int], list[
     return sorted(set(edges)), slow
 
 
-def _segment(x: np.ndarray, start: int, stop: int, trim: int) -> Segment:
+def _segment(x: np.ndarray, f: np.ndarray, start: int, stop: int, trim: int,
+             threshold: float) -> Segment:
+    """A segment's level, trend and flatness (trend and 1–99 % spread within threshold)."""
     k = min(trim, (stop - start) // 4)
     part = x[start + k : stop - k]
     level = float(np.median(part))
+    trend, spread = 0.0, 0.0
     if part.size > 2:
         t = np.arange(part.size, dtype=np.float64)
-        slope = float(np.polyfit(t, part, 1)[0])
-        trend = slope * (stop - start)
-    else:
-        trend = 0.0
-    return Segment(start, stop, level, trend, True)
+        trend = float(np.polyfit(t, part, 1)[0]) * (stop - start)
+        low, high = np.percentile(f[start + k : stop - k], [1, 99])
+        spread = float(high - low)
+    flat = abs(trend) <= threshold and spread <= threshold
+    return Segment(start, stop, level, trend, flat)
 
 
 def segments(current: np.ndarray, sample_rate_hz: float,
@@ -252,18 +255,19 @@ def segments(current: np.ndarray, sample_rate_hz: float,
     edges, slow = _edges(f, fs, threshold)
     cuts = sorted({0, n, *edges, *(c for span in slow for c in span)})
     trim = width + 1
-    segs = [_segment(x, a, b, trim) for a, b in zip(cuts[:-1], cuts[1:], strict=True) if b > a]
     slow_set = set(slow)
-    segs = [
-        Segment(s.start, s.stop, s.level_A, s.trend_A,
-                (s.start, s.stop) not in slow_set and abs(s.trend_A) <= threshold)
-        for s in segs
-    ]
-    return _merge(x, segs, threshold, int(round(MIN_DURATION_S * fs)), trim)
+    segs = []
+    for a, b in zip(cuts[:-1], cuts[1:], strict=True):
+        if b > a:
+            seg = _segment(x, f, a, b, trim, threshold)
+            if (a, b) in slow_set:
+                seg = Segment(a, b, seg.level_A, seg.trend_A, False)
+            segs.append(seg)
+    return _merge(x, f, segs, threshold, int(round(MIN_DURATION_S * fs)), trim)
 
 
-def _merge(x: np.ndarray, segs: list[Segment], threshold: float, min_len: int,
-           trim: int) -> list[Segment]:
+def _merge(x: np.ndarray, f: np.ndarray, segs: list[Segment], threshold: float,
+           min_len: int, trim: int) -> list[Segment]:
     """Join neighbours at the same level and absorb segments shorter than `min_len`."""
     changed = True
     while changed and len(segs) > 1:
@@ -281,9 +285,8 @@ def _merge(x: np.ndarray, segs: list[Segment], threshold: float, min_len: int,
                 options = [j for j in (k - 1, k + 1) if 0 <= j < len(segs)]
                 j = min(options, key=lambda i: abs(segs[i].level_A - s.level_A))
             a, b = sorted((k, j))
-            joined = _segment(x, segs[a].start, segs[b].stop, trim)
-            flat = (segs[a].flat or short) and (segs[b].flat or short)
-            flat = flat and abs(joined.trend_A) <= threshold
+            joined = _segment(x, f, segs[a].start, segs[b].stop, trim, threshold)
+            flat = (segs[a].flat or short) and (segs[b].flat or short) and joined.flat
             segs = [*segs[:a], Segment(joined.start, joined.stop, joined.level_A,
                                        joined.trend_A, flat), *segs[b + 1:]]
             changed = True

@@ -324,10 +324,10 @@ def _refusal(abf: Any, source: str, currents: list[np.ndarray] | None, rate: flo
     need = "passivefit needs current clamp with current steps"
     if "ramp" in kinds or "ramp" in table:
         return f"a current-ramp recording with no current step ({source}); {need}"
-    if "waveform" in kinds or "other" in table:
-        return f"a stimulus with no current step (a sine or other waveform, {source}); {need}"
     if int(abf.nOperationMode) == _GAP_FREE_MODE:
         return f"a gap-free recording with no current step ({source} holds no step); {need}"
+    if "waveform" in kinds or "other" in table:
+        return f"a stimulus with no current step (a sine or other waveform, {source}); {need}"
     return None
 
 

@@ -22,6 +22,7 @@ SOURCE_RECORDED = "recorded channel"
 SOURCE_EPOCH_TABLE = "epoch table"
 SOURCE_STIMULUS = "stimulus series"
 SOURCE_USER = "user step"
+SOURCE_TABLE = "current column"  # a sweep table's I<k> column: command or recorded
 SOURCE_NONE = "none"
 
 # ------------------------------------------------------------------ clamp modes

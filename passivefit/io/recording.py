@@ -114,7 +114,8 @@ class Recording:
         `passivefit.io.protocol`).
     current_source : str
         Where `Sweep.current` came from: "recorded channel", "epoch table",
-        "stimulus series", "user step", or "" / "none" when there is no current.
+        "stimulus series", "current column" (sweep table), "user step", or "none"
+        when there is no current ("" when not set by a reader).
     clamp_mode : str
         "current clamp" (voltage-clamp files are refused when read).
     voltage_channel : str
