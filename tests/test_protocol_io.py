@@ -134,3 +134,45 @@ def test_channel_option_is_for_abf_files_only(tmp_path):
     path = save(charging_recording(n_sweeps=1), tmp_path / "cell.csv")
     with pytest.raises(LoadError, match="`channel` applies to ABF files only"):
         load(path, channel=0)
+
+
+def _two_channel_abf2(tmp_path, second_mV: np.ndarray, command_units: bytes = b"pA",
+                      second_units: bytes = b"mV", rate: float = 20_000.0):
+    """IN 0: a cell answering a -40/-60 pA step; IN 1: `second_mV` (in mV, 0.01 mV/count)."""
+    samples, rng = 3000, np.random.default_rng(4)
+    start = samples // 64 + 300
+    answer = np.zeros((2, samples))
+    answer[0, start : start + 1500] = -6.0  # mV
+    answer[1, start : start + 1500] = -9.0
+    v = (100 * (-70 + answer) + rng.integers(-20, 20, (2, samples))).astype(np.int16)
+    second = (100 * np.broadcast_to(second_mV, (2, samples))).astype(np.int16)
+    path = tmp_path / "two.abf"
+    path.write_bytes(abf2_bytes(v, second, rate, [(1, 0.0, 0.0, 300), (1, -40.0, -20.0, 1500)],
+                                second_units=second_units, command_units=command_units,
+                                second_per_count=0.01))
+    return path
+
+
+def test_a_second_mv_channel_reading_volts_is_not_the_membrane_potential(tmp_path):
+    path = _two_channel_abf2(tmp_path, 310 + np.sin(np.arange(3000) / 50))  # not a cell
+    rec = load(path)
+    assert rec.voltage_channel == "IN 0 [mV]" and rec.current_source == "epoch table"
+    (flag,) = rec.flags
+    assert flag.code == "protocol.channel_chosen"
+    assert "IN 1 [mV] sits at 310.1 mV, outside −120…+20 mV" in flag.message
+    assert load(path, channel="IN 1").voltage_channel == "IN 1 [mV]"
+
+
+def test_of_two_plausible_channels_the_one_answering_the_steps_is_chosen(tmp_path):
+    rng = np.random.default_rng(9)
+    wandering = -60 + np.cumsum(rng.normal(0, 0.05, 3000))  # plausible, but ignores the steps
+    rec = load(_two_channel_abf2(tmp_path, wandering[::-1].copy()))
+    assert rec.voltage_channel == "IN 0 [mV]"
+    assert "IN 1 [mV] answers the steps less" in rec.flags[0].message
+
+
+def test_voltage_clamp_from_the_units_of_a_synthetic_file(tmp_path):
+    path = _two_channel_abf2(tmp_path, np.zeros(3000), command_units=b"mV", second_units=b"pA")
+    with pytest.raises(LoadError, match=r"a voltage-clamp recording \(current recorded in pA, "
+                                        r"command in mV\)"):
+        load(path)

@@ -14,13 +14,14 @@ from __future__ import annotations
 import datetime as dt
 import struct
 import warnings
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from passivefit.core.qc import Flag
-from passivefit.core.steps import classify_stimulus, find_steps
+from passivefit.core.steps import classify_stimulus, find_step, find_steps
 from passivefit.io._rate import whole_hz
 from passivefit.io.protocol import (
     CURRENT_CLAMP,
@@ -331,6 +332,104 @@ def _refusal(abf: Any, source: str, currents: list[np.ndarray] | None, rate: flo
     return None
 
 
+@dataclass
+class _Current:
+    """The current chosen for a file's sweeps, and what was noticed choosing it."""
+
+    currents: list[np.ndarray] | None
+    source: str
+    detail: str
+    channel: str
+    protocol: Protocol | None
+    flags: list[Flag]
+
+
+def _choose_current(path: Path, abf: Any, rate: float, dac: int, command_units: str,
+                    amps: list[int]) -> _Current:
+    """Recorded current when it shows steps, else the epoch table; each checked by the other."""
+    n = int(abf.sweepPointCount)
+    flags: list[Flag] = []
+    protocol = commands = None
+    if _units_scale(command_units, _CURRENT_UNITS) and _epoch_table_enabled(abf, dac):
+        protocol = epoch_protocol(path, abf, dac, n, rate)
+        commands = [sp.command(n, rate) for sp in protocol.sweeps]
+        user_list = _user_list_flag(abf)
+        if user_list is not None:
+            flags.append(user_list)
+    recorded, i_label = None, ""
+    if amps:
+        i_label = _channel_label(abf, amps[0])
+        recorded = _channel_data(abf, amps[0], _units_scale(abf.adcUnits[amps[0]],
+                                                            _CURRENT_UNITS) or 1.0)
+    rec_steps = [find_steps(r, rate) for r in recorded] if recorded is not None else []
+    cmd_steps = [find_steps(c, rate) for c in commands] if commands is not None else []
+    if recorded is not None and (any(rec_steps) or not any(cmd_steps)):
+        current = _Current(recorded, SOURCE_RECORDED, f"recorded channel {i_label}", i_label,
+                           protocol or protocol_from_steps(rec_steps, SOURCE_RECORDED), flags)
+    elif commands is not None:
+        current = _Current(commands, SOURCE_EPOCH_TABLE, f"epoch table of DAC {dac}",
+                           f"DAC {dac} [{command_units}]", protocol, flags)
+    else:
+        return _Current(None, SOURCE_NONE, "no current", "", None, flags)
+    if recorded is not None and any(cmd_steps):
+        found = []
+        for k, (c, r) in enumerate(zip(cmd_steps, rec_steps, strict=True)):
+            found += compare_steps(k, c, r, f"epoch table (DAC {dac})")
+        flags += summarize(found)
+    return current
+
+
+def _response_V(traces: list[np.ndarray], currents: list[np.ndarray] | None,
+                rate: float) -> float:
+    """Summed |mean V in the second half of each sweep's step − mean V before it|, in V."""
+    if currents is None:
+        return 0.0
+    total = 0.0
+    for v, c in zip(traces, currents, strict=True):
+        step = find_step(c, rate)
+        if step is None:
+            continue
+        before = v[step.baseline_start : step.onset].mean()
+        during = v[(step.onset + step.offset) // 2 : step.offset].mean()
+        total += abs(float(during - before))
+    return total
+
+
+def _choose_voltage(path: Path, abf: Any, volt: list[int], channel: int | str | None,
+                    current: _Current, rate: float) -> tuple[int, list[np.ndarray], list[Flag]]:
+    """The membrane-potential channel: the user's, or the plausible one that answers steps."""
+    if channel is not None:
+        v_ch = _resolve_channel(path, abf, channel)
+        if v_ch not in volt:
+            raise LoadError(path, f"channel {_channel_label(abf, v_ch)} is not a voltage "
+                                  f"(channels: {_channel_list(abf)}); choose one in mV")
+        return v_ch, _channel_data(abf, v_ch, _units_scale(abf.adcUnits[v_ch],
+                                                           _VOLTAGE_UNITS) or 1.0), []
+    traces = {c: _channel_data(abf, c, _units_scale(abf.adcUnits[c], _VOLTAGE_UNITS) or 1.0)
+              for c in volt}
+    problems = {c: _vm_problem(traces[c]) for c in volt}
+    good = [c for c in volt if problems[c] is None]
+    if len(volt) == 1 and (problems[volt[0]] or "").startswith("is flat"):
+        good = volt  # the only channel: `validate` names a flat sweep
+    if not good:
+        listed = "; ".join(f"{_channel_label(abf, c)} {problems[c]}" for c in volt)
+        raise LoadError(path, f"no channel looks like a membrane potential ({listed}); "
+                              f"choose one with `channel` if one is")
+    responses = {c: _response_V(traces[c], current.currents, rate) for c in good}
+    v_ch = max(good, key=lambda c: responses[c])  # the first of equals: max keeps order
+    if len(volt) == 1:
+        return v_ch, traces[v_ch], []
+    median_mV = float(np.median(np.concatenate(traces[v_ch]))) * 1e3
+    others = "; ".join(
+        f"{_channel_label(abf, c)} "
+        + (problems[c] or f"answers the steps less ({responses[c] * 1e3:.3g} mV in all "
+                          f"against {responses[v_ch] * 1e3:.3g} mV)")
+        for c in volt if c != v_ch)
+    flag = Flag(FLAG_CHANNEL, f"membrane potential read from {_channel_label(abf, v_ch)} "
+                              f"(median {median_mV:.1f} mV); {others}", median_mV * 1e-3)
+    return v_ch, traces[v_ch], [flag]
+
+
 def _read(path: Path, abf: Any, rate: float, channel: int | str | None) -> Recording:
     channels = list(abf.channelList)
     volt = [c for c in channels if _units_scale(abf.adcUnits[c], _VOLTAGE_UNITS)]
@@ -347,80 +446,22 @@ def _read(path: Path, abf: Any, rate: float, channel: int | str | None) -> Recor
             path,
             f"no voltage channel in mV (channels: {_channel_list(abf)}); "
             f"passivefit needs a current-clamp recording")
-    flags: list[Flag] = []
-    if channel is not None:
-        v_ch = _resolve_channel(path, abf, channel)
-        if v_ch not in volt:
-            raise LoadError(path, f"channel {_channel_label(abf, v_ch)} is not a voltage "
-                                  f"(channels: {_channel_list(abf)}); choose one in mV")
-        voltages = _channel_data(abf, v_ch, _units_scale(abf.adcUnits[v_ch], _VOLTAGE_UNITS))
-    else:
-        traces = {c: _channel_data(abf, c, _units_scale(abf.adcUnits[c], _VOLTAGE_UNITS))
-                  for c in volt}
-        problems = {c: _vm_problem(traces[c]) for c in volt}
-        good = [c for c in volt if problems[c] is None]
-        if len(volt) == 1 and (problems[volt[0]] or "").startswith("is flat"):
-            good = volt  # the only channel: `validate` names a flat sweep
-        if not good:
-            listed = "; ".join(f"{_channel_label(abf, c)} {problems[c]}" for c in volt)
-            raise LoadError(path, f"no channel looks like a membrane potential ({listed}); "
-                                  f"choose one with `channel` if one is")
-        v_ch, voltages = good[0], traces[good[0]]
-        if len(volt) > 1:
-            others = "; ".join(f"{_channel_label(abf, c)} {problems[c] or 'also plausible'}"
-                               for c in volt if c != v_ch)
-            median_mV = float(np.median(np.concatenate(voltages))) * 1e3
-            flags.append(Flag(FLAG_CHANNEL,
-                              f"membrane potential read from {_channel_label(abf, v_ch)} "
-                              f"(median {median_mV:.1f} mV); {others}", median_mV * 1e-3))
-    n = len(voltages[0])
-    protocol = None
-    commands = None
-    if _units_scale(command_units, _CURRENT_UNITS) and _epoch_table_enabled(abf, dac):
-        protocol = epoch_protocol(path, abf, dac, n, rate)
-        commands = [sp.command(v.size, rate) for sp, v in zip(protocol.sweeps, voltages,
-                                                                strict=True)]
-        user_list = _user_list_flag(abf)
-        if user_list is not None:
-            flags.append(user_list)
-    recorded = None
-    i_label = ""
-    if amps:
-        i_label = _channel_label(abf, amps[0])
-        recorded = _channel_data(abf, amps[0], _units_scale(abf.adcUnits[amps[0]],
-                                                            _CURRENT_UNITS))
-    rec_steps = [find_steps(r, rate) for r in recorded] if recorded is not None else None
-    cmd_steps = [find_steps(c, rate) for c in commands] if commands is not None else None
-    currents: list[np.ndarray] | None
-    if recorded is not None and (any(rec_steps or []) or not any(cmd_steps or [])):
-        currents, source = recorded, SOURCE_RECORDED
-    elif commands is not None:
-        currents, source = commands, SOURCE_EPOCH_TABLE
-    else:
-        currents, source = None, SOURCE_NONE
-    if rec_steps is not None and cmd_steps is not None and any(cmd_steps):
-        found = []
-        for k, (c, r) in enumerate(zip(cmd_steps, rec_steps, strict=True)):
-            found += compare_steps(k, c, r, f"epoch table (DAC {dac})")
-        flags += summarize(found)
-    detail = {SOURCE_RECORDED: f"recorded channel {i_label}",
-              SOURCE_EPOCH_TABLE: f"epoch table of DAC {dac}", SOURCE_NONE: "no current"}[source]
-    reason = _refusal(abf, detail, currents, rate, protocol)
+    current = _choose_current(path, abf, rate, dac, command_units, amps)
+    reason = _refusal(abf, current.detail, current.currents, rate, current.protocol)
     if reason is not None:
         raise LoadError(path, reason)
-    if source == SOURCE_RECORDED and recorded is not None and protocol is None:
-        protocol = protocol_from_steps(rec_steps or [], SOURCE_RECORDED)
+    v_ch, voltages, channel_flags = _choose_voltage(path, abf, volt, channel, current, rate)
+    currents = current.currents
     sweeps = [Sweep(k, v, None if currents is None else currents[k])
               for k, v in enumerate(voltages)]
     rec = Recording(sweeps, rate, path=str(path), format="abf",
-                    metadata=_metadata(abf, source), flags=tuple(flags),
-                    current_source=source, clamp_mode=CURRENT_CLAMP,
-                    voltage_channel=_channel_label(abf, v_ch), protocol=protocol)
+                    metadata=_metadata(abf, current.source),
+                    flags=(*channel_flags, *current.flags), current_source=current.source,
+                    clamp_mode=CURRENT_CLAMP, voltage_channel=_channel_label(abf, v_ch),
+                    protocol=current.protocol)
     rec.metadata["voltage_channel"] = rec.voltage_channel
-    if source == SOURCE_RECORDED:
-        rec.metadata["current_channel"] = i_label
-    elif source == SOURCE_EPOCH_TABLE:
-        rec.metadata["current_channel"] = f"DAC {dac} [{command_units}]"
+    if current.channel:
+        rec.metadata["current_channel"] = current.channel
     filter_hz = _corner_hz(_lowpass_setting(path, abf, v_ch), rate)
     if filter_hz is not None:
         rec.metadata["filter_hz"] = filter_hz
