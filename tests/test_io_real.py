@@ -197,3 +197,18 @@ def test_channel_override_by_index_and_by_name():
         load(REAL / "190619B_0003.abf", channel=5)
     with pytest.raises(LoadError, match=r"channel Imemb \[nA\] is not a voltage"):
         load(REAL / "18425108.abf", channel="Imemb")
+
+
+def test_abf1_holding_level_is_read_from_the_header_not_the_epoch_levels():
+    from passivefit.io.abf import _abf1_holding
+
+    # the voltage-clamp file holds -50 mV: its copy of the command (AO #0) rests at -50 mV
+    # between its steps, while pyabf's holdingCommand gives the epoch-level list
+    path = REAL / "multichannelAbf1WithTags.abf"
+    abf = _pyabf("multichannelAbf1WithTags.abf")
+    abf.setSweep(0, channel=1)
+    rest_mV = float(np.percentile(abf.sweepY, 99))
+    assert rest_mV == pytest.approx(-50.0, abs=0.1)
+    assert _abf1_holding(path, abf, 0) == pytest.approx(rest_mV, abs=0.1)
+    # the current-clamp file holds 0 pA on its stimulus DAC
+    assert _abf1_holding(REAL / "190619B_0003.abf", _pyabf("190619B_0003.abf"), 0) == 0.0

@@ -176,3 +176,18 @@ def test_voltage_clamp_from_the_units_of_a_synthetic_file(tmp_path):
     with pytest.raises(LoadError, match=r"a voltage-clamp recording \(current recorded in pA, "
                                         r"command in mV\)"):
         load(path)
+
+
+def test_nwb_without_any_sweep_is_not_called_voltage_clamp(tmp_path):
+    import datetime as dt
+
+    from pynwb import NWBHDF5IO, NWBFile
+
+    nwb = NWBFile(session_description="empty", identifier="empty-1",
+                  session_start_time=dt.datetime(2026, 11, 3, tzinfo=dt.UTC))
+    path = tmp_path / "empty.nwb"
+    with NWBHDF5IO(str(path), mode="w") as io:
+        io.write(nwb)
+    with pytest.raises(LoadError, match=r"no current-clamp sweeps in this NWB file "
+                                        r"\(CurrentClampSeries\); passivefit analyses"):
+        load(path)

@@ -245,7 +245,8 @@ def _abf1_holding(path: Path, abf: Any, dac: int) -> float:
     pyabf's `holdingCommand` on ABF 1 is the epoch-level list, so the field is read
     from the header here: 4 floats at byte 1394, after fDACScaleFactor (1378), from
     memory, consistent with pyabf's offsets of sDACChannelName (1306) and
-    nActiveDACChannel (1440).
+    nActiveDACChannel (1440), and checked on a real file whose command copy rests at
+    the −50 mV this field holds (tests/test_io_real.py).
     """
     if _abf1_data_start(abf) < _ABF1_HOLDING + 16 or not 0 <= dac < 4:
         return 0.0

@@ -183,6 +183,18 @@ def _acquisition_pairs(nwb: Any, current_clamp: tuple[type, ...]) -> list[tuple[
     ]
 
 
+def _has_voltage_clamp(nwb: Any) -> bool:
+    """Whether the file holds voltage-clamp responses (in `acquisition` or the table)."""
+    from pynwb.icephys import VoltageClampSeries
+
+    series = list(nwb.acquisition.values())
+    table = nwb.intracellular_recordings
+    if table is not None and len(table) > 0:
+        responses = table.get_category("responses")["response"]
+        series += [responses[row].timeseries for row in range(len(table))]
+    return any(isinstance(s, VoltageClampSeries) for s in series)
+
+
 def _cut(item: Any) -> tuple[Any, int, int | None]:
     """(series, start, count) of a table reference or of a whole series."""
     if hasattr(item, "timeseries"):
@@ -286,6 +298,12 @@ def read_nwb_pynwb(path: str | Path) -> Recording:
                 else:
                     pairs = _acquisition_pairs(nwb, current_clamp)
                 pairs = [p for p in pairs if not isinstance(_cut(p[0])[0], IZeroClampSeries)]
+                if not pairs and _has_voltage_clamp(nwb):
+                    raise LoadError(
+                        path,
+                        "a voltage-clamp recording (VoltageClampSeries; no current-clamp sweeps "
+                        "in this NWB file); passivefit needs current clamp with current steps",
+                    )
                 if not pairs:
                     raise LoadError(
                         path,
