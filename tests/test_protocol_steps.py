@@ -97,6 +97,26 @@ def test_a_noisy_recorded_current_with_offset_and_capacitive_spikes():
     assert step.holding_A == pytest.approx(79 * PA, abs=1 * PA)
 
 
+def test_a_recorded_current_with_mains_hum_keeps_its_step():
+    rng = np.random.default_rng(5)
+    t = np.arange(40_000) / FS
+    current = _levels(40_000, (0.5, 0.5, -50 * PA)) + 10 * PA * np.sin(2 * np.pi * 50 * t)
+    current += rng.normal(0, 2 * PA, current.size)
+    (step,) = find_steps(current, FS)
+    assert abs(step.onset - 10_000) <= 4 and abs(step.offset - 20_000) <= 4
+    assert step.amplitude_A == pytest.approx(-50 * PA, abs=3 * PA)
+
+
+def test_a_drifting_recorded_holding_current_keeps_the_step_on_it():
+    rng = np.random.default_rng(6)
+    n = 200_000  # 10 s
+    current = 80 * PA + np.linspace(0, 20 * PA, n) + _levels(n, (0.25, 0.25, -49 * PA))
+    current += rng.normal(0, 2 * PA, n)
+    (step,) = find_steps(current, FS)
+    assert abs(step.onset - 5000) <= 2 and abs(step.offset - 10_000) <= 2
+    assert step.amplitude_A == pytest.approx(-49 * PA, abs=1.5 * PA)
+
+
 def test_noise_alone_and_a_flat_command_have_no_step():
     rng = np.random.default_rng(1)
     assert find_steps(rng.normal(0, 5 * PA, 40_000), FS) == []

@@ -128,6 +128,11 @@ class Segment:
         a ramp, near zero for a flat level.
     flat : bool
         Whether the segment is a flat level (not part of a ramp or other waveform).
+    spread_A : float
+        Range between the 1st and 99th percentile of the (median-filtered) current
+        within the segment, in A.
+    sloped : bool
+        Whether the segment is a change too slow to be an edge (part of a ramp).
     """
 
     start: int
@@ -135,6 +140,8 @@ class Segment:
     level_A: float
     trend_A: float
     flat: bool
+    spread_A: float = 0.0
+    sloped: bool = False
 
 
 def noise_sd(x: np.ndarray) -> float:
@@ -218,7 +225,7 @@ def _segment(x: np.ndarray, f: np.ndarray, start: int, stop: int, trim: int,
         low, high = np.percentile(f[start + k : stop - k], [1, 99])
         spread = float(high - low)
     flat = abs(trend) <= threshold and spread <= threshold
-    return Segment(start, stop, level, trend, flat)
+    return Segment(start, stop, level, trend, flat, spread)
 
 
 def segments(current: np.ndarray, sample_rate_hz: float,
@@ -242,11 +249,17 @@ def segments(current: np.ndarray, sample_rate_hz: float,
         more than the threshold; none is shorter than `MIN_DURATION_S` unless the
         sweep is.
     """
+    return _split(current, sample_rate_hz, min_amplitude_A)[0]
+
+
+def _split(current: np.ndarray, sample_rate_hz: float,
+           min_amplitude_A: float) -> tuple[list[Segment], float]:
+    """`segments` and the edge threshold they were cut with, in A."""
     x = np.asarray(current, dtype=np.float64)
     n = x.size
     fs = float(sample_rate_hz)
     if n == 0:
-        return []
+        return [], min_amplitude_A
     width = _median_window(x, fs)
     f = median_filter(x, size=width, mode="nearest") if width > 1 else x
     h = max(1, int(round(EDGE_HALF_WIDTH_S * fs)))
@@ -261,9 +274,30 @@ def segments(current: np.ndarray, sample_rate_hz: float,
         if b > a:
             seg = _segment(x, f, a, b, trim, threshold)
             if (a, b) in slow_set:
-                seg = Segment(a, b, seg.level_A, seg.trend_A, False)
+                seg = Segment(a, b, seg.level_A, seg.trend_A, False, seg.spread_A, True)
             segs.append(seg)
-    return _merge(x, f, segs, threshold, int(round(MIN_DURATION_S * fs)), trim)
+    merged = _merge(x, f, segs, threshold, int(round(MIN_DURATION_S * fs)), trim)
+    return _allow_drift(merged, threshold), threshold
+
+
+def _allow_drift(segs: list[Segment], threshold: float) -> list[Segment]:
+    """Count a level as flat when it wanders by less than half the edges beside it.
+
+    A recorded holding current may drift over a long sweep by more than the edge
+    threshold; beside a step of 50 pA a 10 pA drift is still a flat level, while a
+    ramp changes by about as much as the edge that ends it.
+    """
+    out = []
+    for k, s in enumerate(segs):
+        if s.flat or s.sloped:
+            out.append(s)
+            continue
+        beside = [abs(segs[j].level_A - s.level_A) for j in (k - 1, k + 1)
+                  if 0 <= j < len(segs) and not segs[j].sloped]
+        tolerance = max(threshold, 0.5 * max(beside, default=0.0))
+        flat = abs(s.trend_A) <= tolerance and s.spread_A <= tolerance
+        out.append(Segment(s.start, s.stop, s.level_A, s.trend_A, flat, s.spread_A, s.sloped))
+    return out
 
 
 def _merge(x: np.ndarray, f: np.ndarray, segs: list[Segment], threshold: float,
@@ -287,8 +321,10 @@ def _merge(x: np.ndarray, f: np.ndarray, segs: list[Segment], threshold: float,
             a, b = sorted((k, j))
             joined = _segment(x, f, segs[a].start, segs[b].stop, trim, threshold)
             flat = (segs[a].flat or short) and (segs[b].flat or short) and joined.flat
+            sloped = (segs[a].sloped and not short) or (segs[b].sloped and not short)
             segs = [*segs[:a], Segment(joined.start, joined.stop, joined.level_A,
-                                       joined.trend_A, flat), *segs[b + 1:]]
+                                       joined.trend_A, flat, joined.spread_A, sloped),
+                    *segs[b + 1:]]
             changed = True
             break
     return segs
@@ -319,7 +355,7 @@ def find_steps(current: np.ndarray, sample_rate_hz: float,
     list of Step
         Empty when the sweep holds no step.
     """
-    segs = segments(current, sample_rate_hz, min_amplitude_A)
+    segs, threshold = _split(current, sample_rate_hz, min_amplitude_A)
     if len(segs) < 2 or not segs[0].flat:
         return []
     holding = segs[0].level_A
@@ -328,8 +364,9 @@ def find_steps(current: np.ndarray, sample_rate_hz: float,
         before, seg = segs[k - 1], segs[k]
         if not (seg.flat and before.flat):
             continue
-        if abs(seg.level_A - holding) <= _SAME_LEVEL_FRACTION * abs(seg.level_A - before.level_A):
-            continue  # back to rest: the end of the step before
+        drift = 0.5 * (abs(seg.trend_A) + abs(segs[0].trend_A))
+        if abs(seg.level_A - holding) <= max(threshold, drift):
+            continue  # back to rest (within noise and drift): the end of the step before
         nxt = segs[k + 1] if k + 1 < len(segs) else None
         if nxt is not None and not nxt.flat:
             continue  # a plateau running into a ramp
