@@ -189,3 +189,12 @@ def test_compare_steps_flags_each_disagreement_with_values_in_units():
     assert compare_steps(0, table, table) == []
     missing = compare_steps(3, table, [])
     assert [f.code for f in missing] == [FLAG_MISSING] and "sweep 3" in missing[0].message
+
+
+def test_common_steps_group_onsets_that_differ_by_a_sample_or_two():
+    # recorded currents put the same edge a sample apart: 146.45 ms and 146.55 ms
+    sweeps = [_levels(40_000, (onset, 0.5, -50 * PA)) for onset in (0.14645, 0.14655, 0.14655)]
+    sweeps.append(_levels(40_000, (0.6, 0.5, -80 * PA)))  # a stray sweep elsewhere
+    chosen = common_steps([find_steps(c, FS) for c in sweeps])
+    assert [c is not None for c in chosen] == [True, True, True, False]
+    assert chosen[0].onset == 2929 and chosen[1].onset == 2931

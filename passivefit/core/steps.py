@@ -41,6 +41,8 @@ MAX_EDGE_RISE_S = 2e-3
 STIMULUS_KINDS = ("step", "pulse", "ramp", "waveform", "none")
 # relative level tolerance for "the same level" (rest, from-rest checks)
 _SAME_LEVEL_FRACTION = 0.1
+# steps of different sweeps starting this close together are at the same position, in s
+_SAME_ONSET_S = 1e-3
 
 
 @dataclass(frozen=True)
@@ -430,15 +432,15 @@ def common_steps(per_sweep: list[list[Step]],
     """
     firsts = [next((s for s in steps if analysable(s, min_baseline_s)), None)
               for steps in per_sweep]
-    onsets = [s.onset_s for s in firsts if s is not None]
-    if not onsets:
+    onsets = np.asarray([s.onset_s for s in firsts if s is not None])
+    if onsets.size == 0:
         return [None] * len(per_sweep)
-    values, counts = np.unique(np.round(np.asarray(onsets), 3), return_counts=True)
-    chosen = float(values[int(np.argmax(counts))])
+    votes = [int(np.count_nonzero(np.abs(onsets - t) <= _SAME_ONSET_S)) for t in onsets]
+    chosen = float(onsets[int(np.argmax(votes))])
     out: list[Step | None] = []
     for steps in per_sweep:
         near = [s for s in steps if analysable(s, min_baseline_s)
-                and abs(s.onset_s - chosen) <= 1e-3]
+                and abs(s.onset_s - chosen) <= _SAME_ONSET_S]
         out.append(near[0] if near else None)
     return out
 

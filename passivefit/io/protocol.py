@@ -242,10 +242,10 @@ def compare_steps(sweep: int, protocol: list[Step], recorded: list[Step],
 
 
 def summarize(flags: list[Flag]) -> tuple[Flag, ...]:
-    """Keep one flag per code and sweep-independent wording when many sweeps repeat it.
+    """One flag per code when many sweeps repeat it.
 
-    The first flag of each code is kept as it is; when more sweeps share the code,
-    its message gains "(and N more sweeps)". Nothing else is dropped.
+    The first flag of each code is kept (its message names its sweep and values);
+    when more flags share the code, its message gains "(and N more like it)".
     """
     by_code: dict[str, list[Flag]] = {}
     for f in flags:
