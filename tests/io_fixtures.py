@@ -59,6 +59,9 @@ def abf2_bytes(
     epochs: list[tuple[int, float, float, int]],
     waveform_enabled: bool = True,
     lowpass_hz: tuple[float, float] = (0.0, 0.0),
+    second_units: bytes = b"pA",
+    command_units: bytes = b"pA",
+    second_per_count: float = 0.1,
 ) -> bytes:
     """A minimal two-channel ABF 2 file (IN 0 in mV, IN 1 in pA, OUT 0 in pA).
 
@@ -76,6 +79,10 @@ def abf2_bytes(
         Whether DAC 0 plays its epoch table.
     lowpass_hz : tuple of float
         `fSignalLowpassFilter` of IN 0 and IN 1, in Hz (0: unset).
+    second_units, command_units : bytes
+        Units of IN 1 and of the DACs (both pA by default).
+    second_per_count : float
+        Gain of IN 1, in its units per count.
     """
     sweeps, samples = voltage_counts.shape
     strings = b"\0\0" + b"\0".join(
@@ -85,9 +92,9 @@ def abf2_bytes(
             b"IN 0",
             b"mV",
             b"IN 1",
-            b"pA",
+            second_units,
             b"OUT 0",
-            b"pA",
+            command_units,
             b"LOL-2026-11-03-c1 bath 32 C",
         ]
     )  # indices 1..9; no trailing NUL (pyabf splits after the last double NUL)
@@ -108,7 +115,7 @@ def abf2_bytes(
     blocks["protocol"] = protocol
 
     adc = bytearray(256)
-    for i, (per_count, name, unit) in enumerate([(0.01, 3, 4), (0.1, 5, 6)]):
+    for i, (per_count, name, unit) in enumerate([(0.01, 3, 4), (second_per_count, 5, 6)]):
         base = 128 * i
         struct.pack_into("<hh", adc, base, i, 0)  # nADCNum, nTelegraphEnable
         struct.pack_into("<hhf", adc, base + 24, i, i, 1.0)  # PtoL map, sampling seq, prog gain

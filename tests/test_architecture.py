@@ -112,7 +112,9 @@ def test_readme_lists_every_flag_code():
 
 def test_flag_templates_fill_in():
     """Every message and every named variant formats with numbers (no stray braces)."""
-    fields = {"done": "x", "what": "x", "problem": "x", "x": 1.0, "limit": 1.0}
+    fields = {"x": 1.0, "limit": 1.0, "sweep": 3, **dict.fromkeys(
+        ("done", "what", "problem", "at", "planned", "recorded", "source", "offset",
+         "amplitude", "values", "channel", "median", "others"), "text")}
     for spec in S.FLAGS.values():
         for reason in spec.reasons or (None,):
             flag = spec.make(1.0, reason=reason, **fields)

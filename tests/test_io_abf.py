@@ -50,7 +50,9 @@ def test_abf2_command_from_the_epoch_table(tmp_path):
     for k, sweep in enumerate(rec.sweeps):
         assert_allclose(sweep.voltage, v[k] * 0.01e-3, rtol=1e-6)
         assert_allclose(sweep.current, _expected_command_A(k), atol=1e-18)
-    assert rec.metadata["current_source"] == "command waveform of DAC 0 (epoch table)"
+    assert rec.current_source == rec.metadata["current_source"] == "epoch table"
+    assert rec.metadata["current_channel"] == "DAC 0 [pA]"
+    assert rec.voltage_channel == "IN 0 [mV]"
     assert rec.metadata["date"] == "2026-11-03T14:22:05.250"
     assert rec.metadata["protocol"] == "lol-steps"
     assert rec.metadata["comment"] == "LOL-2026-11-03-c1 bath 32 C"
@@ -66,14 +68,16 @@ def test_abf2_rate_from_the_sample_interval_not_pyabf_datarate(tmp_path):
 def test_disabled_waveform_falls_back_to_the_recorded_current(tmp_path):
     path, _, i = _abf2(tmp_path, enabled=False)
     rec = load(path)
-    assert rec.metadata["current_source"] == "recorded channel IN 1"
+    assert rec.current_source == rec.metadata["current_source"] == "recorded channel"
+    assert rec.metadata["current_channel"] == "IN 1 [pA]"
     assert_allclose(rec.sweeps[2].current, i[2] * 0.1e-12, rtol=1e-6)
 
 
 def test_flat_epoch_table_is_not_trusted(tmp_path):
     path, _, i = _abf2(tmp_path, epochs=[(1, 0.0, 0.0, 300), (1, 0.0, 0.0, 1500)])
     rec = load(path)
-    assert rec.metadata["current_source"] == "recorded channel IN 1"
+    assert rec.current_source == rec.metadata["current_source"] == "recorded channel"
+    assert rec.metadata["current_channel"] == "IN 1 [pA]"
     assert_allclose(rec.sweeps[0].current, i[0] * 0.1e-12, rtol=1e-6)
 
 

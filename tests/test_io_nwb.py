@@ -134,7 +134,9 @@ def test_voltage_clamp_rows_are_skipped(tmp_path):
         sweep_number=np.uint32(0),
     )
     nwb.add_intracellular_recording(electrode=electrode, response=vc)
-    with pytest.raises(LoadError, match="no current-clamp sweeps in this NWB file"):
+    with pytest.raises(LoadError, match=r"a voltage-clamp recording \(VoltageClampSeries; no "
+                                        r"current-clamp sweeps in this NWB file\); passivefit "
+                                        r"needs current clamp with current steps"):
         load(_write(nwb, tmp_path / "vc.nwb"))
 
 

@@ -59,10 +59,10 @@ class Reader:
     function: str
     signature: Callable[[bytes], bool]
 
-    def read(self, path: Path) -> Recording:
+    def read(self, path: Path, **options: object) -> Recording:
         module = importlib.import_module(f"passivefit.io.{self.module}")
-        reader: Callable[[Path], Recording] = getattr(module, self.function)
-        return reader(path)
+        reader: Callable[..., Recording] = getattr(module, self.function)
+        return reader(path, **options)
 
 
 READERS: tuple[Reader, ...] = (
@@ -93,7 +93,7 @@ def _choose_reader(path: Path, head: bytes) -> Reader:
     return by_extension
 
 
-def load(path: str | Path) -> Recording:
+def load(path: str | Path, channel: int | str | None = None) -> Recording:
     """Read a recording file of any supported format.
 
     Parameters
@@ -101,18 +101,24 @@ def load(path: str | Path) -> Recording:
     path : str or Path
         An .abf (ABF 1 or 2), .nwb (NWB 2 icephys) or .csv/.tsv/.txt
         (passivefit sweep table) file.
+    channel : int or str, optional
+        ABF files: the membrane-potential channel, by index among the file's input
+        channels (from 0) or by name; by default the first mV channel that looks
+        like a membrane potential.
 
     Returns
     -------
     Recording
-        Sweeps in SI units (V, A), with `path`, `sha256` and `format` filled in.
+        Sweeps in SI units (V, A), with `path`, `sha256` and `format` filled in, and
+        `current_source`, `flags`, `protocol` as the reader found them.
 
     Raises
     ------
     LoadError
         The file is missing, empty, of an unknown type, unreadable, or holds data
-        that cannot be analysed (no sweeps, NaN, too short, flat); the message is one
-        line naming the problem and what to do.
+        that cannot be analysed (no sweeps, NaN, too short, flat, voltage clamp, a
+        stimulus without a current step); the message is one line naming the
+        problem and what to do.
     """
     path = Path(path)
     if not path.exists():
@@ -124,7 +130,10 @@ def load(path: str | Path) -> Recording:
     if not head:
         raise LoadError(path, "the file is empty (0 bytes); re-export the recording")
     reader = _choose_reader(path, head)
-    recording = reader.read(path)
+    if channel is not None and reader.name != "abf":
+        raise LoadError(path, f"`channel` applies to ABF files only; this is a {reader.name} "
+                              f"file with one membrane-potential signal per sweep")
+    recording = reader.read(path) if channel is None else reader.read(path, channel=channel)
     recording.path = str(path)
     recording.sha256 = file_sha256(path)
     recording.format = reader.name

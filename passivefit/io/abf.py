@@ -1,8 +1,10 @@
 """ABF 1 and ABF 2 files, read through pyabf; ABF 1 written through pyabf's writer.
 
-Reading picks the voltage channel (units mV) and the injected current from, in this
-order: the command waveform of an enabled ABF 2 epoch table, a recorded current
-channel (pA or nA), or nothing (the user then gives the step).
+Reading decides the clamp mode from the units (voltage clamp is refused), picks the
+membrane-potential channel among the mV channels, reads the protocol from the ABF 1
+or ABF 2 epoch table, and takes the injected current from a recorded current channel
+(pA or nA) when it shows steps, else from the epoch table, else nothing (the user
+then gives the step). Table and recorded current are checked against each other.
 
 pyabf is imported only when an ABF file is opened.
 """
@@ -12,17 +14,44 @@ from __future__ import annotations
 import datetime as dt
 import struct
 import warnings
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from passivefit.core.qc import Flag
+from passivefit.core.steps import classify_stimulus, find_step, find_steps
 from passivefit.io._rate import whole_hz
 from passivefit.io.recording import LoadError, Recording, Sweep, metadata_filter_hz
+from passivefit.model import schema as S
+from passivefit.model.protocol import (
+    CURRENT_CLAMP,
+    SOURCE_EPOCH_TABLE,
+    SOURCE_NONE,
+    SOURCE_RECORDED,
+    Epoch,
+    Protocol,
+    SweepProtocol,
+    compare_steps,
+    protocol_from_steps,
+    summarize,
+)
 
 _SIGNATURES = (b"ABF ", b"ABF2")
-_VOLTAGE_UNITS = {"mV": 1e-3}
-_CURRENT_UNITS = {"pA": 1e-12, "nA": 1e-9}
+# units, compared in lower case after NUL padding is stripped
+_VOLTAGE_UNITS = {"mv": 1e-3, "v": 1.0}
+_CURRENT_UNITS = {"pa": 1e-12, "na": 1e-9}
+# a membrane potential sits in this range and varies by more than this, in V
+# (common practice, no source)
+_VM_RANGE_V = (-0.120, 0.020)
+_VM_MIN_SPREAD_V = 0.5e-3
+# a voltage channel repeating its previous sample this often is a copy of a command
+_COMMAND_COPY_FRACTION = 0.98
+_GAP_FREE_MODE = 3  # nOperationMode of a gap-free recording
+_PRE_SWEEP_FRACTION = 64  # ABF sweeps hold 1/64 of their samples at holding first
+_ABF1_EPOCHS_PER_DAC = 10
+_EPOCH_KINDS = {1: "step", 2: "ramp", 3: "pulse train"}
 _MAX_CHANNELS = 16  # the ABF format has 16 ADC slots
 
 # ABF 1 header layout (byte offsets) used below. pyabf reads every field at a fixed
@@ -43,6 +72,7 @@ _ABF1_START_MS = 366  # nFileStartMillisecs, int16
 # consistent with pyabf's offsets of those neighbours. pyabf itself does not read it.
 _ABF1_LOWPASS = 1178
 _ABF1_LOWPASS_END = 1242
+_ABF1_HOLDING = 1394  # fDACHoldingLevel, 4 f (see _abf1_holding)
 # A low-pass setting is an amplifier corner only within this range and below the
 # Nyquist frequency; headers hold 0 when unset and 100 kHz or more for "bypass"
 # (common practice, no source).
@@ -128,66 +158,311 @@ def _sample_rate(path: Path, abf: Any) -> float:
     return whole_hz(1e6 / interval_us)
 
 
-def _channel(abf: Any, units: dict[str, float]) -> int | None:
-    return next((ch for ch in abf.channelList if abf.adcUnits[ch].strip() in units), None)
+def _units_scale(units: str, table: dict[str, float]) -> float | None:
+    return table.get(_clean(units).lower())
+
+
+def _channel_label(abf: Any, ch: int) -> str:
+    name = _clean(abf.adcNames[ch]) or f"channel {ch}"
+    return f"{name} [{_clean(abf.adcUnits[ch])}]"
 
 
 def _channel_list(abf: Any) -> str:
-    return ", ".join(
-        f"{name} [{unit}]" for name, unit in zip(abf.adcNames, abf.adcUnits, strict=False)
-    )
+    return ", ".join(f"{k}: {_channel_label(abf, ch)}" for k, ch in enumerate(abf.channelList))
 
 
-def _epoch_command_enabled(abf: Any, channel: int) -> bool:
-    """Whether pyabf's sweepC for `channel` comes from an enabled ABF 2 epoch table.
-
-    ABF 1 epoch tables are not used: pyabf takes their holding level from the first
-    epoch's level, so the step would vanish from the command.
-    """
-    if _major(abf) != 2:
-        return False
-    dac = abf._dacSection
-    if channel >= len(dac.nWaveformEnable) or channel >= len(abf.dacUnits):
-        return False
-    return (
-        bool(dac.nWaveformEnable[channel])
-        and dac.nWaveformSource[channel] == 1
-        and abf.dacUnits[channel].strip() in _CURRENT_UNITS
-    )
-
-
-def _read_sweeps(abf: Any, v_channel: int) -> tuple[list[Sweep], str]:
-    """All sweeps (V, A) and a note saying where the current came from."""
-    v_scale = _VOLTAGE_UNITS[abf.adcUnits[v_channel].strip()]
-    use_command = _epoch_command_enabled(abf, v_channel)
-    i_channel = _channel(abf, _CURRENT_UNITS)
-    voltages, commands, recorded = [], [], []
+def _channel_data(abf: Any, ch: int, scale: float) -> list[np.ndarray]:
+    """Every sweep of one input channel, copied, in SI units."""
+    out = []
     for k in abf.sweepList:
-        abf.setSweep(k, channel=v_channel)
-        voltages.append(np.array(abf.sweepY, dtype=np.float64) * v_scale)
-        if use_command:
-            c_scale = _CURRENT_UNITS[abf.dacUnits[v_channel].strip()]
-            commands.append(np.array(abf.sweepC, dtype=np.float64) * c_scale)
-        if i_channel is not None:
-            abf.setSweep(k, channel=i_channel)
-            i_scale = _CURRENT_UNITS[abf.adcUnits[i_channel].strip()]
-            recorded.append(np.array(abf.sweepY, dtype=np.float64) * i_scale)
-    if use_command and _informative(commands, voltages):
-        currents, source = commands, f"command waveform of DAC {v_channel} (epoch table)"
-    elif i_channel is not None:
-        currents, source = recorded, f"recorded channel {abf.adcNames[i_channel]}"
+        abf.setSweep(k, channel=ch)
+        out.append(np.array(abf.sweepY, dtype=np.float64) * scale)
+    return out
+
+
+def _vm_problem(traces: list[np.ndarray]) -> str | None:
+    """Why a voltage channel is not a membrane potential, or None when it looks like one.
+
+    A membrane potential sits roughly within −120…+20 mV, varies by more than 0.5 mV
+    (steps, noise, events) and is not piecewise constant like a copy of a command
+    (common practice, no source).
+    """
+    allv = np.concatenate(traces)
+    median = float(np.median(allv))
+    low, high = (float(x) for x in np.percentile(allv, [1, 99]))
+    if not _VM_RANGE_V[0] <= median <= _VM_RANGE_V[1]:
+        return f"sits at {median * 1e3:.4g} mV, outside −120…+20 mV"
+    if high - low < _VM_MIN_SPREAD_V:
+        return f"is flat ({(high - low) * 1e3:.3g} mV between its 1st and 99th percentile)"
+    steady = float(np.mean(np.concatenate([np.diff(t) == 0 for t in traces])))
+    if steady > _COMMAND_COPY_FRACTION:
+        return "is piecewise constant, like a copy of a command"
+    return None
+
+
+def _resolve_channel(path: Path, abf: Any, channel: int | str) -> int:
+    """The input channel named by index (0-based, in file order) or by name."""
+    channels = list(abf.channelList)
+    if isinstance(channel, (int, np.integer)) and not isinstance(channel, bool):
+        if 0 <= int(channel) < len(channels):
+            return channels[int(channel)]
     else:
-        currents, source = [None] * len(voltages), "none in file"
-    sweeps = [Sweep(k, v, c) for k, (v, c) in enumerate(zip(voltages, currents, strict=True))]
-    return sweeps, source
+        wanted = str(channel).strip().lower()
+        named = [ch for ch in channels if _clean(abf.adcNames[ch]).lower() == wanted]
+        if named:
+            return named[0]
+        if wanted.isdigit() and int(wanted) < len(channels):
+            return channels[int(wanted)]
+    raise LoadError(path, f"no channel {channel!r} in this file (channels: {_channel_list(abf)}); "
+                          f"give `channel` as one of these indices or names")
 
 
-def _informative(commands: list[np.ndarray], voltages: list[np.ndarray]) -> bool:
-    """A command is usable when it is finite, sweep-long and steps somewhere."""
-    return all(
-        c.shape == v.shape and bool(np.all(np.isfinite(c)))
-        for c, v in zip(commands, voltages, strict=True)
-    ) and any(np.ptp(c) > 0 for c in commands)
+def _drive_dac(abf: Any) -> int:
+    """The output (DAC) that plays the stimulus: the first with its waveform enabled."""
+    if _major(abf) == 1:
+        return int(abf._headerV1.nActiveDACChannel)
+    enabled = [d for d, on in enumerate(abf._dacSection.nWaveformEnable) if on]
+    return enabled[0] if enabled else 0
+
+
+def _dac_units(abf: Any, dac: int) -> str:
+    return _clean(abf.dacUnits[dac]) if 0 <= dac < len(abf.dacUnits) else ""
+
+
+def _epoch_table_enabled(abf: Any, dac: int) -> bool:
+    if _major(abf) == 1:
+        header = abf._headerV1
+        enable, source = header.nWaveformEnable, header.nWaveformSource
+    else:
+        enable, source = abf._dacSection.nWaveformEnable, abf._dacSection.nWaveformSource
+    return 0 <= dac < min(len(enable), len(source)) and bool(enable[dac]) and source[dac] == 1
+
+
+def _abf1_holding(path: Path, abf: Any, dac: int) -> float:
+    """ABF 1 `fDACHoldingLevel` of one DAC, in DAC units (0 when the header lacks it).
+
+    pyabf's `holdingCommand` on ABF 1 is the epoch-level list, so the field is read
+    from the header here: 4 floats at byte 1394, after fDACScaleFactor (1378), from
+    memory, consistent with pyabf's offsets of sDACChannelName (1306) and
+    nActiveDACChannel (1440), and checked on a real file whose command copy rests at
+    the −50 mV this field holds (tests/test_io_real.py).
+    """
+    if _abf1_data_start(abf) < _ABF1_HOLDING + 16 or not 0 <= dac < 4:
+        return 0.0
+    with open(path, "rb") as f:
+        f.seek(_ABF1_HOLDING + 4 * dac)
+        value = float(struct.unpack("<f", f.read(4))[0])
+    return value if np.isfinite(value) and abs(value) < 1e6 else 0.0
+
+
+def _epoch_rows(abf: Any, dac: int) -> list[tuple]:
+    """(type, level, level increment, duration, duration increment, period, width) rows."""
+    if _major(abf) == 2:
+        e = abf._epochPerDacSection
+        rows = sorted((k for k in range(len(e.nDACNum)) if e.nDACNum[k] == dac),
+                      key=lambda k: e.nEpochNum[k])
+        return [(e.nEpochType[k], e.fEpochInitLevel[k], e.fEpochLevelInc[k],
+                 e.lEpochInitDuration[k], e.lEpochDurationInc[k],
+                 e.lEpochPulsePeriod[k], e.lEpochPulseWidth[k]) for k in rows]
+    h = abf._headerV1
+    first = dac * _ABF1_EPOCHS_PER_DAC
+    return [(h.nEpochType[k], h.fEpochInitLevel[k], h.fEpochLevelInc[k],
+             h.lEpochInitDuration[k], h.lEpochDurationInc[k], 0, 0)
+            for k in range(first, min(first + _ABF1_EPOCHS_PER_DAC, len(h.nEpochType)))]
+
+
+def epoch_protocol(path: Path, abf: Any, dac: int, n_samples: int, rate: float) -> Protocol:
+    """Every sweep's epochs from the ABF 1 or ABF 2 epoch table of one DAC, in A.
+
+    The epochs start after the 1/64 of each sweep that ABF files hold at the holding
+    level; level and duration grow by their increments from sweep to sweep.
+    """
+    scale = _units_scale(_dac_units(abf, dac), _CURRENT_UNITS) or 1.0
+    if _major(abf) == 2:
+        holding = float(abf._dacSection.fDACHoldingLevel[dac])
+    else:
+        holding = _abf1_holding(path, abf, dac)
+    rows = _epoch_rows(abf, dac)
+    sweeps = []
+    for k in range(abf.sweepCount):
+        at = n_samples // _PRE_SWEEP_FRACTION
+        epochs = []
+        for kind, level, level_inc, duration, duration_inc, period, width in rows:
+            if kind == 0:
+                continue
+            samples = max(int(duration) + k * int(duration_inc), 0)
+            epochs.append(Epoch(at / rate, samples / rate, (level + k * level_inc) * scale,
+                                _EPOCH_KINDS.get(int(kind), "other"),
+                                period / rate if kind == 3 else 0.0,
+                                width / rate if kind == 3 else 0.0))
+            at += samples
+        sweeps.append(SweepProtocol(tuple(epochs), holding * scale))
+    return Protocol(tuple(sweeps), SOURCE_EPOCH_TABLE)
+
+
+def _user_list_flag(abf: Any) -> Flag | None:
+    """A flag when the epoch table varies a parameter through a user list."""
+    enabled = [bool(x) for x in (abf.userListEnable or []) if x is not None]
+    if not any(enabled):
+        return None
+    values = abf.userList if isinstance(abf.userList, list) else []
+    shown = ", ".join(f"{v:g}" for v in values[:12] if isinstance(v, float)) or "unreadable"
+    return S.PROTOCOL_USER_LIST.make(values=shown)
+
+
+def _refusal(abf: Any, source: str, currents: list[np.ndarray] | None, rate: float,
+             protocol: Protocol | None) -> str | None:
+    """Why an ABF file cannot be analysed for its stimulus, or None."""
+    if currents is None:
+        return None
+    kinds = {classify_stimulus(c, rate) for c in currents}
+    if kinds & {"step", "pulse"}:
+        return None
+    table = protocol.kinds if protocol is not None else set()
+    need = "passivefit needs current clamp with current steps"
+    if "ramp" in kinds or "ramp" in table:
+        return f"a current-ramp recording with no current step ({source}); {need}"
+    if int(abf.nOperationMode) == _GAP_FREE_MODE:
+        return f"a gap-free recording with no current step ({source} holds no step); {need}"
+    if "waveform" in kinds or "other" in table:
+        return f"a stimulus with no current step (a sine or other waveform, {source}); {need}"
+    return None
+
+
+@dataclass
+class _Current:
+    """The current chosen for a file's sweeps, and what was noticed choosing it."""
+
+    currents: list[np.ndarray] | None
+    source: str
+    detail: str
+    channel: str
+    protocol: Protocol | None
+    flags: list[Flag]
+
+
+def _choose_current(path: Path, abf: Any, rate: float, dac: int, command_units: str,
+                    amps: list[int]) -> _Current:
+    """Recorded current when it shows steps, else the epoch table; each checked by the other."""
+    n = int(abf.sweepPointCount)
+    flags: list[Flag] = []
+    protocol = commands = None
+    if _units_scale(command_units, _CURRENT_UNITS) and _epoch_table_enabled(abf, dac):
+        protocol = epoch_protocol(path, abf, dac, n, rate)
+        commands = [sp.command(n, rate) for sp in protocol.sweeps]
+        user_list = _user_list_flag(abf)
+        if user_list is not None:
+            flags.append(user_list)
+    recorded, i_label = None, ""
+    if amps:
+        i_label = _channel_label(abf, amps[0])
+        recorded = _channel_data(abf, amps[0], _units_scale(abf.adcUnits[amps[0]],
+                                                            _CURRENT_UNITS) or 1.0)
+    rec_steps = [find_steps(r, rate) for r in recorded] if recorded is not None else []
+    cmd_steps = [find_steps(c, rate) for c in commands] if commands is not None else []
+    if recorded is not None and (any(rec_steps) or not any(cmd_steps)):
+        current = _Current(recorded, SOURCE_RECORDED, f"recorded channel {i_label}", i_label,
+                           protocol or protocol_from_steps(rec_steps, SOURCE_RECORDED), flags)
+    elif commands is not None:
+        current = _Current(commands, SOURCE_EPOCH_TABLE, f"epoch table of DAC {dac}",
+                           f"DAC {dac} [{command_units}]", protocol, flags)
+    else:
+        return _Current(None, SOURCE_NONE, "no current", "", None, flags)
+    if recorded is not None and any(cmd_steps):
+        found = []
+        for k, (c, r) in enumerate(zip(cmd_steps, rec_steps, strict=True)):
+            found += compare_steps(k, c, r, f"epoch table (DAC {dac})")
+        flags += summarize(found)
+    return current
+
+
+def _response_V(traces: list[np.ndarray], currents: list[np.ndarray] | None,
+                rate: float) -> float:
+    """Summed |mean V in the second half of each sweep's step − mean V before it|, in V."""
+    if currents is None:
+        return 0.0
+    total = 0.0
+    for v, c in zip(traces, currents, strict=True):
+        step = find_step(c, rate)
+        if step is None:
+            continue
+        before = v[step.baseline_start : step.onset].mean()
+        during = v[(step.onset + step.offset) // 2 : step.offset].mean()
+        total += abs(float(during - before))
+    return total
+
+
+def _choose_voltage(path: Path, abf: Any, volt: list[int], channel: int | str | None,
+                    current: _Current, rate: float) -> tuple[int, list[np.ndarray], list[Flag]]:
+    """The membrane-potential channel: the user's, or the plausible one that answers steps."""
+    if channel is not None:
+        v_ch = _resolve_channel(path, abf, channel)
+        if v_ch not in volt:
+            raise LoadError(path, f"channel {_channel_label(abf, v_ch)} is not a voltage "
+                                  f"(channels: {_channel_list(abf)}); choose one in mV")
+        return v_ch, _channel_data(abf, v_ch, _units_scale(abf.adcUnits[v_ch],
+                                                           _VOLTAGE_UNITS) or 1.0), []
+    traces = {c: _channel_data(abf, c, _units_scale(abf.adcUnits[c], _VOLTAGE_UNITS) or 1.0)
+              for c in volt}
+    problems = {c: _vm_problem(traces[c]) for c in volt}
+    good = [c for c in volt if problems[c] is None]
+    if len(volt) == 1 and (problems[volt[0]] or "").startswith("is flat"):
+        good = volt  # the only channel: `validate` names a flat sweep
+    if not good:
+        listed = "; ".join(f"{_channel_label(abf, c)} {problems[c]}" for c in volt)
+        raise LoadError(path, f"no channel looks like a membrane potential ({listed}); "
+                              f"choose one with `channel` if one is")
+    responses = {c: _response_V(traces[c], current.currents, rate) for c in good}
+    v_ch = max(good, key=lambda c: responses[c])  # the first of equals: max keeps order
+    if len(volt) == 1:
+        return v_ch, traces[v_ch], []
+    median_mV = float(np.median(np.concatenate(traces[v_ch]))) * 1e3
+    others = "; ".join(
+        f"{_channel_label(abf, c)} "
+        + (problems[c] or f"answers the steps less ({responses[c] * 1e3:.3g} mV in all "
+                          f"against {responses[v_ch] * 1e3:.3g} mV)")
+        for c in volt if c != v_ch)
+    flag = S.PROTOCOL_CHANNEL.make(median_mV * 1e-3, channel=_channel_label(abf, v_ch),
+                                   median=f"{median_mV:.1f} mV", others=others)
+    return v_ch, traces[v_ch], [flag]
+
+
+def _read(path: Path, abf: Any, rate: float, channel: int | str | None) -> Recording:
+    channels = list(abf.channelList)
+    volt = [c for c in channels if _units_scale(abf.adcUnits[c], _VOLTAGE_UNITS)]
+    amps = [c for c in channels if _units_scale(abf.adcUnits[c], _CURRENT_UNITS)]
+    dac = _drive_dac(abf)
+    command_units = _dac_units(abf, dac)
+    if amps and _units_scale(command_units, _VOLTAGE_UNITS):
+        raise LoadError(
+            path,
+            f"a voltage-clamp recording (current recorded in {_clean(abf.adcUnits[amps[0]])}, "
+            f"command in {command_units}); passivefit needs current clamp with current steps")
+    if not volt:
+        raise LoadError(
+            path,
+            f"no voltage channel in mV (channels: {_channel_list(abf)}); "
+            f"passivefit needs a current-clamp recording")
+    current = _choose_current(path, abf, rate, dac, command_units, amps)
+    reason = _refusal(abf, current.detail, current.currents, rate, current.protocol)
+    if reason is not None:
+        raise LoadError(path, reason)
+    v_ch, voltages, channel_flags = _choose_voltage(path, abf, volt, channel, current, rate)
+    currents = current.currents
+    sweeps = [Sweep(k, v, None if currents is None else currents[k])
+              for k, v in enumerate(voltages)]
+    rec = Recording(sweeps, rate, path=str(path), format="abf",
+                    metadata=_metadata(abf, current.source),
+                    flags=(*channel_flags, *current.flags), current_source=current.source,
+                    clamp_mode=CURRENT_CLAMP, voltage_channel=_channel_label(abf, v_ch),
+                    protocol=current.protocol)
+    rec.metadata["voltage_channel"] = rec.voltage_channel
+    if current.channel:
+        rec.metadata["current_channel"] = current.channel
+    filter_hz = _corner_hz(_lowpass_setting(path, abf, v_ch), rate)
+    if filter_hz is not None:
+        rec.metadata["filter_hz"] = filter_hz
+    return rec
 
 
 def _clean(text: object) -> str:
@@ -239,54 +514,58 @@ def _corner_hz(setting_hz: float, rate_hz: float) -> float | None:
     return float(str(np.float32(setting_hz)))
 
 
-def read_abf(path: str | Path) -> Recording:
+def read_abf(path: str | Path, channel: int | str | None = None) -> Recording:
     """Read an ABF 1 or ABF 2 current-clamp file.
+
+    The clamp mode comes from the units: a current input (pA, nA) with a command in
+    mV is voltage clamp and is refused. The membrane potential is the first channel
+    in mV that looks like one (see `_vm_problem`), unless `channel` names it. The
+    current is the recorded current channel when it shows steps (the better witness
+    of what was played), else the command drawn from the ABF 1 or ABF 2 epoch table;
+    where both exist they are compared and every disagreement is a flag on the
+    Recording.
 
     Parameters
     ----------
     path : str or Path
         The .abf file.
+    channel : int or str, optional
+        Membrane-potential channel: index among the file's input channels (from 0)
+        or name.
 
     Returns
     -------
     Recording
-        Voltage in V from the first mV channel; current in A from an enabled ABF 2
-        epoch table, else from a pA/nA channel, else None. Metadata: `date` (ISO),
-        `protocol`, `comment`, `abf_version`, `current_source`, and `filter_hz` (the
+        Voltage in V, current in A (or None when the file holds no current and no
+        epoch table); `current_source`, `voltage_channel`, `protocol` and `flags`
+        set. Metadata: `date` (ISO), `protocol`, `comment`, `abf_version`,
+        `current_source`, `voltage_channel`, `current_channel`, and `filter_hz` (the
         voltage channel's `fSignalLowpassFilter`, in Hz) when it is a plausible
         corner: 10 Hz to 1 MHz and below the Nyquist frequency.
 
     Raises
     ------
     LoadError
-        Not ABF, damaged, truncated, or no channel in mV.
+        Not ABF, damaged, truncated, voltage clamp, no membrane-potential channel,
+        an unknown `channel`, or a stimulus without a current step (ramp, sine,
+        gap-free recording).
     """
     path = Path(path)
     abf = _open(path)
     _check_layout(path, abf)
     rate = _sample_rate(path, abf)
-    v_channel = _channel(abf, _VOLTAGE_UNITS)
-    if v_channel is None:
-        raise LoadError(
-            path,
-            f"no voltage channel in mV (channels: {_channel_list(abf)}); "
-            f"passivefit needs a current-clamp recording",
-        )
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             if _major(abf) == 1:
                 _undo_phantom_telegraph_gain(abf)
-            sweeps, current_source = _read_sweeps(abf, v_channel)
-            metadata = _metadata(abf, current_source)
-            filter_hz = _corner_hz(_lowpass_setting(path, abf, v_channel), rate)
+            return _read(path, abf, rate, channel)
+    except LoadError:
+        raise
     except Exception as err:  # pyabf fails in many ways on damaged sweeps
         raise LoadError(
             path, f"damaged ABF data ({_reason(err)}); re-export the file from the rig"
         ) from None
-    if filter_hz is not None:
-        metadata["filter_hz"] = filter_hz
-    return Recording(sweeps, rate, path=str(path), format="abf", metadata=metadata)
 
 
 def _stack_voltage_mV(recording: Recording, path: Path) -> np.ndarray:

@@ -40,6 +40,56 @@ _PREFIX_EXPONENT = {"": 0, "k": 3, "K": 3, "M": 6}
 _HIGH_PASS = re.compile(r"high[\s-]?pass", re.IGNORECASE)
 _V_UNITS_PER_SI = 1e3  # responses stored in mV (float32), conversion 1e-3 to V
 _I_UNITS_PER_SI = 1e12  # stimuli stored in pA (float32), conversion 1e-12 to A
+# amplifier settings of a CurrentClampSeries (NWB field, SI unit) -> metadata key
+AMPLIFIER_SETTINGS = {
+    "bias_current": "bias_current_A",
+    "bridge_balance": "bridge_balance_ohm",
+    "capacitance_compensation": "capacitance_compensation_F",
+}
+
+
+def _settings_metadata(per_sweep: list[dict]) -> dict:
+    """Metadata entries for the amplifier settings of every sweep's response series.
+
+    A setting the same in every sweep is one float; one that varies is a list with
+    one value per sweep (None where a sweep does not give it); absent settings are
+    left out.
+    """
+    out: dict = {}
+    for field, key in AMPLIFIER_SETTINGS.items():
+        values = [d.get(field) for d in per_sweep]
+        if all(v is None for v in values):
+            continue
+        floats = [None if v is None else float(v) for v in values]
+        out[key] = floats[0] if len(set(floats)) == 1 else floats
+    return out
+
+
+def _finish(recording: Recording) -> Recording:
+    """Current source and protocol of a recording whose current is its stimulus series."""
+    from passivefit.core.steps import find_steps
+    from passivefit.model.protocol import SOURCE_NONE, SOURCE_STIMULUS, protocol_from_steps
+
+    if recording.has_current:
+        recording.current_source = SOURCE_STIMULUS
+        fs = recording.sample_rate_hz
+        recording.protocol = protocol_from_steps(
+            [find_steps(s.current, fs) for s in recording.sweeps], SOURCE_STIMULUS)
+    else:
+        recording.current_source = SOURCE_NONE
+    return recording
+
+
+def _setting_of(metadata: dict, key: str, sweep: int) -> float | None:
+    """One sweep's amplifier setting from metadata written by `_settings_metadata`."""
+    value = metadata.get(key)
+    if isinstance(value, (list, tuple)):
+        value = value[sweep] if sweep < len(value) else None
+    try:
+        number = None if value is None else float(value)
+    except (TypeError, ValueError):
+        return None
+    return number if number is not None and np.isfinite(number) else None
 
 
 def filter_hz_from_text(text: str | None) -> float | None:
@@ -133,6 +183,18 @@ def _acquisition_pairs(nwb: Any, current_clamp: tuple[type, ...]) -> list[tuple[
     ]
 
 
+def _has_voltage_clamp(nwb: Any) -> bool:
+    """Whether the file holds voltage-clamp responses (in `acquisition` or the table)."""
+    from pynwb.icephys import VoltageClampSeries
+
+    series = list(nwb.acquisition.values())
+    table = nwb.intracellular_recordings
+    if table is not None and len(table) > 0:
+        responses = table.get_category("responses")["response"]
+        series += [responses[row].timeseries for row in range(len(table))]
+    return any(isinstance(s, VoltageClampSeries) for s in series)
+
+
 def _cut(item: Any) -> tuple[Any, int, int | None]:
     """(series, start, count) of a table reference or of a whole series."""
     if hasattr(item, "timeseries"):
@@ -140,10 +202,13 @@ def _cut(item: Any) -> tuple[Any, int, int | None]:
     return item, 0, None
 
 
-def _read_sweeps(path: Path, pairs: list[tuple[Any, Any]]) -> tuple[list[Sweep], float]:
-    sweeps, rates = [], set()
+def _read_sweeps(
+    path: Path, pairs: list[tuple[Any, Any]]
+) -> tuple[list[Sweep], float, list[dict]]:
+    sweeps, rates, settings = [], set(), []
     for k, (response, stimulus) in enumerate(pairs):
         series, start, count = _cut(response)
+        settings.append({f: getattr(series, f, None) for f in AMPLIFIER_SETTINGS})
         voltage = _si(series, start, count)
         rates.add(_series_rate(series))
         current = None
@@ -161,7 +226,7 @@ def _read_sweeps(path: Path, pairs: list[tuple[Any, Any]]) -> tuple[list[Sweep],
         raise LoadError(
             path, f"sweeps have different sampling rates {sorted(rates)} Hz; split the file"
         )
-    return sweeps, rates.pop() if rates else float("nan")
+    return sweeps, rates.pop() if rates else float("nan"), settings
 
 
 def _electrode(nwb: Any) -> Any:
@@ -233,14 +298,21 @@ def read_nwb_pynwb(path: str | Path) -> Recording:
                 else:
                     pairs = _acquisition_pairs(nwb, current_clamp)
                 pairs = [p for p in pairs if not isinstance(_cut(p[0])[0], IZeroClampSeries)]
+                if not pairs and _has_voltage_clamp(nwb):
+                    raise LoadError(
+                        path,
+                        "a voltage-clamp recording (VoltageClampSeries; no current-clamp sweeps "
+                        "in this NWB file); passivefit needs current clamp with current steps",
+                    )
                 if not pairs:
                     raise LoadError(
                         path,
                         "no current-clamp sweeps in this NWB file (CurrentClampSeries); "
                         "passivefit analyses current clamp only",
                     )
-                sweeps, rate = _read_sweeps(path, pairs)
+                sweeps, rate, settings = _read_sweeps(path, pairs)
                 metadata = _metadata(nwb)
+                metadata.update(_settings_metadata(settings))
     except LoadError:
         raise
     except OSError as err:
@@ -251,7 +323,7 @@ def read_nwb_pynwb(path: str | Path) -> Recording:
         raise LoadError(
             path, f"HDF5 but not a readable NWB file ({_reason(err)}); export it as NWB 2"
         ) from None
-    return Recording(sweeps, rate, path=str(path), format="nwb", metadata=metadata)
+    return _finish(Recording(sweeps, rate, path=str(path), format="nwb", metadata=metadata))
 
 
 # ---------------------------------------------------------------- reading with h5py only
@@ -387,9 +459,21 @@ def _direct_acquisition_pairs(f: Any) -> list[tuple[tuple, tuple | None]]:
     return pairs
 
 
-def _direct_sweeps(pairs: list[tuple[tuple, tuple | None]]) -> tuple[list[Sweep], float]:
-    sweeps, rates = [], set()
+def _direct_setting(series: Any, field: str) -> float | None:
+    if field not in series:
+        return None
+    value = series[field][()]
+    if np.ndim(value) != 0:
+        raise _Unfamiliar(f"{series.name}/{field} is not a scalar")
+    return float(value)
+
+
+def _direct_sweeps(
+    pairs: list[tuple[tuple, tuple | None]]
+) -> tuple[list[Sweep], float, list[dict]]:
+    sweeps, rates, settings = [], set(), []
     for k, ((series, start, count), stimulus) in enumerate(pairs):
+        settings.append({f: _direct_setting(series, f) for f in AMPLIFIER_SETTINGS})
         voltage = _direct_samples(series, "volts", start, count)
         rates.add(_direct_rate(series))
         current = None
@@ -398,7 +482,7 @@ def _direct_sweeps(pairs: list[tuple[tuple, tuple | None]]) -> tuple[list[Sweep]
         sweeps.append(Sweep(k, voltage, current))  # unequal lengths raise: pynwb words it
     if len(rates) != 1:
         raise _Unfamiliar(f"sampling rates {sorted(rates)}")
-    return sweeps, rates.pop()
+    return sweeps, rates.pop(), settings
 
 
 def _direct_electrode(f: Any) -> Any:
@@ -484,8 +568,10 @@ def _read_direct(f: Any, path: Path) -> Recording:
         pairs = _direct_acquisition_pairs(f)
     if not pairs:
         raise _Unfamiliar("no current-clamp sweeps")  # pynwb words the error
-    sweeps, rate = _direct_sweeps(pairs)
-    return Recording(sweeps, rate, path=str(path), format="nwb", metadata=_direct_metadata(f))
+    sweeps, rate, settings = _direct_sweeps(pairs)
+    metadata = _direct_metadata(f)
+    metadata.update(_settings_metadata(settings))
+    return _finish(Recording(sweeps, rate, path=str(path), format="nwb", metadata=metadata))
 
 
 def read_nwb_hdf5(path: str | Path) -> Recording | None:
@@ -536,7 +622,11 @@ def read_nwb(path: str | Path) -> Recording:
         `lab`, `institution`, `protocol`, `electrode`, `subject_id`, `species`, `notes`,
         `temperature_C` (from ``temperature_C: 32`` in the notes), `filter_hz`
         (the low-pass corner in Hz, from the electrode's `filtering` text; see
-        `filter_hz_from_text`).
+        `filter_hz_from_text`), and the responses' amplifier settings
+        `bias_current_A`, `bridge_balance_ohm`, `capacitance_compensation_F` where
+        present (one float, or a per-sweep list when they vary). `current_source`
+        is "stimulus series" when every sweep has one, and `protocol` lists the
+        steps found in them.
 
     Raises
     ------
@@ -602,7 +692,9 @@ def write_nwb(recording: Recording, path: str | Path) -> None:
     dates are taken as UTC), `lab`, `institution`, `session_description`,
     `protocol`, `electrode`, `subject_id`, `species`, `notes`, `temperature_C` (in
     the notes), `filter_hz` (in the electrode's `filtering` text, see
-    `filtering_text`). Other keys have no NWB field and are not written.
+    `filtering_text`), `bias_current_A`, `bridge_balance_ohm`,
+    `capacitance_compensation_F` (on each response series; a per-sweep list or one
+    float). Other keys have no NWB field and are not written.
 
     Parameters
     ----------
@@ -641,6 +733,7 @@ def write_nwb(recording: Recording, path: str | Path) -> None:
             rate=float(recording.sample_rate_hz),
             conversion=1.0 / _V_UNITS_PER_SI,
             sweep_number=number,
+            **{field: _setting_of(metadata, key, k) for field, key in AMPLIFIER_SETTINGS.items()},
         )
         stimulus = None
         if sweep.current is not None:

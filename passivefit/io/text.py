@@ -10,8 +10,9 @@ Layout (see docs/csv-format.md)::
 
 The time column (`time_s` or `time_ms`) may be left out when a `sample_rate_hz`
 line is given. Voltage columns are `V<k>_mV` or `V<k>_V`; current columns, optional,
-`I<k>_pA`, `I<k>_nA` or `I<k>_A`. The delimiter (comma, tab or semicolon) is taken
-from the header row.
+`I<k>_pA`, `I<k>_nA` or `I<k>_A`; names are read without regard to case
+(`time_s,v0_mV,i0_pA` is the same header as `time_s,V0_mV,I0_pA`). The delimiter
+(comma, tab or semicolon) is taken from the header row.
 """
 
 from __future__ import annotations
@@ -22,15 +23,18 @@ from pathlib import Path
 
 import numpy as np
 
+from passivefit.core.steps import find_steps
 from passivefit.io._rate import rate_from_times, whole_hz
 from passivefit.io.recording import LoadError, Recording, Sweep
+from passivefit.model.protocol import SOURCE_NONE, SOURCE_TABLE, protocol_from_steps
 
 FORMAT_NAME = "passivefit sweep table"
 
 _TIME_SCALE = {"time_s": 1.0, "time_ms": 1e-3}
 _VOLTAGE_SCALE = {"mV": 1e-3, "V": 1.0}
 _CURRENT_SCALE = {"pA": 1e-12, "nA": 1e-9, "A": 1.0}
-_SIGNAL_COLUMN = re.compile(r"^(?P<kind>[VI])(?P<sweep>\d+)_(?P<unit>\w+)$")
+# column names are matched without regard to case: v0_mV, V0_MV and v0_mv are V0_mV
+_SIGNAL_COLUMN = re.compile(r"^(?P<kind>[VI])(?P<sweep>\d+)_(?P<unit>\w+)$", re.IGNORECASE)
 _DELIMITERS = (",", "\t", ";")
 _HELP = "expected time_s or time_ms, V<k>_mV or V<k>_V, I<k>_pA, I<k>_nA or I<k>_A"
 # metadata keys read as numbers, with an example value for the error; every other key
@@ -106,18 +110,20 @@ def _parse_header(path: Path, names: list[str], line_no: int) -> _Header:
         )
     header = _Header(None, {}, {}, len(names))
     for position, name in enumerate(names):
-        if name in _TIME_SCALE:
+        if name.lower() in _TIME_SCALE:
             if header.time is not None:
                 raise LoadError(path, f"line {line_no}: two time columns; keep one")
-            header.time = _Column(position, _TIME_SCALE[name])
+            header.time = _Column(position, _TIME_SCALE[name.lower()])
             continue
         match = _SIGNAL_COLUMN.match(name)
         if match is None:
             raise LoadError(path, f"line {line_no}: column {name!r} is not understood; {_HELP}")
-        kind, sweep, unit = match["kind"], int(match["sweep"]), match["unit"]
+        kind, sweep, unit = match["kind"].upper(), int(match["sweep"]), match["unit"]
         scales, target = (
             (_VOLTAGE_SCALE, header.voltage) if kind == "V" else (_CURRENT_SCALE, header.current)
         )
+        by_case = {known.lower(): known for known in scales}
+        unit = by_case.get(unit.lower(), unit)
         if unit not in scales:
             known = " or ".join(scales)
             raise LoadError(
@@ -240,7 +246,14 @@ def read_text(path: str | Path) -> Recording:
         i = header.current.get(number)
         current = None if i is None else table[:, i.position] * i.scale
         sweeps.append(Sweep(index, table[:, v.position] * v.scale, current))
-    return Recording(sweeps, rate, path=str(path), format="csv", metadata=metadata)
+    recording = Recording(sweeps, rate, path=str(path), format="csv", metadata=metadata)
+    if recording.has_current:
+        recording.current_source = SOURCE_TABLE
+        recording.protocol = protocol_from_steps(
+            [find_steps(s.current, rate) for s in sweeps], SOURCE_TABLE)
+    else:
+        recording.current_source = SOURCE_NONE
+    return recording
 
 
 def _metadata_lines(recording: Recording) -> list[str]:

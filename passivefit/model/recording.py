@@ -9,7 +9,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from passivefit.core.qc import Flag
 from passivefit.model.errors import LoadError
+from passivefit.model.protocol import Protocol
 
 
 @dataclass(frozen=True)
@@ -94,6 +96,19 @@ class Recording:
         Reader name: "abf", "nwb" or "csv".
     metadata : dict
         Plain values the file carries: cell_id, date, temperature_C, ... .
+    flags : tuple of Flag
+        What reading noticed: source disagreements, the channel chosen.
+    current_source : str
+        Where `Sweep.current` came from: "recorded channel", "epoch table",
+        "stimulus series", "current column" (sweep table), "user step", or "none"
+        when there is no current ("" when not set by a reader).
+    clamp_mode : str
+        "current clamp" (voltage-clamp files are refused when read).
+    voltage_channel : str
+        The membrane-potential channel, e.g. ``"IN 0 [mV]"`` ('' when the format
+        has only one).
+    protocol : Protocol or None
+        Each sweep's epochs as the file describes them (None when unknown).
     """
 
     sweeps: list[Sweep]
@@ -102,6 +117,11 @@ class Recording:
     sha256: str = ""
     format: str = ""
     metadata: dict = field(default_factory=dict)
+    flags: tuple[Flag, ...] = ()
+    current_source: str = ""
+    clamp_mode: str = "current clamp"
+    voltage_channel: str = ""
+    protocol: Protocol | None = None
 
     @property
     def dt(self) -> float:
@@ -112,13 +132,35 @@ class Recording:
         return all(s.current is not None for s in self.sweeps)
 
     def with_step(self, step: StepSpec) -> Recording:
-        """A copy whose sweeps carry the command current of `step`."""
+        """A copy whose sweeps carry the command current of `step` ("user step").
+
+        When the file carried a current of its own, the user's step is checked
+        against it and each disagreement is added to `flags`.
+        """
+        from passivefit.core.steps import find_steps
+        from passivefit.model.protocol import (
+            SOURCE_USER,
+            compare_steps,
+            protocol_from_steps,
+            summarize,
+        )
+
+        fs = self.sample_rate_hz
         sweeps = [
-            Sweep(s.index, s.voltage, step.command(s.n_samples, self.sample_rate_hz, k))
+            Sweep(s.index, s.voltage, step.command(s.n_samples, fs, k))
             for k, s in enumerate(self.sweeps)
         ]
-        return Recording(sweeps, self.sample_rate_hz, self.path, self.sha256, self.format,
-                         dict(self.metadata))
+        user = [find_steps(s.current, fs) for s in sweeps]
+        found = []
+        if self.has_current and self.current_source not in ("", SOURCE_USER):
+            for k, s in enumerate(self.sweeps):
+                found += compare_steps(k, user[k], find_steps(s.current, fs), "user step")
+        metadata = dict(self.metadata)
+        metadata["current_source"] = SOURCE_USER
+        return Recording(sweeps, fs, self.path, self.sha256, self.format, metadata,
+                         flags=(*self.flags, *summarize(found)), current_source=SOURCE_USER,
+                         clamp_mode=self.clamp_mode, voltage_channel=self.voltage_channel,
+                         protocol=protocol_from_steps(user, SOURCE_USER))
 
     def validate(self) -> None:
         """Raise LoadError when the data cannot be analysed (empty, NaN, too short)."""

@@ -331,6 +331,34 @@ CABLE_RHO_RANGE = _flag(
     "cable.rho_range", "warning",
     "rho = {x:.3g} is outside 0.1-100, unusual for a neuron: check the amplitude ratio")
 
+# reading: the protocol against the recorded current, the channel chosen
+PROTOCOL_AMPLITUDE = _flag(
+    "protocol.amplitude_disagrees", "warning",
+    "sweep {sweep}: the step at {at} is {planned} in the {source} but {recorded} in the "
+    "recorded current; the recorded current is used")
+PROTOCOL_TIMING = _flag(
+    "protocol.timing_disagrees", "warning",
+    "sweep {sweep}: the step is at {planned} in the {source} but at {recorded} in the "
+    "recorded current; the recorded current is used")
+PROTOCOL_HOLDING = _flag(
+    "protocol.holding_disagrees", "info",
+    "sweep {sweep}: the recorded current rests at {recorded} where the {source} holds "
+    "{planned} (offset {offset}); steps are measured from the level before each")
+PROTOCOL_STEP_MISSING = _flag(
+    "protocol.step_missing", "warning", "{reason}",
+    not_recorded="sweep {sweep}: the {source} has a {amplitude} step at {at} that the "
+                 "recorded current does not show",
+    not_planned="sweep {sweep}: the recorded current has a {amplitude} step at {at} that "
+                "the {source} does not have")
+PROTOCOL_USER_LIST = _flag(
+    "protocol.user_list", "warning",
+    "the epoch table varies a parameter through a user list (values: {values}); the drawn "
+    "command may differ from what was played, so a recorded current channel is preferred "
+    "where there is one")
+PROTOCOL_CHANNEL = _flag(
+    "protocol.channel_chosen", "info",
+    "membrane potential read from {channel} (median {median}); {others}")
+
 #: core.cable.implausible() check names → flag codes.
 PLAUSIBILITY = {"tau2_ratio": CABLE_TAU2_RATIO, "shunt_pulse": CABLE_SHUNT_SUSPECTED,
                 "shunt_step": CABLE_SHUNT_SUSPECTED, "L_range": CABLE_L_RANGE,
@@ -343,7 +371,9 @@ def flags_markdown() -> str:
     for spec in FLAGS.values():
         words = " / ".join(spec.reasons.values()) if spec.reasons else spec.template
         words = words.replace("{reason}", "…").replace("|", "\\|")
-        for field_name in ("done", "what", "problem", "limit"):
+        for field_name in ("done", "what", "problem", "limit", "sweep", "at", "planned",
+                           "recorded", "source", "offset", "amplitude", "values", "channel",
+                           "median", "others"):
             words = words.replace("{" + field_name + "}", "…")
         for fmt in ("{x:.2f}", "{x:.3f}", "{x:.3g}", "{limit:.3f}"):
             words = words.replace(fmt, "x")
