@@ -18,7 +18,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.ndimage import median_filter
 
 #: A step shorter than this is treated as a brief pulse: only its decay is fitted.
 PULSE_MAX_S = 5e-3
@@ -263,7 +262,12 @@ def _split(current: np.ndarray, sample_rate_hz: float,
     if n == 0:
         return [], min_amplitude_A
     width = _median_window(x, fs)
-    f = median_filter(x, size=width, mode="nearest") if width > 1 else x
+    if width > 1:
+        from scipy.ndimage import median_filter  # lazy: reading a file needs no scipy
+
+        f = median_filter(x, size=width, mode="nearest")
+    else:
+        f = x
     h = max(1, int(round(EDGE_HALF_WIDTH_S * fs)))
     d = f[2 * h :] - f[: n - 2 * h] if n > 2 * h else np.zeros(1)
     threshold = _threshold(d, min_amplitude_A)
