@@ -184,8 +184,9 @@ class SweepEstimate:
     sag, 0.2 = the steady deflection is 20 % smaller than the peak one. ``rebound_mV`` is
     the largest rise above baseline (1 ms boxcar) in the 300 ms after the step. ``tau_ms`` is
     fitted over [fit_start_ms, fit_end_ms], ``tau_early_ms`` over its first half (how much τ
-    depends on the window); τs and the window are NaN when the fit fails or the step is not
-    hyperpolarizing.
+    depends on the window); ``t63_ms`` is the time from onset until the 1 ms boxcar first
+    reaches 63 % of the steady deflection (no fit at all). τs, t63 and the window are NaN
+    when the fit fails or the step is not hyperpolarizing.
     """
 
     sweep: int
@@ -200,6 +201,7 @@ class SweepEstimate:
     fired: bool
     tau_ms: float
     tau_early_ms: float
+    t63_ms: float
     fit_start_ms: float
     fit_end_ms: float
 
@@ -298,7 +300,7 @@ def measure_step(t: np.ndarray, v: np.ndarray, onset_ms: float, duration_ms: flo
     nan = float("nan")
     if amp >= 0:
         return SweepEstimate(sweep, amp, base, steady, dv, r_in, nan, nan, rebound, fired,
-                             nan, nan, nan, nan)
+                             nan, nan, nan, nan, nan)
     i_min = np.flatnonzero(in_step)[np.argmin(vs[in_step])]
     peak = float(vs[i_min])
     sag = (steady - peak) / (base - peak)
@@ -310,8 +312,10 @@ def measure_step(t: np.ndarray, v: np.ndarray, onset_ms: float, duration_ms: flo
         end = min(on + 5.0 * tau1, off - 0.5) if np.isfinite(tau1) else off - 0.5
     tau = fit_tau(t, v, start, end)
     tau_early = fit_tau(t, v, start, start + 0.5 * (end - start))
+    reached = np.flatnonzero((t > on) & (t < off) & (vs <= base + 0.632 * dv))
+    t63 = float(t[reached[0]] - on) if reached.size else nan
     return SweepEstimate(sweep, amp, base, steady, dv, r_in, peak, float(sag), rebound, fired,
-                         tau, tau_early, start, end)
+                         tau, tau_early, t63, start, end)
 
 
 def sweep_estimate(name: str, sweep: int) -> SweepEstimate:

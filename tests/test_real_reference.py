@@ -149,3 +149,11 @@ def test_tau_fit_recovers_a_known_exponential():
     assert est.tau_ms == pytest.approx(20.0, rel=0.03)
     assert est.r_in_MOhm == pytest.approx(150.0, rel=0.02)
     assert est.sag_ratio < 0.05
+
+
+def test_time_to_63_percent_is_near_tau_for_a_clean_non_sagging_cell():
+    """For a single exponential, 63 % of the deflection is reached at τ (common practice,
+    no source); 18711001 is clean and sag-free, so the two must agree within 25 %."""
+    for sweep in (0, 10, 29):
+        est = sweep_estimate("18711001", sweep)
+        assert est.t63_ms == pytest.approx(est.tau_ms, rel=0.25)
