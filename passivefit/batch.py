@@ -116,7 +116,7 @@ def analyse_file(path: str, settings, reports: str | None = None) -> FileOutcome
         from passivefit.io import load
         from passivefit.io.recording import LoadError
 
-        recording = load(path)
+        recording = load(path, channel=settings.reader_channel)
         analysis = analyze(recording, settings)
         if reports:
             from passivefit.export.report import write_report

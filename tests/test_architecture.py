@@ -112,12 +112,14 @@ def test_readme_lists_every_flag_code():
 
 def test_flag_templates_fill_in():
     """Every message and every named variant formats with numbers (no stray braces)."""
-    fields = {"x": 1.0, "limit": 1.0, "sweep": 3, **dict.fromkeys(
-        ("done", "what", "problem", "at", "planned", "recorded", "source", "offset",
-         "amplitude", "values", "channel", "median", "others"), "text")}
+    import string
+
     for spec in S.FLAGS.values():
         for reason in spec.reasons or (None,):
-            flag = spec.make(1.0, reason=reason, **fields)
+            texts = [spec.template, spec.reasons.get(reason, "")]
+            names = {name for text in texts for _, name, _, _ in string.Formatter().parse(text)
+                     if name and name != "reason"}
+            flag = spec.make(1.0, reason=reason, **dict.fromkeys(names, 1.0))
             assert flag.code == spec.code and "{" not in flag.message
 
 

@@ -121,10 +121,16 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
     if r_in:
         values[S.C_TAU] = cable.c_tau(tau0, r_in)
     if bs is not None:
-        for q, spec, value in ((S.L_BS, S.CABLE_L_UNRESOLVED, bs.L),
-                               (S.RHO, S.CABLE_RHO_UNRESOLVED, bs.rho)):
+        from passivefit.core.cablefit import L_BOUNDS, RHO_BOUNDS
+
+        for q, spec, value, bounds in ((S.L_BS, S.CABLE_L_UNRESOLVED, bs.L, L_BOUNDS),
+                                       (S.RHO, S.CABLE_RHO_UNRESOLVED, bs.rho, RHO_BOUNDS)):
             ci = cis[q.key]
-            if ci < value:
+            if not bounds[0] * 1.02 < value < bounds[1] / 1.02:
+                flags.append(S.CABLE_AT_BOUND.make(value, name=q.label, x=value))
+            elif tau1 is None:
+                pass  # no τ1 resolved, so no electrotonic length (fit.tau1_unresolved)
+            elif ci < value:
                 values[q], values[S.BY_KEY[q.ci]] = value, ci
             else:
                 flags.append(spec.make(value))
@@ -134,7 +140,8 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
             more, more_flags = rho_cross_check(bs, r_in * step.amplitude_A)
             values.update(more)
             flags.extend(more_flags)
-    elif kind == "step":  # no cable fit: I·τ0/B0 of the exponential fit (docs/references.md §4)
+    elif kind == "step" and fit.sag is None:  # no cable fit: I·τ0/B0 of the exponential fit
+        #                                          (docs/references.md §4)
         c0 = onset_amplitudes(fit, g)[0]
         if c0 * step.amplitude_A > 0:
             values[S.C_TOTAL] = cable.c_total_step(step.amplitude_A, tau0, c0)

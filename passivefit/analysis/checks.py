@@ -18,7 +18,13 @@ MS = 1e-3
 
 
 def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag]]:
-    """R_in from the V–I slope (≥ 3 amplitudes) or the mean step; (values, V–I, flags)."""
+    """R_in from the steady-state V–I relation; (values, V–I points, flags).
+
+    With ≥ 3 step amplitudes and a straight V–I relation, its slope; when the relation
+    bends (e.g. inward rectification pins the voltage on large hyperpolarizing steps),
+    the chord of the smallest steps, which stay nearest to rest; with fewer amplitudes,
+    the least-squares ratio of all steps. Slope and chord are both reported.
+    """
     pts = [(f.step.amplitude_A, f.dv_ss_V) for f in used if f.dv_ss_V is not None]
     if not pts:
         return {}, None, [S.CELL_NO_STEADY_STATE.make()]
@@ -27,12 +33,16 @@ def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag
     i, dv = (np.array(x) for x in zip(*pts, strict=True))
     fitline = steady.vi_slope(i, dv)
     vi = {"current_A": i, "dv_V": dv, "slope": fitline}
+    small = np.abs(i) == np.min(np.abs(i))
+    chord = np.sum(dv[small] * i[small]) / np.sum(i[small] ** 2)
+    values[S.R_IN_CHORD] = chord
     if fitline is not None:
-        values[S.R_IN] = fitline.slope_ohm
-        values[S.R_IN_METHOD] = "V-I slope"
+        values[S.R_IN_SLOPE] = fitline.slope_ohm
         values[S.VI_R2] = fitline.r2
+        values[S.R_IN], values[S.R_IN_METHOD] = fitline.slope_ohm, "V-I slope"
         if fitline.r2 < 0.98 or fitline.curvature > 0.15:
             flags.append(S.VI_NONLINEAR.make(fitline.curvature))
+            values[S.R_IN], values[S.R_IN_METHOD] = chord, "smallest steps (V-I not linear)"
     else:
         values[S.R_IN] = np.sum(dv * i) / np.sum(i * i)
         values[S.R_IN_METHOD] = "mean step"
@@ -84,13 +94,13 @@ def onset_offset(g: GroupAverage, fs: float, fit) -> list[Flag]:
     """Compare τ0 of the charging and the decay transient fitted apart."""
     if g.step.kind != "step" or len(g.segments) < 2:
         return []
-    n = len(fit.taus)
     taus = []
     for name in ("fit", "fit_off"):
         other = "fit_off" if name == "fit" else "fit"
         wins = {k: v for k, v in g.windows_s.items() if k != other}
         try:
-            part, _ = fit_average(replace(g, windows_s=wins), fs, str(n), fit.taus)
+            part, _ = fit_average(replace(g, windows_s=wins), fs, str(fit.n_total),
+                                  fit.all_taus)
             taus.append((part.taus[0], part.tau_ci95[0]))
         except FIT_ERRORS:
             return []

@@ -6,7 +6,7 @@ decay) as segments with shared time constants (core.expfit, variable projection)
 
 from __future__ import annotations
 
-from dataclasses import replace
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -37,6 +37,86 @@ def fit_segments(v: np.ndarray, fs: float, step: Step, wins: dict):
         records.append(Segment(edges[name], a / fs, (b - 1) / fs, len(records),
                                charging=name == "fit"))
     return segs, tuple(records)
+
+
+@dataclass(frozen=True, eq=False)
+class TransientFit:
+    """An exponential fit with its components sorted into membrane modes and a sag.
+
+    The membrane's modes (τ0, τ1, …) all move the voltage in the direction of the
+    response (docs/references.md §2–§3: every Bn of a passive cable has the sign of the
+    step). A component of the opposite sign is not a membrane mode: the slowest such one,
+    slower than τ0, is the sag of an active (e.g. h-type) conductance relaxing the
+    voltage back, and is reported as the sag's time constant, never as τ0. `taus`,
+    `tau_ci95` and `amplitudes` show the membrane modes only; `evaluate` draws them all.
+    """
+
+    full: object                   # core.expfit.ExpFit
+    keep: tuple[int, ...]          # membrane components, slowest first
+    sag: int | None = None         # the sag component, if any
+
+    @property
+    def taus(self) -> np.ndarray:
+        return self.full.taus[list(self.keep)]
+
+    @property
+    def tau_ci95(self) -> np.ndarray:
+        return self.full.tau_ci95[list(self.keep)]
+
+    @property
+    def amplitudes(self) -> np.ndarray:
+        return self.full.amplitudes[:, list(self.keep)]
+
+    @property
+    def offsets(self) -> np.ndarray:
+        return self.full.offsets
+
+    @property
+    def success(self) -> bool:
+        return self.full.success
+
+    @property
+    def message(self) -> str:
+        return self.full.message
+
+    @property
+    def rmse(self) -> float:
+        return self.full.rmse
+
+    @property
+    def n_total(self) -> int:
+        """Components fitted, the sag's included (for refits)."""
+        return len(self.full.taus)
+
+    @property
+    def all_taus(self) -> np.ndarray:
+        """Every fitted time constant (s), slowest first (start values of refits)."""
+        return self.full.taus
+
+    @property
+    def sag_tau(self) -> float | None:
+        """Time constant of the sag component (s); None without one."""
+        return None if self.sag is None else float(self.full.taus[self.sag])
+
+    def evaluate(self, segment_index: int, t: np.ndarray) -> np.ndarray:
+        return self.full.evaluate(segment_index, t)
+
+
+def label_components(fit, step: Step, first_charging: bool) -> TransientFit:
+    """Sort `fit`'s components into membrane modes and a sag (see TransientFit).
+
+    `first_charging` says whether segment 0 is a step's charging transient (else a
+    decay): the amplitudes of segment 0, turned into the direction of the response, are
+    compared with the sign of the step.
+    """
+    a = np.asarray(fit.amplitudes[0], dtype=float)
+    towards = (-a if first_charging else a) * np.sign(step.amplitude_A)
+    keep = tuple(int(k) for k in np.flatnonzero(towards >= 0))
+    if not keep or len(keep) == len(a):
+        return TransientFit(fit, tuple(range(len(a))))
+    against = [k for k in range(len(a)) if k not in keep]
+    sag = against[0] if against[0] < keep[0] else None   # slower than τ0
+    return TransientFit(fit, keep, sag)
 
 
 def fit_exponentials(segs, components: str, tau_init=None, max_components: int = 3,
@@ -83,19 +163,22 @@ def fit_average(g: GroupAverage, fs: float, components: str, tau_init=None,
     segs, records = fit_segments(g.v_V, fs, g.step, g.windows_s)
     if not segs:
         raise ValueError("no fit window holds enough samples")
-    return (fit_exponentials(segs, components, tau_init, choice=choice),
-            replace(g, segments=records))
+    fit = fit_exponentials(segs, components, tau_init, choice=choice)
+    return label_components(fit, g.step, records[0].charging), replace(g, segments=records)
 
 
-def fit_start_scan(g: GroupAverage, fs: float, n_components: int, tau_init,
+def fit_start_scan(g: GroupAverage, fs: float, fit: TransientFit,
                    n_starts: int = 10, span_s: float = 4e-3) -> dict:
     """τ0 and τ1 refitted from a series of later fit starts (for the plateau check):
-    core.expfit.fit_start_scan over the combined response's segments."""
+    core.expfit.fit_start_scan over the combined response's segments, from `fit`."""
     from passivefit.core import expfit
 
     segs, _ = fit_segments(g.v_V, fs, g.step, g.windows_s)
     starts = g.fit_start_s + np.linspace(0.0, span_s, n_starts)
-    scan = expfit.fit_start_scan(segs, starts, n_components, tau_init)
+    scan = expfit.fit_start_scan(segs, starts, fit.n_total, fit.all_taus)
+    membrane = fit.keep
     nan = np.full(starts.size, np.nan)
-    return {"start_s": starts, "tau0_s": scan["tau0"], "tau0_ci95_s": scan["tau0_ci"],
-            "tau1_s": scan.get("tau1", nan), "tau1_ci95_s": scan.get("tau1_ci", nan)}
+    cols = [f"tau{k}" for k in membrane] + [None, None]  # τ0, τ1 among all components
+    return {"start_s": starts,
+            "tau0_s": scan.get(cols[0], nan), "tau0_ci95_s": scan.get(f"{cols[0]}_ci", nan),
+            "tau1_s": scan.get(cols[1], nan), "tau1_ci95_s": scan.get(f"{cols[1]}_ci", nan)}

@@ -30,6 +30,7 @@ from passivefit.analysis.cable import (
 )
 from passivefit.analysis.fits import FIT_ERRORS, fit_average, fit_start_scan, onset_amplitudes
 from passivefit.analysis.pool import average_of, first_look, sweep_pool
+from passivefit.analysis.selection import check_sign, leave_out_active, stable_stretch
 from passivefit.analysis.sweep import (
     analyze_sweep,
     apply_decisions,
@@ -58,15 +59,23 @@ def analyze(recording: Recording, settings: Settings | None = None) -> Recording
     if not chosen:
         raise LoadError(recording.path, f"none of the sweeps {list(settings.sweeps or [])} exist; "
                         f"the file has sweeps 0-{len(recording.sweeps) - 1}")
-    voltages = {s.index: s.voltage for s, _ in chosen}
+    # each sweep is read up to its next step (the step's region)
+    voltages = {s.index: s.voltage[:st.region_end] if st is not None else s.voltage
+                for s, st in chosen}
 
-    screened = [baseline_only(s.voltage, st, s.index, fs, settings) for s, st in chosen]
+    screened = [baseline_only(voltages[s.index], st, s.index, fs, settings) for s, st in chosen]
     start, tau_init = first_look(screened, voltages, fs, settings)
     effective = settings if start is None else replace(settings, fit_start_ms=start / MS)
-    fits = [analyze_sweep(s.voltage, st, s.index, fs, effective, tau_init) for s, st in chosen]
-    fits = apply_decisions(reject_outliers(fits), effective)
+    fits = [analyze_sweep(voltages[s.index], st, s.index, fs, effective, tau_init)
+            for s, st in chosen]
+    check_sign(fits, recording.path)
+    fits, active = leave_out_active(reject_outliers(fits))
+    fits, stability, unstable = stable_stretch(fits, settings.all_sweeps)
+    fits = apply_decisions(fits, effective)
     delay = bessel_delay_s(settings.filter_hz or _metadata_float(recording, "filter_hz"))
     cell = summarize_cell(fits, voltages, fs, effective, settings, delay)
+    cell.values.update(stability)
+    cell.flags[:0] = [*recording.flags, *active, *unstable]
     return RecordingResult(
         source={"path": recording.path, "sha256": recording.sha256, "format": recording.format,
                 "sweep_count": len(recording.sweeps)},
@@ -133,7 +142,11 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     out.values[S.COMPONENTS_REASON] = choice.get("reason", f"set to {settings.components}")
     avg_cable = average_of(pool, avg.v_V, fs, asked or settings)
     bs = None
-    if fit is not None:
+    if fit is not None and fit.sag is not None:  # not passive: no cable model
+        out.values[S.TAU_SAG] = fit.sag_tau
+        out.flags += [S.FIT_SAG_COMPONENT.make(fit.sag_tau / MS, tau=f"{fit.sag_tau / MS:.0f} ms"),
+                      S.CABLE_NOT_PASSIVE.make()]
+    elif fit is not None:
         bs, problem = fit_cable(avg_cable, fs, cable_init(fit, pool.step), delay_s)
         out.flags.extend([problem] if problem else [])
     out.average, out.cable_fit, out.cell_fit = avg, bs, fit
@@ -166,7 +179,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     out.flags.extend(checks.sweep_spread(used, fit))
     out.flags.extend(checks.residual_structure(fit, avg, fs))
     out.flags.extend(checks.onset_offset(avg, fs, fit))
-    out.scan = fit_start_scan(avg, fs, len(fit.taus), fit.taus)
+    out.scan = fit_start_scan(avg, fs, fit)
     if tau1 is not None:
         out.flags.extend(checks.scan_drift(out.scan))
     out.peel = _peel(avg, avg_cable, fs, fit)

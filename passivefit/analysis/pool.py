@@ -99,8 +99,8 @@ def first_look(screened: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         return None, None
     if not fit.success:
         return None, None
-    taus = tuple(float(t) for t in fit.taus)
-    if settings.fit_start_ms is not None or pool.step.kind == "pulse" or len(taus) < 2:
+    taus = tuple(float(t) for t in fit.all_taus)  # the sag's too: start values of refits
+    if settings.fit_start_ms is not None or pool.step.kind == "pulse" or len(fit.taus) < 2:
         return None, taus  # pulses weight τ1 strongly: fit from the artefact on
     artefact = avg.fit_start_s
-    return float(np.clip(START_TAU1 * taus[1], artefact, 5e-3)), taus
+    return float(np.clip(START_TAU1 * fit.taus[1], artefact, 5e-3)), taus

@@ -11,6 +11,7 @@ from passivefit.analysis.fits import (
     FIT_ERRORS,
     fit_exponentials,
     fit_segments,
+    label_components,
     residual,
     response_amplitudes,
 )
@@ -97,7 +98,7 @@ def _fit_sweep(v: np.ndarray, fs: float, step: Step, wins: dict, settings: Setti
             raise ValueError(fit.message)
     except FIT_ERRORS as exc:
         return None, (), f"fit failed: {exc}"
-    return fit, records, None
+    return label_components(fit, step, records[0].charging), records, None
 
 
 def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
@@ -162,7 +163,9 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         accepted, reason = False, (f"the baseline drifts {drift / MV:+.1f} mV between the "
                                    "start and the end of the sweep")
     elif np.max(v) >= SPIKE_V:
-        accepted, reason = False, f"action potential (peak {np.max(v) / MV:.0f} mV)"
+        where = _part_of_sweep(int(np.argmax(v)), step)
+        accepted, reason = False, (f"action potential {where} (peak {np.max(v) / MV:+.0f} mV "
+                                   f"at {np.argmax(v) / fs * 1e3:.0f} ms)")
     elif fit is not None:
         resids = [residual(v, fit, r, fs)[1] for r in records]
         rmse = float(np.sqrt(np.mean(np.concatenate(resids) ** 2)))
@@ -178,6 +181,13 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         bridge_ohm=bridge, sag=sag, noise_V=noise, drift_V=drift, trend=trend, windows_s=wins,
         segments=records, fit=fit, flags=tuple(flags),
     )
+
+
+def _part_of_sweep(sample: int, step: Step) -> str:
+    """Where a sample lies relative to the step, in words."""
+    if sample < step.onset:
+        return "before the step"
+    return "during the step" if sample < step.offset else "after the step"
 
 
 def reject_outliers(fits: list[SweepFit]) -> list[SweepFit]:

@@ -43,7 +43,7 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
     model; a resample whose fit fails, or is not refitted, gives NaN there.
     """
     rng = np.random.default_rng(seed)
-    n = len(fit.taus)
+    n = len(fit.taus)   # membrane components; refits use every component
     out: dict[str, list[float]] = {k: [] for k in ("tau0", "tau1", "tau1_model", "L", "rho",
                                                    "bridge")}
     for _ in range(n_boot):
@@ -52,10 +52,11 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
             continue
         v = pool.combine(pick)
         try:
-            boot, _ = fit_average(replace(g, v_V=v), fs, str(n), tau_init=fit.taus)
+            boot, _ = fit_average(replace(g, v_V=v), fs, str(fit.n_total),
+                                  tau_init=fit.all_taus)
         except FIT_ERRORS:
             continue
-        if not boot.success:
+        if not boot.success or len(boot.taus) != n:
             continue
         out["tau0"].append(boot.taus[0])
         out["tau1"].append(boot.taus[1] if n > 1 else np.nan)

@@ -7,9 +7,11 @@ decay after the step ("fit", "fit_off").
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 
-from passivefit.core.steps import Step, find_step
+from passivefit.core.steps import Step, classify_stimulus, common_steps, find_steps
 from passivefit.io.recording import LoadError, Recording
 from passivefit.model.settings import Settings, Windows
 
@@ -20,7 +22,13 @@ MIN_FIT_START_S = 0.3e-3  # earliest automatic fit start after an edge
 
 
 def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
-    """The step of every sweep: from the user's StepSpec, else from the current trace."""
+    """The analysed step of every sweep: from the user's StepSpec, else from the current.
+
+    Every step and pulse of each sweep is found (core.steps.find_steps); all sweeps
+    take the step at the protocol's common position that leaves the holding level after
+    a flat baseline (core.steps.common_steps), and each is read up to the sweep's next
+    step (`Step.region_end`), so a second step or a train after it is not taken in.
+    """
     fs = recording.sample_rate_hz
     if settings.step is not None:
         rec = recording.with_step(settings.step)
@@ -29,10 +37,16 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
     else:
         raise LoadError(recording.path, "no step found: this file carries no command or current "
                         "waveform; give `--step ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]`")
-    steps = [find_step(s.current, fs) for s in rec.sweeps]
+    per_sweep = [find_steps(s.current, fs) for s in rec.sweeps]
+    steps = [None if st is None else replace(st, region_end=min(
+        (later.onset for later in found if later.onset >= st.offset), default=None))
+        for st, found in zip(common_steps(per_sweep), per_sweep, strict=True)]
     if all(s is None for s in steps):
-        raise LoadError(recording.path, "no current step found in any sweep; give `--step "
-                        "ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]` if the waveform is wrong")
+        kinds = {classify_stimulus(s.current, fs) for s in rec.sweeps} - {"step", "pulse"}
+        what = f" (the current is a {'/'.join(sorted(kinds))})" if kinds else ""
+        raise LoadError(recording.path, f"no current step from rest found in any sweep{what}; "
+                        "give `--step ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]` if the "
+                        "waveform is wrong")
     return steps
 
 
@@ -62,7 +76,8 @@ def resolve_windows(step: Step, n_samples: int, fs: float, w: Windows,
     def absolute(rel_ms):
         return (on + rel_ms[0] * MS, on + rel_ms[1] * MS)
 
-    base = absolute(w.baseline_ms) if w.baseline_ms else (max(0.0, on - 0.1), on - GUARD_S / 2)
+    base = absolute(w.baseline_ms) if w.baseline_ms else (
+        max(step.baseline_start / fs, on - 0.1), on - GUARD_S / 2)
     out = {"baseline": base}
     if step.kind == "step":
         out["steady"] = (absolute(w.steady_ms) if w.steady_ms

@@ -22,7 +22,7 @@ def load_and_analyze(path: str, settings):
     from passivefit.analysis import analyze
     from passivefit.io import load
 
-    return analyze(load(path), settings)
+    return analyze(load(path, channel=settings.reader_channel), settings)
 
 
 def run(args: argparse.Namespace) -> int:

@@ -33,6 +33,11 @@ def add_settings_arguments(p: argparse.ArgumentParser) -> None:
                    help="the amplifier's low-pass (−3 dB) corner, when the file does not say")
     p.add_argument("--area-um2", type=float, metavar="A",
                    help="the cell's membrane area, for specific Cm and Rm")
+    p.add_argument("--all-sweeps", action="store_true",
+                   help="take the cell values from all accepted sweeps even when R_in drifts "
+                        "(default: from the longest stable stretch)")
+    p.add_argument("--channel", metavar="NAME_OR_INDEX",
+                   help="the membrane-potential channel, when the file has several")
     p.add_argument("--bootstrap", type=int, default=40, metavar="N",
                    help="resamples over sweeps for the 95 %% CIs (0: from the fit covariance, "
                         "about 4x faster; default 40)")
@@ -55,7 +60,8 @@ def settings_from(args: argparse.Namespace):
         return Settings(sweeps=args.sweeps, step=step, fit_start_ms=args.fit_start_ms,
                         components=args.components, filter_hz=args.filter_hz,
                         area_um2=args.area_um2, bootstrap=args.bootstrap,
-                        correct_bridge=not args.no_bridge_correction)
+                        correct_bridge=not args.no_bridge_correction,
+                        all_sweeps=args.all_sweeps, channel=args.channel)
     except ValueError as exc:  # name the option, not the setting
         raise UsageError(str(exc).replace("`filter_hz`", "`--filter-hz`")
                          .replace("`area_um2`", "`--area-um2`")) from None

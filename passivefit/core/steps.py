@@ -65,6 +65,9 @@ class Step:
         runs from here to `onset`); 0 when unknown.
     level_before_A : float or None
         The current just before the step, in A; None means `holding_A`.
+    region_end : int or None
+        Index where the sweep's next step begins: the step's response (its tail
+        included) is read up to here. None: up to the end of the sweep.
     """
 
     onset: int
@@ -74,6 +77,7 @@ class Step:
     holding_A: float = 0.0
     baseline_start: int = 0
     level_before_A: float | None = None
+    region_end: int | None = None
 
     @property
     def duration_s(self) -> float:

@@ -58,6 +58,8 @@ class SweepFit:
     rmse_V: float | None = None
     bridge_ohm: float | None = None
     sag: float | None = None
+    r_in_peak_ohm: float | None = None               # R_in at the peak of a sagging response
+    rebound_V: float | None = None                   # overshoot past the baseline after the step
     noise_V: float | None = None
     drift_V: float | None = None                     # end-of-sweep level − baseline
     trend: tuple[float, float] = (0.0, 0.0)          # (V/s, reference time s) subtracted
@@ -81,8 +83,10 @@ class SweepFit:
 
     @property
     def resolved(self) -> bool:
-        """Whether every fitted time constant is resolved."""
-        return all(self.tau(n) is not None for n in range(len(self.taus_s)))
+        """Whether every fitted time constant is resolved and every component is a
+        membrane mode (none of the opposite sign)."""
+        clean = self.fit is None or len(self.fit.keep) == self.fit.n_total
+        return clean and all(self.tau(n) is not None for n in range(len(self.taus_s)))
 
     def model_curves(self) -> list[tuple[np.ndarray, np.ndarray]]:
         """(time in s, fitted voltage in V) over each fit segment, on the recorded trace
@@ -115,6 +119,9 @@ class SweepFit:
             S.BRIDGE: self.bridge_ohm if self.resolved else None,
             S.SAG_RATIO: self.sag,
             S.N_COMPONENTS: len(self.taus_s),
+            S.TAU_SAG: self.fit.sag_tau if self.fit is not None else None,
+            S.R_IN_PEAK: self.r_in_peak_ohm,
+            S.REBOUND: self.rebound_V,
         }
         out = {q.key: q.display(values[q]) for q in S.SWEEP}
         out[S.FLAGS_KEY] = [f.to_dict() for f in self.flags]

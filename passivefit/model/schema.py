@@ -129,6 +129,15 @@ COMPONENTS_REASON = Quantity("components_reason", "components because", kind="te
 CI_METHOD = Quantity("ci_method", "CIs from", kind="text")
 REF_STEP = Quantity("ref_step_pA", "reference step", "pA", PA, 5)
 C_RATIO = Quantity("c_ratio", "C ratio τ0/R_in : total", digits=4)
+TAU_SAG = Quantity("tau_sag_ms", "sag τ", "ms", MS, title="Time constant of the sag")
+R_IN_PEAK = Quantity("r_in_peak_MOhm", "R_in at the peak", "MΩ", MOHM,
+                     title="Input resistance at the peak of a sagging response")
+R_IN_SLOPE = Quantity("r_in_slope_MOhm", "R_in, V–I slope", "MΩ", MOHM)
+R_IN_CHORD = Quantity("r_in_chord_MOhm", "R_in, smallest steps", "MΩ", MOHM)
+REBOUND = Quantity("rebound_mV", "rebound", "mV", MV, title="Rebound after the step")
+R_IN_CHANGE = Quantity("r_in_change_pct", "R_in change over the recording", "%", 0.01, 3)
+V_REST_CHANGE = Quantity("v_rest_change_mV", "V_rest change over the recording", "mV", MV, 3)
+STABLE_SWEEPS = Quantity("stable_sweeps", "sweeps of the stable stretch", kind="text")
 CM = Quantity("cm_uF_per_cm2", "specific Cm", "µF/cm²", 1e-2, 4)   # SI: F/m²
 RM = Quantity("rm_kOhm_cm2", "specific Rm", "kΩ·cm²", 0.1, 4)      # SI: Ω·m²
 
@@ -137,7 +146,8 @@ CELL_CORE = (V_REST, R_IN, TAU0, TAU0_CI, TAU1, TAU1_CI, C0, C1, L_CYL, L_BS, L_
              RHO_CI, C_TAU, C_TOTAL, SAG_RATIO, N_SWEEPS_USED)
 CELL_EXTRA = (BRIDGE, BRIDGE_CI, TAU1_SOURCE, TAU1_EXP, TAU2, TAU0_MODEL, L_CYL_CI,
               RHO_AMPLITUDE, FIT_START, R_IN_METHOD, VI_R2, R_IN_ASYMMETRY, N_COMPONENTS,
-              COMPONENTS_REASON, CI_METHOD, REF_STEP, C_RATIO, CM, RM)
+              COMPONENTS_REASON, CI_METHOD, REF_STEP, C_RATIO, CM, RM, TAU_SAG, R_IN_PEAK,
+              R_IN_SLOPE, R_IN_CHORD, REBOUND, R_IN_CHANGE, V_REST_CHANGE, STABLE_SWEEPS)
 CELL = CELL_CORE + CELL_EXTRA
 
 # Sweep values (each of `sweeps`), in contract order.
@@ -148,7 +158,7 @@ STEP = Quantity("step_pA", "step", "pA", PA, 5)
 RMSE = Quantity("rmse_mV", "rmse", "mV", MV)
 FLAGS_KEY = "flags"
 SWEEP = (INDEX, ACCEPTED, REJECT_REASON, STEP, V_REST, R_IN, TAU0, TAU1, TAU2, C0, C1, RMSE,
-         BRIDGE, SAG_RATIO, N_COMPONENTS)
+         BRIDGE, SAG_RATIO, N_COMPONENTS, TAU_SAG, R_IN_PEAK, REBOUND)
 SWEEP_CORE = (INDEX, ACCEPTED, REJECT_REASON, STEP, V_REST, R_IN, TAU0, TAU1, C0, C1, RMSE)
 
 BY_KEY: dict[str, Quantity] = {q.key: q for q in (*CELL, *SWEEP)}
@@ -359,6 +369,30 @@ PROTOCOL_CHANNEL = _flag(
     "protocol.channel_chosen", "info",
     "membrane potential read from {channel} (median {median}); {others}")
 
+# real cells: sag, activity, the sign of the step, stability over the recording
+FIT_SAG_COMPONENT = _flag(
+    "fit.sag_component", "info",
+    "a slow component of the opposite sign (τ {tau}) is the sag of an active conductance, "
+    "not a membrane mode; τ0 is the slowest component in the direction of the response "
+    "(sag time constant, ms)")
+CABLE_NOT_PASSIVE = _flag(
+    "cable.not_passive", "warning",
+    "the response sags back (an active conductance), so the passive cable model (L, ρ, "
+    "C total, bridge) is not fitted")
+CABLE_AT_BOUND = _flag(
+    "cable.at_bound", "warning",
+    "{name} sits at the bound of the ball-and-stick fit ({x:.3g}): not determined by these "
+    "data, so it is not reported")
+CELL_ACTIVE_SWEEPS = _flag(
+    "cell.active_sweeps", "info",
+    "{n} depolarizing sweep(s) respond unlike the hyperpolarizing ones (active "
+    "conductances): the passive values come from the sweeps that respond passively "
+    "(number left out)")
+CELL_UNSTABLE = _flag(
+    "cell.unstable", "warning",
+    "R_in changes by {x:+.0f} % and V_rest by {dv:+.1f} mV over the recording; the cell "
+    "values come from {what} (R_in change, %)")
+
 #: core.cable.implausible() check names → flag codes.
 PLAUSIBILITY = {"tau2_ratio": CABLE_TAU2_RATIO, "shunt_pulse": CABLE_SHUNT_SUSPECTED,
                 "shunt_step": CABLE_SHUNT_SUSPECTED, "L_range": CABLE_L_RANGE,
@@ -373,9 +407,9 @@ def flags_markdown() -> str:
         words = words.replace("{reason}", "…").replace("|", "\\|")
         for field_name in ("done", "what", "problem", "limit", "sweep", "at", "planned",
                            "recorded", "source", "offset", "amplitude", "values", "channel",
-                           "median", "others"):
+                           "median", "others", "tau", "name", "n"):
             words = words.replace("{" + field_name + "}", "…")
-        for fmt in ("{x:.2f}", "{x:.3f}", "{x:.3g}", "{limit:.3f}"):
+        for fmt in ("{x:.2f}", "{x:.3f}", "{x:.3g}", "{limit:.3f}", "{x:+.0f}", "{dv:+.1f}"):
             words = words.replace(fmt, "x")
         rows.append(f"| `{spec.code}` | {spec.severity} | {words} |")
     return "\n".join(rows) + "\n"

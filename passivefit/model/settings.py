@@ -70,6 +70,12 @@ class Settings:
     correct_drift : bool
         Subtract a sweep's linear baseline drift (baseline before the step to the end of
         a long tail) before fitting.
+    all_sweeps : bool
+        Take the cell values from all accepted sweeps even when R_in drifts over the
+        recording (default: from its longest stable stretch).
+    channel : str or None
+        The membrane-potential channel to read (name, or index as text); None: chosen
+        by the reader.
     """
 
     sweeps: tuple[int, ...] | None = None
@@ -84,6 +90,8 @@ class Settings:
     filter_hz: float | None = None
     area_um2: float | None = None
     correct_drift: bool = True
+    all_sweeps: bool = False
+    channel: str | None = None
 
     def __post_init__(self) -> None:
         if self.components not in ("auto", "1", "2", "3"):
@@ -96,6 +104,13 @@ class Settings:
             value = getattr(self, name)
             if value is not None and not (np.isfinite(value) and value > 0):
                 raise ValueError(f"`{name}` must be a positive number, not {value!r}")
+
+    @property
+    def reader_channel(self) -> int | str | None:
+        """`channel` as the readers take it: an index when it is a number."""
+        if self.channel is None:
+            return None
+        return int(self.channel) if self.channel.strip().isdigit() else self.channel
 
     def windows_for(self, index: int) -> Windows:
         override = dict(self.sweep_windows).get(index)

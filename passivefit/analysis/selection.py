@@ -1,0 +1,100 @@
+"""Which sweeps the passive values come from: sweeps that respond passively, of a stable
+stretch of the recording, with the step's sign confirmed by the response.
+
+Each function returns new sweep fits (and flags); nothing is changed in place.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+
+from passivefit.core.qc import Flag
+from passivefit.model import schema as S
+from passivefit.model.errors import LoadError
+from passivefit.model.results import SweepFit
+
+MV, MOHM = 1e-3, 1e6
+#: A depolarizing sweep whose R_in differs more than this from the hyperpolarizing
+#: sweeps' responds actively (common practice, no source: linear responses agree
+#: within a few % between the two directions, docs/references.md §7).
+ACTIVE_R_IN = 0.15
+#: R_in changing more than this over the recording is drift (common practice, no
+#: source: a 20 % change of access or input resistance ends a recording for many labs).
+UNSTABLE_R_IN = 0.2
+#: Sweeps of a stable stretch stay within this fraction of its median R_in.
+STABLE_BAND = 0.1
+
+
+def check_sign(fits: list[SweepFit], path: str) -> None:
+    """Raise LoadError when most sweeps respond against their step (a sign error in
+    `--step` or an inverted current monitor), so no nonsense is fitted."""
+    r = [f.r_in_ohm for f in fits if f.r_in_ohm is not None]
+    if len(r) >= 1 and np.median(r) < 0:
+        raise LoadError(path, f"the voltage moves against the current in {sum(x < 0 for x in r)} "
+                        f"of {len(r)} sweeps (R_in {np.median(r) / MOHM:.0f} MΩ): the step's "
+                        "sign is wrong; check the sign in `--step` or the current channel")
+
+
+def leave_out_active(fits: list[SweepFit]) -> tuple[list[SweepFit], list[Flag]]:
+    """Leave depolarizing sweeps out when they respond unlike the hyperpolarizing ones.
+
+    Depolarization brings a neuron towards its firing threshold and switches on
+    (or off) voltage-gated conductances; a physiologist takes passive values from the
+    hyperpolarizing steps when the two directions disagree. The reference is R_in of the
+    accepted hyperpolarizing sweeps of the smallest step.
+    """
+    hyper = [f for f in fits if f.accepted and f.r_in_ohm is not None
+             and f.step.amplitude_A < 0]
+    if not hyper:
+        return fits, []
+    smallest = max(f.step.amplitude_A for f in hyper)
+    ref = float(np.median([f.r_in_ohm for f in hyper if f.step.amplitude_A == smallest]))
+    out, n = [], 0
+    for f in fits:
+        if (f.accepted and f.r_in_ohm is not None and f.step.amplitude_A > 0
+                and abs(f.r_in_ohm / ref - 1) > ACTIVE_R_IN):
+            n += 1
+            f = replace(f, accepted=False, reject_reason=(
+                f"responds actively: R_in {f.r_in_ohm / MOHM:.0f} MΩ against "
+                f"{ref / MOHM:.0f} MΩ from the hyperpolarizing steps"))
+        out.append(f)
+    return out, ([S.CELL_ACTIVE_SWEEPS.make(n, n=n)] if n else [])
+
+
+def stable_stretch(fits: list[SweepFit], use_all: bool
+                   ) -> tuple[list[SweepFit], dict, list[Flag]]:
+    """The change of R_in and V_rest over the recording and, when R_in drifts, the
+    longest run of consecutive accepted sweeps whose R_in stays within STABLE_BAND of
+    the run's median (unless `use_all`); the sweeps outside it are left out."""
+    used = [f for f in fits if f.accepted and f.r_in_ohm is not None]
+    if len(used) < 4:
+        return fits, {}, []
+    k = max(2, len(used) // 4)              # first and last quarter of the recording
+    r_first = np.median([f.r_in_ohm for f in used[:k]])
+    r_last = np.median([f.r_in_ohm for f in used[-k:]])
+    dv = np.median([f.v_rest_V for f in used[-k:]]) - np.median([f.v_rest_V for f in used[:k]])
+    change = r_last / r_first - 1
+    values = {S.R_IN_CHANGE: change, S.V_REST_CHANGE: dv}
+    if abs(change) <= UNSTABLE_R_IN:
+        return fits, values, []
+    best: list[SweepFit] = []
+    for i in range(len(used)):
+        for j in range(len(used), i + len(best), -1):
+            run = used[i:j]
+            median = np.median([f.r_in_ohm for f in run])
+            if all(abs(f.r_in_ohm / median - 1) <= STABLE_BAND for f in run):
+                best = run
+                break
+    keep = {f.index for f in best}
+    what = ("all sweeps (as set)" if use_all
+            else f"the longest stable stretch, sweeps {best[0].index}–{best[-1].index}")
+    values[S.STABLE_SWEEPS] = f"{best[0].index}-{best[-1].index}"
+    flags = [S.CELL_UNSTABLE.make(100 * change, x=100 * change, dv=dv / MV, what=what)]
+    if use_all:
+        return fits, values, flags
+    out = [f if f.index in keep or not f.accepted else replace(
+        f, accepted=False, reject_reason="outside the stable stretch of the recording (R_in "
+        f"{f.r_in_ohm / MOHM:.0f} MΩ)") for f in fits]
+    return out, values, flags
