@@ -275,3 +275,33 @@ def test_report_needs_a_pdf_name(tmp_path, analysed_cell):
 
     with pytest.raises(ValueError, match=r"the report is a PDF; give a file ending in \.pdf"):
         write_report([analysed_cell], tmp_path / "cells.png")
+
+
+def test_report_says_how_the_values_were_found():
+    from passivefit.export.report import _more_rows, _sweep_lines, _value_rows
+
+    cell = example_result()["cell"] | {"bridge_MOhm": 8.2, "bridge_ci95_MOhm": 2.1,
+                                       "fit_start_ms": 2.14, "r_in_method": "V-I slope",
+                                       "tau1_source": "ball-and-stick fit"}
+    rows = {label: text for label, text, _ in _value_rows(cell) + _more_rows(cell)}
+    assert rows["Bridge jump at the step edge"] == "8.2 ± 2.1"
+    assert rows["fit start"] == "2.14" and rows["R_in from"] == "V-I slope"
+    assert rows["τ1 from"] == "ball-and-stick fit"
+    sweeps = [{"index": 0, "accepted": False, "reject_reason": "noisy", "step_pA": -50},
+              {"index": 1, "accepted": False, "reject_reason": "action potential"}]
+    lines = _sweep_lines(sweeps, by_hand={0})
+    assert "rejected by hand: noisy" in lines[1]
+    assert "by hand" not in lines[2] and "rejected: action potential" in lines[2]
+
+
+@pytest.mark.slow
+def test_a_long_pulse_recording_keeps_to_two_pages(tmp_path):
+    """30 sweeps of the bundled pulse sample: figures page plus one page of numbers."""
+    from passivefit.analysis import analyze
+    from passivefit.export.report import write_report
+    from passivefit.io import load
+    from passivefit.samples import REPO_SAMPLES
+
+    recording = load(REPO_SAMPLES / "LOL-2026-11-19-c4_L5-pulses.nwb")
+    path = write_report([(recording, analyze(recording))], tmp_path / "l5.pdf")
+    assert _pdf_pages(path) == 2

@@ -87,8 +87,8 @@ def _figure_page(recording, result, data: dict):
     import matplotlib.pyplot as plt
 
     fig = plt.figure(figsize=A4_PORTRAIT)
-    grid = fig.add_gridspec(4, 2, left=0.09, right=0.97, top=0.92, bottom=0.05, hspace=0.55,
-                            wspace=0.28, height_ratios=[1.15, 1, 1, 1])
+    grid = fig.add_gridspec(5, 2, left=0.09, right=0.97, top=0.92, bottom=0.045, hspace=0.62,
+                            wspace=0.28, height_ratios=[1.15, 1, 1, 1, 0.9])
     _header(fig, recording, data, "fits and diagnostics")
     _draw_sweeps(fig.add_subplot(grid[0, :]), recording, result)
     _draw_average(fig.add_subplot(grid[1, 0]), result, recording.sample_rate_hz)
@@ -96,6 +96,7 @@ def _figure_page(recording, result, data: dict):
     _draw_residuals(fig.add_subplot(grid[2, 0]), result, recording.sample_rate_hz)
     _draw_vi(fig.add_subplot(grid[2, 1]), result)
     _draw_scan(fig.add_subplot(grid[3, 0]), fig.add_subplot(grid[3, 1]), result, data)
+    _draw_time_course(fig.add_subplot(grid[4, 0]), fig.add_subplot(grid[4, 1]), data)
     return fig
 
 
@@ -285,6 +286,36 @@ def _draw_scan(ax0, ax1, result, data: dict) -> None:
         ax.set_ylabel(f"{name} (ms)")
 
 
+def _draw_time_course(ax_r, ax_v, data: dict) -> None:
+    """R_in, τ0 and V_rest of every sweep in recording order: drift shows here."""
+    sweeps = [s for s in data["sweeps"] if s.get(S.R_IN.key) is not None]
+    if len(sweeps) < 2:
+        _unavailable(ax_r, "fewer than 2 measured sweeps: no time course")
+        _unavailable(ax_v, "fewer than 2 measured sweeps: no time course")
+        return
+    for ax, q, colour in ((ax_r, S.R_IN, DATA_COLOUR), (ax_v, S.V_REST, MODE_COLOURS[0])):
+        for used, marker in ((True, "o"), (False, "x")):
+            pts = [(s[S.INDEX.key], s[q.key]) for s in sweeps
+                   if bool(s[S.ACCEPTED.key]) == used and s.get(q.key) is not None]
+            if pts:
+                x, y = zip(*pts, strict=True)
+                ax.plot(x, y, marker, ms=3, color=colour if used else REJECT_COLOUR,
+                        label="used" if used else "left out")
+        ax.set_xlabel("sweep")
+        ax.set_ylabel(q.heading)
+        ax.legend(loc="best", frameon=False)
+    tau = [(s[S.INDEX.key], s[S.TAU0.key]) for s in sweeps
+           if s[S.ACCEPTED.key] and s.get(S.TAU0.key) is not None]
+    if tau:
+        twin = ax_r.twinx()
+        twin.plot(*zip(*tau, strict=True), "s", ms=2.5, color=MODE_COLOURS[1], alpha=0.8)
+        twin.set_ylabel(S.TAU0.heading, color=MODE_COLOURS[1])
+    change = data["cell"].get(S.R_IN_CHANGE.key)
+    ax_r.set_title("Over the recording: R_in (τ0 right)" + (
+        f", R_in change {change:+.0f} %" if change is not None else ""))
+    ax_v.set_title("Over the recording: V_rest")
+
+
 # ---------------------------------------------------------------------------- page 2
 LINE = 0.0125  # figure-height fraction per text line at 7.5 pt on A4
 TOP, BOTTOM, LEFT = 0.915, 0.035, 0.06
@@ -317,10 +348,11 @@ class _TextPages:
             self._new_page()  # keep a title with the lines after it
         self.row([(LEFT, text)], step=0.018, fontsize=10, weight="bold")
 
-    def paragraphs(self, paragraphs: Sequence[str], width: int) -> None:
+    def paragraphs(self, paragraphs: Sequence[str], width: int, fontsize: float = 7.5) -> None:
+        step = LINE * fontsize / 7.5
         for paragraph in paragraphs:
             for line in textwrap.wrap(paragraph, width, subsequent_indent="  ") or [""]:
-                self.row([(LEFT, line)])
+                self.row([(LEFT, line)], step=step, fontsize=fontsize)
         self.y -= 0.008
 
     def close(self) -> None:
@@ -340,16 +372,27 @@ def _numbers_pages(pdf, recording, data: dict, when: datetime) -> None:
     for label, text, unit in _value_rows(data["cell"]):
         pages.row([(LEFT, label), (0.45, text), (0.75, unit)])
     pages.y -= 0.008
+    pages.title("How they were found, and more values")
+    for label, text, unit in _more_rows(data["cell"]):
+        pages.row([(LEFT, label), (0.45, text), (0.75, unit)], step=0.011)
+    pages.y -= 0.008
     pages.title("Flags")
     pages.paragraphs(_flag_lines(data), width=118)
     pages.title("Sweeps")
-    for line in _sweep_lines(data["sweeps"]):
-        pages.row([(LEFT, line)], step=0.0108, family="monospace", fontsize=6.5)
+    lines = _sweep_lines(data["sweeps"], _by_hand(data), 22 if len(data["sweeps"]) > 16 else 60)
+    if len(data["sweeps"]) > 16:  # two columns, so a long recording keeps to two pages
+        head, body = lines[0], lines[1:]
+        half = (len(body) + 1) // 2
+        right = [*body[half:], *[""] * (2 * half - len(body))]
+        lines = [f"{head:<78}{head}"] + [f"{a:<78}{b}" for a, b in
+                                         zip(body[:half], right, strict=True)]
+    for line in lines:
+        pages.row([(LEFT, line)], step=0.0105, family="monospace", fontsize=6)
     pages.y -= 0.008
     pages.title("Provenance")
     pages.paragraphs(_provenance_lines(data, when), width=118)
     pages.title("Cautions")
-    pages.paragraphs(CAUTIONS.split("\n"), width=122)
+    pages.paragraphs(CAUTIONS.split("\n"), width=138, fontsize=6.6)
     pages.close()
 
 
@@ -362,6 +405,27 @@ def _value_rows(cell: Mapping) -> list[tuple[str, str, str]]:
             text += f" ± {_fmt(cell[q.ci], 2)}"
         rows.append((q.title or q.label, text, q.unit))
     return rows
+
+
+def _more_rows(cell: Mapping) -> list[tuple[str, str, str]]:
+    """Every other cell value that was estimated (how R_in, τ1 and the CIs were found,
+    the fit start, sag, drift, …), with its CI where it has one."""
+    shown = {q.key for q in VALUE_ROWS} | {q.ci for q in VALUE_ROWS if q.ci}
+    rows = []
+    for q in S.CELL_EXTRA:
+        value = cell.get(q.key)
+        if q.key in shown or value is None or q.key.endswith("ci95"):
+            continue
+        text = textwrap.shorten(_fmt(value), 70)
+        if q.ci and cell.get(q.ci) is not None:
+            text += f" ± {_fmt(cell[q.ci], 2)}"
+        rows.append((q.title or q.label, text, q.unit))
+    return rows
+
+
+def _by_hand(data: dict) -> set[int]:
+    """Sweeps a person accepted or rejected (their decisions are in the settings)."""
+    return {int(d[0]) for d in data["settings"].get("decisions", ())}
 
 
 def _fmt(value, digits: int = 4) -> str:
@@ -379,23 +443,33 @@ def _flag_lines(data: dict) -> list[str]:
     return lines or ["none"]
 
 
-def _sweep_lines(sweeps: Sequence[Mapping]) -> list[str]:
+def _sweep_lines(sweeps: Sequence[Mapping], by_hand: set[int] = frozenset(),
+                 status_width: int = 60) -> list[str]:
     widths = (3, 8, 9, 8, 7, 7, 8)
     columns = tuple(zip(S.SWEEP_TABLE, widths, strict=True))
     lines = [" ".join(f"{f'{q.label} {q.unit}'.strip():>{w}}" for q, w in columns) + "  status"]
     for s in sweeps:
         status = ("ok" if s[S.ACCEPTED.key]
                   else f"rejected: {s.get(S.REJECT_REASON.key) or ''}")
+        if s[S.INDEX.key] in by_hand:
+            status = ("accepted" if s[S.ACCEPTED.key] else "rejected") + " by hand" + (
+                "" if s[S.ACCEPTED.key] else f": {s.get(S.REJECT_REASON.key) or ''}")
         cells = [_fmt(s.get(q.key)) if s.get(q.key) is not None else "—" for q, _ in columns]
         lines.append(" ".join(f"{c:>{w}}" for c, (_, w) in zip(cells, columns, strict=True))
-                     + f"  {textwrap.shorten(status, 60)}")
+                     + f"  {textwrap.shorten(status, status_width)}")
     return lines
 
 
 def _provenance_lines(data: dict, when: datetime) -> list[str]:
     source = data["source"]
-    settings = json.dumps(data["settings"], sort_keys=True, separators=(", ", ": "))
+    from passivefit.model.settings import Settings
+
+    defaults = Settings().to_dict()
+    changed = {k: v for k, v in data["settings"].items() if defaults.get(k) != v}
+    settings = json.dumps(changed, sort_keys=True, separators=(", ", ": ")) if changed \
+        else "the defaults"
     return [f"file: {source['path']}", f"sha256: {source['sha256']}",
             f"format: {source['format']}, {source['sweep_count']} sweeps",
             f"passivefit {data['passivefit_version']}, settings hash {result_settings_hash(data)}",
-            f"analysed at: {when.isoformat(timespec='seconds')}", f"settings: {settings}"]
+            f"analysed at: {when.isoformat(timespec='seconds')}",
+            f"settings (those not at their default): {settings}"]
