@@ -610,6 +610,15 @@ def _active_responses(
     unit_v[1:] += instant_ohm * unit_A[:-1]
     scales = np.asarray(scales, dtype=float)
     v_cmd = (scales * amplitudes_A)[:, None] * unit_v[None, :]
+    # The feedback is explicit: stable while the resistance the soma shows within one
+    # sample, times the active conductance, stays below about 1.
+    g_active = (sag.g_max_S if sag else 0.0) + (rectifier.g_max_S if rectifier else 0.0)
+    one_sample_ohm = float(np.max(scales)) * (float(np.sum(b)) + instant_ohm)
+    if one_sample_ohm * g_active > 1.0:
+        raise ValueError(
+            f"the active conductances ({g_active * 1e9:g} nS) are too large for a sampling "
+            f"interval of {dt_s * 1e6:g} us in this cell: raise `sample_rate_hz` or lower them"
+        )
 
     rows, n = v_cmd.shape
     out = np.empty((rows, n))

@@ -189,3 +189,22 @@ def test_bad_active_arguments():
         simulate(r_in_final_ohm=-1.0)
     with pytest.raises(ValueError, match="`event_decay_s` must be longer"):
         simulate(event_decay_s=0.5e-3)
+
+
+@pytest.mark.parametrize("g_S", [1e-9, 10e-9, 100e-9])
+def test_a_constant_extra_conductance_gives_the_parallel_resistance(g_S):
+    # a rectifier with v_half far above is a plain somatic conductance: the steady state
+    # is I / (G_N + g) (conductances in parallel)
+    steps = StepProtocol(0.1, 0.4, (-100e-12,))
+    rec, truth = simulate(protocol=steps, n_sweeps=1, filter_hz=None, sweep_duration_s=0.6,
+                          rectifier=RectifyingLeak(g_S, v_half_V=1.0))
+    expected = -100e-12 / (1 / 128e6 + g_S)
+    assert rec.sweeps[0].voltage[9900:10000].mean() + 0.070 == pytest.approx(expected, rel=1e-6)
+    assert truth["r_in_rest_MOhm"] == pytest.approx(1e-6 / (1 / 128e6 + g_S), rel=1e-9)
+
+
+def test_too_large_a_conductance_for_the_sampling_rate_is_refused():
+    # the explicit feedback would oscillate: a clear error instead
+    with pytest.raises(ValueError, match="too large for a sampling interval of 100 us"):
+        simulate(sample_rate_hz=10_000, filter_hz=None, n_sweeps=1,
+                 rectifier=RectifyingLeak(1e-6, v_half_V=1.0))
