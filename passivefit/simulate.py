@@ -10,6 +10,10 @@ is exact for a current held constant over each sample (zero-order hold).
 :func:`simulate_recording` wraps a cell into a :class:`~passivefit.io.recording.Recording`
 with the usual recording imperfections (noise, low-pass filter, residual bridge
 imbalance, drift, mains hum, spontaneous events) and returns the ground truth beside it.
+Opt-in, what real cells add: an Ih-like sag conductance (:class:`SagConductance`), an
+inwardly rectifying leak (:class:`RectifyingLeak`), both fed back as somatic currents into
+the exact passive response; action potentials (:class:`Spiking`); and a drift of the
+input resistance over the sweeps. With all of them off the output is unchanged.
 All quantities are SI inside; the truth dict carries display units in its keys.
 """
 
