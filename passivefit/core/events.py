@@ -1,0 +1,444 @@
+"""Spontaneous synaptic events in a fit residual, told apart from sag, rebound, hum and noise.
+
+The detector is a centred matched filter. At every candidate onset t0 it fits, by least
+squares over a window from `pre_s` before to `post_s` after t0, an event template
+(biexponential: fast rise, decay of tens of ms, onset at t0) plus a local polynomial
+background (quadratic by default). The template amplitude is the detector's output.
+Because the background is fitted on both sides of t0, anything smooth over the window
+— sag and rebound (relaxations of 50–150 ms), slow drift, slow misfit — is absorbed by
+the polynomial and barely moves the amplitude; an event's sharp onset cannot be. The
+same filter run over event-free baseline gives the noise model: the robust sd of the
+amplitude there, which includes whatever the recording's noise is made of (white,
+low-pass filtered, correlated, mains hum), so z = amplitude / that sd needs no
+assumption about the noise spectrum.
+
+Windows are never padded or truncated at the start of a segment: the first `skip_s`
+are ignored (misfit of fast components right after an edge) and the first onset
+considered is `pre_s` later. At the end of a segment the window is shortened (down to
+`min_post_s`) and the fit and its noise are recomputed for the shorter window.
+
+All quantities are SI (V, s, Hz).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from functools import lru_cache
+
+import numpy as np
+
+__all__ = [
+    "EVENT_Z",
+    "Event",
+    "EventShape",
+    "NoiseModel",
+    "detect_events",
+    "event_scan",
+    "largest_event_z",
+    "noise_model",
+]
+
+EVENT_Z = 8.0
+"""Default detection threshold, in detector noise sds (see tests/test_events.py for the
+false-detection and detection rates measured with it)."""
+
+_MAD_TO_SD = 1.4826  # sd of a normal distribution per median absolute deviation
+_SHORT_LAG_S = 3e-3  # noise correlation beyond this lag is left to the direct estimate
+
+
+@dataclass(frozen=True)
+class EventShape:
+    """Template and window of the detector.
+
+    Parameters
+    ----------
+    rise_s : float
+        Rise time constant of the event template, in s.
+    decay_s : float
+        Decay time constant of the event template, in s.
+    pre_s : float
+        Window before the onset on which the background is fitted, in s.
+    post_s : float
+        Window after the onset, in s.
+    min_post_s : float
+        Shortest window after the onset at the end of a segment, in s.
+    degree : int
+        Degree of the local polynomial background (2: quadratic).
+    hum_hz : tuple of float
+        Mains frequencies (and harmonics) whose sine and cosine are fitted with the
+        background, in Hz; () for none.
+    """
+
+    rise_s: float = 1e-3
+    decay_s: float = 15e-3
+    pre_s: float = 5e-3
+    post_s: float = 40e-3
+    min_post_s: float = 10e-3
+    degree: int = 2
+    hum_hz: tuple[float, ...] = (50.0,)
+
+    def __post_init__(self) -> None:
+        for name in ("rise_s", "decay_s", "pre_s", "post_s", "min_post_s"):
+            value = getattr(self, name)
+            if not (math.isfinite(value) and value > 0):
+                raise ValueError(f"`{name}` must be a finite positive number, got {value!r}")
+        if not self.decay_s > self.rise_s:
+            raise ValueError("`decay_s` must be longer than `rise_s`")
+        if not self.min_post_s <= self.post_s:
+            raise ValueError("`min_post_s` must not exceed `post_s`")
+        if self.degree not in (0, 1, 2, 3):
+            raise ValueError(f"`degree` must be 0, 1, 2 or 3, got {self.degree!r}")
+
+    def template(self, fs_hz: float, duration_s: float) -> np.ndarray:
+        """The event from its onset, peak 1, sampled at `fs_hz` for `duration_s`."""
+        t = np.arange(max(1, int(round(duration_s * fs_hz)))) / fs_hz
+        shape = np.exp(-t / self.decay_s) - np.exp(-t / self.rise_s)
+        ratio = self.decay_s / self.rise_s
+        t_peak = self.rise_s * self.decay_s / (self.decay_s - self.rise_s) * math.log(ratio)
+        peak = math.exp(-t_peak / self.decay_s) - math.exp(-t_peak / self.rise_s)
+        return shape / peak
+
+    def samples(self, fs_hz: float) -> tuple[int, int, int]:
+        """(pre, post, min_post) in samples at `fs_hz`."""
+        return (
+            max(1, int(round(self.pre_s * fs_hz))),
+            max(2, int(round(self.post_s * fs_hz))),
+            max(2, int(round(self.min_post_s * fs_hz))),
+        )
+
+
+@dataclass(frozen=True)
+class NoiseModel:
+    """What the detector sees in event-free baseline.
+
+    Parameters
+    ----------
+    sd_V : float
+        Robust sd of the baseline after a 5-ms centred high-pass (raw noise level), in V.
+    detector_sd_V : float
+        Robust sd of the detector's amplitude on the baseline (full window), in V.
+    n_samples : int
+        Number of detector outputs the estimate rests on.
+    fs_hz : float
+        Sampling rate the model was made at, in Hz.
+    shape : EventShape
+        The detector the model belongs to.
+    """
+
+    sd_V: float
+    detector_sd_V: float
+    n_samples: int
+    fs_hz: float
+    shape: EventShape
+
+
+@dataclass(frozen=True)
+class Event:
+    """One detected event.
+
+    Parameters
+    ----------
+    time_s : float
+        Onset, from the first sample of the residual given, in s.
+    amplitude_V : float
+        Peak amplitude of the fitted template, in V (positive: depolarizing).
+    z : float
+        amplitude_V over the detector's noise sd for its window (signed).
+    """
+
+    time_s: float
+    amplitude_V: float
+    z: float
+
+
+# --------------------------------------------------------------------------- internals
+
+
+def _basis(n: int, shape: EventShape, fs_hz: float) -> np.ndarray:
+    """Orthonormal background basis (columns) over n samples: polynomial and hum."""
+    x = np.linspace(-1.0, 1.0, n) if n > 1 else np.zeros(1)
+    columns = [np.vander(x, shape.degree + 1, increasing=True)]
+    t = np.arange(n) / fs_hz
+    for f in shape.hum_hz:
+        columns.append(np.column_stack((np.sin(2 * np.pi * f * t), np.cos(2 * np.pi * f * t))))
+    q, _ = np.linalg.qr(np.hstack(columns))
+    return q
+
+
+@lru_cache(maxsize=4096)
+def _kernel(shape: EventShape, fs_hz: float, n_pre: int, n_post: int) -> np.ndarray:
+    """Weights w over the window so that w . r is the least-squares template amplitude."""
+    e = np.concatenate((np.zeros(n_pre), shape.template(fs_hz, n_post / fs_hz)[:n_post]))
+    q = _basis(e.size, shape, fs_hz)
+    e_perp = e - q @ (q.T @ e)
+    kernel = e_perp / float(e_perp @ e_perp)
+    kernel.setflags(write=False)
+    return kernel
+
+
+def _remove_background(x: np.ndarray, shape: EventShape, fs_hz: float) -> np.ndarray:
+    """`x` less its least-squares straight line and mains hum (shape.hum_hz)."""
+    t = np.arange(x.size) / fs_hz
+    columns = [np.ones_like(t), t - t.mean()]
+    for f in shape.hum_hz:
+        columns += [np.sin(2 * np.pi * f * t), np.cos(2 * np.pi * f * t)]
+    design = np.column_stack(columns)
+    coef, *_ = np.linalg.lstsq(design, x, rcond=None)
+    return x - design @ coef
+
+
+def _quadratic_form(acov: np.ndarray, kac: np.ndarray) -> float:
+    """k' C k for a Toeplitz C from autocovariance `acov`, k's autocorrelation `kac`."""
+    return float(acov[0] * kac[0] + 2.0 * (acov[1:] @ kac[1:]))
+
+
+def _correlate_valid(x: np.ndarray, kernel: np.ndarray) -> np.ndarray:
+    """out[j] = sum_i kernel[i] * x[j + i] for every full overlap."""
+    from scipy.signal import fftconvolve
+
+    return fftconvolve(x, kernel[::-1], mode="valid")
+
+
+def _robust_sd(x: np.ndarray) -> float:
+    x = np.asarray(x, dtype=float)
+    return float(_MAD_TO_SD * np.median(np.abs(x - np.median(x))))
+
+
+def _as_noise(noise: NoiseModel | float, fs_hz: float, shape: EventShape) -> NoiseModel:
+    """A NoiseModel; a bare sd (V) is taken as white noise of that sd."""
+    if isinstance(noise, NoiseModel):
+        if not math.isclose(noise.fs_hz, fs_hz, rel_tol=1e-9):
+            raise ValueError(
+                f"the noise model was made at {noise.fs_hz:g} Hz, the residual is at {fs_hz:g} Hz"
+            )
+        return noise
+    sd = float(noise)
+    if not (math.isfinite(sd) and sd > 0):
+        raise ValueError(f"`noise` must be a NoiseModel or a positive sd in V, got {noise!r}")
+    n_pre, n_post, _ = shape.samples(fs_hz)
+    kernel = _kernel(shape, fs_hz, n_pre, n_post)
+    return NoiseModel(sd, sd * float(np.linalg.norm(kernel)), 0, float(fs_hz), shape)
+
+
+# --------------------------------------------------------------------------------- API
+
+
+def noise_model(
+    baseline_V: np.ndarray | Sequence[np.ndarray],
+    fs_hz: float,
+    *,
+    shape: EventShape | None = None,
+) -> NoiseModel:
+    """Noise model of the detector from event-free baseline.
+
+    Parameters
+    ----------
+    baseline_V : ndarray or sequence of ndarray
+        Baseline voltage, in V: one segment, or several (e.g. the pre-step baseline of
+        every sweep) pooled for a steadier estimate. Each segment must be longer than the
+        detector window (pre_s + post_s, 45 ms by default); shorter ones are skipped.
+    fs_hz : float
+        Sampling rate, in Hz.
+    shape : EventShape, optional
+        Detector template and window (default EventShape()).
+
+    Returns
+    -------
+    NoiseModel
+
+    Raises
+    ------
+    ValueError
+        If the segments give fewer than 100 detector outputs in all.
+    """
+    shape = shape or EventShape()
+    if not (math.isfinite(fs_hz) and fs_hz > 0):
+        raise ValueError(f"`fs_hz` must be a finite positive number, got {fs_hz!r}")
+    segments = [baseline_V] if isinstance(baseline_V, np.ndarray) else list(baseline_V)
+    n_pre, n_post, _ = shape.samples(fs_hz)
+    kernel = _kernel(shape, fs_hz, n_pre, n_post)
+    width = max(1, int(round(5e-3 * fs_hz)))
+    max_lag = max(1, int(round(_SHORT_LAG_S * fs_hz)))
+    outputs, highpassed, segment_sd = [], [], []
+    acov, n_acov = np.zeros(max_lag + 1), 0
+    kac = np.correlate(kernel, kernel, mode="full")[kernel.size - 1 : kernel.size + max_lag]
+    for seg in segments:
+        seg = np.asarray(seg, dtype=float)
+        if seg.ndim != 1 or not np.all(np.isfinite(seg)):
+            raise ValueError("each baseline segment must be a 1-d array of finite voltages")
+        if seg.size < kernel.size:
+            continue
+        outputs.append(_correlate_valid(seg, kernel))
+        hp = seg[width // 2 : seg.size - width + 1 + width // 2] - np.convolve(
+            seg, np.ones(width) / width, mode="valid"
+        )
+        highpassed.append(hp)
+        x = _remove_background(seg, shape, fs_hz)
+        seg_acov = np.array([float(x[: x.size - lag] @ x[lag:]) for lag in range(max_lag + 1)])
+        acov += seg_acov
+        n_acov += x.size
+        segment_sd.append(math.sqrt(max(_quadratic_form(seg_acov / x.size, kac), 0.0)))
+    n_out = sum(o.size for o in outputs)
+    if n_out < 100:
+        raise ValueError(
+            f"the baseline is too short for the event detector: it needs segments of at "
+            f"least {(kernel.size + 100) / fs_hz * 1e3:.0f} ms (window "
+            f"{kernel.size / fs_hz * 1e3:.0f} ms)"
+        )
+    # Two estimates of the detector's noise sd, the larger kept: the robust sd of its
+    # output (sees every kind of noise, but rests on few independent values in a short
+    # baseline) and k' C k with C the baseline's autocovariance up to _SHORT_LAG_S and
+    # zero beyond (precise for white or low-pass filtered noise).
+    short_var = _quadratic_form(acov / n_acov, kac)
+    detector_sd = max(_robust_sd(np.concatenate(outputs)), math.sqrt(max(short_var, 0.0)))
+    if len(outputs) >= 3:  # the median over segments resists an event in one of them
+        per_segment = [max(_robust_sd(o), sd) for o, sd in zip(outputs, segment_sd, strict=True)]
+        detector_sd = float(np.median(per_segment))
+    raw_sd = _robust_sd(np.concatenate(highpassed))
+    return NoiseModel(raw_sd, detector_sd, int(n_out), float(fs_hz), shape)
+
+
+def event_scan(
+    residual_V: np.ndarray,
+    fs_hz: float,
+    noise: NoiseModel | float,
+    *,
+    skip_s: float = 1e-3,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Detector output at every candidate onset.
+
+    Parameters
+    ----------
+    residual_V : ndarray
+        Data minus model over one segment, in V (an event-free baseline works too).
+    fs_hz : float
+        Sampling rate, in Hz.
+    noise : NoiseModel or float
+        From :func:`noise_model`; a bare float is taken as the sd (V) of white noise.
+    skip_s : float
+        Time at the start of the segment that is ignored, in s.
+
+    Returns
+    -------
+    onset_s : ndarray
+        Candidate onsets, from the first sample of `residual_V`, in s.
+    amplitude_V : ndarray
+        Least-squares template amplitude at each onset, in V.
+    z : ndarray
+        amplitude_V over its noise sd.
+    """
+    residual_V = np.asarray(residual_V, dtype=float)
+    if residual_V.ndim != 1:
+        raise ValueError("`residual_V` must be a 1-d array")
+    noise = _as_noise(noise, fs_hz, noise.shape if isinstance(noise, NoiseModel) else EventShape())
+    shape = noise.shape
+    n_pre, n_post, n_min = shape.samples(fs_hz)
+    start = max(0, int(round(skip_s * fs_hz)))
+    r = residual_V[start:]
+    empty = np.zeros(0)
+    if r.size < n_pre + n_min:
+        return empty, empty, empty
+    full = _kernel(shape, fs_hz, n_pre, n_post)
+    full_norm = float(np.linalg.norm(full))
+    amp = np.full(r.size, np.nan)
+    sd = np.full(r.size, noise.detector_sd_V)
+    if r.size >= full.size:
+        amp[n_pre : r.size - n_post + 1] = _correlate_valid(r, full)
+    # shortened windows at the end of the segment
+    for j in range(max(n_pre, r.size - n_post + 1), r.size - n_min + 1):
+        k = _kernel(shape, fs_hz, n_pre, r.size - j)
+        amp[j] = float(k @ r[j - n_pre :])
+        sd[j] = noise.detector_sd_V * float(np.linalg.norm(k)) / full_norm
+    valid = np.isfinite(amp)
+    onset = (np.flatnonzero(valid) + start) / fs_hz
+    return onset, amp[valid], amp[valid] / sd[valid]
+
+
+def _onset_confirmed(
+    r: np.ndarray, fs_hz: float, onset_s: np.ndarray, amp_V: np.ndarray, shape: EventShape
+) -> np.ndarray:
+    """Whether the local step at each onset is at least half the template's."""
+    n_before = max(1, int(round(3e-3 * fs_hz)))
+    a, b = max(1, int(round(1e-3 * fs_hz))), max(2, int(round(4e-3 * fs_hz)))
+    expected = float(np.mean(shape.template(fs_hz, b / fs_hz)[a:b]))
+    csum = np.concatenate(([0.0], np.cumsum(r)))
+    j = np.round(onset_s * fs_hz).astype(int)
+    lo, hi = np.clip(j - n_before, 0, r.size), np.clip(j + b, 0, r.size)
+    before = (csum[j] - csum[lo]) / np.maximum(j - lo, 1)
+    after = (csum[hi] - csum[np.minimum(j + a, hi)]) / np.maximum(hi - np.minimum(j + a, hi), 1)
+    return (after - before) * np.sign(amp_V) >= 0.5 * expected * np.abs(amp_V)
+
+
+def largest_event_z(
+    residual_V: np.ndarray,
+    fs_hz: float,
+    noise: NoiseModel | float,
+    *,
+    skip_s: float = 1e-3,
+) -> float:
+    """Largest |z| of the detector over a segment (0 when the segment is too short).
+
+    Parameters are those of :func:`event_scan`. Compare with :data:`EVENT_Z`.
+    """
+    _, _, z = event_scan(residual_V, fs_hz, noise, skip_s=skip_s)
+    return float(np.max(np.abs(z))) if z.size else 0.0
+
+
+def detect_events(
+    residual_V: np.ndarray,
+    fs_hz: float,
+    noise: NoiseModel | float,
+    *,
+    threshold_z: float = EVENT_Z,
+    skip_s: float = 1e-3,
+    max_events: int = 50,
+) -> tuple[Event, ...]:
+    """Spontaneous synaptic events in a residual, largest first.
+
+    Greedy: the onset of largest |z| is taken, its fitted template subtracted from the
+    residual, and the scan repeated until no |z| reaches `threshold_z`. An onset counts
+    only if the residual really steps there: the mean over 1–4 ms after it, less the
+    mean over the 3 ms before it, must reach half of what the fitted template predicts
+    (this drops the filter's opposite-sign side lobes ahead of a large event).
+
+    Parameters
+    ----------
+    residual_V : ndarray
+        Data minus model over one segment, in V.
+    fs_hz : float
+        Sampling rate, in Hz.
+    noise : NoiseModel or float
+        From :func:`noise_model` (preferred); a bare float is the sd (V) of white noise.
+    threshold_z : float
+        Detection threshold, in detector noise sds.
+    skip_s : float
+        Time at the start of the segment that is ignored, in s.
+    max_events : int
+        Most events returned.
+
+    Returns
+    -------
+    tuple of Event
+        In the order found (largest |z| first); times from the first sample of
+        `residual_V`.
+    """
+    if not (math.isfinite(threshold_z) and threshold_z > 0):
+        raise ValueError(f"`threshold_z` must be a finite positive number, got {threshold_z!r}")
+    r = np.array(residual_V, dtype=float)
+    noise = _as_noise(noise, fs_hz, noise.shape if isinstance(noise, NoiseModel) else EventShape())
+    template = noise.shape.template(fs_hz, r.size / fs_hz)
+    events: list[Event] = []
+    for _ in range(max_events):
+        onset, amp, z = event_scan(r, fs_hz, noise, skip_s=skip_s)
+        if z.size == 0:
+            break
+        z = np.where(_onset_confirmed(r, fs_hz, onset, amp, noise.shape), z, 0.0)
+        i = int(np.argmax(np.abs(z)))
+        if abs(z[i]) < threshold_z:
+            break
+        events.append(Event(float(onset[i]), float(amp[i]), float(z[i])))
+        j = int(round(onset[i] * fs_hz))
+        r[j:] -= amp[i] * template[: r.size - j]
+    return tuple(events)
