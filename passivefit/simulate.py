@@ -792,8 +792,8 @@ def _sag_truth(dv_V: np.ndarray, amp_A: float, on: int, off: int, dt_s: float) -
         "peak_mV": sign * float(step[peak_i]) * 1e3,
         "peak_ms": peak_i * dt_s * 1e3,
         "steady_mV": sign * steady * 1e3,
-        "sag_ratio": steady / float(step[peak_i]) if step[peak_i] > 0 else None,
-        "rebound_mV": -sign * rebound * 1e3,
+        S.SAG_RATIO.key: steady / float(step[peak_i]) if step[peak_i] > 0 else None,
+        S.REBOUND.key: -sign * rebound * 1e3,
         "rebound_ms": reb_i * dt_s * 1e3 if rebound > 0 else None,
     }
 
