@@ -104,13 +104,15 @@ def test_same_recording_in_every_format_gives_the_same_numbers(tmp_path):
         assert cell["v_rest_mV"] == pytest.approx(truth["v_rest_mV"], abs=0.1), ext
 
 
-def test_sweep_with_a_spontaneous_event_is_rejected_with_a_reason():
+def test_a_spontaneous_event_is_cut_out_and_said():
     rec, _ = simulate(n_sweeps=12, events_per_s=3.0, seed=4)
-    data = analyze(rec, Settings(bootstrap=0)).to_dict()
-    rejected = [s for s in data["sweeps"] if not s["accepted"]]
-    assert rejected, "events at 3/s must hit some fit windows"
-    assert all("event" in s["reject_reason"] for s in rejected)
-    assert data["cell"]["n_sweeps_used"] == 12 - len(rejected)
+    result = analyze(rec, Settings(bootstrap=0))
+    cut = [s for s in result.sweeps if s.masked_s]
+    assert cut, "events at 3/s must hit some fit windows"
+    for s in cut:
+        flag = next(f for f in s.to_dict()["flags"] if f["code"] == "sweep.event")
+        assert "cut out of the fits" in flag["message"]
+        assert s.accepted or "event" in s.reject_reason
 
 
 def test_manual_decisions_override_and_change_the_cell():

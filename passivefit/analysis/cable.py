@@ -136,7 +136,7 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
                 flags.append(spec.make(value))
         values[S.TAU0_MODEL] = bs.tau0_s
         values[S.C_TOTAL] = bs.c_total_F(0, step.amplitude_A)
-        if kind == "step" and r_in:
+        if kind == "step" and r_in and RHO_BOUNDS[0] * 1.02 < bs.rho < RHO_BOUNDS[1] / 1.02:
             more, more_flags = rho_cross_check(bs, r_in * step.amplitude_A)
             values.update(more)
             flags.extend(more_flags)
@@ -147,7 +147,7 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
             values[S.C_TOTAL] = cable.c_total_step(step.amplitude_A, tau0, c0)
     if values.get(S.C_TAU) and values.get(S.C_TOTAL):
         values[S.C_RATIO] = values[S.C_TAU] / values[S.C_TOTAL]
-    if tau1 is None:
+    if tau1 is None or fit.sag is not None:  # no τ1, or not a passive cell
         return values, flags
     values[S.L_CYL] = cable.cylinder_L(tau0, tau1)
     values[S.L_CYL_CI] = None if L_cyl_samples is None else percentile_halfwidth(L_cyl_samples)

@@ -56,14 +56,21 @@ def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag
 
 
 def sag(used: list[SweepFit]) -> tuple[dict, list[Flag]]:
-    """Sag ratio (steady/peak) of the largest hyperpolarizing step."""
+    """Sag ratio (steady/peak), R_in at the peak and the rebound after the step, of the
+    largest hyperpolarizing step (core.sag)."""
     hyper = [f for f in used if f.sag is not None and f.step.amplitude_A < 0]
     if not hyper:
         return {}, []
     most = min(f.step.amplitude_A for f in hyper)
-    ratio = float(np.mean([f.sag for f in hyper if f.step.amplitude_A == most]))
-    flags = [S.CELL_SAG.make(ratio)] if ratio < 0.95 else []
-    return {S.SAG_RATIO: ratio}, flags
+    largest = [f for f in hyper if f.step.amplitude_A == most]
+    values: dict = {S.SAG_RATIO: float(np.mean([f.sag for f in largest]))}
+    for q, got in ((S.R_IN_PEAK, [f.r_in_peak_ohm for f in largest]),
+                   (S.REBOUND, [f.rebound_V for f in largest])):
+        got = [x for x in got if x is not None]
+        if got:
+            values[q] = float(np.median(got))
+    ratio = values[S.SAG_RATIO]
+    return values, [S.CELL_SAG.make(ratio)] if ratio < 0.95 else []
 
 
 def sweep_spread(used: list[SweepFit], fit) -> list[Flag]:

@@ -32,8 +32,11 @@ def fit_segments(v: np.ndarray, fs: float, step: Step, wins: dict):
         a, b = span(wins[name], fs, v.size)
         if b - a < 20:
             continue
-        t = np.arange(a, b) / fs - edges[name]
-        segs.append(FitSegment(*decimate_tail(t, v[a:b], KEEP_FULL_S, BIN_FACTOR)))
+        t, y = np.arange(a, b) / fs - edges[name], v[a:b]
+        kept = np.isfinite(y)                   # events cut out (NaN) are not fitted
+        if np.count_nonzero(kept) < 20:
+            continue
+        segs.append(FitSegment(*decimate_tail(t[kept], y[kept], KEEP_FULL_S, BIN_FACTOR)))
         records.append(Segment(edges[name], a / fs, (b - 1) / fs, len(records),
                                charging=name == "fit"))
     return segs, tuple(records)

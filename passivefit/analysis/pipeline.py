@@ -28,9 +28,15 @@ from passivefit.analysis.cable import (
     fit_cable,
     model_tau1_ci,
 )
+from passivefit.analysis.events import cut_out_events
 from passivefit.analysis.fits import FIT_ERRORS, fit_average, fit_start_scan, onset_amplitudes
-from passivefit.analysis.pool import average_of, first_look, sweep_pool
-from passivefit.analysis.selection import check_sign, leave_out_active, stable_stretch
+from passivefit.analysis.pool import average_of, first_look, sag_window, sweep_pool
+from passivefit.analysis.selection import (
+    check_sign,
+    hyperpolarizing_only,
+    leave_out_active,
+    stable_stretch,
+)
 from passivefit.analysis.sweep import (
     analyze_sweep,
     apply_decisions,
@@ -64,16 +70,28 @@ def analyze(recording: Recording, settings: Settings | None = None) -> Recording
                 for s, st in chosen}
 
     screened = [baseline_only(voltages[s.index], st, s.index, fs, settings) for s, st in chosen]
-    start, tau_init = first_look(screened, voltages, fs, settings)
-    effective = settings if start is None else replace(settings, fit_start_ms=start / MS)
+    sag_end = sag_window(screened, voltages, fs) if settings.windows.fit_ms is None else None
+    base = settings
+    if sag_end is not None:   # fit the charging before the sag acts, and not the rebound
+        base = replace(settings, windows=replace(
+            settings.windows, fit_end_ms=settings.windows.fit_end_ms or sag_end / MS,
+            decay=bool(settings.windows.decay)))
+        screened = hyperpolarizing_only(screened)
+    start, tau_init = first_look(screened, voltages, fs, base)
+    effective = base if start is None else replace(base, fit_start_ms=start / MS)
     fits = [analyze_sweep(voltages[s.index], st, s.index, fs, effective, tau_init)
             for s, st in chosen]
+    fits = cut_out_events(fits, voltages, fs, lambda f, cut: analyze_sweep(
+        voltages[f.index], f.step, f.index, fs, effective, tau_init, masked_s=cut))
     check_sign(fits, recording.path)
     fits, active = leave_out_active(reject_outliers(fits))
+    if sag_end is not None:
+        fits = hyperpolarizing_only(fits)
+        active += [S.FIT_SAG_WINDOW.make(sag_end / MS, end=f"{sag_end / MS:.0f} ms")]
     fits, stability, unstable = stable_stretch(fits, settings.all_sweeps)
     fits = apply_decisions(fits, effective)
     delay = bessel_delay_s(settings.filter_hz or _metadata_float(recording, "filter_hz"))
-    cell = summarize_cell(fits, voltages, fs, effective, settings, delay)
+    cell = summarize_cell(fits, voltages, fs, effective, base, delay, sagging=sag_end is not None)
     cell.values.update(stability)
     cell.flags[:0] = [*recording.flags, *active, *unstable]
     return RecordingResult(
@@ -112,12 +130,12 @@ class CellSummary:
 
 def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
                    settings: Settings, asked: Settings | None = None,
-                   delay_s: float = 0.0) -> CellSummary:
+                   delay_s: float = 0.0, sagging: bool = False) -> CellSummary:
     """Cell-level values from the accepted sweeps.
 
     `settings` hold the fit start used for the exponential fits; the cable-model fit
     starts where the person `asked` (default: after the artefact) and shifts time zero
-    by the filter delay `delay_s`.
+    by the filter delay `delay_s`. A `sagging` cell gets no cable model.
     """
     used = [f for f in fits if f.accepted]
     out = CellSummary(tuple(fits), {S.N_SWEEPS_USED: len(used)},
@@ -146,6 +164,8 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         out.values[S.TAU_SAG] = fit.sag_tau
         out.flags += [S.FIT_SAG_COMPONENT.make(fit.sag_tau / MS, tau=f"{fit.sag_tau / MS:.0f} ms"),
                       S.CABLE_NOT_PASSIVE.make()]
+    elif fit is not None and sagging:
+        out.flags.append(S.CABLE_NOT_PASSIVE.make())
     elif fit is not None:
         bs, problem = fit_cable(avg_cable, fs, cable_init(fit, pool.step), delay_s)
         out.flags.extend([problem] if problem else [])
@@ -184,7 +204,8 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         out.flags.extend(checks.scan_drift(out.scan))
     out.peel = _peel(avg, avg_cable, fs, fit)
     r_in = out.values.get(S.R_IN)
-    values, flags = cable_values(fit, bs, avg, r_in if r_in and r_in > 0 else None, tau1, cis,
+    values, flags = cable_values(fit, bs, avg, r_in if r_in and r_in > 0 else None,
+                                 None if sagging else tau1, cis,
                                  _L_cyl_samples(boot, bs is not None))
     out.values.update(values)
     out.flags.extend(flags)

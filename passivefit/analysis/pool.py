@@ -37,12 +37,22 @@ class SweepPool:
     currents: np.ndarray        # A, per sweep
     deflections: np.ndarray     # V, per sweep × sample, baseline removed
     base: float                 # V, mean baseline
+    gaps: bool = False          # some samples are cut out (NaN)
 
     def combine(self, pick: np.ndarray | None = None) -> np.ndarray:
-        """The combined response (V) of all sweeps, or of the sweeps at positions `pick`."""
+        """The combined response (V) of all sweeps, or of the sweeps at positions `pick`.
+
+        Samples cut out of a sweep (NaN: a spontaneous event) are left out of the sums at
+        their times; where every sweep is cut out the response is NaN.
+        """
         i = self.currents if pick is None else self.currents[pick]
         d = self.deflections if pick is None else self.deflections[pick]
-        return self.base + self.step.amplitude_A * (i @ d) / (i @ i)
+        if not self.gaps:
+            return self.base + self.step.amplitude_A * (i @ d) / (i @ i)
+        seen = np.isfinite(d)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            h = (i @ np.where(seen, d, 0.0)) / ((i * i) @ seen)
+        return self.base + self.step.amplitude_A * h
 
 
 def sweep_pool(fits: list[SweepFit], voltages: dict[int, np.ndarray]) -> SweepPool | None:
@@ -62,7 +72,8 @@ def sweep_pool(fits: list[SweepFit], voltages: dict[int, np.ndarray]) -> SweepPo
                             for f in members]) - bases[:, None]
     i_ref = currents.min() if np.any(currents < 0) else currents.max()
     return SweepPool(replace(members[0].step, amplitude_A=float(i_ref)),
-                     tuple(f.index for f in members), currents, deflections, float(bases.mean()))
+                     tuple(f.index for f in members), currents, deflections, float(bases.mean()),
+                     gaps=bool(np.isnan(deflections).any()))
 
 
 def average_of(pool: SweepPool, v: np.ndarray, fs: float, settings: Settings) -> GroupAverage:
@@ -80,6 +91,42 @@ def average_of(pool: SweepPool, v: np.ndarray, fs: float, settings: Settings) ->
         start = artefact_end_s(v, edge, fs, steady.noise_sd(v[b0:b1]))
     wins = resolve_windows(step, v.size, fs, w, start)
     return GroupAverage(step, pool.indices, v, v_base, wins)
+
+
+#: A combined hyperpolarizing response whose steady/peak ratio is below this sags
+#: (the cell.sag flag's threshold).
+SAG_RATIO = 0.95
+#: The charging fit of a sagging cell ends where the deflection first reaches this share
+#: of its peak, before the sag shapes it (core.sag.sag_free_end_s).
+SAG_FREE_FRACTION = 0.9
+
+
+def sag_window(screened: list[SweepFit], voltages: dict[int, np.ndarray], fs: float
+               ) -> float | None:
+    """When the cell sags: how long after the onset its charging transient can be fitted
+    (s), from the hyperpolarizing sweeps combined; None when it does not sag.
+
+    Ih makes a hyperpolarized cell's voltage relax back; a sum of exponentials describes
+    that nonlinear relaxation poorly, so the charging fit stops before it, and the decay
+    after the step (shaped by the rebound) is not fitted.
+    """
+    from passivefit.core.sag import measure_sag, sag_free_end_s
+
+    hyper = [f for f in screened if f.accepted and f.step is not None and f.step.kind == "step"
+             and f.step.amplitude_A < 0]
+    pool = sweep_pool(hyper, voltages)
+    if pool is None:
+        return None
+    v, step = pool.combine(), pool.step
+    try:
+        sag = measure_sag(v, fs, step.onset_s, step.offset_s, baseline_V=pool.base,
+                          direction=-1.0)
+        if not (sag.has_sag and sag.ratio is not None and sag.ratio < SAG_RATIO):
+            return None
+        return sag_free_end_s(v, fs, step.onset_s, step.offset_s, sag=sag,
+                              fraction=SAG_FREE_FRACTION)
+    except ValueError:
+        return None
 
 
 def first_look(screened: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,

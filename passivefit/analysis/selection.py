@@ -63,20 +63,39 @@ def leave_out_active(fits: list[SweepFit]) -> tuple[list[SweepFit], list[Flag]]:
     return out, ([S.CELL_ACTIVE_SWEEPS.make(n, n=n)] if n else [])
 
 
+def hyperpolarizing_only(fits: list[SweepFit]) -> list[SweepFit]:
+    """In a sagging cell depolarizing steps close the sag's (h-type) channels that are
+    open at rest: they are not passive either, so only hyperpolarizing steps are used."""
+    return [replace(f, accepted=False, reject_reason="the cell sags: its passive values come "
+                    "from the hyperpolarizing steps")
+            if f.accepted and f.step is not None and f.step.amplitude_A > 0 else f
+            for f in fits]
+
+
 def stable_stretch(fits: list[SweepFit], use_all: bool
                    ) -> tuple[list[SweepFit], dict, list[Flag]]:
-    """The change of R_in and V_rest over the recording and, when R_in drifts, the
+    """The change of V_rest and R_in over the recording and, when R_in drifts, the
     longest run of consecutive accepted sweeps whose R_in stays within STABLE_BAND of
-    the run's median (unless `use_all`); the sweeps outside it are left out."""
+    the run's median (unless `use_all`); the sweeps outside it are left out.
+
+    R_in is compared between sweeps of the same step (the most common one): across
+    different steps it changes with the step (sag, rectification), not with time.
+    """
     used = [f for f in fits if f.accepted and f.r_in_ohm is not None]
     if len(used) < 4:
         return fits, {}, []
     k = max(2, len(used) // 4)              # first and last quarter of the recording
-    r_first = np.median([f.r_in_ohm for f in used[:k]])
-    r_last = np.median([f.r_in_ohm for f in used[-k:]])
     dv = np.median([f.v_rest_V for f in used[-k:]]) - np.median([f.v_rest_V for f in used[:k]])
-    change = r_last / r_first - 1
-    values = {S.R_IN_CHANGE: change, S.V_REST_CHANGE: dv}
+    values: dict = {S.V_REST_CHANGE: dv}
+    steps = [round(f.step.amplitude_A * 1e12) for f in used]
+    common = max(set(steps), key=steps.count)
+    used = [f for f, a in zip(used, steps, strict=True) if a == common]
+    if len(used) < 4:
+        return fits, values, []
+    k = max(2, len(used) // 4)
+    change = (np.median([f.r_in_ohm for f in used[-k:]])
+              / np.median([f.r_in_ohm for f in used[:k]]) - 1)
+    values[S.R_IN_CHANGE] = change
     if abs(change) <= UNSTABLE_R_IN:
         return fits, values, []
     best: list[SweepFit] = []
@@ -94,7 +113,7 @@ def stable_stretch(fits: list[SweepFit], use_all: bool
     flags = [S.CELL_UNSTABLE.make(100 * change, x=100 * change, dv=dv / MV, what=what)]
     if use_all:
         return fits, values, flags
-    out = [f if f.index in keep or not f.accepted else replace(
+    out = [f if f.index in keep or not f.accepted or f not in used else replace(
         f, accepted=False, reject_reason="outside the stable stretch of the recording (R_in "
         f"{f.r_in_ohm / MOHM:.0f} MΩ)") for f in fits]
     return out, values, flags

@@ -26,29 +26,12 @@ from passivefit.core import steady
 from passivefit.core.qc import Flag
 from passivefit.core.steps import Step
 from passivefit.model import schema as S
-from passivefit.model.results import SweepFit
+from passivefit.model.results import SweepFit, mask
 from passivefit.model.settings import Settings
 
 MV = 1e-3
-EVENT_Z = 6.0        # 1-ms-smoothed residual this many robust sds away: an event, not noise
 DRIFT_V = 1e-3       # baseline change over a sweep beyond which the sweep is rejected
 TAIL_S = 0.2         # the last tenth of a tail at least this long is back at baseline
-
-
-def event_z(resid: np.ndarray, fs: float) -> float:
-    """Largest fast excursion of the residual, in robust sds of itself.
-
-    The residual smoothed over 1 ms minus its 25-ms running mean: events (ms rise,
-    tens of ms decay) stand out, slow misfit such as sag does not. The first 10 ms are
-    left out: misfit of the fast components lives there (see the residual-structure flag).
-    """
-    resid = resid[int(10e-3 * fs):]
-    if resid.size < int(30e-3 * fs):
-        return 0.0
-    fast = steady.smooth(resid, max(1, int(1e-3 * fs))) - steady.smooth(resid, int(25e-3 * fs))
-    centred = fast - np.median(fast)
-    spread = 1.4826 * np.median(np.abs(centred))
-    return float(np.max(np.abs(centred)) / max(spread, 1e-9))
 
 
 def baseline_drift(v: np.ndarray, step: Step, fs: float, v_base: float,
@@ -102,11 +85,14 @@ def _fit_sweep(v: np.ndarray, fs: float, step: Step, wins: dict, settings: Setti
 
 
 def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
-                  settings: Settings, tau_init: tuple[float, ...] | None = None) -> SweepFit:
-    """Baseline, steady state, fitted transients and tests of one sweep.
+                  settings: Settings, tau_init: tuple[float, ...] | None = None,
+                  masked_s: tuple[tuple[float, float], ...] = ()) -> SweepFit:
+    """Baseline, steady state, sag, fitted transients and tests of one sweep.
 
     `tau_init` (s), from a fit of the combined sweeps, starts the fit there and fixes the
     number of components (at most two: single sweeps rarely resolve a third).
+    `masked_s` are (start, end) times (s) cut out of the fits and the steady state:
+    spontaneous events (analysis.events).
     """
     if step is None:
         return SweepFit(index, False, "no step in this sweep", None)
@@ -126,13 +112,17 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
     noise = steady.noise_sd(v[b0:b1])
     wins = resolve_windows(step, v.size, fs, w,
                            fit_start_after_artefact(v, step, fs, noise, settings))
-    fit, records, fit_error = _fit_sweep(v, fs, step, wins, settings, tau_init)
+    seen = mask(v, masked_s, fs)    # what the fits and the steady state read
+    fit, records, fit_error = _fit_sweep(seen, fs, step, wins, settings, tau_init)
 
-    v_ss = dv = r_in = bridge = sag = rmse = None
+    v_ss = dv = r_in = bridge = sag = rmse = r_peak = rebound = None
     amps: tuple[float, ...] = ()
     if step.kind == "step":
         s0, s1 = span(wins["steady"], fs, v.size)
-        v_ss = steady.robust_level(v[s0:s1]) if s1 - s0 >= 5 else None
+        # the steady window, unless events cut most of it out (then the fitted asymptote)
+        v_ss = (steady.robust_level(seen[s0:s1])
+                if np.count_nonzero(np.isfinite(seen[s0:s1])) >= max(5, (s1 - s0) // 2)
+                else None)
         if fit is not None:
             amps = response_amplitudes(fit, 0, "step")
             v_inf = float(fit.offsets[0])
@@ -146,9 +136,7 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         if v_ss is not None:
             dv = v_ss - v_base
             r_in = dv / step.amplitude_A    # the cell's bridge estimate is subtracted later
-            width = max(1, int(2e-3 * fs))
-            smooth_noise = steady.noise_sd(steady.smooth(v[b0:b1], width)[width:-width])
-            sag = steady.sag_ratio(v[step.onset: step.offset], v_base, v_ss, width, smooth_noise)
+            sag, r_peak, rebound = _sag(v, step, fs, v_base)
     elif fit is not None:
         amps = response_amplitudes(fit, 0, "pulse")
 
@@ -157,30 +145,43 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         done = "subtracted as a straight line" if settings.correct_drift else "not corrected"
         flags.append(S.SWEEP_DRIFT.make(drift / MV, done=done))
     accepted, reason = True, None
-    if fit_error:
+    if np.max(v) >= SPIKE_V:
+        where = _part_of_sweep(int(np.argmax(v)), step)
+        accepted, reason = False, (f"action potential {where} (peak {np.max(v) / MV:+.0f} mV "
+                                   f"at {np.argmax(v) / fs * 1e3:.0f} ms)")
+    elif fit_error:
         accepted, reason = False, fit_error
     elif drift is not None and abs(drift) > max(DRIFT_V, 0.25 * abs(dv or 0.0)):
         accepted, reason = False, (f"the baseline drifts {drift / MV:+.1f} mV between the "
                                    "start and the end of the sweep")
-    elif np.max(v) >= SPIKE_V:
-        where = _part_of_sweep(int(np.argmax(v)), step)
-        accepted, reason = False, (f"action potential {where} (peak {np.max(v) / MV:+.0f} mV "
-                                   f"at {np.argmax(v) / fs * 1e3:.0f} ms)")
-    elif fit is not None:
-        resids = [residual(v, fit, r, fs)[1] for r in records]
-        rmse = float(np.sqrt(np.mean(np.concatenate(resids) ** 2)))
-        worst = max(event_z(r, fs) for r in resids)
-        if worst > EVENT_Z:
-            accepted, reason = False, "spontaneous event in the fit window"
-            flags.append(S.SWEEP_EVENT.make(worst))
+    if fit is not None:
+        resids = np.concatenate([residual(seen, fit, r, fs)[1] for r in records])
+        rmse = float(np.sqrt(np.nanmean(resids ** 2)))
     return SweepFit(
         index=index, accepted=accepted, reject_reason=reason, step=step,
         v_rest_V=v_base, dv_ss_V=dv, r_in_ohm=r_in,
         taus_s=tuple(float(t) for t in fit.taus) if fit is not None else (),
         amps_V=amps, rmse_V=rmse,
-        bridge_ohm=bridge, sag=sag, noise_V=noise, drift_V=drift, trend=trend, windows_s=wins,
-        segments=records, fit=fit, flags=tuple(flags),
+        bridge_ohm=bridge, sag=sag, r_in_peak_ohm=r_peak, rebound_V=rebound, noise_V=noise,
+        drift_V=drift, trend=trend, windows_s=wins, masked_s=masked_s, segments=records,
+        fit=fit, flags=tuple(flags),
     )
+
+
+def _sag(v: np.ndarray, step: Step, fs: float, v_base: float
+         ) -> tuple[float | None, float | None, float | None]:
+    """(sag ratio, R_in at the peak in Ω, rebound in V) of a step (core.sag): the ratio is 1
+    and the peak R_in None when the peak is within the noise of the steady state."""
+    from passivefit.core.sag import measure_sag
+
+    try:
+        s = measure_sag(v, fs, step.onset_s, step.offset_s, baseline_V=v_base,
+                        direction=float(np.sign(step.amplitude_A)))
+    except ValueError:
+        return None, None, None
+    if not s.has_sag:
+        return 1.0, None, s.rebound_V
+    return s.ratio, s.peak_V / step.amplitude_A, s.rebound_V
 
 
 def _part_of_sweep(sample: int, step: Step) -> str:

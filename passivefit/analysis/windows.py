@@ -82,10 +82,13 @@ def resolve_windows(step: Step, n_samples: int, fs: float, w: Windows,
     if step.kind == "step":
         out["steady"] = (absolute(w.steady_ms) if w.steady_ms
                          else (off - max(0.2 * duration, min(duration, 2e-3)), off - GUARD_S / 2))
-        fit = absolute(w.fit_ms) if w.fit_ms else (on + fit_start_s, off - GUARD_S / 2)
+        fit_end = min(on + w.fit_end_ms * MS, off - GUARD_S / 2) if w.fit_end_ms \
+            else off - GUARD_S / 2
+        fit = absolute(w.fit_ms) if w.fit_ms else (on + fit_start_s, fit_end)
         out["fit"] = fit
-        tail = min(end, off + duration + 0.1)
-        out["fit_off"] = (off + (fit[0] - on), tail)
+        if w.decay is not False:
+            tail = min(end, off + duration + 0.1)
+            out["fit_off"] = (off + (fit[0] - on), tail)
     else:
         fit = absolute(w.fit_ms) if w.fit_ms else (off + fit_start_s, end)
         out["fit_off"] = fit

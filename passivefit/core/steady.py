@@ -8,8 +8,10 @@ import numpy as np
 
 
 def robust_level(v: np.ndarray, trim: float = 0.2) -> float:
-    """Trimmed mean of a window (drops `trim` of the samples at each end), in the input's unit."""
+    """Trimmed mean of a window (drops `trim` of the samples at each end), in the input's
+    unit; NaN samples (cut out) are left out."""
     v = np.sort(np.asarray(v, dtype=np.float64))
+    v = v[: np.count_nonzero(np.isfinite(v))]   # NaN sorts last
     k = int(trim * v.size)
     return float(v[k: v.size - k].mean())
 

@@ -33,6 +33,17 @@ class Segment:
         return slice(int(round(self.start_s * fs)), int(round(self.end_s * fs)) + 1)
 
 
+def mask(v: np.ndarray, intervals, fs: float) -> np.ndarray:
+    """A copy of `v` with the samples inside the (start, end) times (s) set to NaN; `v`
+    itself when there are none."""
+    if not intervals:
+        return v
+    out = np.array(v, dtype=float)
+    for a, b in intervals:
+        out[max(0, int(a * fs)): max(0, int(np.ceil(b * fs)))] = np.nan
+    return out
+
+
 def fit_curves(fit, segments: tuple[Segment, ...], n: int = 400):
     """(time in s, model voltage in V) of `fit` over each segment."""
     curves = []
@@ -64,6 +75,7 @@ class SweepFit:
     drift_V: float | None = None                     # end-of-sweep level − baseline
     trend: tuple[float, float] = (0.0, 0.0)          # (V/s, reference time s) subtracted
     windows_s: dict = field(default_factory=dict)   # name -> (start, end) absolute times
+    masked_s: tuple[tuple[float, float], ...] = ()   # spontaneous events cut out (abs. times)
     segments: tuple[Segment, ...] = ()
     fit: object | None = None            # core.expfit.ExpFit
     flags: tuple[Flag, ...] = ()
@@ -97,9 +109,11 @@ class SweepFit:
         return [(t, v + slope * (t - t_ref)) for t, v in fit_curves(self.fit, self.segments)]
 
     def corrected(self, v: np.ndarray, fs: float) -> np.ndarray:
-        """The sweep's voltage with its subtracted drift taken out, as the fit saw it."""
+        """The sweep's voltage as the fit saw it: its subtracted drift taken out and its
+        spontaneous events cut out (NaN)."""
         slope, t_ref = self.trend
-        return v - slope * (np.arange(v.size) / fs - t_ref) if slope else v
+        v = v - slope * (np.arange(v.size) / fs - t_ref) if slope else v
+        return mask(v, self.masked_s, fs)
 
     def to_dict(self) -> dict:
         """The sweep's entry of the JSON `sweeps` list (display units, schema keys)."""

@@ -135,8 +135,10 @@ R_IN_PEAK = Quantity("r_in_peak_MOhm", "R_in at the peak", "MΩ", MOHM,
 R_IN_SLOPE = Quantity("r_in_slope_MOhm", "R_in, V–I slope", "MΩ", MOHM)
 R_IN_CHORD = Quantity("r_in_chord_MOhm", "R_in, smallest steps", "MΩ", MOHM)
 REBOUND = Quantity("rebound_mV", "rebound", "mV", MV, title="Rebound after the step")
-R_IN_CHANGE = Quantity("r_in_change_pct", "R_in change over the recording", "%", 0.01, 3)
-V_REST_CHANGE = Quantity("v_rest_change_mV", "V_rest change over the recording", "mV", MV, 3)
+R_IN_CHANGE = Quantity("r_in_change_pct", "R_in change over the recording", "%", 0.01, 3,
+                       title="R_in change, first to last quarter of the sweeps")
+V_REST_CHANGE = Quantity("v_rest_change_mV", "V_rest change over the recording", "mV", MV, 3,
+                         title="V_rest change, first to last quarter of the sweeps")
 STABLE_SWEEPS = Quantity("stable_sweeps", "sweeps of the stable stretch", kind="text")
 CM = Quantity("cm_uF_per_cm2", "specific Cm", "µF/cm²", 1e-2, 4)   # SI: F/m²
 RM = Quantity("rm_kOhm_cm2", "specific Rm", "kΩ·cm²", 0.1, 4)      # SI: Ω·m²
@@ -262,8 +264,9 @@ SWEEP_DRIFT = _flag(
     "sweep.drift", "warning",
     "the baseline at the end of the sweep differs from the one before the step ({done}) (mV)")
 SWEEP_EVENT = _flag(
-    "sweep.event", "warning",
-    "a spontaneous event or other excursion from the fit (residual in noise units)")
+    "sweep.event", "info",
+    "{n} spontaneous event(s) at {at} cut out of the fits and the steady state (largest, "
+    "in detector noise sds)")
 # cell level
 CELL_NO_SWEEPS = _flag("cell.no_sweeps", "error", "no sweep was accepted; nothing to report")
 CELL_FEW_SWEEPS = _flag(
@@ -375,6 +378,11 @@ FIT_SAG_COMPONENT = _flag(
     "a slow component of the opposite sign (τ {tau}) is the sag of an active conductance, "
     "not a membrane mode; τ0 is the slowest component in the direction of the response "
     "(sag time constant, ms)")
+FIT_SAG_WINDOW = _flag(
+    "fit.sag_window", "info",
+    "the cell sags, so the charging transient is fitted only up to {end} after the onset, "
+    "before the sag acts, and the decay after the step (with its rebound) is not fitted "
+    "(fit end, ms)")
 CABLE_NOT_PASSIVE = _flag(
     "cable.not_passive", "warning",
     "the response sags back (an active conductance), so the passive cable model (L, ρ, "
@@ -407,7 +415,7 @@ def flags_markdown() -> str:
         words = words.replace("{reason}", "…").replace("|", "\\|")
         for field_name in ("done", "what", "problem", "limit", "sweep", "at", "planned",
                            "recorded", "source", "offset", "amplitude", "values", "channel",
-                           "median", "others", "tau", "name", "n"):
+                           "median", "others", "tau", "name", "n", "end"):
             words = words.replace("{" + field_name + "}", "…")
         for fmt in ("{x:.2f}", "{x:.3f}", "{x:.3g}", "{limit:.3f}", "{x:+.0f}", "{dv:+.1f}"):
             words = words.replace(fmt, "x")

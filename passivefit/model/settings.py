@@ -22,12 +22,17 @@ class Windows:
     """Analysis windows in ms relative to the step onset; None = chosen automatically.
 
     ``fit_ms`` gives the start and end of the charging-transient fit; the decay after the
-    step is fitted from the same start relative to the step's end.
+    step is fitted from the same start relative to the step's end. ``fit_end_ms`` ends
+    the charging fit early (e.g. before a sag acts) while its start stays automatic;
+    ``decay`` says whether the decay after the step is fitted (None: yes, unless the
+    cell sags).
     """
 
     baseline_ms: tuple[float, float] | None = None
     steady_ms: tuple[float, float] | None = None
     fit_ms: tuple[float, float] | None = None
+    fit_end_ms: float | None = None
+    decay: bool | None = None
 
     def merged(self, other: Windows | None) -> Windows:
         """`other`'s windows where it sets them, ours elsewhere."""
@@ -159,11 +164,11 @@ class Settings:
 
 
 def _windows_dict(w: Windows) -> dict:
-    return {k: (list(v) if v is not None else None) for k, v in asdict(w).items()}
+    return {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(w).items()}
 
 
 def _windows_from(d: dict) -> Windows:
-    return Windows(**{k: (tuple(v) if v is not None else None) for k, v in d.items()})
+    return Windows(**{k: (tuple(v) if isinstance(v, list) else v) for k, v in d.items()})
 
 
 def settings_hash(settings: dict) -> str:

@@ -1,0 +1,122 @@
+"""Spontaneous synaptic events: found in each sweep's fit residual with the detector of
+core.events and cut out of that sweep's fits, steady state and the combined response.
+
+A physiologist does not throw away a sweep for a PSP late in a long step; the event's
+stretch is left out and the rest of the sweep is used. A sweep is rejected only when its
+residual still holds an event after the cut (events on events, or a misfit).
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+
+from passivefit.analysis.fits import residual
+from passivefit.analysis.windows import span
+from passivefit.model import schema as S
+from passivefit.model.results import SweepFit
+
+#: An event's stretch: from this long before its onset …
+BEFORE_S = 2e-3
+#: … to this long after it: PSPs decay over tens of ms (docs/references.md §7).
+AFTER_S = 0.1
+#: Cut and refit at most this many times before the sweep is given up.
+ROUNDS = 3
+
+
+def noise_model(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float):
+    """The detector's noise model: from the sweeps' baselines, else (baselines too short)
+    from their fit residuals, whose median over sweeps resists the events in a few;
+    None when neither is long enough."""
+    from passivefit.core import events
+
+    used = [f for f in fits if f.fit is not None]
+    baselines = [f.corrected(voltages[f.index], fs)[slice(*span(f.windows_s["baseline"], fs,
+                                                                voltages[f.index].size))]
+                 for f in used]
+    residuals = [np.nan_to_num(residual(f.corrected(voltages[f.index], fs), f.fit, r, fs)[1])
+                 for f in used for r in f.segments]
+    for segments in (baselines, residuals):
+        try:
+            return events.noise_model(segments, fs)
+        except ValueError:
+            continue
+    return None
+
+
+def find_events(f: SweepFit, v: np.ndarray, fs: float, noise) -> list[tuple[float, float, float]]:
+    """(onset in s from the sweep start, amplitude in V, z) of every event in the residual
+    of sweep `f`'s fit and in the rest of its step up to the steady state, when the fit
+    ends early (raw voltage about its level: the detector's local background takes up the
+    slow sag); cut-out samples count as no event."""
+    from passivefit.core import events
+
+    seen = f.corrected(v, fs)
+    parts = [residual(seen, f.fit, seg, fs) for seg in f.segments]
+    if "steady" in f.windows_s and "fit" in f.windows_s:
+        a = span(f.windows_s["fit"], fs, v.size)[1]
+        b = span(f.windows_s["steady"], fs, v.size)[1]
+        if b - a > 0.05 * fs:   # a step not fitted to its end (a sagging cell)
+            part = seen[a:b]
+            parts.append((np.arange(a, b) / fs, part - np.nanmedian(part)))
+    found = []
+    for t, r in parts:
+        for run in _finite_runs(r):   # scanned apart: a cut-out stretch is no edge
+            found += [(float(t[run.start] + e.time_s), e.amplitude_V, e.z)
+                      for e in events.detect_events(r[run], fs, noise)]
+    return sorted(found)
+
+
+def _finite_runs(r: np.ndarray) -> list[slice]:
+    """The stretches of `r` without NaN."""
+    edges = np.flatnonzero(np.diff(np.concatenate(([0], np.isfinite(r).view(np.int8), [0]))))
+    return [slice(a, b) for a, b in zip(edges[0::2], edges[1::2], strict=True)]
+
+
+def cut_out_events(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
+                   refit) -> list[SweepFit]:
+    """Each accepted sweep with its events cut out and refitted (`refit(fit, masked_s)`
+    returns the new SweepFit); rejected when an event is still found after the cut."""
+    noise = noise_model(fits, voltages, fs)
+    if noise is None:
+        return fits
+    out = []
+    for f in fits:
+        if not f.accepted or f.fit is None:
+            out.append(f)
+            continue
+        v = voltages[f.index]
+        found = find_events(f, v, fs, noise)
+        if not found:
+            out.append(f)
+            continue
+        cut: list[tuple[float, float]] = []
+        new, left = f, found
+        for _ in range(ROUNDS):   # a slow PSP can show again past its first cut
+            cut = _merged([*cut, *((t - BEFORE_S, t + AFTER_S) for t, _, _ in left)])
+            new = refit(f, tuple(cut))
+            left = find_events(new, v, fs, noise) if new.fit is not None else []
+            found += left
+            if not left:
+                break
+        times = ", ".join(f"{t * 1e3:.0f}" for t, _, _ in sorted(found))
+        flag = S.SWEEP_EVENT.make(max(abs(z) for _, _, z in found), n=len(found),
+                                  at=f"{times} ms")
+        if left or not new.accepted:
+            why = new.reject_reason or f"spontaneous events at {times} ms that cannot be cut out"
+            out.append(replace(new, accepted=False, reject_reason=why,
+                               flags=(*new.flags, flag)))
+        else:
+            out.append(replace(new, flags=(*new.flags, flag)))
+    return out
+
+
+def _merged(intervals: list[tuple[float, float]]) -> list[tuple[float, float]]:
+    out: list[tuple[float, float]] = []
+    for a, b in sorted(intervals):
+        if out and a <= out[-1][1]:
+            out[-1] = (out[-1][0], max(b, out[-1][1]))
+        else:
+            out.append((a, b))
+    return out

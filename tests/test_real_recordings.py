@@ -1,0 +1,148 @@
+"""passivefit on the nine real recordings of tests/data/real (public, MIT licence; see
+its README): each gives what a physiologist expects, in the last column of that README.
+
+The current-clamp step files are checked against the independent, transparent estimate
+of tests/real_reference.py (baseline and steady-state means, ΔV/ΔI, a single-exponential
+fit of the early charging curve; it imports nothing from passivefit — independent
+estimate, common practice, no source). The tolerances are wider than that estimate's
+spread across sweeps where a file has one or two usable sweeps, as that spread is then
+no measure of uncertainty: ±2 mV for V_rest (a few mV of liquid-junction and drift are
+usual, from memory), ±15 % for R_in (the reference keeps the ~10–15 MΩ bridge error in;
+passivefit takes it out where it can tell it, common practice, no source) and ±30 % for
+τ0 (τ0 of a real, sagging or eventful cell moves by that much with the fit window; the
+reference's own early-window and to-the-minimum fits differ as much).
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import pytest
+from real_reference import DATA_DIR, FACTS, file_summary
+
+from passivefit.analysis import analyze
+from passivefit.io import load
+from passivefit.model import schema as S
+
+REFUSED = {
+    "multichannelAbf1WithTags.abf": "a voltage-clamp recording",
+    "model_vc_step.abf": "a voltage-clamp recording",
+    "17o05027_ic_ramp.abf": "ramp",
+    "2020_07_29_0062.abf": "no current step",
+}
+
+
+def run_cli(*args):
+    return subprocess.run([sys.executable, "-m", "passivefit.cli", *map(str, args)],
+                          capture_output=True, text=True, timeout=300)
+
+
+def test_every_real_file_is_covered_here():
+    names = {p.name for p in DATA_DIR.glob("*.abf")}
+    assert names == set(REFUSED) | {f.file for f in FACTS.values()}
+
+
+@pytest.mark.parametrize("name", sorted(REFUSED))
+def test_what_is_not_a_current_clamp_step_is_refused_in_one_line(name):
+    proc = run_cli("analyze", DATA_DIR / name)
+    assert proc.returncode == 2
+    assert proc.stdout == ""
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in proc.stderr
+    assert lines[0].startswith("passivefit: error: ") and REFUSED[name] in lines[0]
+
+
+@pytest.fixture(scope="module")
+def results():
+    """Every step file analysed once, with the default settings."""
+    return {key: analyze(load(DATA_DIR / f.file)) for key, f in FACTS.items()}
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("key", sorted(FACTS))
+def test_passive_values_agree_with_the_independent_estimate(key, results):
+    ref = file_summary(key)
+    cell = results[key].to_dict()["cell"]
+    assert cell[S.N_SWEEPS_USED.key] >= 1
+    v_rest, r_in, tau0 = cell[S.V_REST.key], cell[S.R_IN.key], cell[S.TAU0.key]
+    assert ref.v_rest_mV.low - 2 <= v_rest <= ref.v_rest_mV.high + 2
+    assert 0.85 * ref.r_in_MOhm.low <= r_in <= 1.15 * ref.r_in_MOhm.high
+    assert 0.7 * ref.tau0_ms.low <= tau0 <= 1.3 * ref.tau0_ms.high
+
+
+@pytest.mark.slow
+def test_a_sagging_cell_with_two_steps_per_sweep(results):
+    """171116sh_0018: passive values from the first (variable) step's hyperpolarizing
+    sweeps; the fixed step later in the sweep is not part of it; firing sweeps are left out
+    with their reason; the sag is measured."""
+    result = results["171116sh_0018"]
+    fits = {f.index: f for f in result.sweeps}
+    assert all(abs(fits[k].step.onset_s - 0.14685) < 1e-3 for k in fits if fits[k].step)
+    assert all(fits[k].step.offset_s < 0.65 for k in fits if fits[k].step)
+    assert {k for k in fits if fits[k].accepted} <= {0, 1, 2, 3}
+    assert "action potential" in fits[8].reject_reason and not fits[8].accepted
+    cell = result.to_dict()["cell"]
+    assert cell[S.SAG_RATIO.key] < 0.9     # reference: sag clearly visible, ratio ≈ 0.75
+    codes = {f.code for f in result.flags}
+    assert {"cell.sag", "fit.sag_window", "cable.not_passive"} <= codes
+    assert cell[S.L_BS.key] is None and cell[S.L_CYL.key] is None
+
+
+@pytest.mark.slow
+def test_an_early_step_keeps_its_sign_and_the_drift_is_reported(results):
+    """18711001: −100 pA at 23.4 ms with only 23 ms of baseline before it; R_in rises
+    over the recording (reference: 197 MΩ in the first five sweeps, 228 MΩ in the last)."""
+    result = results["18711001"]
+    steps = [f.step for f in result.sweeps if f.step is not None]
+    assert all(s.amplitude_A == pytest.approx(-100e-12, rel=0.02) for s in steps)
+    assert all(abs(s.onset_s - 0.0234) < 1e-3 for s in steps)
+    cell = result.to_dict()["cell"]
+    assert 0.05 < cell[S.R_IN_CHANGE.key] / 100 < 0.3
+    assert -69.5 < cell[S.V_REST.key] < -66.5
+
+
+@pytest.mark.slow
+def test_events_are_cut_out_where_they_are(results):
+    """File_axon_5: real synaptic events on every sweep; the hyperpolarizing sweeps are
+    used with their events cut out, the firing ones are left out."""
+    result = results["File_axon_5"]
+    fits = {f.index: f for f in result.sweeps}
+    assert fits[0].accepted and fits[1].accepted
+    assert any(f.masked_s for f in fits.values() if f.accepted)
+    assert all(not fits[k].accepted for k in (6, 7, 8))
+
+
+@pytest.mark.slow
+def test_the_abf1_epoch_table_and_the_membrane_potential_channel(results):
+    """190619B_0003: the steps come from the ABF 1 epoch table (no --step), the flat
+    second mV channel is not taken, depolarizing sweeps that respond actively or fire are
+    left out."""
+    result = results["190619B_0003"]
+    assert "protocol.channel_chosen" in {f.code for f in result.flags}
+    amps = [round(f.step.amplitude_A * 1e12) for f in result.sweeps if f.step is not None]
+    assert amps[:2] == [-120, -60]
+    assert {f.index for f in result.sweeps if f.accepted} == {0, 1}
+
+
+@pytest.mark.slow
+def test_the_test_pulse_is_taken_with_the_recorded_current(results):
+    """18425108: the test pulse at 250–500 ms with the recorded current's −49 pA (on a
+    +79 pA holding, flagged), not the pulse train after it."""
+    result = results["18425108"]
+    step = result.sweeps[0].step
+    assert step.amplitude_A == pytest.approx(-49e-12, abs=2e-12)
+    assert step.onset_s == pytest.approx(0.25, abs=1e-3) and step.duration_s == pytest.approx(
+        0.25, abs=1e-3)
+    assert "protocol.holding_disagrees" in {f.code for f in result.flags}
+    assert result.sweeps[0].accepted
+
+
+def test_a_step_of_the_wrong_sign_is_one_line(tmp_path):
+    """A sign typo in --step (the sample's step is −40 pA): exit 2 and one line."""
+    from passivefit.samples import REPO_SAMPLES
+
+    proc = run_cli("analyze", REPO_SAMPLES / "LOL-2026-11-12-c3_CA3.abf", "--step", "100", "300",
+                   "40")
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr
+    assert "sign" in proc.stderr and len(proc.stderr.strip().splitlines()) == 1
