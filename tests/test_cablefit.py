@@ -189,7 +189,7 @@ def _filter_delay_s() -> float:
     """Low-frequency group delay of the simulator's 5 kHz Bessel filter, in s."""
     from scipy.signal import group_delay
 
-    from passivefit.simulate import _bessel
+    from passivefit.simulate.recording import _bessel
 
     return float(group_delay(_bessel(5_000, FS), w=[10.0], fs=FS)[1][0]) * DT
 

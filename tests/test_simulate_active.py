@@ -16,10 +16,10 @@ from passivefit.simulate import (
     SagConductance,
     Spiking,
     StepProtocol,
-    _active_responses,
     simulate_recording,
     truth_to_json,
 )
+from passivefit.simulate.active import _active_responses
 
 CELL = BallStick.from_electrotonic(0.02, 1.0, 5.0, 128e6)
 STEPS = StepProtocol(0.1, 0.5, (-150e-12, -100e-12, -50e-12, 50e-12))

@@ -54,18 +54,29 @@ def find_events(f: SweepFit, v: np.ndarray, fs: float, noise) -> list[tuple[floa
 
     seen = f.corrected(v, fs)
     parts = [residual(seen, f.fit, seg, fs) for seg in f.segments]
-    if "steady" in f.windows_s and "fit" in f.windows_s:
-        a = span(f.windows_s["fit"], fs, v.size)[1]
-        b = span(f.windows_s["steady"], fs, v.size)[1]
-        if b - a > 0.05 * fs:   # a step not fitted to its end (a sagging cell)
-            part = seen[a:b]
-            parts.append((np.arange(a, b) / fs, part - np.nanmedian(part)))
+    for a, b in _unfitted(f, fs, v.size):
+        part = seen[a:b]
+        parts.append((np.arange(a, b) / fs, part - np.nanmedian(part)))
     found = []
     for t, r in parts:
         for run in _finite_runs(r):   # scanned apart: a cut-out stretch is no edge
             found += [(float(t[run.start] + e.time_s), e.amplitude_V, e.z)
                       for e in events.detect_events(r[run], fs, noise)]
     return sorted(found)
+
+
+def _unfitted(f: SweepFit, fs: float, n: int) -> list[tuple[int, int]]:
+    """Sample spans the fits do not cover but the sweep's levels are read from: the
+    baseline, the rest of a step fitted only at its start, and the tail after the last
+    fit (the drift's end level); spans next to a step edge are left alone."""
+    w = f.windows_s
+    spans = [span(w["baseline"], fs, n)]
+    if "steady" in w and "fit" in w:
+        spans.append((span(w["fit"], fs, n)[1], span(w["steady"], fs, n)[1]))
+    last = max((span(w[k], fs, n)[1] for k in ("fit", "fit_off") if k in w), default=n)
+    if f.step is not None and f.step.offset / fs + 0.05 < last / fs:
+        spans.append((last, n))
+    return [(a, b) for a, b in spans if b - a > 0.05 * fs]
 
 
 def _finite_runs(r: np.ndarray) -> list[slice]:

@@ -41,13 +41,21 @@ def baseline_drift(v: np.ndarray, step: Step, fs: float, v_base: float,
     The drift is the level at the end of the sweep minus the baseline before the step; the
     slope joins the centres of the two windows. Measured only when the sweep goes on for
     at least TAIL_S after the step, so the decay is over in its last tenth; None otherwise.
+    Samples cut out (NaN, an event) are skipped: the end level is then that of the last
+    tenth's worth of samples still there in the tail's second half.
     """
     tail = v.size - step.offset
     if tail / fs < TAIL_S:
         return None
-    drift = steady.robust_level(v[v.size - tail // 10:]) - v_base
+    last = np.arange(v.size - tail // 10, v.size)
+    if not np.all(np.isfinite(v[last])):
+        late = np.arange(v.size - tail // 2, v.size)
+        last = late[np.isfinite(v[late])][-(tail // 10):]
+        if last.size < 10:
+            return None
+    drift = steady.robust_level(v[last]) - v_base
     t_ref = 0.5 * (base_window[0] + base_window[1]) / fs
-    t_end = (v.size - tail / 20) / fs
+    t_end = (last[0] + last[-1] + 1) / 2 / fs
     return drift, drift / (t_end - t_ref), t_ref
 
 
@@ -102,17 +110,20 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
     b0, b1 = span(guess["baseline"], fs, v.size)
     if b1 - b0 < 10:
         return SweepFit(index, False, "no baseline before the step", step)
-    v_base = steady.robust_level(v[b0:b1])
-    drift = baseline_drift(v, step, fs, v_base, (b0, b1))
+    seen = mask(v, masked_s, fs)    # what the levels, the fits and the steady state read
+    if np.count_nonzero(np.isfinite(seen[b0:b1])) < max(10, (b1 - b0) // 4):
+        seen = mask(v, [m for m in masked_s if m[1] < b0 / fs or m[0] > b1 / fs], fs)
+    v_base = steady.robust_level(seen[b0:b1])
+    drift = baseline_drift(seen, step, fs, v_base, (b0, b1))
     trend = (0.0, 0.0)
     if drift is not None and settings.correct_drift:
         trend = drift[1:]
         v = v - trend[0] * (np.arange(v.size) / fs - trend[1])
-        v_base = steady.robust_level(v[b0:b1])
+        seen = seen - trend[0] * (np.arange(v.size) / fs - trend[1])
+        v_base = steady.robust_level(seen[b0:b1])
     noise = steady.noise_sd(v[b0:b1])
     wins = resolve_windows(step, v.size, fs, w,
                            fit_start_after_artefact(v, step, fs, noise, settings))
-    seen = mask(v, masked_s, fs)    # what the fits and the steady state read
     fit, records, fit_error = _fit_sweep(seen, fs, step, wins, settings, tau_init)
 
     v_ss = dv = r_in = bridge = sag = rmse = r_peak = rebound = None
