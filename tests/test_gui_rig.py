@@ -507,3 +507,10 @@ def test_the_settings_panel_changes_the_analysis_and_is_saved(qtbot, open_window
     again = open_window(recording)
     assert again.settings_panel.components.currentText() == "1"
     assert again.settings_panel.area.value() == pytest.approx(20000.0)
+
+
+def test_before_a_recording_opens_no_window_is_drawn(qtbot, make_window):
+    window = make_window()
+    assert not any(r.isVisible() for r in window.trace.regions.values())
+    assert not any(box.isEnabled() for pair in window.windows_bar.boxes.values()
+                   for box in pair)

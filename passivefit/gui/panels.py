@@ -220,7 +220,7 @@ class CellCard(QtWidgets.QFrame):
         if cell.get(S.CI_METHOD.key):
             bits.append(f"± = 95 % CI ({cell[S.CI_METHOD.key]})")
         if cell.get(S.R_IN_METHOD.key):
-            bits.append(f"R_in by {cell[S.R_IN_METHOD.key]}")
+            bits.append(f"R_in by {cell[S.R_IN_METHOD.key]}".replace("-", "\u2011"))
         if busy:
             bits.append("updating…")
         self.footer.setText(" · ".join(bits))
@@ -292,6 +292,8 @@ def note_text(message: str, value) -> tuple[str, str]:
     if found is None:
         return message, f"({number})"
     what = found.group(1)
+    if what.endswith("?"):           # a question about the cause, not the value's name
+        return message, f"({number})"
     message = message[:found.start()]
     if len(what) <= 4 or what in ("MΩ", "ms", "mV", "pA", "pF", "s"):
         return message, f"— {number} {what}"

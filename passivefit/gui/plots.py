@@ -123,6 +123,7 @@ class TraceView(QtWidgets.QWidget):
         self.regions: dict[str, pg.LinearRegionItem] = {}
         for name, tint in theme.REGION_TINT.items():
             self.regions[name] = self._make_region(name, tint)
+            self.regions[name].setVisible(False)      # shown once a sweep has its windows
         self._resid = [self.resid.plot(pen=pg.mkPen(theme.TERRACOTTA, width=1)) for _ in range(2)]
         for curve in self._resid:
             _light(curve)
@@ -291,8 +292,9 @@ class SemilogView(QtWidgets.QWidget):
         super().__init__(parent)
         self.plot = new_plot("Semilog", "time from the step edge (ms)", "|V − V∞| (mV)")
         self.plot.setLogMode(x=False, y=True)
-        self.legend = self.plot.getPlotItem().addLegend(offset=(-8, 8),
-                                                        labelTextColor=theme.INK)
+        self.legend = self.plot.getPlotItem().addLegend(
+            offset=(-8, 8), labelTextColor=theme.INK,
+            brush=pg.mkBrush(255, 255, 255, 215))      # readable over the late points
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
         layout.addWidget(self.plot)

@@ -39,6 +39,15 @@ REJECT_REASONS = ("noisy baseline", "spontaneous event", "unstable access or dri
 SHEET_FILTER = "Excel workbook (*.xlsx);;CSV tables (*.csv);;JSON (*.json)"
 
 
+def fitting_size(width: int, height: int) -> tuple[int, int]:
+    """(width, height) made small enough for the screen's free area (1280×800 screens)."""
+    screen = QtGui.QGuiApplication.primaryScreen()
+    if screen is None:
+        return width, height
+    free = screen.availableGeometry()
+    return min(width, free.width()), min(height, free.height())
+
+
 def write_problem(path, exc: Exception) -> str:
     """A failed write in words: where, and what the system said."""
     if isinstance(exc, OSError):
@@ -118,7 +127,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self._build()
         self._menus()
         self._shortcuts()
-        self.resize(1400, 900)
+        self.resize(*fitting_size(1400, 900))
 
     # ------------------------------------------------------------------ layout
     def _build(self) -> None:
@@ -215,6 +224,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.statusBar().addPermanentWidget(self.progress)
         self.statusBar().addPermanentWidget(QtWidgets.QLabel("F1: keys"))
         self.help = HelpOverlay(central)
+        self.windows_bar.show_windows({})           # no recording yet: nothing to type
 
         self.trace.region_moved.connect(self._preview_window)
         self.trace.region_finished.connect(self._keep_window)
