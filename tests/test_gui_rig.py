@@ -486,8 +486,13 @@ def test_right_arrow_after_typing_in_a_window_box_goes_to_the_next_sweep(
 
 # ----------------------------------------------------------------------------- settings panel
 def test_the_settings_panel_changes_the_analysis_and_is_saved(qtbot, open_window, recording):
+    from PySide6.QtCore import Qt
+
     window = open_window(recording)
     panel = window.settings_panel
+    window.activateWindow()
+    qtbot.keyClick(window, Qt.Key.Key_S)
+    assert window.tabs.currentWidget() is panel
     panel.components.setCurrentText("1")
     panel.bootstrap.setValue(5)
     panel.area.setValue(20000.0)

@@ -153,8 +153,16 @@ class SettingsPanel(QtWidgets.QWidget):
 
     def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
         super().__init__(parent)
-        form = QtWidgets.QFormLayout(self)
-        form.setContentsMargins(10, 8, 10, 8)
+        from passivefit.gui.panels import card
+
+        frame, inner = card("Analysis settings of this recording")
+        outer = QtWidgets.QVBoxLayout(self)
+        outer.setContentsMargins(0, 0, 0, 0)
+        outer.addWidget(frame)
+        form = QtWidgets.QFormLayout()
+        inner.addLayout(form)
+        inner.addStretch(1)
+        form.setContentsMargins(0, 4, 0, 0)
         form.setLabelAlignment(Qt.AlignmentFlag.AlignRight)
         self.filter = self._number(0, 1e6, 0, " Hz", "from the file",
                                    "corner of the amplifier's low-pass filter (its delay shifts "

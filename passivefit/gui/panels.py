@@ -538,6 +538,8 @@ SHORTCUTS = (
     ("R", "reject the sweep (asks a reason)"),
     ("C", "clear the decision (automatic tests decide)"),
     ("W", "window edits: this sweep only / all sweeps"),
+    ("S", "the analysis settings"),
+    ("Ctrl+T", "set the step (drawn over the traces)"),
     ("F5", "re-run the analysis"),
     ("Z", "zoom out to all data"),
     ("Ctrl+Z / Ctrl+Shift+Z", "undo / redo"),

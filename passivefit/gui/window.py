@@ -254,7 +254,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
         edit.addSeparator()
         self._action(edit, "Windows back to automatic", "", self._reset_windows)
         self._action(edit, "Set the step…", "Ctrl+T", self._ask_set_step)
-        self._action(edit, "Analysis settings", "Ctrl+,",
+        self._action(edit, "Analysis settings", "S",
                      lambda: self.tabs.setCurrentWidget(self.settings_panel))
         review = bar.addMenu("&Review")
         self._action(review, "Next sweep", "Right", lambda: self.step_sweep(1))
