@@ -262,6 +262,32 @@ def test_a_typed_step_is_saved_at_once_restored_and_shown(qtbot, open_window, tm
     assert saved["amplitude_A"] == pytest.approx(-30e-12)
     wait_idle(qtbot, again)
     assert again.state.result.sweeps[0].step.amplitude_A == pytest.approx(-30e-12)
+    again.undo()                                   # the step goes back with its sweeps
+    assert again.state.settings.step == step
+    assert again.state.steps[0].amplitude_A == pytest.approx(-40e-12)
+    assert "step typed: -40 pA" in again.header.meta.text()
+    wait_idle(qtbot, again)
+
+
+def test_a_step_given_in_the_dialog_is_saved_before_any_other_change(qtbot, tmp_path):
+    from PySide6 import QtCore
+
+    from passivefit.gui.window import ReviewWindow
+    from passivefit.io.recording import StepSpec
+
+    path = Path(shutil.copy(CA3_NO_COMMAND, tmp_path / CA3_NO_COMMAND.name))
+    store = QtCore.QSettings(str(tmp_path / "gui.ini"), QtCore.QSettings.Format.IniFormat)
+    window = ReviewWindow(SETTINGS, store=store, interactive=True)
+    qtbot.addWidget(window)
+    asked = []
+    window._ask_step = lambda recording, step: asked.append(step) or StepSpec(
+        0.1, 0.3, -40e-12, 0.0)
+    assert window.open_paths([path])
+    assert asked == [None]
+    review = Path(window.state.review_file)
+    assert review.exists()
+    assert json.loads(review.read_text())["settings"]["step"]["amplitude_A"] == -40e-12
+    wait_idle(qtbot, window)
 
 
 def test_the_step_dialog_draws_the_step_it_will_return(qtbot, recording):

@@ -116,6 +116,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.state: ReviewState | None = None
         self.last_error = ""
         self._previewed = False
+        self._shown_step = None
         self.failed_settings: Settings | None = None
         self.runner = AnalysisRunner(self)
         self.runner.finished.connect(self._analysis_done)
@@ -339,6 +340,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
             self.runner.wait()
             self.state.save_position()
         self.state = state
+        self._shown_step = state.settings.step
         state.current_changed.connect(self._on_current)
         state.sweep_refitted.connect(self._on_refit)
         state.settings_changed.connect(self._on_settings)
@@ -384,7 +386,8 @@ class ReviewWindow(QtWidgets.QMainWindow):
     def _on_settings(self, _settings) -> None:
         self.header.show_recording(self.state, self.position, len(self.paths))
         self.settings_panel.show_settings(self.state.settings)
-        self.trace.set_recording(self.state) if self._step_changed() else None
+        if self._step_changed():
+            self.trace.set_recording(self.state)     # new step edges and windows
         self.table.show_state(self.state)
         self.trace.set_statuses(self.state)
         self.trace.show_sweep(self.state)
@@ -618,7 +621,8 @@ class ReviewWindow(QtWidgets.QMainWindow):
         return True
 
     def _step_changed(self) -> bool:
-        shown = getattr(self, "_shown_step", None)
+        """True once after the step in use changed (undo and redo included)."""
+        shown = self._shown_step
         self._shown_step = self.state.settings.step
         return shown != self.state.settings.step
 
