@@ -1,8 +1,9 @@
 """`passivefit gui [PATH ...]`: open the review window (on the bundled sample without paths).
 
 Without a display (Linux with neither DISPLAY nor WAYLAND_DISPLAY, and no
-QT_QPA_PLATFORM chosen) Qt would abort the process, so the command says so in one line
-and prints the analysis as a table instead. `--snapshot FILE.png` needs no display: it
+QT_QPA_PLATFORM chosen), or when Qt's platform plugin cannot load (missing system
+libraries: Qt would abort the process), the command says so in one line and prints the
+analysis as a table instead. `--snapshot FILE.png` needs no display: it
 renders the window offscreen at 1400×900 and exits.
 """
 
@@ -45,6 +46,14 @@ def run(args: argparse.Namespace) -> int:
               "window; here is the analysis as text (use --snapshot FILE.png for a picture)",
               file=sys.stderr)
         return _print_tables(paths, settings)
+    else:
+        from passivefit.gui.platform import window_problem
+
+        problem = window_problem()
+        if problem is not None:
+            print(f"passivefit: no window: {problem}; here is the analysis as text",
+                  file=sys.stderr)
+            return _print_tables(paths, settings)
     from passivefit.cli import EXIT_BAD_INPUT, error_line
     from passivefit.gui.app import WindowError, run_window
 

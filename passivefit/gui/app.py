@@ -86,7 +86,8 @@ def run_window(paths, settings, snapshot: str | Path | None = None) -> int:
         window.open_paths(paths)
         status = app.exec()
     else:
-        window = ReviewWindow(settings, interactive=False, synchronous=True, autosave=False)
+        window = ReviewWindow(settings, interactive=False, synchronous=True, autosave=False,
+                              remember=False)
         window.resize(*SNAPSHOT_SIZE)
         status = 0
         if window.open_paths(paths):

@@ -42,29 +42,67 @@ def fmt(x, digits: int = 4) -> str:
     return "—" if x is None else f"{x:.{digits}g}"
 
 
+def fixed(x, decimals: int) -> str:
+    """A number with a fixed count of decimals (a table column reads evenly), or —."""
+    return "—" if x is None else f"{x:.{decimals}f}".replace("-", "−")
+
+
+# the window's own words for quantities whose short names mislead beside their neighbours:
+# C0 and C1 are amplitudes (mV) of the exponential components, not capacitances
+CARD_LABELS = {S.C0.key: "C0 amplitude", S.C1.key: "C1 amplitude",
+               S.C_TAU.key: "C from τ0/R_in", S.C_TOTAL.key: "C total (cable)"}
+
+
+def bridge_applied(result) -> bool:
+    """True when the bridge jump was taken out of R_in (shown in bold only then).
+
+    Uses the result's ``bridge_applied`` when it has one; otherwise the same test the
+    analysis applies: correction on, the jump beyond its own CI, two components and L
+    resolved, and no ``cell.bridge_uncertain`` flag.
+    """
+    cell = result.cell.to_dict()
+    if "bridge_applied" in cell:
+        return bool(cell["bridge_applied"])
+    bridge, ci = cell.get(S.BRIDGE.key), cell.get(S.BRIDGE_CI.key)
+    if not result.settings.correct_bridge or bridge is None or ci is None:
+        return False
+    if any(f.code == S.CELL_BRIDGE_UNCERTAIN.code for f in result.flags):
+        return False
+    l_bs, l_ci = cell.get(S.L_BS.key), cell.get(S.L_CI.key)
+    return (abs(bridge) > ci and (cell.get(S.N_COMPONENTS.key) or 0) >= 2
+            and l_bs is not None and l_ci is not None and l_ci < l_bs)
+
+
 # ----------------------------------------------------------------------------- header
 class Header(QtWidgets.QWidget):
-    """File name, what the file is, where it sits in the list, and a one-phrase verdict."""
+    """File name and verdict chip on one row; below, what the file is and the step in use.
+
+    The subtitle has the whole width to itself and wraps rather than being cut, so the
+    chip never hides it.
+    """
 
     def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
         super().__init__(parent)
         self.name = QtWidgets.QLabel("no recording open")
         self.name.setObjectName("fileName")
+        self.name.setSizePolicy(QtWidgets.QSizePolicy.Policy.Ignored,
+                                QtWidgets.QSizePolicy.Policy.Preferred)
         self.meta = QtWidgets.QLabel("")
         self.meta.setObjectName("fileMeta")
-        for label in (self.name, self.meta):
-            label.setSizePolicy(QtWidgets.QSizePolicy.Policy.Ignored,
-                                QtWidgets.QSizePolicy.Policy.Preferred)
+        self.meta.setWordWrap(True)
+        self.meta.setSizePolicy(QtWidgets.QSizePolicy.Policy.Ignored,
+                                QtWidgets.QSizePolicy.Policy.Minimum)
         self.verdict = QtWidgets.QLabel("")
         self.verdict.setObjectName("verdict")
-        text = QtWidgets.QVBoxLayout()
-        text.setSpacing(0)
-        text.addWidget(self.name)
-        text.addWidget(self.meta)
-        layout = QtWidgets.QHBoxLayout(self)
+        top = QtWidgets.QHBoxLayout()
+        top.setSpacing(10)
+        top.addWidget(self.name, 1)
+        top.addWidget(self.verdict, 0, Qt.AlignmentFlag.AlignVCenter)
+        layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(4, 0, 4, 0)
-        layout.addLayout(text, 1)
-        layout.addWidget(self.verdict, 0, Qt.AlignmentFlag.AlignVCenter)
+        layout.setSpacing(0)
+        layout.addLayout(top)
+        layout.addWidget(self.meta)
 
     def show_recording(self, state, position: int, count: int) -> None:
         rec = state.recording
@@ -77,7 +115,9 @@ class Header(QtWidgets.QWidget):
             parts.append("simulated")
         if count > 1:
             parts.append(f"recording {position + 1} of {count}")
+        parts.append(step_text(state))
         self.name.setText(QtCore.QFileInfo(rec.path).fileName())
+        self.name.setToolTip(rec.path)
         self.meta.setText("  ·  ".join(parts))
 
     def show_verdict(self, result, busy: bool) -> None:
@@ -100,6 +140,21 @@ class Header(QtWidgets.QWidget):
         self.verdict_kind = kind
 
 
+def step_text(state) -> str:
+    """The step in use, in words: typed by a person (settings) or read from the file."""
+    typed = state.settings.step
+    if typed is not None:
+        inc = f", {typed.increment_A / 1e-12:+g} pA per sweep" if typed.increment_A else ""
+        return (f"step typed: {typed.amplitude_A / 1e-12:+g} pA{inc} at {typed.onset_s * 1e3:g} "
+                f"ms for {typed.duration_s * 1e3:g} ms")
+    step = state.steps.get(state.current)
+    if step is None:
+        return "no step in this sweep"
+    duration_ms = (step.offset - step.onset) / state.fs * 1e3
+    return (f"{step.kind} from the file: {step.amplitude_A / 1e-12:+.4g} pA at "
+            f"{step.onset_s * 1e3:.4g} ms for {duration_ms:.4g} ms")
+
+
 # ----------------------------------------------------------------------------- cell
 class CellCard(QtWidgets.QFrame):
     """The cell's values with their 95 % CIs and units, two columns of quantities."""
@@ -118,8 +173,9 @@ class CellCard(QtWidgets.QFrame):
         rows = (len(S.SUMMARY) + 1) // 2
         for k, q in enumerate(S.SUMMARY):
             row, col = k % rows, (k // rows) * 3
-            quantity = QtWidgets.QLabel(q.label)
+            quantity = QtWidgets.QLabel(CARD_LABELS.get(q.key, q.label))
             quantity.setObjectName("quantity")
+            quantity.setToolTip(getattr(q, "title", "") or q.label)
             value = QtWidgets.QLabel("—")
             value.setObjectName("value")
             value.setTextFormat(Qt.TextFormat.RichText)
@@ -133,7 +189,8 @@ class CellCard(QtWidgets.QFrame):
             self.values[q.key] = value
         grid.setColumnStretch(1, 1)
         grid.setColumnStretch(4, 1)
-        grid.setColumnMinimumWidth(2, 26)
+        grid.setColumnMinimumWidth(2, 24)
+        grid.setColumnMinimumWidth(5, 24)
         self.footer = QtWidgets.QLabel("")
         self.footer.setObjectName("unit")
         self.footer.setWordWrap(True)
@@ -146,7 +203,15 @@ class CellCard(QtWidgets.QFrame):
             if q.ci and cell.get(q.ci) is not None and cell.get(q.key) is not None:
                 text += (f"<span style='font-weight:400; font-size:9pt; color:{theme.MUTED}'>"
                          f" ± {fmt(cell[q.ci], 2)}</span>")
-            self.values[q.key].setText(text)
+            label = self.values[q.key]
+            label.setText(text)
+            label.setStyleSheet("")
+            label.setToolTip("")
+        if result is not None and cell.get(S.BRIDGE.key) is not None \
+                and not bridge_applied(result):
+            label = self.values[S.BRIDGE.key]
+            label.setStyleSheet(f"font-weight: 400; color: {theme.MUTED};")
+            label.setToolTip("measured, but not taken out of R_in")
         if result is None:
             self.footer.setText("")
             return
@@ -155,7 +220,7 @@ class CellCard(QtWidgets.QFrame):
         if cell.get(S.CI_METHOD.key):
             bits.append(f"± = 95 % CI ({cell[S.CI_METHOD.key]})")
         if cell.get(S.R_IN_METHOD.key):
-            bits.append(f"R_in by {cell[S.R_IN_METHOD.key]}")
+            bits.append(f"R_in by {cell[S.R_IN_METHOD.key]}".replace("-", "\u2011"))
         if busy:
             bits.append("updating…")
         self.footer.setText(" · ".join(bits))
@@ -193,37 +258,76 @@ class NotesPanel(QtWidgets.QFrame):
             return
         items = []
         for flag in result.flags:
-            message = flag.message
+            message = plain_message(flag.message)
             if message[:1].isascii():        # "τ0 ..." must not become "Τ0 ..."
                 message = message[:1].upper() + message[1:]
-            value = "" if flag.value is None else f" <span style='color:{theme.MUTED}'>" \
-                                                  f"({flag.value:.3g})</span>"
+            message, value = note_text(message, flag.value)
+            if value:
+                value = f" <span style='color:{theme.MUTED}'>{value}</span>"
             items.append(f"<p style='margin:0 0 5px 0'>• {message}{value}</p>")
         self.text.setText("".join(items))
+
+
+def plain_message(message: str) -> str:
+    """A flag message fit to show: an internal detail quoting code (a `name` in
+    backticks, as a numerics error reads) is left out, keeping the words before it."""
+    if "`" not in message:
+        return message
+    head = message.split(": ", 1)[0]
+    return f"{head} (an internal check of the numerics failed; try a later fit start)"
+
+
+def note_text(message: str, value) -> tuple[str, str]:
+    """A flag's message and its value in words: "… R_in (MΩ)", 8.15 → ("… R_in", "8.15 MΩ").
+
+    A message ending in a parenthesis names what the value is ("(MΩ)", "(relative
+    change)"); it is moved beside the number instead of standing before "(8.15)".
+    """
+    import re
+
+    if value is None:
+        return message, ""
+    number = f"{value:.3g}".replace("-", "−")
+    found = re.search(r"\s*\(([^()]{1,40})\)$", message)
+    if found is None:
+        return message, f"({number})"
+    what = found.group(1)
+    if what.endswith("?"):           # a question about the cause, not the value's name
+        return message, f"({number})"
+    message = message[:found.start()]
+    if len(what) <= 4 or what in ("MΩ", "ms", "mV", "pA", "pF", "s"):
+        return message, f"— {number} {what}"
+    return message, f"— {what}: {number}"
 
 
 # ----------------------------------------------------------------------------- windows
 class WindowsBar(QtWidgets.QFrame):
     """Start and end (ms from the step onset) of each window, to read and to type.
 
-    Emits ``edited(name, start_ms, end_ms)`` when a person types a value. The scope
-    check box and the reset button sit in the trace card's title row (``tools``).
+    Emits ``edited(name, start_ms, end_ms)`` when a person types a value, and
+    ``leave(delta)`` when → (at the end of a box's text) or ← (at its start) asks for
+    the next or previous sweep: the value is taken and the keys go back to the review.
+    Enter takes the value and gives the keys back too. The scope check box and the reset
+    button sit in the trace card's title row (``tools``).
     """
 
     edited = QtCore.Signal(str, float, float)
     reset = QtCore.Signal()
+    leave = QtCore.Signal(int)
+    done = QtCore.Signal()
 
     def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
         super().__init__(parent)
         layout = QtWidgets.QHBoxLayout(self)
         layout.setContentsMargins(4, 4, 4, 2)
-        layout.setSpacing(5)
-        lead = QtWidgets.QLabel("ms from the step:")
-        lead.setObjectName("unit")
-        layout.addWidget(lead)
+        layout.setSpacing(4)
+        self.lead = QtWidgets.QLabel("ms from step")
+        self.lead.setObjectName("unit")
+        self.lead.setToolTip("window edges in ms from the step onset (negative: before it)")
+        layout.addWidget(self.lead)
         self.boxes: dict[str, tuple[QtWidgets.QDoubleSpinBox, QtWidgets.QDoubleSpinBox]] = {}
         for name in ("baseline", "steady", "fit"):
-            layout.addSpacing(8)
+            layout.addSpacing(6)
             dot = QtWidgets.QLabel("■")
             dot.setStyleSheet(f"color: {theme.REGION_LINE[name]};")
             layout.addWidget(dot)
@@ -256,9 +360,31 @@ class WindowsBar(QtWidgets.QFrame):
         box.setKeyboardTracking(False)
         box.setButtonSymbols(QtWidgets.QAbstractSpinBox.ButtonSymbols.NoButtons)
         box.setAlignment(Qt.AlignmentFlag.AlignRight)
-        box.setFixedWidth(64)
+        box.setFixedWidth(58)
         box.valueChanged.connect(lambda _v, n=name: self._typed(n))
+        box.installEventFilter(self)
         return box
+
+    def eventFilter(self, obj, event) -> bool:  # noqa: N802 (Qt name)
+        if isinstance(obj, QtWidgets.QAbstractSpinBox) and event.type() in (
+                QtCore.QEvent.Type.KeyPress, QtCore.QEvent.Type.ShortcutOverride):
+            key, edit = event.key(), obj.lineEdit()
+            at_end = edit.cursorPosition() >= len(edit.text()) or edit.hasSelectedText()
+            at_start = edit.cursorPosition() == 0 or edit.hasSelectedText()
+            delta = 1 if key == Qt.Key.Key_Right and at_end else \
+                -1 if key == Qt.Key.Key_Left and at_start else 0
+            enter = key in (Qt.Key.Key_Return, Qt.Key.Key_Enter)
+            if (delta or enter) and event.type() == QtCore.QEvent.Type.KeyPress:
+                obj.interpretText()          # take what was typed (emits `edited`)
+                obj.clearFocus()
+                self.done.emit()
+                if delta:
+                    self.leave.emit(delta)
+                return True
+            if delta and event.type() == QtCore.QEvent.Type.ShortcutOverride:
+                event.accept()               # the box handles it (above), not the menu
+                return True
+        return super().eventFilter(obj, event)
 
     def _typed(self, name: str) -> None:
         start, end = (b.value() for b in self.boxes[name])
@@ -279,7 +405,10 @@ class WindowsBar(QtWidgets.QFrame):
 
 # ----------------------------------------------------------------------------- sweeps
 SWEEP_COLUMNS = (*(f"{q.label}\n{q.unit}".strip() for q in S.SWEEP_TABLE), "kept")
-DIGITS = {S.TAU1: 3, S.RMSE: 2}
+# decimals per column, the same on every row
+DECIMALS = {S.STEP.key: 0, S.V_REST.key: 2, S.R_IN.key: 1, S.TAU0.key: 2, S.TAU1.key: 2,
+            S.RMSE.key: 3}
+OWN_WINDOWS_MARK = "◆"
 
 
 class SweepTable(QtWidgets.QTableWidget):
@@ -330,9 +459,13 @@ class SweepTable(QtWidgets.QTableWidget):
         fit = state.sweep_fit(index)
         d = fit.to_dict() if fit is not None else {}
         status = state.status(index)
-        cells = [str(index), *(fmt(d.get(q.key), DIGITS.get(q, 4)) for q in S.SWEEP_TABLE[1:]),
+        own = state.has_own_windows(index)
+        cells = [f"{OWN_WINDOWS_MARK} {index}" if own else str(index),
+                 *(fixed(d.get(q.key), DECIMALS.get(q.key, 2)) for q in S.SWEEP_TABLE[1:]),
                  _status_text(status)]
         back = None
+        if own:
+            back = QtGui.QColor(theme.ROW_OWN_WINDOWS)
         if status is not None and not status.accepted:
             back = QtGui.QColor(theme.ROW_REJECTED)
         elif status is not None and status.by_hand:
@@ -349,7 +482,14 @@ class SweepTable(QtWidgets.QTableWidget):
             item.setText(text)
             item.setBackground(back if back is not None else QtGui.QBrush())
             item.setForeground(QtGui.QColor(theme.MUTED if muted else theme.INK))
-            item.setToolTip(status.reason if muted else "")
+            tips = [status.reason] if muted else []
+            if own:
+                tips.append("this sweep uses its own windows")
+            item.setToolTip("; ".join(tips))
+            if col == 0:
+                font = item.font()
+                font.setBold(own)
+                item.setFont(font)
 
     def select(self, index: int) -> None:
         row = self._rows.get(index)
@@ -371,14 +511,23 @@ def _status_text(status) -> str:
     return ("yes" if status.accepted else "no") + (" (you)" if status.by_hand else "")
 
 
-def status_sentence(index: int, status) -> str:
-    """One line about a sweep's fate, e.g. "Sweep 4 is left out (you): noisy baseline"."""
+def status_sentence(index: int, status, *, fitted: bool = False, own_windows: bool = False
+                    ) -> str:
+    """One line about a sweep's fate, e.g. "Sweep 4 is left out by you: noisy baseline".
+
+    `fitted`: the sweep has a fit of its own while the cell analysis has not decided
+    yet; `own_windows`: the sweep uses windows of its own.
+    """
+    own = " · own windows (◆)" if own_windows else ""
     if status is None:
-        return f"Sweep {index}: not analysed yet"
+        if fitted:
+            return f"Sweep {index} is fitted; the cell analysis decides which sweeps to " \
+                   f"keep…{own}"
+        return f"Sweep {index}: waiting for the analysis{own}"
     who = "by you" if status.by_hand else "by the automatic tests"
     if status.accepted:
-        return f"Sweep {index} is kept ({who})"
-    return f"Sweep {index} is left out {who}: {status.reason}"
+        return f"Sweep {index} is kept ({who}){own}"
+    return f"Sweep {index} is left out {who}: {status.reason}{own}"
 
 
 # ----------------------------------------------------------------------------- help
@@ -389,6 +538,8 @@ SHORTCUTS = (
     ("R", "reject the sweep (asks a reason)"),
     ("C", "clear the decision (automatic tests decide)"),
     ("W", "window edits: this sweep only / all sweeps"),
+    ("S", "the analysis settings"),
+    ("Ctrl+T", "set the step (drawn over the traces)"),
     ("F5", "re-run the analysis"),
     ("Z", "zoom out to all data"),
     ("Ctrl+Z / Ctrl+Shift+Z", "undo / redo"),

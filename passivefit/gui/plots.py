@@ -20,6 +20,9 @@ from passivefit.model import schema as S
 MS, MV, PA = 1e-3, 1e-3, 1e-12
 STAGE_COLOURS = (theme.TEAL, theme.TERRACOTTA, "#7a5ea8")
 MAX_SEMILOG_POINTS = 500
+# stacking of the windows (higher on top): the steady-state window lies inside the fit
+# window, so it must be above it to take the mouse there; the fit keeps its free start
+REGION_Z = {"fit_off": -13, "fit": -12, "baseline": -10, "steady": -9}
 
 
 def new_plot(title: str = "", x_label: str = "", y_label: str = "", *,
@@ -53,9 +56,15 @@ def set_title(widget: pg.PlotWidget, text: str) -> None:
     widget.getPlotItem().setTitle(text, color=theme.MUTED, size="9pt")
 
 
+WAITING = "analysing…"
+
+
 def _note(widget: pg.PlotWidget, text: str) -> pg.TextItem:
-    """A grey centred message inside an empty plot."""
+    """A grey centred message inside an empty plot, wrapped to the plot's width."""
     item = pg.TextItem(text, color=theme.MUTED, anchor=(0.5, 0.5))
+    item.setTextWidth(max(60.0, widget.getPlotItem().getViewBox().width() - 12.0))
+    item.textItem.document().setDefaultTextOption(
+        pg.QtGui.QTextOption(QtCore.Qt.AlignmentFlag.AlignCenter))
     widget.addItem(item, ignoreBounds=True)
     item.setPos(0.5, 0.5)
     widget.getPlotItem().getViewBox().setRange(xRange=(0, 1), yRange=(0, 1), padding=0)
@@ -114,6 +123,7 @@ class TraceView(QtWidgets.QWidget):
         self.regions: dict[str, pg.LinearRegionItem] = {}
         for name, tint in theme.REGION_TINT.items():
             self.regions[name] = self._make_region(name, tint)
+            self.regions[name].setVisible(False)      # shown once a sweep has its windows
         self._resid = [self.resid.plot(pen=pg.mkPen(theme.TERRACOTTA, width=1)) for _ in range(2)]
         for curve in self._resid:
             _light(curve)
@@ -131,7 +141,7 @@ class TraceView(QtWidgets.QWidget):
         hover = pg.mkBrush(*tint[:3], min(255, tint[3] + 40))
         region = pg.LinearRegionItem(brush=pg.mkBrush(*tint), pen=line_pen,
                                      hoverBrush=hover if movable else None, movable=movable)
-        region.setZValue(-10)
+        region.setZValue(REGION_Z[name])
         for line in region.lines:
             line.setHoverPen(pg.mkPen(theme.REGION_LINE[name], width=3))
         # the steady-state label sits lower: its window is narrow and the decay fit's
@@ -203,8 +213,9 @@ class TraceView(QtWidgets.QWidget):
         self._onset_ms = step.onset_s / MS
         offset_ms, end_ms = step.offset / state.fs / MS, v.size / state.fs / MS
         during = (self._onset_ms, offset_ms)
+        floor = state.fit_start_floor_ms() + self._onset_ms   # the artefact's end
         bounds = {"baseline": (0.0, self._onset_ms), "steady": during,
-                  "fit": during if step.kind == "step" else (offset_ms, end_ms)}
+                  "fit": (floor, offset_ms) if step.kind == "step" else (floor, end_ms)}
         if not self.dragging:
             self._updating = True
             try:
@@ -281,8 +292,9 @@ class SemilogView(QtWidgets.QWidget):
         super().__init__(parent)
         self.plot = new_plot("Semilog", "time from the step edge (ms)", "|V − V∞| (mV)")
         self.plot.setLogMode(x=False, y=True)
-        self.legend = self.plot.getPlotItem().addLegend(offset=(-8, 8),
-                                                        labelTextColor=theme.INK)
+        self.legend = self.plot.getPlotItem().addLegend(
+            offset=(-8, 8), labelTextColor=theme.INK,
+            brush=pg.mkBrush(255, 255, 255, 215))      # readable over the late points
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
         layout.addWidget(self.plot)
@@ -295,7 +307,8 @@ class SemilogView(QtWidgets.QWidget):
         if peel is None or not peel.residual_log:
             set_title(self.plot, "Semilog")
             self.plot.setLogMode(x=False, y=False)
-            _note(self.plot, "no semilog view: the transient could not be peeled")
+            _note(self.plot, WAITING if result is None else
+                  "no semilog view:\nthe transient could not be peeled")
             return
         set_title(self.plot, f"peel of the {result.average.amplitude_A / PA:+.0f} pA average")
         t_end = min(float(peel.residual_log[0][0][-1]), 1.25 * peel.lines[0].t_end)
@@ -347,7 +360,7 @@ class ScanView(QtWidgets.QWidget):
         for plot, key, q in ((self.tau0, "tau0", S.TAU0), (self.tau1, "tau1", S.TAU1)):
             plot.clear()
             if scan is None or not np.any(np.isfinite(scan[f"{key}_s"])):
-                _note(plot, f"no {key.replace('tau', 'τ')} scan")
+                _note(plot, WAITING if result is None else f"no {key.replace('tau', 'τ')} scan")
                 continue
             x = scan["start_s"] / MS
             y = scan[f"{key}_s"] / MS
@@ -383,7 +396,12 @@ class VIView(QtWidgets.QWidget):
         vi = result.vi if result is not None else None
         if vi is None:
             set_title(self.plot, "V–I")
-            _note(self.plot, "brief pulses reach no steady state:\nno V–I relation")
+            if result is None:
+                _note(self.plot, WAITING)
+            elif all(f.step is None or f.step.kind == "pulse" for f in result.sweeps):
+                _note(self.plot, "brief pulses reach no steady state:\nno V–I relation")
+            else:
+                _note(self.plot, "no V–I relation:\ntoo few sweeps with a steady state")
             return
         i_pa, dv_mv = vi["current_A"] / PA, vi["dv_V"] / MV
         self.plot.plot(i_pa, dv_mv, pen=None, symbol="o", symbolSize=7, symbolPen=None,
@@ -392,11 +410,10 @@ class VIView(QtWidgets.QWidget):
         x = np.array([min(0.0, i_pa.min()), max(0.0, i_pa.max())])
         if slope is not None:
             line = (slope.slope_ohm * x * PA + slope.intercept_V) / MV
-            set_title(self.plot, f"V–I · slope {slope.slope_ohm / 1e6:.4g} MΩ, "
-                                 f"r² {slope.r2:.4f}")
+            set_title(self.plot, f"slope {slope.slope_ohm / 1e6:.4g} MΩ · r² {slope.r2:.4f}")
         else:   # one amplitude: the line through the origin is ΔV/ΔI
             r_in = float(np.sum(vi["dv_V"] * vi["current_A"]) / np.sum(vi["current_A"] ** 2))
             line = r_in * x * PA / MV
-            set_title(self.plot, f"one amplitude · ΔV/ΔI {r_in / 1e6:.4g} MΩ")
+            set_title(self.plot, f"one step · ΔV/ΔI {r_in / 1e6:.4g} MΩ")
         self.plot.plot(x, line, pen=pg.mkPen(theme.TERRACOTTA, width=1.6))
         self.plot.getPlotItem().getViewBox().autoRange(padding=0.1)

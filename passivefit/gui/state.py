@@ -221,6 +221,7 @@ class ReviewState:
     analysis_needed(Settings)    the cell must be re-analysed with these settings
     result_changed(RecordingResult)
     saved(Path)
+    save_failed(str)             the review file could not be written (the message says why)
     """
 
     def __init__(self, recording: Recording, settings: Settings | None = None, *,
@@ -250,6 +251,7 @@ class ReviewState:
             raise ValueError(f"none of the sweeps {list(settings.sweeps or ())} exist in "
                              f"{recording.path}")
         self._voltage = {s.index: s.voltage for s in recording.sweeps}
+        self._floor: dict[int, float] = {}
         self.position = min(max(position, 0), len(self.indices) - 1)
         self.result: RecordingResult | None = None
         self.live: dict[int, SweepFit] = {}
@@ -261,6 +263,8 @@ class ReviewState:
         self.analysis_needed = Event()
         self.result_changed = Event()
         self.saved = Event()
+        self.save_failed = Event()
+        self.save_error = ""
 
     @classmethod
     def open(cls, path: str | os.PathLike, settings: Settings | None = None,
@@ -315,6 +319,24 @@ class ReviewState:
         if span is None:
             return None
         return ((span[0] - step.onset_s) * 1e3, (span[1] - step.onset_s) * 1e3)
+
+    def fit_start_floor_ms(self, index: int | None = None) -> float:
+        """The earliest fit start of a sweep, in ms from its step onset: the end of the
+        electrode/filter artefact after the fitted edge (the fit window stops there)."""
+        index = self.current if index is None else index
+        if index not in self._floor:
+            from passivefit.analysis.windows import artefact_end_s
+            from passivefit.core import steady
+
+            step, v = self.steps.get(index), self._voltage[index]
+            if step is None:
+                return 0.0
+            edge = step.onset if step.kind == "step" else step.offset
+            before = v[max(0, step.onset - int(0.1 * self.fs)): step.onset]
+            noise = steady.noise_sd(before) if before.size > 10 else 0.0
+            after_s = artefact_end_s(v, edge, self.fs, noise)
+            self._floor[index] = ((edge - step.onset) / self.fs + after_s) * 1e3
+        return self._floor[index]
 
     def has_own_windows(self, index: int | None = None) -> bool:
         index = self.current if index is None else index
@@ -383,6 +405,10 @@ class ReviewState:
 
     def _window_settings(self, name: str, span_ms, this_sweep_only: bool) -> Settings:
         s, index = self.settings, self.current
+        if name == "fit" and span_ms is not None:
+            # never before the artefact's end: a fit from 0 ms fits the artefact
+            span_ms = (max(float(span_ms[0]), round(self.fit_start_floor_ms(), WINDOW_DECIMALS)),
+                       float(span_ms[1]))
         own = dict(s.sweep_windows).get(index)
         if this_sweep_only:
             return s.with_sweep_windows(index, with_window(own or Windows(), name, span_ms))
@@ -439,20 +465,59 @@ class ReviewState:
         self._apply(settings)
 
     def _apply(self, settings: Settings) -> None:
+        if settings.step != self.settings.step:
+            self.steps = self._steps_for(settings)
+            self._floor.clear()
         self.settings = settings
         self.live.clear()
         self.settings_changed.emit(settings)
         if self.steps.get(self.current) is not None:
             self.refit_sweep()
         if self.autosave:
-            self.save()
+            self.try_save()
         self.analysis_needed.emit(settings)
+
+    def _steps_for(self, settings: Settings) -> dict:
+        return dict(zip((s.index for s in self.recording.sweeps),
+                        sweep_steps(self.recording, settings), strict=True))
+
+    def set_step(self, step) -> None:
+        """Use `step` (a StepSpec; None = the file's own) for every sweep, and re-analyse.
+
+        Raises LoadError when the step cannot be used (e.g. it lies outside the sweeps);
+        nothing changes then.
+        """
+        settings = replace(self.settings, step=step)
+        self._steps_for(settings)          # raises before anything changes
+        self._change(settings)
+
+    def set_options(self, **options) -> None:
+        """Change analysis options (``components``, ``filter_hz``, ``area_um2``,
+        ``bootstrap``, ``correct_bridge``, ``fit_start_ms``) and re-analyse.
+
+        Raises ValueError for a value Settings refuses; nothing changes then.
+        """
+        self._change(replace(self.settings, **options))
 
     # ------------------------------------------------------------------ saving
     def save_position(self) -> None:
         """Save the sweep on screen too, when this recording has a review file already."""
         if self.autosave and self.review_file.exists():
+            self.try_save()
+
+    def try_save(self) -> bool:
+        """Save the review; on failure keep going and emit ``save_failed`` with the reason."""
+        try:
             self.save()
+        except OSError as exc:
+            reason = exc.strerror or str(exc)
+            where = exc.filename or self.review_file
+            self.save_error = (f"the review could not be saved to {where}: {reason}; "
+                               "your changes stay in this window until it closes")
+            self.save_failed.emit(self.save_error)
+            return False
+        self.save_error = ""
+        return True
 
     def save(self, path: str | os.PathLike | None = None) -> Path:
         """Write the review file (atomically); returns its path."""

@@ -17,7 +17,8 @@ RULE = _PALETTE["rule"]              # panel borders
 TEAL = _PALETTE["teal"]              # the sweep on screen
 TERRACOTTA = _PALETTE["terracotta"]  # fitted model
 FAINT = tuple(_PALETTE["faint_rgba"])          # other sweeps (RGBA)
-FAINT_OUT = tuple(_PALETTE["faint_out_rgba"])  # rejected sweeps (RGBA)
+# rejected sweeps (RGBA): a cool plum, never the fit's terracotta
+FAINT_OUT = tuple(_PALETTE.get("faint_out_plum_rgba", (122, 92, 168, 75)))
 EDGE = _PALETTE["edge"]              # step edges
 
 # window tints (RGBA): baseline, steady state, fit, decay (derived, not draggable)
@@ -29,6 +30,7 @@ REGION_LABEL = {"baseline": "baseline", "steady": "steady state", "fit": "fit",
 VERDICT = {kind: tuple(pair) for kind, pair in _PALETTE["verdict"].items()}  # (background, text)
 ROW_REJECTED = _PALETTE["row_rejected"]
 ROW_BY_HAND = _PALETTE["row_by_hand"]
+ROW_OWN_WINDOWS = _PALETTE.get("row_own_windows", "#f6efdc")   # a sweep with its own windows
 
 STYLE_SHEET = f"""
 QMainWindow, QWidget#central {{ background: {PAPER}; }}
@@ -49,6 +51,9 @@ QPushButton {{ background: {CARD}; border: 1px solid {RULE}; border-radius: 4px;
               padding: 3px 10px; }}
 QPushButton:hover {{ border-color: {TEAL}; }}
 QStatusBar {{ color: {MUTED}; }}
+QLabel#banner {{ background: {VERDICT['none'][0]}; color: {VERDICT['none'][1]};
+                border-radius: 4px; padding: 3px 8px; }}
+QTabWidget::pane {{ border: none; }}
 QFrame#helpCard {{ background: {CARD}; border-radius: 10px; }}
 QLabel#key {{ background: {_PALETTE['key_cap']}; border: 1px solid {RULE}; border-radius: 4px;
              padding: 1px 7px; font-family: monospace; }}

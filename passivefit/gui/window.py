@@ -14,6 +14,7 @@ from pathlib import Path
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from passivefit.gui import theme
+from passivefit.gui.dialogs import SettingsPanel, StepDialog
 from passivefit.gui.panels import (
     CellCard,
     Header,
@@ -38,6 +39,51 @@ REJECT_REASONS = ("noisy baseline", "spontaneous event", "unstable access or dri
 SHEET_FILTER = "Excel workbook (*.xlsx);;CSV tables (*.csv);;JSON (*.json)"
 
 
+def fitting_size(width: int, height: int) -> tuple[int, int]:
+    """(width, height) made small enough for the screen's free area (1280×800 screens)."""
+    screen = QtGui.QGuiApplication.primaryScreen()
+    if screen is None:
+        return width, height
+    free = screen.availableGeometry()
+    return min(width, free.width()), min(height, free.height())
+
+
+def write_problem(path, exc: Exception) -> str:
+    """A failed write in words: where, and what the system said."""
+    if isinstance(exc, OSError):
+        return f"could not write {exc.filename or path}: {exc.strerror or exc}"
+    return str(exc)
+
+
+def database_problem(target: str, exc: Exception) -> str:
+    """A failed database write in words (read-only folder, full disk, locked, refused)."""
+    if isinstance(exc, OSError):
+        return f"the cell could not be added to {target}: {exc.strerror or exc}"
+    text = str(getattr(exc, "orig", None) or exc).strip().splitlines()
+    return f"the cell could not be added to {target}: {text[0] if text else type(exc).__name__}"
+
+
+def stored_cell(database, cell_id) -> dict:
+    """The metadata a database holds for `cell_id` (empty when it has no such cell)."""
+    if not cell_id:
+        return {}
+    from passivefit.store.models import CellRow
+
+    found = database.current_analyses([CellRow.cell_id == str(cell_id)])
+    return dict(found[0].cell) if found else {}
+
+
+def unset_only(metadata: dict, stored: dict) -> dict:
+    """`metadata` without the fields the database already holds a value for.
+
+    Curated metadata (e.g. region "DG" from a metadata sheet) is never replaced by what
+    a file header says ("dentate gyrus"); only empty fields are filled. The cell id is
+    kept: it names the cell.
+    """
+    return {k: v for k, v in metadata.items()
+            if k == "cell_id" or stored.get(k) in (None, "")}
+
+
 class ReviewWindow(QtWidgets.QMainWindow):
     """Review recordings one by one: check fits, move windows, keep or reject sweeps.
 
@@ -53,20 +99,24 @@ class ReviewWindow(QtWidgets.QMainWindow):
         True: analyse in the UI thread (snapshots); False: in a worker thread.
     autosave : bool
         Write the review file after every change.
+    remember : bool
+        Keep the list of recent files in `store` (off for snapshots).
     """
 
     def __init__(self, settings: Settings | None = None, *, store: QtCore.QSettings | None = None,
                  interactive: bool = True, synchronous: bool = False,
-                 autosave: bool = True) -> None:
+                 autosave: bool = True, remember: bool = True) -> None:
         super().__init__()
         self.base_settings = settings or Settings()
         self.store = store or QtCore.QSettings("passivefit", "passivefit")
         self.interactive, self.synchronous, self.autosave = interactive, synchronous, autosave
+        self.remember = remember
         self.paths: list[Path] = []
         self.position = -1
         self.state: ReviewState | None = None
         self.last_error = ""
         self._previewed = False
+        self._shown_step = None
         self.failed_settings: Settings | None = None
         self.runner = AnalysisRunner(self)
         self.runner.finished.connect(self._analysis_done)
@@ -78,7 +128,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self._build()
         self._menus()
         self._shortcuts()
-        self.resize(1400, 900)
+        self.resize(*fitting_size(1400, 900))
 
     # ------------------------------------------------------------------ layout
     def _build(self) -> None:
@@ -113,12 +163,19 @@ class ReviewWindow(QtWidgets.QMainWindow):
         left_layout = QtWidgets.QVBoxLayout(left)
         left_layout.setContentsMargins(0, 0, 0, 0)
         left_layout.addWidget(self.header)
+        self.banner = QtWidgets.QLabel("")
+        self.banner.setObjectName("banner")
+        self.banner.setWordWrap(True)
+        self.banner.setSizePolicy(QtWidgets.QSizePolicy.Policy.Ignored,
+                                  QtWidgets.QSizePolicy.Policy.Minimum)
+        self.banner.hide()
+        left_layout.addWidget(self.banner)
         left_layout.addWidget(left_split, 1)
 
         self.cell = CellCard()
         self.notes = NotesPanel()
         self.table = SweepTable()
-        sweeps_card, sweeps_layout = card("Sweeps")
+        sweeps_card, sweeps_layout = card("One row per sweep · ◆ own windows")
         sweeps_layout.addWidget(self.table, 1)
         self.sweep_line = QtWidgets.QLabel("")
         self.sweep_line.setObjectName("unit")
@@ -137,16 +194,21 @@ class ReviewWindow(QtWidgets.QMainWindow):
             button.clicked.connect(slot)
             buttons.addWidget(button)
         sweeps_layout.addLayout(buttons)
+        self.settings_panel = SettingsPanel()
+        self.tabs = QtWidgets.QTabWidget()
+        self.tabs.setObjectName("sideTabs")
+        self.tabs.addTab(sweeps_card, "Sweeps")
+        self.tabs.addTab(self.settings_panel, "Analysis settings")
         right_split = QtWidgets.QSplitter(Qt.Orientation.Vertical)
-        for widget in (self.cell, self.notes, sweeps_card):
+        for widget in (self.cell, self.notes, self.tabs):
             right_split.addWidget(widget)
-        right_split.setSizes([250, 150, 420])
+        right_split.setSizes([250, 130, 440])
         right_split.setChildrenCollapsible(False)
 
         split = QtWidgets.QSplitter(Qt.Orientation.Horizontal)
         split.addWidget(left)
         split.addWidget(right_split)
-        split.setSizes([960, 420])
+        split.setSizes([900, 440])
         split.setChildrenCollapsible(False)
         outer = QtWidgets.QVBoxLayout(central)
         outer.setContentsMargins(8, 6, 8, 2)
@@ -163,11 +225,15 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.statusBar().addPermanentWidget(self.progress)
         self.statusBar().addPermanentWidget(QtWidgets.QLabel("F1: keys"))
         self.help = HelpOverlay(central)
+        self.windows_bar.show_windows({})           # no recording yet: nothing to type
 
         self.trace.region_moved.connect(self._preview_window)
         self.trace.region_finished.connect(self._keep_window)
         self.windows_bar.edited.connect(self._keep_window)
         self.windows_bar.reset.connect(self._reset_windows)
+        self.windows_bar.done.connect(self.setFocus)
+        self.windows_bar.leave.connect(self.step_sweep)
+        self.settings_panel.changed.connect(self._set_options)
         self.table.picked.connect(self._pick_sweep)
 
     def _menus(self) -> None:
@@ -188,6 +254,9 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.redo_action = self._action(edit, "Redo", "Ctrl+Shift+Z", self.redo)
         edit.addSeparator()
         self._action(edit, "Windows back to automatic", "", self._reset_windows)
+        self._action(edit, "Set the step…", "Ctrl+T", self._ask_set_step)
+        self._action(edit, "Analysis settings", "S",
+                     lambda: self.tabs.setCurrentWidget(self.settings_panel))
         review = bar.addMenu("&Review")
         self._action(review, "Next sweep", "Right", lambda: self.step_sweep(1))
         self._action(review, "Previous sweep", "Left", lambda: self.step_sweep(-1))
@@ -253,32 +322,41 @@ class ReviewWindow(QtWidgets.QMainWindow):
 
         recording = load(path)
         try:
-            return ReviewState(recording, self.base_settings, autosave=self.autosave)
+            state = ReviewState(recording, self.base_settings, autosave=self.autosave)
         except LoadError:
             if self.base_settings.step is not None or not self.interactive:
                 raise
-            step = self._ask_step(path)
+            step = self._ask_step(recording, None)
             if step is None:
                 return None
-            return ReviewState(recording, replace(self.base_settings, step=step),
-                               autosave=self.autosave)
+            state = ReviewState(recording, replace(self.base_settings, step=step),
+                                autosave=self.autosave)
+        if state.settings.step is not None and not state.restored and self.autosave:
+            state.try_save()     # a typed step is kept at once, not at the next change
+        return state
 
     def _attach(self, state: ReviewState) -> None:
         if self.state is not None:
             self.runner.wait()
             self.state.save_position()
         self.state = state
+        self._shown_step = state.settings.step
         state.current_changed.connect(self._on_current)
         state.sweep_refitted.connect(self._on_refit)
         state.settings_changed.connect(self._on_settings)
         state.analysis_needed.connect(self._on_analysis_needed)
         state.result_changed.connect(self._on_result)
-        state.saved.connect(lambda p: self.statusBar().showMessage(f"review saved · {p.name}",
-                                                                   4000))
+        state.saved.connect(self._saved)
+        state.save_failed.connect(self._save_failed)
+        if state.save_error:
+            self._save_failed(state.save_error)
+        else:
+            self.banner.hide()
         self.setWindowTitle(f"passivefit · review — {Path(state.recording.path).name}")
         self.header.show_recording(state, self.position, len(self.paths))
         self.trace.set_recording(state)
         self.table.show_state(state)
+        self.settings_panel.show_settings(state.settings)
         if state.steps.get(state.current) is not None:
             state.refit_sweep()
         self._show_windows()
@@ -306,6 +384,10 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.table.show_row(self.state, fit.index)
 
     def _on_settings(self, _settings) -> None:
+        self.header.show_recording(self.state, self.position, len(self.paths))
+        self.settings_panel.show_settings(self.state.settings)
+        if self._step_changed():
+            self.trace.set_recording(self.state)     # new step edges and windows
         self.table.show_state(self.state)
         self.trace.set_statuses(self.state)
         self.trace.show_sweep(self.state)
@@ -383,7 +465,9 @@ class ReviewWindow(QtWidgets.QMainWindow):
         if self.state is not None:
             self.windows_bar.show_windows({n: self.state.window_ms(n) for n in WINDOW_NAMES})
             index = self.state.current
-            self.sweep_line.setText(status_sentence(index, self.state.status(index)))
+            self.sweep_line.setText(status_sentence(
+                index, self.state.status(index), fitted=self.state.sweep_fit(index) is not None,
+                own_windows=self.state.has_own_windows(index)))
 
     def _pick_sweep(self, index: int) -> None:
         if self.state is not None:
@@ -462,10 +546,12 @@ class ReviewWindow(QtWidgets.QMainWindow):
         """Store the reviewed analysis in a cell database (SQLite path or URL)."""
         from passivefit.store.database import open_database
 
+        result = self.current_result().to_dict()
         database = open_database(target, create=True)
         try:
-            outcome = database.store(self.current_result().to_dict(),
-                                     cell_metadata=self._cell_metadata())
+            metadata = self._cell_metadata()
+            metadata = unset_only(metadata, stored_cell(database, metadata.get("cell_id")))
+            outcome = database.store(result, cell_metadata=metadata)
         finally:
             database.close()
         message = (f"stored in {target} (analysis {outcome.analysis_id}, revision "
@@ -489,6 +575,16 @@ class ReviewWindow(QtWidgets.QMainWindow):
         return Path(path)
 
     # ------------------------------------------------------------------ dialogs
+    def _saved(self, path: Path) -> None:
+        self.banner.hide()
+        self.statusBar().showMessage(f"review saved · {path.name}", 4000)
+
+    def _save_failed(self, message: str) -> None:
+        """A review that cannot be written: said in the window, the review goes on."""
+        self.last_error = message
+        self.banner.setText(message[:1].upper() + message[1:])
+        self.banner.show()
+
     def _problem(self, message: str) -> None:
         self.last_error = message
         self.statusBar().showMessage(message, 15000)
@@ -503,9 +599,41 @@ class ReviewWindow(QtWidgets.QMainWindow):
             REJECT_REASONS, 0, True)
         return text.strip() or "rejected in review" if ok else None
 
-    def _ask_step(self, path: Path) -> StepSpec | None:
-        dialog = StepDialog(path, self)
+    def _ask_step(self, recording, step: StepSpec | None) -> StepSpec | None:
+        dialog = StepDialog(recording, step, self)
         return dialog.step() if dialog.exec() else None
+
+    def _ask_set_step(self) -> None:
+        if self.state is None:
+            return
+        step = self._ask_step(self.state.recording, self.state.settings.step)
+        self.activateWindow()
+        if step is not None:
+            self.set_step(step)
+
+    def set_step(self, step: StepSpec | None) -> bool:
+        """Use a typed step (None: the file's own) for this recording; saved at once."""
+        try:
+            self.state.set_step(step)
+        except (LoadError, ValueError) as exc:
+            self._problem(f"that step cannot be used: {exc}")
+            return False
+        return True
+
+    def _step_changed(self) -> bool:
+        """True once after the step in use changed (undo and redo included)."""
+        shown = self._shown_step
+        self._shown_step = self.state.settings.step
+        return shown != self.state.settings.step
+
+    def _set_options(self, options: dict) -> None:
+        if self.state is None:
+            return
+        try:
+            self.state.set_options(**options)
+        except ValueError as exc:
+            self._problem(str(exc))
+            self.settings_panel.show_settings(self.state.settings)
 
     def _ask_open(self) -> None:
         from passivefit.io import supported_extensions
@@ -532,7 +660,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
             try:
                 self.export_sheet(path)
             except (OSError, ValueError) as exc:
-                self._problem(str(exc))
+                self._problem(write_problem(path, exc))
 
     def _ask_report(self) -> None:
         if self.state is None:
@@ -544,7 +672,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
             try:
                 self.export_report(path)
             except (OSError, ValueError) as exc:
-                self._problem(str(exc))
+                self._problem(write_problem(path, exc))
 
     def _ask_database(self) -> None:
         if self.state is None:
@@ -560,11 +688,13 @@ class ReviewWindow(QtWidgets.QMainWindow):
             self.store.setValue("database", target)
         try:
             self.add_to_database(target)
-        except ValueError as exc:
-            self._problem(str(exc))
+        except Exception as exc:  # noqa: BLE001 - a store that fails must not end the review
+            self._problem(database_problem(target, exc))
 
     # ------------------------------------------------------------------ recent files
     def _remember(self, path: Path) -> None:
+        if not self.remember:
+            return
         recent = [str(Path(path).resolve())]
         recent += [p for p in self.recent_files() if p != recent[0]]
         self.store.setValue("recent", recent[:MAX_RECENT])
@@ -606,36 +736,3 @@ class ReviewWindow(QtWidgets.QMainWindow):
         if self.state is not None:
             self.state.save_position()
         super().closeEvent(event)
-
-
-class StepDialog(QtWidgets.QDialog):
-    """Ask for the current step of a file that carries no command waveform."""
-
-    def __init__(self, path: Path, parent: QtWidgets.QWidget | None = None) -> None:
-        super().__init__(parent)
-        self.setWindowTitle("The current step")
-        form = QtWidgets.QFormLayout(self)
-        text = QtWidgets.QLabel(f"{path.name} carries no command or current waveform, so "
-                                "passivefit cannot see the current step.\n\nDescribe the step "
-                                "of the first sweep; it is saved with the review.")
-        text.setWordWrap(True)
-        form.addRow(text)
-        self.boxes = []
-        for label, value, low in (("onset (ms)", 100.0, 0.0), ("duration (ms)", 300.0, 0.01),
-                                  ("amplitude (pA)", -50.0, -1e5),
-                                  ("increment per sweep (pA)", 0.0, -1e5)):
-            box = QtWidgets.QDoubleSpinBox()
-            box.setRange(low, 1e5)
-            box.setDecimals(2)
-            box.setValue(value)
-            form.addRow(label, box)
-            self.boxes.append(box)
-        buttons = QtWidgets.QDialogButtonBox(QtWidgets.QDialogButtonBox.StandardButton.Ok
-                                             | QtWidgets.QDialogButtonBox.StandardButton.Cancel)
-        buttons.accepted.connect(self.accept)
-        buttons.rejected.connect(self.reject)
-        form.addRow(buttons)
-
-    def step(self) -> StepSpec:
-        on, dur, amp, inc = (b.value() for b in self.boxes)
-        return StepSpec(on * 1e-3, dur * 1e-3, amp * 1e-12, inc * 1e-12)
