@@ -105,12 +105,13 @@ def rho_cross_check(bs, v_inf: float) -> tuple[dict, list[Flag]]:
 
 
 def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | None,
-                 cis: dict[str, float | None], L_cyl_samples: np.ndarray | None
-                 ) -> tuple[dict, list[Flag]]:
+                 cis: dict[str, float | None], L_cyl_samples: np.ndarray | None,
+                 passive: bool = True) -> tuple[dict, list[Flag]]:
     """Equivalent cylinder (exponential fit), ball-and-stick and capacitance (cable fit).
 
     `cis` holds the 95 % half-widths of "L" and "rho" (None without a cable fit);
-    `L_cyl_samples` the resampled L_cyl values for its CI.
+    `L_cyl_samples` the resampled L_cyl values for its CI. A cell that is not `passive`
+    (it sags) gets only C = τ0/R_in: the cable values assume a passive membrane.
     """
     from passivefit.core import cable
 
@@ -140,14 +141,14 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
             more, more_flags = rho_cross_check(bs, r_in * step.amplitude_A)
             values.update(more)
             flags.extend(more_flags)
-    elif kind == "step" and fit.sag is None:  # no cable fit: I·τ0/B0 of the exponential fit
+    elif kind == "step" and passive and fit.sag is None:  # no cable fit: I·τ0/B0 of the exp. fit
         #                                          (docs/references.md §4)
         c0 = onset_amplitudes(fit, g)[0]
         if c0 * step.amplitude_A > 0:
             values[S.C_TOTAL] = cable.c_total_step(step.amplitude_A, tau0, c0)
     if values.get(S.C_TAU) and values.get(S.C_TOTAL):
         values[S.C_RATIO] = values[S.C_TAU] / values[S.C_TOTAL]
-    if tau1 is None or fit.sag is not None:  # no τ1, or not a passive cell
+    if tau1 is None or fit.sag is not None or not passive:  # no τ1, or not a passive cell
         return values, flags
     values[S.L_CYL] = cable.cylinder_L(tau0, tau1)
     values[S.L_CYL_CI] = None if L_cyl_samples is None else percentile_halfwidth(L_cyl_samples)

@@ -192,7 +192,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     if fit is None:
         return out
 
-    values, flags = _time_constants(fit, bs, avg, boot, fs)
+    values, flags = _time_constants(fit, bs, avg, boot, fs, sagging)
     out.values.update(values)
     out.flags.extend(flags)
     tau1 = values.get(S.TAU1)
@@ -204,9 +204,8 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         out.flags.extend(checks.scan_drift(out.scan))
     out.peel = _peel(avg, avg_cable, fs, fit)
     r_in = out.values.get(S.R_IN)
-    values, flags = cable_values(fit, bs, avg, r_in if r_in and r_in > 0 else None,
-                                 None if sagging else tau1, cis,
-                                 _L_cyl_samples(boot, bs is not None))
+    values, flags = cable_values(fit, bs, avg, r_in if r_in and r_in > 0 else None, tau1, cis,
+                                 _L_cyl_samples(boot, bs is not None), passive=not sagging)
     out.values.update(values)
     out.flags.extend(flags)
     if settings.area_um2 and out.values.get(S.C_TOTAL):
@@ -249,7 +248,7 @@ def _bridge_correction(fits: list[SweepFit], fit, bs, avg: GroupAverage, boot: d
     tell a bridge error from fast dendritic charging or noise.
     """
     bridge = bridge_of(bs, avg)
-    values: dict = {S.BRIDGE: bridge}
+    values: dict = {S.BRIDGE: bridge, S.BRIDGE_APPLIED: False}
     if bridge is None:
         return values, [], fits
     ci = halfwidth(boot, "bridge")
@@ -266,10 +265,12 @@ def _bridge_correction(fits: list[SweepFit], fit, bs, avg: GroupAverage, boot: d
         flags.append(S.CELL_BRIDGE.make(bridge / MOHM, what=what))
     if settings.correct_bridge:
         fits = [with_bridge_removed(f, bridge) for f in fits]
+        values[S.BRIDGE_APPLIED] = True
     return values, flags, fits
 
 
-def _time_constants(fit, bs, avg: GroupAverage, boot: dict | None, fs: float
+def _time_constants(fit, bs, avg: GroupAverage, boot: dict | None, fs: float,
+                    sagging: bool = False
                     ) -> tuple[dict, list[Flag]]:
     """τ0, τ1 (τ2) with CIs and the component amplitudes of the reference step."""
     n = len(fit.taus)
@@ -285,6 +286,8 @@ def _time_constants(fit, bs, avg: GroupAverage, boot: dict | None, fs: float
         values[S.TAU2] = fit.taus[2]
     if n < 2:  # the data show no second component: no τ1 from any model
         return values, [S.FIT_TAU1_UNRESOLVED.make(reason="one_component")]
+    if sagging:  # a fast component of a short fit before the sag is no equalizing mode
+        return values, [S.FIT_TAU1_UNRESOLVED.make(reason="not_passive")]
     if bs is not None:
         # the ball-and-stick fit uses the early transient with every equalizing mode in it,
         # so its τ1 is far more precise than two free exponentials fitted late enough to be

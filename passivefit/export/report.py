@@ -373,8 +373,16 @@ def _numbers_pages(pdf, recording, data: dict, when: datetime) -> None:
         pages.row([(LEFT, label), (0.45, text), (0.75, unit)])
     pages.y -= 0.008
     pages.title("How they were found, and more values")
-    for label, text, unit in _more_rows(data["cell"]):
-        pages.row([(LEFT, label), (0.45, text), (0.75, unit)], step=0.011)
+    more = _more_rows(data["cell"])
+    half = (len(more) + 1) // 2          # two columns: these are many, and short
+    for k in range(half):
+        cells = []
+        for x, row in ((LEFT, more[k]), (0.52, more[k + half] if k + half < len(more) else None)):
+            if row is not None:
+                label, text, unit = row
+                cells += [(x, textwrap.shorten(label, 34)),
+                          (x + 0.23, textwrap.shorten(f"{text} {unit}".strip(), 30))]
+        pages.row(cells, step=0.0105, fontsize=6.8)
     pages.y -= 0.008
     pages.title("Flags")
     pages.paragraphs(_flag_lines(data), width=118)
@@ -414,7 +422,7 @@ def _more_rows(cell: Mapping) -> list[tuple[str, str, str]]:
     rows = []
     for q in S.CELL_EXTRA:
         value = cell.get(q.key)
-        if q.key in shown or value is None or q.key.endswith("ci95"):
+        if q.key in shown or value is None or value is False or q.key.endswith("ci95"):
             continue
         text = textwrap.shorten(_fmt(value), 70)
         if q.ci and cell.get(q.ci) is not None:

@@ -54,23 +54,8 @@ CARD_LABELS = {S.C0.key: "C0 amplitude", S.C1.key: "C1 amplitude",
 
 
 def bridge_applied(result) -> bool:
-    """True when the bridge jump was taken out of R_in (shown in bold only then).
-
-    Uses the result's ``bridge_applied`` when it has one; otherwise the same test the
-    analysis applies: correction on, the jump beyond its own CI, two components and L
-    resolved, and no ``cell.bridge_uncertain`` flag.
-    """
-    cell = result.cell.to_dict()
-    if "bridge_applied" in cell:
-        return bool(cell["bridge_applied"])
-    bridge, ci = cell.get(S.BRIDGE.key), cell.get(S.BRIDGE_CI.key)
-    if not result.settings.correct_bridge or bridge is None or ci is None:
-        return False
-    if any(f.code == S.CELL_BRIDGE_UNCERTAIN.code for f in result.flags):
-        return False
-    l_bs, l_ci = cell.get(S.L_BS.key), cell.get(S.L_CI.key)
-    return (abs(bridge) > ci and (cell.get(S.N_COMPONENTS.key) or 0) >= 2
-            and l_bs is not None and l_ci is not None and l_ci < l_bs)
+    """True when the bridge jump was taken out of R_in (shown in bold only then)."""
+    return bool(result.cell.to_dict().get(S.BRIDGE_APPLIED.key))
 
 
 # ----------------------------------------------------------------------------- header

@@ -114,6 +114,7 @@ N_SWEEPS_USED = Quantity("n_sweeps_used", "sweeps used", kind="int", title="Swee
 BRIDGE = Quantity("bridge_MOhm", "bridge jump", "MΩ", MOHM, 4, ci="bridge_ci95_MOhm",
                   title="Bridge jump at the step edge")
 BRIDGE_CI = _ci("bridge_ci95_MOhm", "bridge jump", "MΩ", MOHM)
+BRIDGE_APPLIED = Quantity("bridge_applied", "bridge subtracted from R_in", kind="bool")
 TAU1_SOURCE = Quantity("tau1_source", "τ1 from", kind="text")
 TAU1_EXP = Quantity("tau1_exp_ms", "τ1 (exponential fit)", "ms", MS)
 TAU2 = Quantity("tau2_ms", "τ2", "ms", MS)
@@ -146,7 +147,7 @@ RM = Quantity("rm_kOhm_cm2", "specific Rm", "kΩ·cm²", 0.1, 4)      # SI: Ω·
 #: The `cell` object of the JSON contract: these keys always, null when not estimable.
 CELL_CORE = (V_REST, R_IN, TAU0, TAU0_CI, TAU1, TAU1_CI, C0, C1, L_CYL, L_BS, L_CI, RHO,
              RHO_CI, C_TAU, C_TOTAL, SAG_RATIO, N_SWEEPS_USED)
-CELL_EXTRA = (BRIDGE, BRIDGE_CI, TAU1_SOURCE, TAU1_EXP, TAU2, TAU0_MODEL, L_CYL_CI,
+CELL_EXTRA = (BRIDGE, BRIDGE_CI, BRIDGE_APPLIED, TAU1_SOURCE, TAU1_EXP, TAU2, TAU0_MODEL, L_CYL_CI,
               RHO_AMPLITUDE, FIT_START, R_IN_METHOD, VI_R2, R_IN_ASYMMETRY, N_COMPONENTS,
               COMPONENTS_REASON, CI_METHOD, REF_STEP, C_RATIO, CM, RM, TAU_SAG, R_IN_PEAK,
               R_IN_SLOPE, R_IN_CHORD, REBOUND, R_IN_CHANGE, V_REST_CHANGE, STABLE_SWEEPS)
@@ -301,7 +302,9 @@ FIT_TAU1_UNRESOLVED = _flag(
     one_component="only one exponential component is resolved: no τ1, so no electrotonic "
                   "length",
     too_fast="τ1 is shorter than 3 sampling intervals: not resolved (ms)",
-    wide_ci="the 95 % CI of τ1 is wider than τ1 itself: not resolved (ms)")
+    wide_ci="the 95 % CI of τ1 is wider than τ1 itself: not resolved (ms)",
+    not_passive="the cell sags, so no τ1 and no electrotonic length are given: they "
+                "describe a passive membrane")
 FIT_TAU1_DRIFT = _flag(
     "fit.tau1_drift", "warning",
     "τ1 still changes when the fit starts 1 ms later: early artefact or unresolved faster "
@@ -319,10 +322,10 @@ CABLE_FIT_FAILED = _flag(
     not_converged="the ball-and-stick fit did not converge: {problem}")
 CABLE_L_UNRESOLVED = _flag(
     "cable.L_bs_unresolved", "warning",
-    "the 95 % CI of L_bs is wider than the value itself: not resolved")
+    "the 95 % CI of the ball-and-stick L is wider than the value itself: not resolved")
 CABLE_RHO_UNRESOLVED = _flag(
     "cable.rho_unresolved", "warning",
-    "the 95 % CI of rho is wider than the value itself: not resolved")
+    "the 95 % CI of ρ is wider than the value itself: not resolved")
 CABLE_RHO_MISMATCH = _flag(
     "cable.rho_mismatch", "warning", "{reason}",
     disagree="ρ from the amplitudes and ρ from the time course disagree by more than 2×: the "
@@ -330,19 +333,19 @@ CABLE_RHO_MISMATCH = _flag(
     no_value="{problem}")
 CABLE_TAU2_RATIO = _flag(
     "cable.tau2_ratio", "warning",
-    "(tau0/tau2 - 1)/(tau0/tau1 - 1) = {x:.2f} is outside 4-9, the range of a uniform "
-    "ball-and-stick: tau1 or tau2 is unreliable, or the cell is not uniform")
+    "(τ0/τ2 − 1)/(τ0/τ1 − 1) = {x:.2f} is outside 4–9, the range of a uniform "
+    "ball-and-stick: τ1 or τ2 is unreliable, or the cell is not uniform")
 CABLE_SHUNT_SUSPECTED = _flag(
     "cable.shunt_suspected", "warning",
     "{reason}: not a uniform passive cell (somatic shunt or non-uniform membrane?)",
     pulse="pulse C1/C0 = {x:.3f} exceeds 2",
-    step="step B1/B0 = {x:.3f} exceeds 2*tau1/tau0 = {limit:.3f}")
+    step="step B1/B0 = {x:.3f} exceeds 2·τ1/τ0 = {limit:.3f}")
 CABLE_L_RANGE = _flag(
     "cable.L_range", "warning",
-    "L = {x:.3g} is outside 0.1-3, unusual for a neuron: check tau1")
+    "L = {x:.3g} is outside 0.1–3, unusual for a neuron: check τ1")
 CABLE_RHO_RANGE = _flag(
     "cable.rho_range", "warning",
-    "rho = {x:.3g} is outside 0.1-100, unusual for a neuron: check the amplitude ratio")
+    "ρ = {x:.3g} is outside 0.1–100, unusual for a neuron: check the amplitude ratio")
 
 # reading: the protocol against the recorded current, the channel chosen
 PROTOCOL_AMPLITUDE = _flag(
