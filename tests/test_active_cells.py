@@ -139,3 +139,18 @@ def test_a_step_whose_sign_disagrees_with_the_response_is_refused():
         from passivefit.model.recording import StepSpec
 
         analyze(rec, Settings(step=StepSpec(0.1, 0.5, 100e-12), bootstrap=0))
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("hum_mV", [0.0, 0.1])
+def test_mains_hum_is_named_and_measured(hum_mV):
+    rec, _ = simulate(hum_V=hum_mV * 1e-3, noise_sd_V=0.2e-3, n_sweeps=6)
+    result = analyze(rec, Settings(bootstrap=0))
+    cell = result.to_dict()["cell"]
+    if hum_mV:
+        assert "cell.hum" in codes(result)
+        assert cell[S.HUM.key] == pytest.approx(hum_mV, rel=0.15)
+        structure = [f for f in result.flags if f.code == "fit.residual_structure"]
+        assert all("mains hum" in f.message for f in structure)
+    else:
+        assert "cell.hum" not in codes(result) and S.HUM.key not in cell

@@ -14,7 +14,7 @@ from passivefit.core.qc import Flag, runs_test_z
 from passivefit.model import schema as S
 from passivefit.model.results import GroupAverage, SweepFit
 
-MS = 1e-3
+MS, MV = 1e-3, 1e-3
 
 
 def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag]]:
@@ -73,6 +73,29 @@ def sag(used: list[SweepFit]) -> tuple[dict, list[Flag]]:
     return values, [S.CELL_SAG.make(ratio)] if ratio < 0.95 else []
 
 
+#: Hum is reported when its amplitude is this many times its white-noise floor and at
+#: least HUM_MIN_V (common practice, no source).
+HUM_FLOOR_FACTOR, HUM_MIN_V = 4.0, 20e-6
+
+
+def hum(used: list[SweepFit], voltages: dict[int, np.ndarray], fs: float
+        ) -> tuple[dict, list[Flag]]:
+    """50 or 60 Hz mains hum in the sweeps' baselines (core.qc.mains_hum)."""
+    from passivefit.analysis.windows import span
+    from passivefit.core.qc import mains_hum
+
+    segments = []
+    for f in used:
+        v = f.corrected(voltages[f.index], fs)
+        a, b = span(f.windows_s["baseline"], fs, v.size)
+        segments.append(v[a:b])
+    freq, amp, floor = mains_hum(segments, fs)
+    if floor == 0.0 or amp < max(HUM_FLOOR_FACTOR * floor, HUM_MIN_V):
+        return {}, []
+    return {S.HUM: amp}, [S.CELL_HUM.make(amp / MV, hz=f"{freq:.0f} Hz",
+                                          amplitude=f"{amp / MV * 1e3:.0f} µV")]
+
+
 def sweep_spread(used: list[SweepFit], fit) -> list[Flag]:
     """τ0 of the combined sweeps against the median of the single sweeps."""
     per_sweep = [f.tau(0) for f in used if f.tau(0) is not None]
@@ -85,8 +108,9 @@ def sweep_spread(used: list[SweepFit], fit) -> list[Flag]:
     return []
 
 
-def residual_structure(fit, avg: GroupAverage, fs: float) -> list[Flag]:
-    """Runs test on 0.5-ms bin means of the residuals (bins make filtered noise independent)."""
+def residual_structure(fit, avg: GroupAverage, fs: float, hum: bool = False) -> list[Flag]:
+    """Runs test on 0.5-ms bin means of the residuals (bins make filtered noise independent);
+    with `hum` found in the baselines the words say that the hum may be what it sees."""
     width = max(1, int(0.5e-3 * fs))
     resid = []
     for seg in avg.segments:
@@ -94,7 +118,9 @@ def residual_structure(fit, avg: GroupAverage, fs: float) -> list[Flag]:
         m = r.size // width * width
         resid.append(r[:m].reshape(-1, width).mean(axis=1))
     z = runs_test_z(np.concatenate(resid)) if resid else 0.0
-    return [S.FIT_RESIDUAL_STRUCTURE.make(z)] if z < -4 else []
+    if z >= -4:
+        return []
+    return [S.FIT_RESIDUAL_STRUCTURE.make(z, reason="hum" if hum else "misfit")]
 
 
 def onset_offset(g: GroupAverage, fs: float, fit) -> list[Flag]:

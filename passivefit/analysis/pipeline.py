@@ -189,6 +189,9 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     values, flags = checks.sag(used)
     out.values.update(values)
     out.flags.extend(flags)
+    values, flags = checks.hum(used, voltages, fs)
+    out.values.update(values)
+    out.flags.extend(flags)
     if fit is None:
         return out
 
@@ -197,7 +200,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     out.flags.extend(flags)
     tau1 = values.get(S.TAU1)
     out.flags.extend(checks.sweep_spread(used, fit))
-    out.flags.extend(checks.residual_structure(fit, avg, fs))
+    out.flags.extend(checks.residual_structure(fit, avg, fs, hum=S.HUM in out.values))
     out.flags.extend(checks.onset_offset(avg, fs, fit))
     out.scan = fit_start_scan(avg, fs, fit)
     if tau1 is not None:

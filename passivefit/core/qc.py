@@ -60,3 +60,32 @@ def percentile_halfwidth(samples: np.ndarray) -> float | None:
         return float(1.96 * np.std(samples, ddof=1))
     lo, hi = np.percentile(samples, [2.5, 97.5])
     return float((hi - lo) / 2)
+
+
+def mains_hum(segments, fs: float, freqs_hz=(50.0, 60.0)) -> tuple[float, float, float]:
+    """The mains hum in baseline segments: (frequency in Hz, amplitude, its noise floor).
+
+    Each segment (one sweep's baseline, linear trend removed) is projected onto a sine
+    and a cosine at each frequency by least squares; the amplitudes are averaged over
+    segments (their phases differ from sweep to sweep). For white noise of sd σ the
+    amplitude from n samples averages σ·√(π/n) (Rayleigh), the floor returned, in the
+    units of the segments. The frequency with the larger amplitude is returned.
+    """
+    best = (freqs_hz[0], 0.0, 0.0)
+    for f in freqs_hz:
+        amps, floors = [], []
+        for y in segments:
+            y = np.asarray(y, dtype=float)
+            y = y[np.isfinite(y)]
+            if y.size < 0.04 * fs:   # less than two mains periods
+                continue
+            t = np.arange(y.size) / fs
+            basis = np.column_stack([np.sin(2 * np.pi * f * t), np.cos(2 * np.pi * f * t),
+                                     np.ones_like(t), t - t.mean()])
+            coef, *_ = np.linalg.lstsq(basis, y, rcond=None)
+            rest = y - basis @ coef
+            amps.append(float(np.hypot(coef[0], coef[1])))
+            floors.append(float(np.std(rest) * np.sqrt(np.pi / y.size)))
+        if amps and np.mean(amps) > best[1]:
+            best = (f, float(np.mean(amps)), float(np.mean(floors)))
+    return best

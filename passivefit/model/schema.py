@@ -140,6 +140,7 @@ R_IN_CHANGE = Quantity("r_in_change_pct", "R_in change over the recording", "%",
                        title="R_in change, first to last quarter of the sweeps")
 V_REST_CHANGE = Quantity("v_rest_change_mV", "V_rest change over the recording", "mV", MV, 3,
                          title="V_rest change, first to last quarter of the sweeps")
+HUM = Quantity("hum_mV", "mains hum", "mV", MV, 3, title="Mains hum in the baselines")
 STABLE_SWEEPS = Quantity("stable_sweeps", "sweeps of the stable stretch", kind="text")
 CM = Quantity("cm_uF_per_cm2", "specific Cm", "µF/cm²", 1e-2, 4)   # SI: F/m²
 RM = Quantity("rm_kOhm_cm2", "specific Rm", "kΩ·cm²", 0.1, 4)      # SI: Ω·m²
@@ -150,7 +151,7 @@ CELL_CORE = (V_REST, R_IN, TAU0, TAU0_CI, TAU1, TAU1_CI, C0, C1, L_CYL, L_BS, L_
 CELL_EXTRA = (BRIDGE, BRIDGE_CI, BRIDGE_APPLIED, TAU1_SOURCE, TAU1_EXP, TAU2, TAU0_MODEL, L_CYL_CI,
               RHO_AMPLITUDE, FIT_START, R_IN_METHOD, VI_R2, R_IN_ASYMMETRY, N_COMPONENTS,
               COMPONENTS_REASON, CI_METHOD, REF_STEP, C_RATIO, CM, RM, TAU_SAG, R_IN_PEAK,
-              R_IN_SLOPE, R_IN_CHORD, REBOUND, R_IN_CHANGE, V_REST_CHANGE, STABLE_SWEEPS)
+              R_IN_SLOPE, R_IN_CHORD, REBOUND, R_IN_CHANGE, V_REST_CHANGE, STABLE_SWEEPS, HUM)
 CELL = CELL_CORE + CELL_EXTRA
 
 # Sweep values (each of `sweeps`), in contract order.
@@ -313,9 +314,15 @@ FIT_ONSET_OFFSET = _flag(
     "fit.onset_offset", "warning",
     "τ0 of the charging and of the decay transient disagree (relative difference)")
 FIT_RESIDUAL_STRUCTURE = _flag(
-    "fit.residual_structure", "warning",
-    "the residuals keep their sign too long: the model misses part of the transient "
-    "(runs-test z)")
+    "fit.residual_structure", "warning", "{reason}",
+    misfit="the residuals keep their sign too long: the model misses part of the transient "
+           "(runs-test z)",
+    hum="the residuals keep their sign too long, as the mains hum in the recording makes "
+        "them do (runs-test z)")
+CELL_HUM = _flag(
+    "cell.hum", "info",
+    "mains hum of {amplitude} at {hz} in the baselines; it averages out over sweeps of "
+    "random phase but shows in single sweeps and their residuals (amplitude, mV)")
 CABLE_FIT_FAILED = _flag(
     "cable.fit_failed", "warning", "{reason}",
     failed="the ball-and-stick fit failed: {problem}",
@@ -418,7 +425,7 @@ def flags_markdown() -> str:
         words = words.replace("{reason}", "…").replace("|", "\\|")
         for field_name in ("done", "what", "problem", "limit", "sweep", "at", "planned",
                            "recorded", "source", "offset", "amplitude", "values", "channel",
-                           "median", "others", "tau", "name", "n", "end"):
+                           "median", "others", "tau", "name", "n", "end", "hz"):
             words = words.replace("{" + field_name + "}", "…")
         for fmt in ("{x:.2f}", "{x:.3f}", "{x:.3g}", "{limit:.3f}", "{x:+.0f}", "{dv:+.1f}"):
             words = words.replace(fmt, "x")
