@@ -1,16 +1,18 @@
 """`analyze()`: Recording + Settings → RecordingResult, stage by stage, top to bottom.
 
-1. steps: each sweep's step (windows.sweep_steps);
-2. first look: the accepted sweeps combined and fitted once, for the fit start after
+1. steps: each sweep's step, each sweep read up to its next step (windows.sweep_steps);
+2. sag: whether the cell sags, and then the fit window before the sag (pool.sag_window);
+3. first look: the accepted sweeps combined and fitted once, for the fit start after
    0.8 τ1 and start values (pool.first_look);
-3. sweeps: each sweep fitted and tested (sweep.analyze_sweep), outliers rejected, the
-   person's decisions applied;
-4. cell: the accepted sweeps combined (pool), the exponential fit, the ball-and-stick
-   fit (cable), bootstrap CIs (uncertainty), bridge, R_in and sag, time constants,
+4. sweeps: each sweep fitted and tested (sweep.analyze_sweep), its spontaneous events
+   cut out (events), the step's sign checked, outliers, active sweeps and an unstable
+   stretch left out (selection), the person's decisions applied;
+5. cell: the accepted sweeps combined (pool), the exponential fit, the ball-and-stick
+   fit (cable), bootstrap CIs (uncertainty), bridge, R_in, sag and hum, time constants,
    checks, cable values (summarize_cell).
 
 Every stage returns new values; the cell's values are SI, keyed by schema quantity, and
-become display units only in `CellResult.to_dict()`.
+become display units in `CellResult.from_si`.
 """
 
 from __future__ import annotations

@@ -419,15 +419,12 @@ PLAUSIBILITY = {"tau2_ratio": CABLE_TAU2_RATIO, "shunt_pulse": CABLE_SHUNT_SUSPE
 
 def flags_markdown() -> str:
     """The README's table of flag codes (a test keeps the README equal to it)."""
+    import re
+
     rows = ["| code | severity | what it says |", "|---|---|---|"]
     for spec in FLAGS.values():
         words = " / ".join(spec.reasons.values()) if spec.reasons else spec.template
-        words = words.replace("{reason}", "…").replace("|", "\\|")
-        for field_name in ("done", "what", "problem", "limit", "sweep", "at", "planned",
-                           "recorded", "source", "offset", "amplitude", "values", "channel",
-                           "median", "others", "tau", "name", "n", "end", "hz"):
-            words = words.replace("{" + field_name + "}", "…")
-        for fmt in ("{x:.2f}", "{x:.3f}", "{x:.3g}", "{limit:.3f}", "{x:+.0f}", "{dv:+.1f}"):
-            words = words.replace(fmt, "x")
+        words = re.sub(r"\{x[^}]*\}", "x", words)          # the value tested
+        words = re.sub(r"\{[^}]*\}", "…", words).replace("|", "\\|")
         rows.append(f"| `{spec.code}` | {spec.severity} | {words} |")
     return "\n".join(rows) + "\n"
