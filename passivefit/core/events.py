@@ -29,6 +29,8 @@ from functools import lru_cache
 
 import numpy as np
 
+from passivefit.core.qc import robust_sd
+
 __all__ = [
     "EVENT_Z",
     "Event",
@@ -44,7 +46,6 @@ EVENT_Z = 8.0
 """Default detection threshold, in detector noise sds (see tests/test_events.py for the
 false-detection and detection rates measured with it)."""
 
-_MAD_TO_SD = 1.4826  # sd of a normal distribution per median absolute deviation
 _SHORT_LAG_S = 3e-3  # noise correlation beyond this lag is left to the direct estimate
 
 
@@ -201,10 +202,6 @@ def _correlate_valid(x: np.ndarray, kernel: np.ndarray) -> np.ndarray:
     return fftconvolve(x, kernel[::-1], mode="valid")
 
 
-def _robust_sd(x: np.ndarray) -> float:
-    x = np.asarray(x, dtype=float)
-    return float(_MAD_TO_SD * np.median(np.abs(x - np.median(x))))
-
 
 def _as_noise(noise: NoiseModel | float, fs_hz: float, shape: EventShape) -> NoiseModel:
     """A NoiseModel; a bare sd (V) is taken as white noise of that sd."""
@@ -292,11 +289,11 @@ def noise_model(
     # baseline) and k' C k with C the baseline's autocovariance up to _SHORT_LAG_S and
     # zero beyond (precise for white or low-pass filtered noise).
     short_var = _quadratic_form(acov / n_acov, kac)
-    detector_sd = max(_robust_sd(np.concatenate(outputs)), math.sqrt(max(short_var, 0.0)))
+    detector_sd = max(robust_sd(np.concatenate(outputs)), math.sqrt(max(short_var, 0.0)))
     if len(outputs) >= 3:  # the median over segments resists an event in one of them
-        per_segment = [max(_robust_sd(o), sd) for o, sd in zip(outputs, segment_sd, strict=True)]
+        per_segment = [max(robust_sd(o), sd) for o, sd in zip(outputs, segment_sd, strict=True)]
         detector_sd = float(np.median(per_segment))
-    raw_sd = _robust_sd(np.concatenate(highpassed))
+    raw_sd = robust_sd(np.concatenate(highpassed))
     return NoiseModel(raw_sd, detector_sd, int(n_out), float(fs_hz), shape)
 
 

@@ -89,3 +89,10 @@ def mains_hum(segments, fs: float, freqs_hz=(50.0, 60.0)) -> tuple[float, float,
         if amps and np.mean(amps) > best[1]:
             best = (f, float(np.mean(amps)), float(np.mean(floors)))
     return best
+
+
+def robust_sd(x: np.ndarray) -> float:
+    """Median absolute deviation × 1.4826, the sd of normal data that it estimates, in the
+    input's unit (0 for no data)."""
+    x = np.asarray(x, dtype=float)
+    return float(1.4826 * np.median(np.abs(x - np.median(x)))) if x.size else 0.0

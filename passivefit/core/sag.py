@@ -18,6 +18,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from passivefit.core.qc import robust_sd
+
 __all__ = ["Sag", "measure_sag", "sag_free_end_s"]
 
 SAG_NOISE_FACTOR = 4.0
@@ -73,10 +75,6 @@ def _smooth(v: np.ndarray, width: int) -> np.ndarray:
     csum = np.concatenate(([0.0], np.cumsum(v)))
     return (csum[width:] - csum[:-width]) / width
 
-
-def _robust_sd(x: np.ndarray) -> float:
-    x = np.asarray(x, dtype=float)
-    return float(1.4826 * np.median(np.abs(x - np.median(x)))) if x.size else 0.0
 
 
 def _refine_peak(x: np.ndarray, centre: int, half: int) -> tuple[float, float] | None:
@@ -176,7 +174,7 @@ def measure_sag(
     if refined is not None and centre >= half:  # a peak clear of the onset's fast rise
         peak, peak_time = sign * refined[0], refined[1] / fs_hz
     base_smooth = _smooth(v[:on], width) if on >= 2 * width else np.zeros(0)
-    noise = _robust_sd(base_smooth - np.median(base_smooth)) if base_smooth.size else 0.0
+    noise = robust_sd(base_smooth - np.median(base_smooth)) if base_smooth.size else 0.0
     ratio = steady / peak if sign * peak > 0 else None
     has_sag = sign * (peak - steady) > SAG_NOISE_FACTOR * noise
 
