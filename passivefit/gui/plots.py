@@ -408,7 +408,12 @@ class VIView(QtWidgets.QWidget):
                        symbolBrush=pg.mkBrush(theme.TEAL))
         slope = vi.get("slope")
         x = np.array([min(0.0, i_pa.min()), max(0.0, i_pa.max())])
-        if slope is not None:
+        chord = result.cell.values.get(S.R_IN_CHORD.key)
+        if slope is not None and result.cell.values.get(S.R_IN.key) == chord:
+            # the relation bends: R_in is the chord of the smallest steps, drawn as such
+            line = chord * 1e6 * x * PA / MV
+            set_title(self.plot, f"bends · smallest steps {chord:.4g} MΩ")
+        elif slope is not None:
             line = (slope.slope_ohm * x * PA + slope.intercept_V) / MV
             set_title(self.plot, f"slope {slope.slope_ohm / 1e6:.4g} MΩ · r² {slope.r2:.4f}")
         else:   # one amplitude: the line through the origin is ΔV/ΔI
