@@ -55,6 +55,29 @@ def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag
     return values, vi, flags
 
 
+def pulse_input_resistance(g: GroupAverage, fit, fs: float) -> tuple[dict, list[Flag]]:
+    """R_in of brief pulses: the charge the cell holds, ∫ΔV dt, over the charge injected,
+    Q = I·D (for a linear cell the integral of the voltage response to a charge is
+    Q·R_in — the impulse response's integral is the input resistance; derived,
+    docs/references.md §3). The integral runs from the pulse onset over the recorded
+    decay, plus the fitted exponentials' remainder past the end of the sweep."""
+    step = g.step
+    onset, end = step.onset, g.v_V.size
+    dv = g.v_V[onset:end] - g.v_base_V
+    seen = np.isfinite(dv)
+    integral = float(np.sum(dv[seen])) / fs * dv.size / max(np.count_nonzero(seen), 1)
+    seg = next((s for s in g.segments if not s.charging), g.segments[0])
+    t_end = (end - 1) / fs - seg.edge_s
+    amps = np.asarray(fit.full.amplitudes[seg.index], dtype=float)
+    taus = np.asarray(fit.full.taus, dtype=float)
+    remainder = float(np.sum(amps * taus * np.exp(-t_end / taus)))
+    charge = step.amplitude_A * step.duration_s
+    r_in = (integral + remainder) / charge
+    if not r_in > 0:
+        return {}, [S.CELL_NO_STEADY_STATE.make()]
+    return {S.R_IN: r_in, S.R_IN_METHOD: "charge integral (brief pulses)"}, []
+
+
 def sag(used: list[SweepFit]) -> tuple[dict, list[Flag]]:
     """Sag ratio (steady/peak), R_in at the peak and the rebound after the step, of the
     largest hyperpolarizing step (core.sag)."""

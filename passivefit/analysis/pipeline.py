@@ -185,7 +185,10 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     out.flags.extend(flags)
     out.sweeps = tuple(fits)
     used = [f for f in fits if f.accepted]
-    values, out.vi, flags = checks.input_resistance(used)
+    if out.protocol == "pulse" and fit is not None:
+        values, flags = checks.pulse_input_resistance(avg, fit, fs)
+    else:
+        values, out.vi, flags = checks.input_resistance(used)
     out.values.update(values)
     out.flags.extend(flags)
     values, flags = checks.sag(used)

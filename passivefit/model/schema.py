@@ -275,7 +275,9 @@ CELL_FEW_SWEEPS = _flag(
     "cell.few_sweeps", "warning",
     "fewer than 3 sweeps accepted: averages are noisy and no bootstrap CIs (number of sweeps)")
 CELL_NO_STEADY_STATE = _flag(
-    "cell.no_steady_state", "info", "brief pulses reach no steady state: R_in is not measured")
+    "cell.no_steady_state", "info",
+    "no step reaches a steady state and the pulses' charge integral gives no positive R_in: "
+    "R_in is not measured")
 CELL_SWEEP_SPREAD = _flag(
     "cell.sweep_spread", "warning",
     "τ0 of the averaged sweeps differs from the median of the single sweeps (ms)")
