@@ -429,7 +429,7 @@ def simulate_recording(
             "noise_sd_mV": float(noise_sd_V * 1e3),
             "filter_hz": None if filter_hz is None else float(filter_hz),
             "drift_mV_per_s": float(drift_V_per_s * 1e3),
-            "hum_mV": float(hum_V * 1e3),
+            S.HUM.key: float(hum_V * 1e3),
             "events_per_s": float(events_per_s),
             "sample_rate_hz": float(sample_rate_hz),
             "sweep_duration_ms": float(sweep_duration_s * 1e3),
