@@ -18,10 +18,12 @@ leaves half a review.
 
 from __future__ import annotations
 
+import errno
 import json
+import math
 import os
 import tempfile
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, fields, replace
 from datetime import UTC, datetime
 from pathlib import Path
 
@@ -35,13 +37,14 @@ from passivefit.analysis import (
     analyze_sweep,
     sweep_steps,
 )
-from passivefit.io.recording import Recording
+from passivefit.io.recording import LoadError, Recording
 
 REVIEW_FORMAT = "passivefit-review"
 REVIEW_VERSION = 1
 REVIEW_SUFFIX = ".passivefit-review.json"
 WINDOW_NAMES = ("baseline", "steady", "fit")
 MAX_UNDO = 200
+RATE_RANGE_HZ = (100.0, 100e6)   # sample rates the window can draw and fit (100 Hz–100 MHz)
 WINDOW_DECIMALS = 3   # windows are kept to 1 µs (in ms), a drag gives no more
 
 
@@ -138,35 +141,173 @@ def write_review(path: str | os.PathLike, document: dict) -> Path:
 
 
 def read_review(path: str | os.PathLike, sha256: str = "") -> tuple[Settings, int]:
-    """The settings and current sweep of a review file.
+    """The settings and current sweep (a sweep number) of a review file.
 
     Raises
     ------
     ReviewFileError
-        Not JSON, not a review, a newer version, or made for a different recording
-        (another sha256).
+        Not JSON, not a review, a newer version, keys missing or of the wrong type, or
+        made for a different recording (another sha256).
     """
     path = Path(path)
     try:
         doc = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise ReviewFileError(f"{path}: not a readable review file ({exc}); starting afresh") \
-            from None
+    except (OSError, UnicodeDecodeError, ValueError, RecursionError) as exc:
+        raise ReviewFileError(f"{path}: not a readable review file ({_short(exc)})") from None
     if not isinstance(doc, dict) or doc.get("format") != REVIEW_FORMAT:
-        raise ReviewFileError(f"{path}: not a {REVIEW_FORMAT} file; starting afresh")
-    if not isinstance(doc.get("version"), int) or doc["version"] > REVIEW_VERSION:
-        raise ReviewFileError(f"{path}: review version {doc.get('version')!r} is newer than "
-                              f"this passivefit reads ({REVIEW_VERSION}); update passivefit")
-    saved_sha = (doc.get("recording") or {}).get("sha256") or ""
+        raise ReviewFileError(f"{path}: not a {REVIEW_FORMAT} file")
+    version = doc.get("version")
+    if not _is_int(version) or version < 1:
+        raise ReviewFileError(f"{path}: review version {version!r} is not one this "
+                              f"passivefit reads ({REVIEW_VERSION})")
+    if version > REVIEW_VERSION:
+        raise ReviewFileError(f"{path}: review version {version!r} is newer than this "
+                              f"passivefit reads ({REVIEW_VERSION}); update passivefit to use it")
+    problem = _document_problem(doc)
+    if problem:
+        raise ReviewFileError(f"{path}: the review is damaged ({problem})")
+    saved_sha = doc["recording"].get("sha256") or ""
     if sha256 and saved_sha and saved_sha != sha256:
         raise ReviewFileError(f"{path}: the review was made for a different version of the "
-                              "recording (sha256 differs); starting afresh")
+                              "recording (sha256 differs)")
     try:
         settings = Settings.from_dict(doc["settings"])
-    except (KeyError, TypeError, ValueError) as exc:
-        raise ReviewFileError(f"{path}: the saved settings are damaged ({exc}); starting "
-                              "afresh") from None
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:
+        raise ReviewFileError(f"{path}: the saved settings are damaged ({_short(exc)})") \
+            from None
     return settings, int(doc.get("current_sweep") or 0)
+
+
+def _short(exc: BaseException) -> str:
+    return str(exc).splitlines()[0][:160] if str(exc) else type(exc).__name__
+
+
+def _is_int(x) -> bool:
+    return isinstance(x, int) and not isinstance(x, bool)
+
+
+def _is_number(x) -> bool:
+    return isinstance(x, int | float) and not isinstance(x, bool) and math.isfinite(x)
+
+
+def _span_problem(name: str, span) -> str:
+    if span is None:
+        return ""
+    if not (isinstance(span, list) and len(span) == 2 and all(map(_is_number, span))):
+        return f"`{name}` must be two numbers (ms), not {span!r}"
+    return ""
+
+
+def _windows_problem(where: str, w) -> str:
+    if not isinstance(w, dict):
+        return f"`{where}` must be an object, not {w!r}"
+    kinds = {f.name: str(f.type) for f in fields(Windows)}
+    for key, value in w.items():
+        kind = kinds.get(key)
+        if kind is None:
+            return f"`{where}` has an unknown key `{key}`"
+        if kind == "tuple[float, float] | None":
+            problem = _span_problem(f"{where}.{key}", value)
+        elif not _TYPE_CHECKS.get(kind, lambda v: True)(value):
+            problem = f"`{where}.{key}` has the wrong type ({value!r})"
+        else:
+            problem = ""
+        if problem:
+            return problem
+    return ""
+
+
+_TYPE_CHECKS = {   # a Settings field's annotation -> what its JSON value must be
+    "tuple[int, ...] | None": lambda v: v is None or (isinstance(v, list)
+                                                      and all(map(_is_int, v))),
+    "StepSpec | None": lambda v: v is None or (isinstance(v, dict) and all(
+        _is_number(x) for x in v.values())),
+    "float | None": lambda v: v is None or _is_number(v),
+    "str": lambda v: isinstance(v, str),
+    "str | None": lambda v: v is None or isinstance(v, str),
+    "bool": lambda v: isinstance(v, bool),
+    "bool | None": lambda v: v is None or isinstance(v, bool),
+    "int": _is_int,
+    "tuple[tuple[int, Windows], ...]": lambda v: isinstance(v, list) and all(
+        isinstance(x, list) and len(x) == 2 and _is_int(x[0]) for x in v),
+    "tuple[tuple[int, bool, str], ...]": lambda v: isinstance(v, list) and all(
+        isinstance(x, list) and len(x) == 3 and _is_int(x[0]) and isinstance(x[1], bool)
+        and isinstance(x[2], str) for x in v),
+}
+
+
+def _document_problem(doc: dict) -> str:
+    """What is wrong with the types of a review document ("" when nothing).
+
+    Checked on the JSON itself, before `Settings.from_dict` turns values into other
+    types (it would read a decision ``"false"`` as accepted).
+    """
+    recording = doc.get("recording", {})
+    if not isinstance(recording, dict) or not all(
+            isinstance(recording.get(k, ""), str) for k in ("file", "sha256")):
+        return f"`recording` must hold the file name and sha256 as text, not {recording!r}"
+    current = doc.get("current_sweep", 0)
+    if current is not None and not _is_int(current):
+        return f"`current_sweep` must be a whole number, not {current!r}"
+    settings = doc.get("settings")
+    if not isinstance(settings, dict):
+        return "`settings` is missing" if settings is None else \
+            f"`settings` must be an object, not {settings!r}"
+    checks = {f.name: _TYPE_CHECKS.get(str(f.type), lambda v: True) for f in fields(Settings)}
+    for key, value in settings.items():
+        check = checks.get(key)
+        if check is None:
+            return f"`settings` has an unknown key `{key}`"
+        if not check(value):
+            return f"`settings.{key}` has the wrong type ({value!r})"[:200]
+    problem = _windows_problem("settings.windows", settings.get("windows") or {})
+    for index, windows in settings.get("sweep_windows") or []:
+        problem = problem or _windows_problem(f"settings.sweep_windows[{index}]", windows)
+    return problem
+
+
+def set_aside(path: str | os.PathLike) -> Path:
+    """Rename a review file that cannot be used to ``<name>.bak`` (``.bak-2``, ``.bak-3``
+    … when that exists), so nothing overwrites it; returns the new path.
+
+    Raises OSError when it cannot be renamed (then it must not be written over either).
+    """
+    path = Path(path)
+    backup = path.with_name(path.name + ".bak")
+    n = 1
+    while backup.exists() or backup.is_symlink():
+        n += 1
+        backup = path.with_name(f"{path.name}.bak-{n}")
+    try:
+        os.link(path, backup)          # the bytes never leave the disk, no half copy
+    except (OSError, AttributeError):
+        _copy_exact(path, backup)
+    path.unlink()
+    return backup
+
+
+def _copy_exact(source: Path, target: Path) -> None:
+    """Copy the bytes of `source` to a new file `target` (never over an existing one)."""
+    data = source.read_bytes()
+    with open(target, "xb") as f:
+        f.write(data)
+        f.flush()
+        os.fsync(f.fileno())
+
+
+def check_recording(recording: Recording) -> None:
+    """Refuse a recording whose header values the review cannot use (ValueError, one line).
+
+    A sample rate outside `RATE_RANGE_HZ` (1e300 from a damaged header, or 0.001) gives
+    sweeps of 1e-297 s or hours; the plots and the windows cannot show them.
+    """
+    fs = recording.sample_rate_hz
+    low, high = RATE_RANGE_HZ
+    if not (isinstance(fs, int | float) and math.isfinite(fs) and low <= fs <= high):
+        shown = f"{fs:g}" if isinstance(fs, int | float) else repr(fs)
+        raise ValueError(f"{recording.path}: the sample rate `{shown}` Hz is outside what the "
+                         f"review window can show ({low:g} Hz to {high / 1e6:g} MHz); check "
+                         "the file's header")
 
 
 # ----------------------------------------------------------------------------- windows
@@ -234,22 +375,29 @@ class ReviewState:
         self.autosave = autosave
         self.restore_note = ""
         self.restored = False
+        self.backup: Path | None = None
+        self.save_error = ""
+        self._blocked = ""        # why the review file must not be written over
+        check_recording(recording)
         settings = settings or Settings()
-        position = 0
-        if restore and self.review_file.exists():
+        saved = None
+        if restore and (self.review_file.exists() or self.review_file.is_symlink()):
             try:
-                settings, position = read_review(self.review_file, recording.sha256)
-                self.restored = True
+                saved_settings, saved_sweep = read_review(self.review_file, recording.sha256)
+                saved = self._layout(saved_settings)
             except ReviewFileError as exc:
-                self.restore_note = str(exc)
+                self._keep_aside(str(exc))
+            except (LoadError, ValueError) as exc:
+                self._keep_aside(f"{self.review_file}: the saved settings do not fit this "
+                                 f"recording ({_short(exc)})")
+        if saved is not None:
+            settings, (self.steps, self.indices) = saved_settings, saved
+            self.restored = True
+            position = self.indices.index(saved_sweep) if saved_sweep in self.indices else 0
+        else:
+            self.steps, self.indices = self._layout(settings)
+            position = 0
         self.settings = settings
-        self.steps = dict(zip((s.index for s in recording.sweeps),
-                              sweep_steps(recording, settings), strict=True))
-        self.indices = [s.index for s in recording.sweeps
-                        if settings.sweeps is None or s.index in settings.sweeps]
-        if not self.indices:
-            raise ValueError(f"none of the sweeps {list(settings.sweeps or ())} exist in "
-                             f"{recording.path}")
         self._voltage = {s.index: s.voltage for s in recording.sweeps}
         self._floor: dict[int, float] = {}
         self.position = min(max(position, 0), len(self.indices) - 1)
@@ -264,7 +412,33 @@ class ReviewState:
         self.result_changed = Event()
         self.saved = Event()
         self.save_failed = Event()
-        self.save_error = ""
+        self.refit_failed = Event()
+
+    def _layout(self, settings: Settings) -> tuple[dict, list[int]]:
+        """The steps and the sweep numbers under review with `settings` (LoadError or
+        ValueError when they cannot be used with this recording)."""
+        recording = self.recording
+        steps = dict(zip((s.index for s in recording.sweeps),
+                         sweep_steps(recording, settings), strict=True))
+        indices = [s.index for s in recording.sweeps
+                   if settings.sweeps is None or s.index in settings.sweeps]
+        if not indices:
+            raise ValueError(f"none of the sweeps {list(settings.sweeps or ())} exist in "
+                             f"{recording.path}")
+        return steps, indices
+
+    def _keep_aside(self, problem: str) -> None:
+        """A review file that cannot be used: renamed to .bak before anything replaces it."""
+        try:
+            self.backup = set_aside(self.review_file)
+        except OSError as exc:
+            self._blocked = (f"it could not be kept aside ({exc.strerror or exc}), so it "
+                             "is not written over")
+            self.restore_note = (f"{problem}; {self._blocked}: this recording opened with a "
+                                 "fresh review; File › Save review as… keeps it elsewhere")
+            return
+        self.restore_note = (f"{problem}; it was kept as {self.backup.name} and this recording "
+                             "opened with a fresh review")
 
     @classmethod
     def open(cls, path: str | os.PathLike, settings: Settings | None = None,
@@ -470,11 +644,15 @@ class ReviewState:
             self._floor.clear()
         self.settings = settings
         self.live.clear()
+        if self.autosave:
+            self.try_save()          # first: a refit that fails must not cost the decision
         self.settings_changed.emit(settings)
         if self.steps.get(self.current) is not None:
-            self.refit_sweep()
-        if self.autosave:
-            self.try_save()
+            try:
+                self.refit_sweep()
+            except Exception as exc:  # noqa: BLE001 - the review goes on; said in words
+                self.refit_failed.emit(f"sweep {self.current} could not be fitted: "
+                                       f"{_short(exc)}")
         self.analysis_needed.emit(settings)
 
     def _steps_for(self, settings: Settings) -> dict:
@@ -505,23 +683,57 @@ class ReviewState:
         if self.autosave and self.review_file.exists():
             self.try_save()
 
+    @property
+    def unsaved(self) -> bool:
+        """True when the newest change could not be written (kept in memory only)."""
+        return bool(self.save_error)
+
     def try_save(self) -> bool:
-        """Save the review; on failure keep going and emit ``save_failed`` with the reason."""
+        """Save the review; on failure keep going and emit ``save_failed`` with the reason.
+
+        Every later change tries again; :meth:`save_as` writes it elsewhere.
+        """
         try:
             self.save()
         except OSError as exc:
             reason = exc.strerror or str(exc)
             where = exc.filename or self.review_file
-            self.save_error = (f"the review could not be saved to {where}: {reason}; "
-                               "your changes stay in this window until it closes")
+            self.save_error = (f"the review could not be saved to {where}: {reason}; your "
+                               "changes stay in this window: File › Save review as… keeps "
+                               "them in another folder")
             self.save_failed.emit(self.save_error)
             return False
         self.save_error = ""
         return True
 
     def save(self, path: str | os.PathLike | None = None) -> Path:
-        """Write the review file (atomically); returns its path."""
-        written = write_review(path or self.review_file,
+        """Write the review file (atomically); returns its path.
+
+        Raises OSError when it cannot be written, or when the review file there could
+        not be kept aside (it is never written over then).
+        """
+        target = Path(path) if path else self.review_file
+        if self._blocked and target == self.review_file:
+            raise OSError(errno.EEXIST, self._blocked, str(target))
+        written = write_review(target,
                                review_document(self.recording, self.settings, self.current))
+        self.saved.emit(written)
+        return written
+
+    def save_as(self, path: str | os.PathLike) -> Path:
+        """Write the review to `path` and keep saving there (OSError when it cannot).
+
+        For a review that cannot be saved where it belongs (read-only folder, full disk).
+        A file at `path` that is not a review of this recording is kept aside first.
+        """
+        path = Path(path)
+        if path.exists() and path.resolve() != self.review_file.resolve():
+            try:
+                read_review(path, self.recording.sha256)
+            except ReviewFileError:
+                set_aside(path)
+        written = write_review(path, review_document(self.recording, self.settings,
+                                                     self.current))
+        self.review_file, self._blocked, self.save_error = written, "", ""
         self.saved.emit(written)
         return written

@@ -115,6 +115,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.position = -1
         self.state: ReviewState | None = None
         self.last_error = ""
+        self._notes: dict[str, str] = {}     # banner lines by topic (save, review, open, fit)
         self._previewed = False
         self._shown_step = None
         self.failed_settings: Settings | None = None
@@ -244,6 +245,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.recent_menu = file_menu.addMenu("Open recent")
         self.recent_menu.aboutToShow.connect(self._fill_recent)
         file_menu.addSeparator()
+        self._action(file_menu, "Save review as…", "Ctrl+Shift+S", self._ask_save_review_as)
         self._action(file_menu, "Export parameter sheet…", "Ctrl+E", self._ask_export)
         self._action(file_menu, "Export PDF report…", "Ctrl+P", self._ask_report)
         self._action(file_menu, "Add cell to database…", "Ctrl+D", self._ask_database)
@@ -305,17 +307,47 @@ class ReviewWindow(QtWidgets.QMainWindow):
         try:
             state = self._make_state(path)
         except (LoadError, ValueError) as exc:
-            self._problem(str(exc))
+            self._open_failed(str(exc))
             return False
         except Exception as exc:  # noqa: BLE001 - a reader's bug must not close the window
-            self._problem(f"{path}: could not be opened ({type(exc).__name__}: {exc})")
+            self._open_failed(f"{path}: could not be opened ({type(exc).__name__}: {exc})")
             return False
         if state is None:
             return False
+        previous = (self.state, self.position)
         self.position = position
-        self._attach(state)
+        try:
+            self._attach(state)
+        except Exception as exc:  # noqa: BLE001 - absurd values must not close the window
+            self._detach(state)
+            self.state, self.position = None, previous[1]
+            if previous[0] is not None:
+                try:
+                    self._attach(previous[0])        # back to the recording shown before
+                except Exception:  # noqa: BLE001 - it was shown before; leave it be
+                    self.state = None
+            self._open_failed(f"{path}: could not be shown ({type(exc).__name__}: "
+                              f"{str(exc).splitlines()[0] if str(exc) else ''})")
+            return False
+        self._note("open", None)
         self._remember(path)
         return True
+
+    def _open_failed(self, message: str) -> None:
+        self._note("open", message)
+        self._problem(message)
+
+    def _detach(self, state: ReviewState) -> None:
+        for event, slot in ((state.current_changed, self._on_current),
+                            (state.sweep_refitted, self._on_refit),
+                            (state.settings_changed, self._on_settings),
+                            (state.analysis_needed, self._on_analysis_needed),
+                            (state.result_changed, self._on_result),
+                            (state.saved, self._saved),
+                            (state.save_failed, self._save_failed),
+                            (state.refit_failed, self._refit_failed)):
+            if slot in event._callbacks:
+                event.disconnect(slot)
 
     def _make_state(self, path: Path) -> ReviewState | None:
         from passivefit.io import load
@@ -348,10 +380,13 @@ class ReviewWindow(QtWidgets.QMainWindow):
         state.result_changed.connect(self._on_result)
         state.saved.connect(self._saved)
         state.save_failed.connect(self._save_failed)
+        state.refit_failed.connect(self._refit_failed)
+        for topic in ("save", "review", "fit"):
+            self._note(topic, None)
         if state.save_error:
             self._save_failed(state.save_error)
-        else:
-            self.banner.hide()
+        if state.restore_note:
+            self._note("review", state.restore_note)
         self.setWindowTitle(f"passivefit · review — {Path(state.recording.path).name}")
         self.header.show_recording(state, self.position, len(self.paths))
         self.trace.set_recording(state)
@@ -368,7 +403,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
         note = "review restored from " + state.review_file.name if state.restored else \
             state.restore_note
         if note:
-            self.statusBar().showMessage(note, 8000)
+            self.statusBar().showMessage(note, 15000)
         self._on_analysis_needed(state.settings)
 
     # ------------------------------------------------------------------ state events
@@ -396,7 +431,10 @@ class ReviewWindow(QtWidgets.QMainWindow):
 
     def _on_analysis_needed(self, settings) -> None:
         if self.synchronous:
-            self.state.run_analysis()
+            try:
+                self.state.run_analysis()
+            except Exception as exc:  # noqa: BLE001 - said in words, the window goes on
+                self._analysis_failed(self.state, f"{type(exc).__name__}: {exc}")
         else:
             self.runner.request(self.state, settings)
 
@@ -575,15 +613,52 @@ class ReviewWindow(QtWidgets.QMainWindow):
         return Path(path)
 
     # ------------------------------------------------------------------ dialogs
+    def _note(self, topic: str, message: str | None) -> None:
+        """Keep (or, with None, drop) a line of the red banner; it shows while any is kept."""
+        if message:
+            self._notes[topic] = message[:1].upper() + message[1:]
+        else:
+            self._notes.pop(topic, None)
+        self.banner.setText("\n".join(self._notes.values()))
+        self.banner.setVisible(bool(self._notes))
+
     def _saved(self, path: Path) -> None:
-        self.banner.hide()
+        self._note("save", None)
         self.statusBar().showMessage(f"review saved · {path.name}", 4000)
 
     def _save_failed(self, message: str) -> None:
         """A review that cannot be written: said in the window, the review goes on."""
         self.last_error = message
-        self.banner.setText(message[:1].upper() + message[1:])
-        self.banner.show()
+        self._note("save", message)
+
+    def _refit_failed(self, message: str) -> None:
+        self.last_error = message
+        self.statusBar().showMessage(message, 15000)
+
+    def save_review_as(self, path: str | Path) -> bool:
+        """Write the review to `path` and keep saving there; False (said) when it cannot."""
+        if self.state is None:
+            return False
+        try:
+            written = self.state.save_as(path)
+        except OSError as exc:
+            self._problem(write_problem(path, exc))
+            return False
+        self.statusBar().showMessage(f"review saved to {written}; it is read from there only "
+                                     "in this window (copy it beside the recording to keep it "
+                                     "with the recording)", 15000)
+        return True
+
+    def _ask_save_review_as(self) -> None:
+        if self.state is None:
+            return
+        from passivefit.gui.state import REVIEW_SUFFIX
+
+        name = Path(self.state.recording.path).name + REVIEW_SUFFIX
+        path, _ = QtWidgets.QFileDialog.getSaveFileName(
+            self, "Save review as", str(Path.home() / name), "passivefit review (*.json)")
+        if path:
+            self.save_review_as(path)
 
     def _problem(self, message: str) -> None:
         self.last_error = message
@@ -735,4 +810,19 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.runner.wait()
         if self.state is not None:
             self.state.save_position()
+            if self.state.unsaved and self.interactive and not self._close_unsaved():
+                event.ignore()
+                return
         super().closeEvent(event)
+
+    def _close_unsaved(self) -> bool:
+        """Ask before a review that could not be saved is lost; True: close."""
+        buttons = QtWidgets.QMessageBox.StandardButton
+        answer = QtWidgets.QMessageBox.warning(
+            self, "passivefit", f"{self.state.save_error[:1].upper()}"
+            f"{self.state.save_error[1:]}.\n\nSave the review elsewhere before closing?",
+            buttons.Save | buttons.Discard | buttons.Cancel, buttons.Save)
+        if answer == buttons.Save:
+            self._ask_save_review_as()
+            return not self.state.unsaved
+        return answer == buttons.Discard
