@@ -199,3 +199,27 @@ def test_a_sweep_count_of_two_billion_is_refused_at_once(tmp_path, folder):
         path.write_bytes(bytes(header))
         with _MemoryGuard(), pytest.raises(LoadError, match="2147483647 sweeps"):
             load(path)
+
+
+@needs_linux
+def test_a_huge_sparse_table_is_refused_before_reading(tmp_path):
+    # issue 15: a 2 GB sparse CSV made the reader hold 4.2 GB
+    from passivefit.io.text import MAX_TEXT_BYTES
+
+    path = tmp_path / "huge.csv"
+    with open(path, "wb") as f:
+        f.write(b"time_ms,V0_mV\n0,-70\n")
+        f.truncate(MAX_TEXT_BYTES + 1)  # sparse: no disk used, zeros read back
+    with _MemoryGuard(), pytest.raises(LoadError, match=r"larger than the 1024 MiB"):
+        load(path)
+
+
+def test_a_table_within_the_bound_is_read(tmp_path, monkeypatch):
+    from passivefit.io import text
+
+    path = save(charging_recording(n_sweeps=2, n_samples=1200), tmp_path / "ok.csv")
+    monkeypatch.setattr(text, "MAX_TEXT_BYTES", path.stat().st_size)
+    assert len(load(path).sweeps) == 2
+    monkeypatch.setattr(text, "MAX_TEXT_BYTES", path.stat().st_size - 1)
+    with pytest.raises(LoadError, match="split it into files"):
+        load(path)

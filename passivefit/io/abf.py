@@ -136,6 +136,10 @@ def _check_declared_sizes(path: Path, head: bytes, size: int) -> None:
             f"copy it again from the rig",
         )
 
+    def truncated(needed: int) -> None:
+        raise LoadError(path, f"truncated ABF file: the header promises {needed} bytes, the "
+                              f"file has {size}; copy it again from the rig")
+
     if head[:4] == b"ABF ":
         samples, episodes = field("<i", _ABF1_ACQ_LENGTH), field("<i", _ABF1_EPISODES)
         if samples < 0 or episodes < 0:
@@ -144,7 +148,7 @@ def _check_declared_sizes(path: Path, head: bytes, size: int) -> None:
         data_end = (field("<i", _ABF1_DATA_PTR) * _BLOCK + field("<h", _ABF1_POINTS_IGNORED)
                     + samples * _ABF1_SAMPLE_BYTES)
         if data_end > size:
-            refuse(f"the declared {samples} samples", data_end)
+            truncated(data_end)
         if episodes > max(samples, 1):
             refuse(f"the declared {episodes} sweeps (of {samples} samples)",
                    episodes * _ABF1_SAMPLE_BYTES)
@@ -160,6 +164,8 @@ def _check_declared_sizes(path: Path, head: bytes, size: int) -> None:
         if entries <= 0:
             continue
         end = block * _BLOCK + entry_bytes * entries
+        if at == _ABF2_DATA_SECTION and entries <= size < end:
+            truncated(end)  # the data are cut short; the header itself is sound
         if end > size or entries > size:
             refuse(f"the section listed at byte {at} ({entries} entries of {entry_bytes} bytes)",
                    max(end, entries))
