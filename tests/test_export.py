@@ -305,3 +305,44 @@ def test_a_long_pulse_recording_keeps_to_two_pages(tmp_path):
     recording = load(REPO_SAMPLES / "LOL-2026-11-19-c4_L5-pulses.nwb")
     path = write_report([(recording, analyze(recording))], tmp_path / "l5.pdf")
     assert _pdf_pages(path) == 2
+
+
+# ---------------------------------------------------------------- text that looks like a formula
+
+FORMULAS = ["=HYPERLINK(\"http://x\",\"y\")", "+1+2", "-3+4", "@SUM(A1)", "\tlead", "\rlead"]
+
+
+def _with_formula_notes(results):
+    """The results with text cells that a spreadsheet would read as formulas."""
+    return [copy.deepcopy(r) | {"source": r["source"] | {"path": text}}
+            for r, text in zip(results, FORMULAS, strict=False)]
+
+
+def test_csv_text_that_looks_like_a_formula_is_escaped(tmp_path, results):
+    tricky = _with_formula_notes(results)
+    notes = [{"notes": "=1+1", "region": "CA1"}, {"notes": "@cmd", "region": "DG"}]
+    cells_path, _ = write_sheet(tricky, tmp_path / "cells.csv", annotations=notes)
+    with open(cells_path, newline="") as f:
+        rows = list(csv.DictReader(f))
+    assert [r["notes"] for r in rows] == ["'=1+1", "'@cmd"]
+    assert [r["region"] for r in rows] == ["CA1", "DG"]
+    assert [r["source_path"] for r in rows] == ["'" + t for t in FORMULAS[:2]]
+    # numbers stay numbers, negative ones included
+    assert float(rows[0]["v_rest_mV"]) == results[0]["cell"]["v_rest_mV"] < 0
+
+
+def test_xlsx_text_that_looks_like_a_formula_stays_text(tmp_path, results):
+    from openpyxl import load_workbook
+
+    tricky = _with_formula_notes(results)
+    notes = [{"notes": "=1+1"}, {"notes": "-2+3"}]
+    (path,) = write_sheet(tricky, tmp_path / "cells.xlsx", annotations=notes)
+    sheet = load_workbook(path)["cells"]
+    header = [c.value for c in sheet[1]]
+    for row, note, text in zip(sheet.iter_rows(min_row=3), ["=1+1", "-2+3"], FORMULAS,
+                               strict=False):
+        cells = dict(zip(header, row, strict=True))
+        assert cells["notes"].value == note and cells["notes"].data_type == "s"
+        assert cells["source_path"].value == text and cells["source_path"].data_type == "s"
+        assert cells["v_rest_mV"].data_type == "n"
+    assert not any(c.data_type == "f" for line in sheet.iter_rows() for c in line)

@@ -24,6 +24,7 @@ from pynwb.icephys import (
 from passivefit.io import LoadError, Recording, load, save
 from passivefit.io import nwb as nwb_reader
 from passivefit.io.nwb import filter_hz_from_text, read_nwb_hdf5, read_nwb_pynwb
+from passivefit.model import schema as S
 
 RATE = 10_000.0
 N = 1500
@@ -351,9 +352,9 @@ def _count_pynwb_reads(monkeypatch) -> list:
     calls: list = []
     read = nwb_reader.read_nwb_pynwb
 
-    def spy(path):
+    def spy(path, channel=None):
         calls.append(path)
-        return read(path)
+        return read(path, channel)
 
     monkeypatch.setattr(nwb_reader, "read_nwb_pynwb", spy)
     return calls
@@ -409,3 +410,70 @@ def test_loading_a_plain_icephys_file_does_not_import_pynwb(tmp_path):
         "assert not heavy, heavy"
     )
     subprocess.run([sys.executable, "-c", code, str(path)], check=True)
+
+
+# ---------------------------------------------------------------- two electrodes, two cells
+
+
+def _two_electrode_file(path, table: bool = True):
+    """Two cells patched at once: electrode e0 rests at -70 mV, e1 at -80 mV.
+
+    Each electrode has three sweeps with a -50 pA step; the rows alternate between
+    the electrodes as a dual recording stores them.
+    """
+    nwb, e0 = _file(filtering="low-pass at 5 kHz")
+    e1 = nwb.create_icephys_electrode(name="e1", description="second patch",
+                                      device=nwb.devices["amp"], cell_id="second-cell",
+                                      filtering="low-pass at 2 kHz")
+    t = np.arange(N) / RATE
+    step = np.where((t >= 0.02) & (t < 0.1), -50e-12, 0.0)
+    for k in range(3):
+        for electrode, rest in ((e0, -0.070), (e1, -0.080)):
+            v = rest + 150e6 * step * (1 - np.exp(-np.clip(t - 0.02, 0, None) / 0.015)) \
+                + 1e-4 * np.sin(t * 700 + k)
+            number = np.uint32(k)
+            response = CurrentClampSeries(name=f"v_{electrode.name}_{k}", data=v,
+                                          electrode=electrode, gain=1.0, rate=RATE,
+                                          sweep_number=number)
+            stimulus = CurrentClampStimulusSeries(name=f"i_{electrode.name}_{k}", data=step,
+                                                  electrode=electrode, gain=1.0, rate=RATE,
+                                                  sweep_number=number)
+            if table:
+                nwb.add_intracellular_recording(electrode=electrode, stimulus=stimulus,
+                                                response=response)
+            else:
+                nwb.add_acquisition(response)
+                nwb.add_stimulus(stimulus)
+    return _write(nwb, path)
+
+
+@pytest.mark.parametrize("table", [True, False], ids=["table", "acquisition"])
+def test_two_electrodes_are_never_mixed(tmp_path, table):
+    path = _two_electrode_file(tmp_path / "dual.nwb", table)
+    first = load(path)
+    assert len(first.sweeps) == 3
+    rests = [float(np.median(s.voltage[:150])) for s in first.sweeps]
+    assert_allclose(rests, -0.070, atol=5e-4)  # e0 only, not the mean -75 mV of both
+    (flag,) = [f for f in first.flags if f.code == S.PROTOCOL_ELECTRODE.code]
+    assert "electrode e0 only" in flag.message and "e1" in flag.message
+    assert "`--channel NAME`" in flag.message
+    assert first.metadata["filter_hz"] == 5000.0
+    assert first.metadata["cell_id"] == "LOL-2026-11-05-c3"
+
+    second = load(path, channel="e1")
+    assert len(second.sweeps) == 3
+    assert_allclose([float(np.median(s.voltage[:150])) for s in second.sweeps], -0.080,
+                    atol=5e-4)
+    assert second.metadata["cell_id"] == "second-cell"
+    assert second.metadata["filter_hz"] == 2000.0
+    assert any("e0" in f.message for f in second.flags if f.code == S.PROTOCOL_ELECTRODE.code)
+    assert_allclose(load(path, channel=1).sweeps[0].voltage, second.sweeps[0].voltage)
+    with pytest.raises(LoadError, match=r"no electrode `e7`.*0: e0, 1: e1"):
+        load(path, channel="e7")
+
+
+def test_one_electrode_gives_no_choice_flag(tmp_path):
+    recording = load(save(charging_recording(n_sweeps=2, n_samples=1200), tmp_path / "one.nwb"))
+    assert not any(f.code == S.PROTOCOL_ELECTRODE.code for f in recording.flags)
+    same = load(tmp_path / "one.nwb", channel="electrode_0")
+    assert_allclose(same.sweeps[1].voltage, recording.sweeps[1].voltage)

@@ -132,7 +132,7 @@ def test_abf2_recorded_current_that_disagrees_with_the_table_is_used_and_flagged
 
 def test_channel_option_is_for_abf_files_only(tmp_path):
     path = save(charging_recording(n_sweeps=1), tmp_path / "cell.csv")
-    with pytest.raises(LoadError, match="`channel` applies to ABF files only"):
+    with pytest.raises(LoadError, match="`channel` applies to ABF and NWB files only"):
         load(path, channel=0)
 
 
@@ -160,7 +160,8 @@ def test_a_second_mv_channel_reading_volts_is_not_the_membrane_potential(tmp_pat
     (flag,) = rec.flags
     assert flag.code == "protocol.channel_chosen"
     assert "IN 1 [mV] sits at 310.1 mV, outside −120…+20 mV" in flag.message
-    assert load(path, channel="IN 1").voltage_channel == "IN 1 [mV]"
+    with pytest.raises(LoadError, match="310.07 mV at rest .*this is not a membrane potential"):
+        load(path, channel="IN 1")  # asked for, but refused: no cell sits at +310 mV
 
 
 def test_of_two_plausible_channels_the_one_answering_the_steps_is_chosen(tmp_path):

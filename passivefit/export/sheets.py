@@ -190,10 +190,20 @@ def _write_delimited(table: Table, path: Path, delimiter: str) -> Path:
     def write(target: Path) -> None:
         with open(target, "w", newline="", encoding="utf-8") as f:
             writer = csv.DictWriter(f, columns, delimiter=delimiter, extrasaction="raise")
-            writer.writeheader()
+            writer.writerow({c: _escaped(c) for c in columns})
             writer.writerows({k: _csv_value(v) for k, v in row.items()} for row in rows)
 
     return _replace_atomically(path, write)
+
+
+# Text starting with one of these is read as a formula by spreadsheet programs
+# (common practice, no source): such cells are written with a leading "'".
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def _escaped(text: str) -> str:
+    """`text` made inert for a spreadsheet: a leading "'" when it could start a formula."""
+    return "'" + text if text.startswith(FORMULA_STARTS) else text
 
 
 def _csv_value(value):
@@ -201,6 +211,8 @@ def _csv_value(value):
         return ""
     if isinstance(value, bool):
         return "true" if value else "false"
+    if isinstance(value, str):
+        return _escaped(value)
     return value
 
 
@@ -261,6 +273,10 @@ def _add_sheet(book, title: str, columns: list[str], rows: list[dict]) -> None:
     sheet.append([unit_of(c) for c in columns])
     for row in rows:
         sheet.append([row.get(c) for c in columns])
+    for line in sheet.iter_rows():
+        for cell in line:
+            if isinstance(cell.value, str):
+                cell.data_type = "s"  # text stays text, never a formula, whatever it starts with
     for cell in sheet[1]:
         cell.font = Font(bold=True)
     for cell in sheet[2]:

@@ -104,7 +104,9 @@ def load(path: str | Path, channel: int | str | None = None) -> Recording:
     channel : int or str, optional
         ABF files: the membrane-potential channel, by index among the file's input
         channels (from 0) or by name; by default the first mV channel that looks
-        like a membrane potential.
+        like a membrane potential. NWB files: the electrode, by name or by index
+        among the electrodes with current-clamp sweeps; by default the first (sweeps
+        of different electrodes are never mixed).
 
     Returns
     -------
@@ -130,9 +132,9 @@ def load(path: str | Path, channel: int | str | None = None) -> Recording:
     if not head:
         raise LoadError(path, "the file is empty (0 bytes); re-export the recording")
     reader = _choose_reader(path, head)
-    if channel is not None and reader.name != "abf":
-        raise LoadError(path, f"`channel` applies to ABF files only; this is a {reader.name} "
-                              f"file with one membrane-potential signal per sweep")
+    if channel is not None and reader.name not in ("abf", "nwb"):
+        raise LoadError(path, f"`channel` applies to ABF and NWB files only; this is a "
+                              f"{reader.name} file with one membrane-potential signal per sweep")
     recording = reader.read(path) if channel is None else reader.read(path, channel=channel)
     recording.path = str(path)
     recording.sha256 = file_sha256(path)

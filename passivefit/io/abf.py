@@ -93,12 +93,97 @@ def _reason(err: BaseException) -> str:
     return f"{name}: {text.splitlines()[0]}" if text else name
 
 
+# Header fields that size what pyabf allocates, read here before pyabf sees them
+# (offsets as pyabf's abf1/headerV1.py and abf2/section.py read them).
+_ABF1_ACQ_LENGTH = 10  # lActualAcqLength, int32: samples of all channels
+_ABF1_POINTS_IGNORED = 14  # nNumPointsIgnored, int16
+_ABF1_EPISODES = 16  # lActualEpisodes, int32: sweeps (pyabf lists them all)
+_ABF1_TAG_PTR = 44  # lTagSectionPtr, int32 (blocks)
+_ABF1_TAG_COUNT = 48  # lNumTagEntries, int32; 64 bytes each
+_ABF1_TAG_BYTES = 64
+_ABF1_SAMPLE_BYTES = 2  # int16 samples (pyabf reads no other ABF 1 data format)
+_ABF2_EPISODES = 12  # lActualEpisodes, uint32
+_ABF2_SECTIONS = range(76, 348, 16)  # section map: uBlockIndex, uBytes, llNumEntries
+_ABF2_DATA_SECTION = 236
+_HEADER_BYTES = 348
+
+
+def _check_declared_sizes(path: Path, head: bytes, size: int) -> None:
+    """Refuse a header whose declared counts cannot fit in the file, before pyabf reads it.
+
+    pyabf builds lists as long as the declared sweep, tag and section-entry counts, so
+    one damaged field (e.g. lActualEpisodes = 2**31 - 1 in a 90 KB file) would make it
+    allocate gigabytes. Every count is checked against the file's size in bytes.
+
+    Parameters
+    ----------
+    path : Path
+        The file (for the message).
+    head : bytes
+        The file's first bytes (up to `_HEADER_BYTES`).
+    size : int
+        The file's size, in bytes.
+    """
+    def field(fmt: str, at: int) -> int:
+        if at + struct.calcsize(fmt) > len(head):
+            raise LoadError(path, f"truncated ABF header ({size} bytes); copy it again")
+        return int(struct.unpack_from(fmt, head, at)[0])
+
+    def refuse(what: str, needed: int) -> None:
+        raise LoadError(
+            path,
+            f"damaged ABF header: {what} would need {needed} bytes, the file has {size}; "
+            f"copy it again from the rig",
+        )
+
+    def truncated(needed: int) -> None:
+        raise LoadError(path, f"truncated ABF file: the header promises {needed} bytes, the "
+                              f"file has {size}; copy it again from the rig")
+
+    if head[:4] == b"ABF ":
+        samples, episodes = field("<i", _ABF1_ACQ_LENGTH), field("<i", _ABF1_EPISODES)
+        if samples < 0 or episodes < 0:
+            raise LoadError(path, f"damaged ABF header: negative counts (lActualAcqLength "
+                                  f"`{samples}`, lActualEpisodes `{episodes}`); copy it again")
+        data_end = (field("<i", _ABF1_DATA_PTR) * _BLOCK + field("<h", _ABF1_POINTS_IGNORED)
+                    + samples * _ABF1_SAMPLE_BYTES)
+        if data_end > size:
+            truncated(data_end)
+        if episodes > max(samples, 1):
+            refuse(f"the declared {episodes} sweeps (of {samples} samples)",
+                   episodes * _ABF1_SAMPLE_BYTES)
+        tags = field("<i", _ABF1_TAG_COUNT)
+        tags_end = field("<i", _ABF1_TAG_PTR) * _BLOCK + tags * _ABF1_TAG_BYTES
+        if tags > 0 and tags_end > size:
+            refuse(f"the declared {tags} tags", tags_end)
+        return
+    episodes = field("<I", _ABF2_EPISODES)
+    data_entries = 0
+    for at in _ABF2_SECTIONS:
+        block, entry_bytes, entries = field("<I", at), field("<I", at + 4), field("<i", at + 8)
+        if entries <= 0:
+            continue
+        end = block * _BLOCK + entry_bytes * entries
+        if at == _ABF2_DATA_SECTION and entries <= size < end:
+            truncated(end)  # the data are cut short; the header itself is sound
+        if end > size or entries > size:
+            refuse(f"the section listed at byte {at} ({entries} entries of {entry_bytes} bytes)",
+                   max(end, entries))
+        if at == _ABF2_DATA_SECTION:
+            data_entries = entries
+    if episodes > max(data_entries, 1):
+        refuse(f"the declared {episodes} sweeps (of {data_entries} samples)", episodes)
+
+
 def _open(path: Path) -> Any:
     """Open the header with pyabf; every pyabf failure becomes a LoadError."""
     with open(path, "rb") as f:
-        signature = f.read(4)
+        head = f.read(_HEADER_BYTES)
+        size = f.seek(0, 2)
+    signature = head[:4]
     if signature not in _SIGNATURES:
         raise LoadError(path, f"not an ABF file (bad signature {signature!r}); {_supported_text()}")
+    _check_declared_sizes(path, head, size)
     import pyabf
 
     try:

@@ -234,9 +234,9 @@ def _electrode(nwb: Any) -> Any:
     return next(iter(electrodes.values()), None)
 
 
-def _metadata(nwb: Any) -> dict:
+def _metadata(nwb: Any, electrode: Any = None) -> dict:
     metadata: dict = {}
-    electrode = _electrode(nwb)
+    electrode = electrode if electrode is not None else _electrode(nwb)
     cell_id = getattr(electrode, "cell_id", None) if electrode is not None else None
     metadata["cell_id"] = str(cell_id or nwb.identifier)
     metadata["identifier"] = str(nwb.identifier)
@@ -276,7 +276,57 @@ def _check_signature(path: Path) -> None:
         )
 
 
-def read_nwb_pynwb(path: str | Path) -> Recording:
+def _electrode_of(pair: tuple[Any, Any]) -> Any:
+    return getattr(_cut(pair[0])[0], "electrode", None)
+
+
+def _one_electrode(
+    path: Path, nwb: Any, pairs: list[tuple[Any, Any]], channel: int | str | None
+) -> tuple[list[tuple[Any, Any]], Any, tuple]:
+    """The pairs of one electrode (one cell), that electrode, and the choice as a flag.
+
+    Sweeps of different electrodes are different cells and are never mixed: the
+    electrode named by `channel` (its name, or its index among the electrodes with
+    current-clamp sweeps) is read, by default the first one in the file's order.
+    """
+    from passivefit.model import schema as S
+
+    order = list((getattr(nwb, "icephys_electrodes", None) or {}).values())
+    found = []
+    for pair in pairs:
+        electrode = _electrode_of(pair)
+        if electrode is not None and all(electrode is not e for e in found):
+            found.append(electrode)
+    found.sort(key=lambda e: next((k for k, o in enumerate(order) if o is e), len(order)))
+    names = [str(e.name) for e in found]
+    if channel is None:
+        chosen = found[0] if found else _electrode(nwb)
+    elif isinstance(channel, int) or str(channel).isdigit():
+        index = int(channel)
+        if not 0 <= index < len(found):
+            raise LoadError(path, f"no electrode {index} in this file (electrodes: "
+                                  f"{_listing(names)}); name one of them")
+        chosen = found[index]
+    else:
+        matches = [e for e in found if str(e.name).lower() == str(channel).strip().lower()]
+        if not matches:
+            raise LoadError(path, f"no electrode `{channel}` with current-clamp sweeps in this "
+                                  f"file (electrodes: {_listing(names)}); name one of them")
+        chosen = matches[0]
+    if len(found) <= 1:
+        return pairs, chosen, ()
+    kept = [p for p in pairs if _electrode_of(p) is chosen]
+    others = ", ".join(n for e, n in zip(found, names, strict=True) if e is not chosen)
+    flag = S.PROTOCOL_ELECTRODE.make(float(len(found)), electrode=str(chosen.name),
+                                     count=len(found), others=others)
+    return kept, chosen, (flag,)
+
+
+def _listing(names: list[str]) -> str:
+    return ", ".join(f"{k}: {n}" for k, n in enumerate(names)) or "none"
+
+
+def read_nwb_pynwb(path: str | Path, channel: int | str | None = None) -> Recording:
     """Read the current-clamp sweeps of an NWB 2 file through pynwb (any layout).
 
     Returns the same `Recording` and metadata as `read_nwb`; raises `LoadError` for a
@@ -298,6 +348,7 @@ def read_nwb_pynwb(path: str | Path) -> Recording:
                 else:
                     pairs = _acquisition_pairs(nwb, current_clamp)
                 pairs = [p for p in pairs if not isinstance(_cut(p[0])[0], IZeroClampSeries)]
+                pairs, electrode, flags = _one_electrode(path, nwb, pairs, channel)
                 if not pairs and _has_voltage_clamp(nwb):
                     raise LoadError(
                         path,
@@ -311,7 +362,7 @@ def read_nwb_pynwb(path: str | Path) -> Recording:
                         "passivefit analyses current clamp only",
                     )
                 sweeps, rate, settings = _read_sweeps(path, pairs)
-                metadata = _metadata(nwb)
+                metadata = _metadata(nwb, electrode)
                 metadata.update(_settings_metadata(settings))
     except LoadError:
         raise
@@ -323,7 +374,9 @@ def read_nwb_pynwb(path: str | Path) -> Recording:
         raise LoadError(
             path, f"HDF5 but not a readable NWB file ({_reason(err)}); export it as NWB 2"
         ) from None
-    return _finish(Recording(sweeps, rate, path=str(path), format="nwb", metadata=metadata))
+    recording = Recording(sweeps, rate, path=str(path), format="nwb", metadata=metadata,
+                          flags=flags)
+    return _finish(recording)
 
 
 # ---------------------------------------------------------------- reading with h5py only
@@ -604,7 +657,7 @@ def read_nwb_hdf5(path: str | Path) -> Recording | None:
         return None
 
 
-def read_nwb(path: str | Path) -> Recording:
+def read_nwb(path: str | Path, channel: int | str | None = None) -> Recording:
     """Read the current-clamp sweeps of an NWB 2 file.
 
     Tries `read_nwb_hdf5` (h5py only) and, when it declines, `read_nwb_pynwb`.
@@ -631,12 +684,21 @@ def read_nwb(path: str | Path) -> Recording:
     Raises
     ------
     LoadError
-        Not HDF5, truncated, HDF5 but not NWB, damaged, or no current-clamp sweeps.
+        Not HDF5, truncated, HDF5 but not NWB, damaged, no current-clamp sweeps, or
+        an unknown `channel`.
+
+    Notes
+    -----
+    Sweeps of different electrodes are different cells and are never mixed: one
+    electrode is read, the one named by `channel` (its name, or its index among the
+    electrodes with current-clamp sweeps), by default the first; when there are
+    others the recording carries a ``protocol.electrode_chosen`` flag naming them.
+    Metadata (`cell_id`, `electrode`, `filter_hz`) come from that electrode.
     """
     path = Path(path)
     _check_signature(path)
-    recording = read_nwb_hdf5(path)
-    return recording if recording is not None else read_nwb_pynwb(path)
+    recording = read_nwb_hdf5(path) if channel is None else None
+    return recording if recording is not None else read_nwb_pynwb(path, channel)
 
 
 # ---------------------------------------------------------------- writing

@@ -40,6 +40,9 @@ _HELP = "expected time_s or time_ms, V<k>_mV or V<k>_V, I<k>_pA, I<k>_nA or I<k>
 # metadata keys read as numbers, with an example value for the error; every other key
 # stays text
 _NUMERIC_KEYS = {"sample_rate_hz": "20000", "temperature_C": "32", "filter_hz": "5000"}
+# Largest sweep table read: the text, its lines and the table of numbers are all held
+# at once (a few times the file's size), so a larger file is refused before reading.
+MAX_TEXT_BYTES = 2**30
 
 
 @dataclass(frozen=True)
@@ -221,10 +224,19 @@ def read_text(path: str | Path) -> Recording:
     ------
     LoadError
         Not text, no header, unknown column or unit, ragged row, non-numeric cell,
-        uneven time column, no voltage column; the message names the line.
+        uneven time column, no voltage column (the message names the line); a file
+        larger than `MAX_TEXT_BYTES`.
     """
     path = Path(path)
     try:
+        size = path.stat().st_size
+        if size > MAX_TEXT_BYTES:
+            raise LoadError(
+                path,
+                f"the sweep table is {size / 2**20:.0f} MiB, larger than the "
+                f"{MAX_TEXT_BYTES / 2**20:.0f} MiB passivefit reads; split it into files "
+                f"of fewer sweeps or save it as NWB",
+            )
         lines = path.read_text(encoding="utf-8-sig").splitlines()
     except UnicodeDecodeError:
         raise LoadError(

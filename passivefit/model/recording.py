@@ -13,6 +13,12 @@ from passivefit.core.qc import Flag
 from passivefit.model.errors import LoadError
 from passivefit.model.protocol import Protocol
 
+# A membrane potential at rest (median of the sweeps' medians) reads about -120 to
+# +20 mV; beyond these limits the voltage unit is wrong (common practice, no source).
+REST_LIMITS_V = (-0.25, 0.1)
+# no injected current in current clamp comes near this (common practice, no source)
+MAX_CURRENT_A = 100e-9
+
 
 @dataclass(frozen=True)
 class StepSpec:
@@ -180,3 +186,35 @@ class Recording:
                 raise LoadError(self.path, f"sweep {s.index} holds NaN or infinite currents")
             if np.ptp(s.voltage) == 0.0:
                 raise LoadError(self.path, f"sweep {s.index} is flat: the voltage never changes")
+        self._check_units()
+
+    def _check_units(self) -> None:
+        """Raise LoadError when the values cannot be a membrane potential or a current.
+
+        Voltages whose median is outside `REST_LIMITS_V`, or a current beyond
+        `MAX_CURRENT_A`, mean a unit mistake in the file (mV values labelled V, pA
+        values labelled nA or A). Voltages near 0 V are let through: an unconnected
+        input chosen on purpose reads so, as does a sweep table of V values labelled mV.
+        """
+        rest = float(np.median([np.median(s.voltage) for s in self.sweeps]))
+        low, high = REST_LIMITS_V
+        if not low <= rest <= high:
+            as_mv = rest * 1e-3  # what the numbers would mean in mV
+            guess = ("the file's mV values seem to be labelled V"
+                     if low <= as_mv <= high and abs(as_mv) >= 1e-3
+                     else "this is not a membrane potential")
+            raise LoadError(
+                self.path,
+                f"the voltages read {rest * 1e3:.6g} mV at rest (median of the sweeps): {guess}; "
+                f"correct the voltage unit in the file (a cell rests between about -120 "
+                f"and +20 mV)",
+            )
+        currents = [s.current for s in self.sweeps if s.current is not None]
+        largest_i = max((float(np.max(np.abs(c))) for c in currents), default=0.0)
+        if largest_i > MAX_CURRENT_A:
+            raise LoadError(
+                self.path,
+                f"the current reaches {largest_i * 1e9:.6g} nA, far beyond what current clamp "
+                f"injects (at most {MAX_CURRENT_A * 1e9:.0f} nA): the current unit seems "
+                f"wrong (pA values labelled nA or A?); correct the current unit in the file",
+            )

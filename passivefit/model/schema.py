@@ -383,6 +383,10 @@ PROTOCOL_USER_LIST = _flag(
 PROTOCOL_CHANNEL = _flag(
     "protocol.channel_chosen", "info",
     "membrane potential read from {channel} (median {median}); {others}")
+PROTOCOL_ELECTRODE = _flag(
+    "protocol.electrode_chosen", "info",
+    "sweeps read from electrode {electrode} only, one cell of {count}; the file also holds "
+    "{others}: analyse each on its own by naming it as the channel (`--channel NAME`)")
 
 # real cells: sag, activity, the sign of the step, stability over the recording
 FIT_SAG_COMPONENT = _flag(

@@ -91,6 +91,50 @@ def database_url(target: str) -> str:
     return target
 
 
+def display_url(target: str) -> str:
+    """A `--db` value fit to show: any password in a URL replaced by ``***``.
+
+    Parameters
+    ----------
+    target : str
+        URL or SQLite file path, as the user gave it.
+
+    Returns
+    -------
+    str
+        `target` with its password masked; a plain path or a URL without a password
+        unchanged. Text that is not a parseable URL but holds ``user:secret@`` has the
+        part between ``:`` and ``@`` masked.
+    """
+    if "://" not in target:
+        return target
+    try:
+        parsed = make_url(target)
+    except Exception:  # not parseable: mask anything that looks like user:password@
+        return _masked_userinfo(target)
+    if parsed.password is None:
+        return target
+    return parsed.render_as_string(hide_password=True)
+
+
+def _masked_userinfo(text: str) -> str:
+    scheme, _, rest = text.partition("://")
+    userinfo, at, host = rest.rpartition("@")
+    if not at or ":" not in userinfo:
+        return text
+    user = userinfo.split(":", 1)[0]
+    return f"{scheme}://{user}:***@{host}"
+
+
+def _without_password(text: str, target: str) -> str:
+    """`text` with the password of the URL `target` (if any) replaced by ``***``."""
+    try:
+        password = make_url(target).password if "://" in target else None
+    except Exception:
+        password = None
+    return text.replace(str(password), "***") if password else text
+
+
 def open_database(target: str, *, create: bool = True) -> Database:
     """Open (and with `create`, make) the database at `target`.
 
@@ -103,30 +147,32 @@ def open_database(target: str, *, create: bool = True) -> Database:
         is a `StoreError` (read-only commands never create databases).
     """
     url = database_url(target)
+    shown = display_url(target)
     parsed = make_url(url)
     if parsed.get_backend_name() == "sqlite":
         db_path = Path(parsed.database or "")
         if not parsed.database or parsed.database == ":memory:":
-            raise StoreError(f"`--db` {target!r}: give a file path for the SQLite database")
+            raise StoreError(f"`--db` {shown!r}: give a file path for the SQLite database")
         if not create and not db_path.exists():
             raise StoreError(
-                f"`--db` {target}: no database there; fill one first with "
+                f"`--db` {shown}: no database there; fill one first with "
                 "`passivefit batch FOLDER --db ...`"
             )
         if not db_path.parent.is_dir():
-            raise StoreError(f"`--db` {target}: folder {db_path.parent} does not exist")
+            raise StoreError(f"`--db` {shown}: folder {db_path.parent} does not exist")
     try:
         engine = _make_engine(url)
         database = Database(engine)
         database.prepare_schema(create=create)
     except ModuleNotFoundError as exc:
         raise StoreError(
-            f"`--db` {target}: the database driver is not installed ({exc.name}); "
+            f"`--db` {shown}: the database driver is not installed ({exc.name}); "
             "for PostgreSQL install passivefit[postgres]"
         ) from exc
     except OperationalError as exc:
         reason = str(exc.orig).strip().splitlines()[0] if exc.orig else str(exc)
-        raise StoreError(f"`--db` {target}: cannot open the database: {reason}") from exc
+        reason = _without_password(reason, url)
+        raise StoreError(f"`--db` {shown}: cannot open the database: {reason}") from None
     return database
 
 

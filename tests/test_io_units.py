@@ -1,0 +1,81 @@
+"""Values read in the wrong unit are refused, with the likely mistake named.
+
+A membrane potential at rest reads about -120 to +20 mV and no current clamp injects
+100 nA (common practice, no source); a table whose `V` column holds mV values reads
+-70 V and must not reach the analysis as a cell resting at -70,000 mV.
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import numpy as np
+import pytest
+from io_fixtures import charging_recording
+
+from passivefit.io import LoadError, load, save
+
+ROOT = Path(__file__).resolve().parent.parent
+REAL = ROOT / "tests" / "data" / "real"
+SAMPLES = ROOT / "sample_recordings"
+
+
+def _relabelled(tmp_path: Path, old: str, new: str, name: str = "cell.csv") -> Path:
+    """A sweep table whose column labels name the wrong unit, the numbers unchanged."""
+    path = save(charging_recording(n_sweeps=2, n_samples=1200), tmp_path / "right.csv")
+    text = path.read_text()
+    assert old in text
+    target = tmp_path / name
+    target.write_text(text.replace(old, new))
+    return target
+
+
+def test_the_right_units_load(tmp_path):
+    recording = load(save(charging_recording(n_sweeps=2, n_samples=1200), tmp_path / "ok.csv"))
+    assert -0.075 < np.median(recording.sweeps[0].voltage) < -0.066  # rest -68 mV, step
+
+
+def test_mv_values_under_a_v_header_are_refused(tmp_path):
+    path = _relabelled(tmp_path, "_mV", "_V")
+    with pytest.raises(LoadError) as caught:
+        load(path)
+    message = str(caught.value)
+    assert "mV values seem to be labelled V" in message
+    assert re.search(r"voltages read -7\d{4}(\.\d+)? mV at rest", message), message  # -70 V
+    assert "\n" not in message
+
+
+def test_mv_values_under_a_v_header_in_a_tsv(tmp_path):
+    right = save(charging_recording(n_sweeps=2, n_samples=1200), tmp_path / "right.tsv")
+    wrong = tmp_path / "wrong.tsv"
+    wrong.write_text(right.read_text().replace("_mV", "_V"))
+    with pytest.raises(LoadError, match="labelled V"):
+        load(wrong)
+
+
+def test_pa_values_labelled_na_are_refused(tmp_path):
+    path = _relabelled(tmp_path, "_pA", "_nA")  # -40 pA read as -40 nA ... -60 nA: fine
+    load(path)
+    path = _relabelled(tmp_path, "_pA", "_A", "amps.csv")  # -40 A
+    with pytest.raises(LoadError, match="current unit seems wrong"):
+        load(path)
+
+
+def test_nwb_voltages_in_the_wrong_unit_are_refused(tmp_path):
+    recording = charging_recording(n_sweeps=2, n_samples=1200)
+    for sweep in recording.sweeps:
+        sweep.voltage = sweep.voltage * 1e3  # as if the mV numbers had been stored as V
+    with pytest.raises(LoadError, match="labelled V"):
+        load(save(recording, tmp_path / "big.nwb"))
+
+
+@pytest.mark.parametrize("path", sorted(REAL.glob("*.abf")) + sorted(
+    p for p in SAMPLES.iterdir() if p.suffix in (".abf", ".nwb", ".csv")), ids=lambda p: p.name)
+def test_real_files_and_samples_pass_the_unit_check(path):
+    try:
+        recording = load(path)
+    except LoadError as err:  # refused for what they record (ramps, voltage clamp), not units
+        assert "unit" not in str(err), str(err)
+        return
+    assert -0.12 < np.median([np.median(s.voltage) for s in recording.sweeps]) < 0.02
