@@ -56,7 +56,11 @@ def write_problem(path, exc: Exception) -> str:
 
 
 def database_problem(target: str, exc: Exception) -> str:
-    """A failed database write in words (read-only folder, full disk, locked, refused)."""
+    """A failed database write in words (read-only folder, full disk, locked, refused);
+    a password in the address is never shown."""
+    from passivefit.store.database import display_url
+
+    target = display_url(target)
     if isinstance(exc, OSError):
         return f"the cell could not be added to {target}: {exc.strerror or exc}"
     text = str(getattr(exc, "orig", None) or exc).strip().splitlines()
@@ -582,7 +586,7 @@ class ReviewWindow(QtWidgets.QMainWindow):
 
     def add_to_database(self, target: str) -> str:
         """Store the reviewed analysis in a cell database (SQLite path or URL)."""
-        from passivefit.store.database import open_database
+        from passivefit.store.database import display_url, open_database
 
         result = self.current_result().to_dict()
         database = open_database(target, create=True)
@@ -592,9 +596,10 @@ class ReviewWindow(QtWidgets.QMainWindow):
             outcome = database.store(result, cell_metadata=metadata)
         finally:
             database.close()
-        message = (f"stored in {target} (analysis {outcome.analysis_id}, revision "
+        shown = display_url(target)
+        message = (f"stored in {shown} (analysis {outcome.analysis_id}, revision "
                    f"{outcome.revision})" if outcome.status == "stored" else
-                   f"already in {target} with these settings (analysis {outcome.analysis_id})")
+                   f"already in {shown} with these settings (analysis {outcome.analysis_id})")
         self.statusBar().showMessage(message, 8000)
         return outcome.status
 
