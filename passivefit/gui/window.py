@@ -14,29 +14,27 @@ from pathlib import Path
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from passivefit.gui import theme
-from passivefit.gui.dialogs import SettingsPanel, StepDialog
+from passivefit.gui.dialogs import StepDialog
+from passivefit.gui.files import FileActions
+from passivefit.gui.layout import WindowLayout
+from passivefit.gui.outputs import (  # noqa: F401 (these are part of the window's API)
+    OutputActions,
+    database_problem,
+    stored_cell,
+    unset_only,
+    write_problem,
+)
 from passivefit.gui.panels import (
-    CellCard,
-    Header,
-    HelpOverlay,
-    NotesPanel,
-    SweepTable,
-    WindowsBar,
-    card,
     status_sentence,
 )
-from passivefit.gui.plots import ScanView, SemilogView, TraceView, VIView
 from passivefit.gui.state import WINDOW_NAMES, ReviewState, expand_paths
 from passivefit.gui.worker import AnalysisRunner
 from passivefit.io.recording import LoadError, StepSpec
-from passivefit.model import schema as S
 from passivefit.model.settings import Settings
 
 Qt = QtCore.Qt
-MAX_RECENT = 10
 REJECT_REASONS = ("noisy baseline", "spontaneous event", "unstable access or drift",
                   "action potential", "artefact in the fit window")
-SHEET_FILTER = "Excel workbook (*.xlsx);;CSV tables (*.csv);;JSON (*.json)"
 
 
 def fitting_size(width: int, height: int) -> tuple[int, int]:
@@ -48,47 +46,7 @@ def fitting_size(width: int, height: int) -> tuple[int, int]:
     return min(width, free.width()), min(height, free.height())
 
 
-def write_problem(path, exc: Exception) -> str:
-    """A failed write in words: where, and what the system said."""
-    if isinstance(exc, OSError):
-        return f"could not write {exc.filename or path}: {exc.strerror or exc}"
-    return str(exc)
-
-
-def database_problem(target: str, exc: Exception) -> str:
-    """A failed database write in words (read-only folder, full disk, locked, refused);
-    a password in the address is never shown."""
-    from passivefit.store.database import display_url
-
-    target = display_url(target)
-    if isinstance(exc, OSError):
-        return f"the cell could not be added to {target}: {exc.strerror or exc}"
-    text = str(getattr(exc, "orig", None) or exc).strip().splitlines()
-    return f"the cell could not be added to {target}: {text[0] if text else type(exc).__name__}"
-
-
-def stored_cell(database, cell_id) -> dict:
-    """The metadata a database holds for `cell_id` (empty when it has no such cell)."""
-    if not cell_id:
-        return {}
-    from passivefit.store.models import CellRow
-
-    found = database.current_analyses([CellRow.cell_id == str(cell_id)])
-    return dict(found[0].cell) if found else {}
-
-
-def unset_only(metadata: dict, stored: dict) -> dict:
-    """`metadata` without the fields the database already holds a value for.
-
-    Curated metadata (e.g. region "DG" from a metadata sheet) is never replaced by what
-    a file header says ("dentate gyrus"); only empty fields are filled. The cell id is
-    kept: it names the cell.
-    """
-    return {k: v for k, v in metadata.items()
-            if k == "cell_id" or stored.get(k) in (None, "")}
-
-
-class ReviewWindow(QtWidgets.QMainWindow):
+class ReviewWindow(WindowLayout, OutputActions, FileActions, QtWidgets.QMainWindow):
     """Review recordings one by one: check fits, move windows, keep or reject sweeps.
 
     Parameters
@@ -136,164 +94,6 @@ class ReviewWindow(QtWidgets.QMainWindow):
         self.resize(*fitting_size(1400, 900))
 
     # ------------------------------------------------------------------ layout
-    def _build(self) -> None:
-        central = QtWidgets.QWidget()
-        central.setObjectName("central")
-        self.setCentralWidget(central)
-        self.header = Header()
-        self.trace = TraceView()
-        self.windows_bar = WindowsBar()
-        trace_card, trace_layout = card("Traces · sweep on screen in teal, fit in terracotta",
-                                        self.windows_bar.tools)
-        trace_layout.addWidget(self.trace, 1)
-        trace_layout.addWidget(self.windows_bar)
-
-        self.semilog, self.scan, self.vi = SemilogView(), ScanView(), VIView()
-        lower = QtWidgets.QWidget()
-        lower_layout = QtWidgets.QHBoxLayout(lower)
-        lower_layout.setContentsMargins(0, 0, 0, 0)
-        lower_layout.setSpacing(8)
-        for title, view in (("Semilog view", self.semilog), ("Fit-start scan", self.scan),
-                            ("Input resistance", self.vi)):
-            frame, layout = card(title)
-            layout.addWidget(view)
-            lower_layout.addWidget(frame, 1)
-
-        left_split = QtWidgets.QSplitter(Qt.Orientation.Vertical)
-        left_split.addWidget(trace_card)
-        left_split.addWidget(lower)
-        left_split.setSizes([560, 260])
-        left_split.setChildrenCollapsible(False)
-        left = QtWidgets.QWidget()
-        left_layout = QtWidgets.QVBoxLayout(left)
-        left_layout.setContentsMargins(0, 0, 0, 0)
-        left_layout.addWidget(self.header)
-        self.banner = QtWidgets.QLabel("")
-        self.banner.setObjectName("banner")
-        self.banner.setWordWrap(True)
-        self.banner.setSizePolicy(QtWidgets.QSizePolicy.Policy.Ignored,
-                                  QtWidgets.QSizePolicy.Policy.Minimum)
-        self.banner.hide()
-        left_layout.addWidget(self.banner)
-        left_layout.addWidget(left_split, 1)
-
-        self.cell = CellCard()
-        self.notes = NotesPanel()
-        self.table = SweepTable()
-        sweeps_card, sweeps_layout = card("One row per sweep · ◆ own windows")
-        sweeps_layout.addWidget(self.table, 1)
-        self.sweep_line = QtWidgets.QLabel("")
-        self.sweep_line.setObjectName("unit")
-        self.sweep_line.setWordWrap(True)
-        sweeps_layout.addWidget(self.sweep_line)
-        buttons = QtWidgets.QHBoxLayout()
-        for text, tip, slot in (("Accept  A", "Keep this sweep in the cell values",
-                                 lambda: self.decide(True)),
-                                ("Reject  R", "Leave this sweep out (asks a reason)",
-                                 lambda: self.decide(False)),
-                                ("Automatic  C", "Let the automatic tests decide",
-                                 lambda: self.decide(None))):
-            button = QtWidgets.QPushButton(text)
-            button.setToolTip(tip)
-            button.setFocusPolicy(Qt.FocusPolicy.NoFocus)
-            button.clicked.connect(slot)
-            buttons.addWidget(button)
-        sweeps_layout.addLayout(buttons)
-        self.settings_panel = SettingsPanel()
-        self.tabs = QtWidgets.QTabWidget()
-        self.tabs.setObjectName("sideTabs")
-        self.tabs.addTab(sweeps_card, "Sweeps")
-        self.tabs.addTab(self.settings_panel, "Analysis settings")
-        right_split = QtWidgets.QSplitter(Qt.Orientation.Vertical)
-        for widget in (self.cell, self.notes, self.tabs):
-            right_split.addWidget(widget)
-        right_split.setSizes([250, 130, 440])
-        right_split.setChildrenCollapsible(False)
-
-        split = QtWidgets.QSplitter(Qt.Orientation.Horizontal)
-        split.addWidget(left)
-        split.addWidget(right_split)
-        split.setSizes([900, 440])
-        split.setChildrenCollapsible(False)
-        outer = QtWidgets.QVBoxLayout(central)
-        outer.setContentsMargins(8, 6, 8, 2)
-        outer.addWidget(split)
-
-        self.progress = QtWidgets.QProgressBar()
-        self.progress.setRange(0, 0)
-        self.progress.setFixedWidth(110)
-        self.progress.setFixedHeight(12)
-        self.progress.setTextVisible(False)
-        self.progress.hide()
-        self.busy_label = QtWidgets.QLabel("")
-        self.statusBar().addPermanentWidget(self.busy_label)
-        self.statusBar().addPermanentWidget(self.progress)
-        self.statusBar().addPermanentWidget(QtWidgets.QLabel("F1: keys"))
-        self.help = HelpOverlay(central)
-        self.windows_bar.show_windows({})           # no recording yet: nothing to type
-
-        self.trace.region_moved.connect(self._preview_window)
-        self.trace.region_finished.connect(self._keep_window)
-        self.windows_bar.edited.connect(self._keep_window)
-        self.windows_bar.reset.connect(self._reset_windows)
-        self.windows_bar.done.connect(self.setFocus)
-        self.windows_bar.leave.connect(self.step_sweep)
-        self.settings_panel.changed.connect(self._set_options)
-        self.table.picked.connect(self._pick_sweep)
-
-    def _menus(self) -> None:
-        bar = self.menuBar()
-        file_menu = bar.addMenu("&File")
-        self._action(file_menu, "Open recordings…", "Ctrl+O", self._ask_open)
-        self._action(file_menu, "Open a folder…", "Ctrl+Shift+O", self._ask_open_folder)
-        self.recent_menu = file_menu.addMenu("Open recent")
-        self.recent_menu.aboutToShow.connect(self._fill_recent)
-        file_menu.addSeparator()
-        self._action(file_menu, "Save review as…", "Ctrl+Shift+S", self._ask_save_review_as)
-        self._action(file_menu, "Export parameter sheet…", "Ctrl+E", self._ask_export)
-        self._action(file_menu, "Export PDF report…", "Ctrl+P", self._ask_report)
-        self._action(file_menu, "Add cell to database…", "Ctrl+D", self._ask_database)
-        file_menu.addSeparator()
-        self._action(file_menu, "Quit", "Ctrl+Q", self.close)
-        edit = bar.addMenu("&Edit")
-        self.undo_action = self._action(edit, "Undo", "Ctrl+Z", self.undo)
-        self.redo_action = self._action(edit, "Redo", "Ctrl+Shift+Z", self.redo)
-        edit.addSeparator()
-        self._action(edit, "Windows back to automatic", "", self._reset_windows)
-        self._action(edit, "Set the step…", "Ctrl+T", self._ask_set_step)
-        self._action(edit, "Analysis settings", "S",
-                     lambda: self.tabs.setCurrentWidget(self.settings_panel))
-        review = bar.addMenu("&Review")
-        self._action(review, "Next sweep", "Right", lambda: self.step_sweep(1))
-        self._action(review, "Previous sweep", "Left", lambda: self.step_sweep(-1))
-        self._action(review, "Accept sweep", "A", lambda: self.decide(True))
-        self._action(review, "Reject sweep…", "R", lambda: self.decide(False))
-        self._action(review, "Clear decision", "C", lambda: self.decide(None))
-        self._action(review, "Re-run the analysis", "F5", self.refit)
-        review.addSeparator()
-        self._action(review, "Next recording", "PgDown", lambda: self.step_recording(1))
-        self._action(review, "Previous recording", "PgUp", lambda: self.step_recording(-1))
-        help_menu = bar.addMenu("&Help")
-        self._action(help_menu, "Keys for reviewing", "F1", self.help.toggle)
-
-    def _action(self, menu: QtWidgets.QMenu, text: str, keys: str, slot) -> QtGui.QAction:
-        action = QtGui.QAction(text, self)
-        if keys:
-            action.setShortcut(QtGui.QKeySequence(keys))
-        action.triggered.connect(slot)
-        menu.addAction(action)
-        return action
-
-    def _shortcuts(self) -> None:
-        extra = (("J", lambda: self.step_sweep(1)), ("K", lambda: self.step_sweep(-1)),
-                 ("N", lambda: self.step_recording(1)), ("P", lambda: self.step_recording(-1)),
-                 ("Ctrl+Y", self.redo), ("Ctrl+R", self.refit), ("?", self.help.toggle),
-                 ("Z", self.trace.fit_view), ("W", self.windows_bar.only_this.toggle),
-                 ("Esc", self.help.hide))
-        for keys, slot in extra:
-            QtGui.QShortcut(QtGui.QKeySequence(keys), self, slot)
-
-    # ------------------------------------------------------------------ opening
     def open_paths(self, paths) -> bool:
         """Open files (folders are searched for recordings); show the first one."""
         files = expand_paths(paths)
@@ -562,54 +362,6 @@ class ReviewWindow(QtWidgets.QMainWindow):
                 self.state.run_analysis()
         return self.state.result
 
-    def export_sheet(self, path: str | Path) -> list[Path]:
-        """Write the cell and its sweeps to a CSV, XLSX or JSON parameter sheet."""
-        from passivefit.export.sheets import write_sheet
-
-        result = self.current_result()
-        written = write_sheet([result.to_dict()], path, annotations=[self._annotations()])
-        self.statusBar().showMessage("wrote " + ", ".join(p.name for p in written), 6000)
-        return written
-
-    def export_report(self, path: str | Path) -> Path:
-        """Write the per-cell PDF report (figures, values, flags, provenance, cautions)."""
-        from passivefit.export.report import write_report
-
-        result = self.current_result()
-        QtWidgets.QApplication.setOverrideCursor(Qt.CursorShape.WaitCursor)
-        try:
-            written = write_report([(self.state.recording, result)], path)
-        finally:
-            QtWidgets.QApplication.restoreOverrideCursor()
-        self.statusBar().showMessage(f"wrote {written.name}", 6000)
-        return written
-
-    def add_to_database(self, target: str) -> str:
-        """Store the reviewed analysis in a cell database (SQLite path or URL)."""
-        from passivefit.store.database import display_url, open_database
-
-        result = self.current_result().to_dict()
-        database = open_database(target, create=True)
-        try:
-            metadata = self._cell_metadata()
-            metadata = unset_only(metadata, stored_cell(database, metadata.get("cell_id")))
-            outcome = database.store(result, cell_metadata=metadata)
-        finally:
-            database.close()
-        shown = display_url(target)
-        message = (f"stored in {shown} (analysis {outcome.analysis_id}, revision "
-                   f"{outcome.revision})" if outcome.status == "stored" else
-                   f"already in {shown} with these settings (analysis {outcome.analysis_id})")
-        self.statusBar().showMessage(message, 8000)
-        return outcome.status
-
-    def _cell_metadata(self) -> dict:
-        md = self.state.recording.metadata or {}
-        return {k: md[k] for k in S.METADATA_KEYS if isinstance(md.get(k), str | int | float)}
-
-    def _annotations(self) -> dict:
-        return {**self._cell_metadata(), "review_file": str(self.state.review_file)}
-
     def snapshot(self, path: str | Path) -> Path:
         """Render the window (at its present size) to a PNG file."""
         QtWidgets.QApplication.processEvents()
@@ -639,31 +391,6 @@ class ReviewWindow(QtWidgets.QMainWindow):
     def _refit_failed(self, message: str) -> None:
         self.last_error = message
         self.statusBar().showMessage(message, 15000)
-
-    def save_review_as(self, path: str | Path) -> bool:
-        """Write the review to `path` and keep saving there; False (said) when it cannot."""
-        if self.state is None:
-            return False
-        try:
-            written = self.state.save_as(path)
-        except OSError as exc:
-            self._problem(write_problem(path, exc))
-            return False
-        self.statusBar().showMessage(f"review saved to {written}; it is read from there only "
-                                     "in this window (copy it beside the recording to keep it "
-                                     "with the recording)", 15000)
-        return True
-
-    def _ask_save_review_as(self) -> None:
-        if self.state is None:
-            return
-        from passivefit.gui.state import REVIEW_SUFFIX
-
-        name = Path(self.state.recording.path).name + REVIEW_SUFFIX
-        path, _ = QtWidgets.QFileDialog.getSaveFileName(
-            self, "Save review as", str(Path.home() / name), "passivefit review (*.json)")
-        if path:
-            self.save_review_as(path)
 
     def _problem(self, message: str) -> None:
         self.last_error = message
@@ -714,97 +441,6 @@ class ReviewWindow(QtWidgets.QMainWindow):
         except ValueError as exc:
             self._problem(str(exc))
             self.settings_panel.show_settings(self.state.settings)
-
-    def _ask_open(self) -> None:
-        from passivefit.io import supported_extensions
-
-        pattern = " ".join(f"*{e}" for e in supported_extensions())
-        files, _ = QtWidgets.QFileDialog.getOpenFileNames(
-            self, "Open recordings", self._last_folder(), f"Recordings ({pattern})")
-        if files:
-            self.open_paths(files)
-
-    def _ask_open_folder(self) -> None:
-        folder = QtWidgets.QFileDialog.getExistingDirectory(self, "Open a folder of recordings",
-                                                            self._last_folder())
-        if folder:
-            self.open_paths([folder])
-
-    def _ask_export(self) -> None:
-        if self.state is None:
-            return
-        stem = Path(self.state.recording.path).with_suffix("")
-        path, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Export parameter sheet",
-                                                        f"{stem}_passivefit.xlsx", SHEET_FILTER)
-        if path:
-            try:
-                self.export_sheet(path)
-            except (OSError, ValueError) as exc:
-                self._problem(write_problem(path, exc))
-
-    def _ask_report(self) -> None:
-        if self.state is None:
-            return
-        stem = Path(self.state.recording.path).with_suffix("")
-        path, _ = QtWidgets.QFileDialog.getSaveFileName(self, "Export PDF report",
-                                                        f"{stem}_passivefit.pdf", "PDF (*.pdf)")
-        if path:
-            try:
-                self.export_report(path)
-            except (OSError, ValueError) as exc:
-                self._problem(write_problem(path, exc))
-
-    def _ask_database(self) -> None:
-        if self.state is None:
-            return
-        target = self.store.value("database", "")
-        if not target:
-            target, _ = QtWidgets.QFileDialog.getSaveFileName(
-                self, "Cell database (SQLite file)", str(Path.home() / "cells.sqlite"),
-                "SQLite database (*.sqlite *.db)", options=(
-                    QtWidgets.QFileDialog.Option.DontConfirmOverwrite))
-            if not target:
-                return
-            self.store.setValue("database", target)
-        try:
-            self.add_to_database(target)
-        except Exception as exc:  # noqa: BLE001 - a store that fails must not end the review
-            self._problem(database_problem(target, exc))
-
-    # ------------------------------------------------------------------ recent files
-    def _remember(self, path: Path) -> None:
-        if not self.remember:
-            return
-        recent = [str(Path(path).resolve())]
-        recent += [p for p in self.recent_files() if p != recent[0]]
-        self.store.setValue("recent", recent[:MAX_RECENT])
-
-    def recent_files(self) -> list[str]:
-        value = self.store.value("recent", [])
-        return [value] if isinstance(value, str) else list(value or [])
-
-    def _fill_recent(self) -> None:
-        self.recent_menu.clear()
-        for path in self.recent_files():
-            action = self.recent_menu.addAction(path)
-            action.triggered.connect(lambda _=False, p=path: self.open_paths([p]))
-        if not self.recent_menu.actions():
-            self.recent_menu.addAction("(none yet)").setEnabled(False)
-
-    def _last_folder(self) -> str:
-        recent = self.recent_files()
-        return str(Path(recent[0]).parent) if recent else str(Path.home())
-
-    # ------------------------------------------------------------------ Qt events
-    def dragEnterEvent(self, event: QtGui.QDragEnterEvent) -> None:  # noqa: N802 (Qt name)
-        if event.mimeData().hasUrls():
-            event.acceptProposedAction()
-
-    def dropEvent(self, event: QtGui.QDropEvent) -> None:  # noqa: N802 (Qt name)
-        paths = [u.toLocalFile() for u in event.mimeData().urls() if u.isLocalFile()]
-        if paths:
-            event.acceptProposedAction()
-            self.open_paths(paths)
 
     def resizeEvent(self, event: QtGui.QResizeEvent) -> None:  # noqa: N802 (Qt name)
         super().resizeEvent(event)
