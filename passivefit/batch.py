@@ -210,10 +210,11 @@ def run_batch(paths: list[str], db: str, settings, *, workers: int | None = None
             raise BatchError(f"`--reports` {reports}: cannot create the folder "
                              f"({exc.strerror})") from None
     files = find_recordings(paths, _excluded_paths(db, sheet, metadata))
+    notes = match_metadata(table, files)
     database = open_database(db, create=True)
     started = time.perf_counter()
     try:
-        summary = _run_files(files, settings, database, table, workers, reanalyse, reports)
+        summary = _run_files(files, settings, database, notes, workers, reanalyse, reports)
         if sheet:
             _write_sheet(database, summary.hashes, sheet)
     finally:
@@ -223,13 +224,40 @@ def run_batch(paths: list[str], db: str, settings, *, workers: int | None = None
     return summary
 
 
+def match_metadata(table: MetadataTable, files: list[Path]) -> dict[Path, dict]:
+    """The metadata row of each file: by its path relative to the metadata CSV; a bare
+    file name matches a file elsewhere only when no other file of this batch has that
+    name (else `BatchError` naming both).
+    """
+    unmatched: dict[str, list[Path]] = {}
+    for path in files:
+        if str(path.resolve()) not in table.by_path:
+            unmatched.setdefault(path.name, []).append(path)
+    claimed = {id(table.by_path[str(p.resolve())]) for p in files
+               if str(p.resolve()) in table.by_path}
+    matched: dict[Path, dict] = {}
+    for path in files:
+        row = table.by_path.get(str(path.resolve()))
+        if row is None:
+            row = table.by_name.get(path.name)
+            if row is None or id(row) in claimed:  # the row names another file by its path
+                continue
+            if len(unmatched[path.name]) > 1:
+                a, b = unmatched[path.name][:2]
+                raise BatchError(f"`--metadata`: the row {row['file']!r} matches both {a} and "
+                                 f"{b}; give the file's path relative to the metadata CSV")
+        table.used.add(row["file"])
+        matched[path] = {k: v for k, v in row.items() if k != "file"}
+    return matched
+
+
 def _default_workers() -> int:
     import os
 
     return max(1, min(2, os.cpu_count() or 1))
 
 
-def _run_files(files: list[Path], settings, database, metadata: MetadataTable, workers: int,
+def _run_files(files: list[Path], settings, database, metadata: dict[Path, dict], workers: int,
                reanalyse: bool, reports: str | None) -> BatchSummary:
     from passivefit import __version__
     from passivefit.io.recording import file_sha256
@@ -247,7 +275,7 @@ def _run_files(files: list[Path], settings, database, metadata: MetadataTable, w
             summary.failed.append((str(path), f"cannot read the file ({exc.strerror})"))
             progress.update("failed", str(path), exc.strerror or "")
             continue
-        notes = metadata.lookup(path)
+        notes = metadata.get(path, {})
         if sha in seen or sha in done:
             why = (f"same content as {seen[sha]}" if sha in seen
                    else "already analysed with these settings")
@@ -303,16 +331,19 @@ def _analyse_all(paths: list[Path], settings, workers: int, reports: str | None)
             pool.shutdown(wait=True, cancel_futures=True)
 
 
-def _store_outcome(outcome: FileOutcome, database, metadata: MetadataTable, digest: str,
+def _store_outcome(outcome: FileOutcome, database, metadata: dict[Path, dict], digest: str,
                    reanalyse: bool, summary: BatchSummary, progress: Progress) -> None:
     if outcome.result is None:
         summary.failed.append((outcome.path, outcome.error or "unknown error"))
         progress.update("failed", outcome.path, outcome.error or "")
         return
-    cell_metadata = {**(outcome.metadata or {}), **{
-        k: v for k, v in metadata.lookup(Path(outcome.path)).items() if v is not None}}
+    from_file = dict(outcome.metadata or {})
+    file_cell_id = from_file.pop(S.CELL_ID.key, None)
+    cell_metadata = {**from_file, **{
+        k: v for k, v in metadata.get(Path(outcome.path), {}).items() if v is not None}}
     stored = database.store(outcome.result, cell_metadata=cell_metadata, settings_hash=digest,
-                            if_exists="new_revision" if reanalyse else "skip")
+                            if_exists="new_revision" if reanalyse else "skip",
+                            file_cell_id=None if file_cell_id is None else str(file_cell_id))
     summary.hashes.append(outcome.result["source"]["sha256"])
     if stored.status == "stored":
         summary.stored.append(outcome.path)
