@@ -6,20 +6,30 @@ How a batch runs:
    stops the run before anything is written (exit 2).
 2. Folders are scanned recursively for .abf, .nwb, .csv and .tsv files; hidden
    folders, the database, the sheet, the metadata CSV and CSV files that are
-   passivefit sheets are left out.
+   passivefit sheets are left out. A folder that cannot be read is a failure.
+   Metadata rows are matched by path (relative to the metadata CSV); a bare file
+   name that matches files in two folders stops the run.
 3. Each file is hashed; a file whose content was already analysed with the same
    settings and passivefit version is skipped (``--reanalyse`` adds a new revision
    instead; nothing is ever overwritten).
-4. Worker processes load and analyse files in parallel and send back the plain
+4. Worker processes load and analyse one file at a time each and send back the plain
    ``RecordingResult.to_dict()`` object. Only this (parent) process writes to the
    database, one transaction per recording, as results arrive. One writer means
-   no lock contention on SQLite and no database driver in the workers; at most
-   ``2 × workers`` files are in flight, so memory does not grow with the folder.
+   no lock contention on SQLite and no database driver in the workers. Each file
+   has a time limit (a worker over it is killed and replaced) and each worker a
+   memory limit (`Limits`); workers end when this process ends, even by SIGKILL.
 5. A file that cannot be read or analysed is reported and the batch goes on; the
    failed files are listed with their reasons at the end (exit 1 if any failed).
+   A PDF report (``--reports``) is written under a temporary name and renamed when
+   complete; a report that cannot be written is listed, and its analysis is stored.
+6. The cell of a recording is the metadata's ``cell_id``, else the file's own cell
+   id (unless another folder already holds a cell of that name), else the folder
+   and the file stem (``day1/c1``): never the file name alone.
 
 Killed at any moment (even with SIGKILL), the database holds only whole recordings;
-running the same command again analyses the rest and skips what is stored.
+running the same command again analyses the rest and skips what is stored. A
+database that fails while the batch writes (full disk, read-only) stops the batch
+with one line; what was stored stays.
 """
 
 from __future__ import annotations
