@@ -105,7 +105,8 @@ def test_store_copies_key_values_and_sweeps(db):
         assert row.analysis[key] == result["cell"][key], key
     assert row.analysis["flags"].startswith("RHO_CI_UNAVAILABLE: too few sweeps")
     assert row.result == result  # the full to_dict() object comes back unchanged
-    assert row.cell["cell_id"] == "LOL-2026-11-03-c1"  # from the file name
+    folder = Path(result["source"]["path"]).parent.name  # from the folder and the file stem
+    assert row.cell["cell_id"] == f"{folder}/LOL-2026-11-03-c1"
     assert row.cell["region"] == "CA1" and row.cell["temperature_C"] == 32.5
     sweeps = db.sweep_rows(outcome.analysis_id)
     assert [s["sweep_index"] for s in sweeps] == [0, 1, 2, 3]

@@ -9,7 +9,9 @@ one-line messages: the rest of passivefit raises domain errors (`LoadError`,
 from __future__ import annotations
 
 import argparse
+import errno
 import sys
+import warnings
 from collections.abc import Sequence
 
 from passivefit import __version__
@@ -72,13 +74,76 @@ def main(argv: Sequence[str] | None = None) -> int:
     from passivefit.model.errors import InputError
 
     try:
-        return int(_command_module(args._module).run(args) or 0)
+        with warnings.catch_warnings():
+            # Numerical warnings (numpy, scipy) are handled where they matter; stderr
+            # holds only our own lines.
+            warnings.simplefilter("ignore")
+            return int(_command_module(args._module).run(args) or 0)
     except LoadError as exc:
         print(error_line(exc.path, exc.reason), file=sys.stderr)
         return EXIT_BAD_INPUT
     except (UsageError, InputError) as exc:
         print(error_line(None, str(exc)), file=sys.stderr)
         return EXIT_BAD_INPUT
+    except OSError as exc:
+        print(error_line(_os_path(exc), os_reason(exc)), file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except MemoryError:
+        print(error_line(None, "out of memory; analyse fewer or smaller files at once"),
+              file=sys.stderr)
+        return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print("passivefit: interrupted", file=sys.stderr)
         return 130
+    except Exception as exc:
+        if not _is_store_error(exc):
+            raise
+        print(error_line(None, f"database: {_one_line(exc)}"), file=sys.stderr)
+        return EXIT_BAD_INPUT
+
+
+_OS_HINTS = {errno.EACCES: "check its permissions", errno.EPERM: "check its permissions",
+             errno.ENOSPC: "free some space and run again",
+             errno.EROFS: "the file system is read-only; write elsewhere",
+             errno.EDQUOT: "the disk quota is used up; free some space"}
+
+
+def os_reason(exc: OSError) -> str:
+    """`exc` in words: what failed and what to do."""
+    reason = (exc.strerror or str(exc) or type(exc).__name__).strip()
+    hint = _OS_HINTS.get(exc.errno)
+    return f"{reason[:1].lower()}{reason[1:]}" + (f"; {hint}" if hint else "")
+
+
+def _os_path(exc: OSError) -> str | None:
+    return None if exc.filename is None else str(exc.filename)
+
+
+def _is_store_error(exc: Exception) -> bool:
+    """A StoreError or a database library error (only when the database was used)."""
+    if type(exc).__name__ == "StoreError":
+        return True
+    return any(c.__module__.startswith("sqlalchemy") for c in type(exc).__mro__)
+
+
+def _one_line(exc: Exception) -> str:
+    orig = getattr(exc, "orig", None)
+    text = str(orig if orig is not None else exc).strip()
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
+def check_writable(path: str, option: str) -> None:
+    """UsageError unless `path` can be created or replaced (checked before any work;
+    leaves no file behind)."""
+    import os
+
+    existed = os.path.lexists(path)
+    try:
+        if os.path.isdir(path):
+            raise IsADirectoryError(errno.EISDIR, "Is a directory", path)
+        with open(path, "ab"):
+            pass
+    except OSError as exc:
+        raise UsageError(f"`{option}` {path}: cannot write it ({os_reason(exc)})") from None
+    if not existed:
+        os.remove(path)

@@ -6,7 +6,12 @@ import argparse
 import json
 import sys
 
-from passivefit.cli.options import add_settings_arguments, settings_from
+from passivefit.cli.options import (
+    add_settings_arguments,
+    check_against,
+    check_fitted,
+    settings_from,
+)
 from passivefit.model import schema as S
 
 
@@ -18,24 +23,35 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def load_and_analyze(path: str, settings):
-    """Load and analyse one file; LoadError for anything wrong with the input."""
+    """Load and analyse one file; LoadError for anything wrong with the input, including
+    `--step` or `--fit-start-ms` values the recording cannot take."""
     from passivefit.analysis import analyze
     from passivefit.io import load
 
-    return analyze(load(path, channel=settings.reader_channel), settings)
+    recording = load(path, channel=settings.reader_channel)
+    check_against(recording, settings)
+    result = analyze(recording, settings)
+    check_fitted(path, result.to_dict(), settings)
+    return result
 
 
 def run(args: argparse.Namespace) -> int:
-    result = load_and_analyze(args.path, settings_from(args))
-    data = result.to_dict()
+    from passivefit.cli import check_writable
+
+    settings = settings_from(args)
     if args.out:
-        with open(args.out, "w") as f:
-            json.dump(data, f, indent=2)
+        check_writable(args.out, "--out")  # before the analysis, not after
+    result = load_and_analyze(args.path, settings)
+    data = result.to_dict()
     if args.json:
         json.dump(data, sys.stdout, indent=2)
         sys.stdout.write("\n")
     else:
         sys.stdout.write(format_table(data))
+    if args.out:
+        sys.stdout.flush()
+        with open(args.out, "w") as f:  # an OSError here is one line from cli.main
+            json.dump(data, f, indent=2)
     return 0
 
 

@@ -28,23 +28,37 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--reanalyse", action="store_true",
                    help="analyse files already in the database again and store a new "
                         "revision (earlier analyses are kept)")
+    p.add_argument("--file-timeout", type=float, default=300.0, metavar="S",
+                   help="give up on a file after S seconds; its worker is replaced "
+                        "(default 300)")
+    p.add_argument("--file-memory-mb", type=int, default=4096, metavar="MB",
+                   help="memory (address space) per worker process; a file that needs more "
+                        "fails (default 4096; 0: no limit)")
     add_settings_arguments(p)
 
 
 def run(args: argparse.Namespace) -> int:
-    from passivefit.batch import run_batch
+    import math
+
+    from passivefit.batch import Limits, run_batch
+    from passivefit.cli import UsageError
     from passivefit.store.database import StoreError
 
+    if not (math.isfinite(args.file_timeout) and args.file_timeout > 0):
+        raise UsageError(f"`--file-timeout` must be a positive number of seconds, not "
+                         f"{args.file_timeout:g}")
+    if args.file_memory_mb < 0 or 0 < args.file_memory_mb < 256:
+        raise UsageError(f"`--file-memory-mb` must be 0 (no limit) or at least 256, not "
+                         f"{args.file_memory_mb}")
+    limits = Limits(seconds=args.file_timeout, memory_mb=args.file_memory_mb)
     try:
         summary = run_batch(args.paths, args.db, settings_from(args), workers=args.workers,
                             sheet=args.sheet, metadata=args.metadata, reports=args.reports,
-                            reanalyse=args.reanalyse)
+                            reanalyse=args.reanalyse, limits=limits)
     except StoreError as exc:
-        from passivefit.cli import UsageError
-
         raise UsageError(str(exc)) from None
     _report(summary)
-    return 1 if summary.failed else 0
+    return 1 if summary.failed or summary.report_failed else 0
 
 
 def _report(summary) -> None:
@@ -59,4 +73,8 @@ def _report(summary) -> None:
     if summary.failed:
         print("failed files:", file=sys.stderr)
         for path, reason in summary.failed:
+            print(f"  {path}: {reason}", file=sys.stderr)
+    if summary.report_failed:
+        print("reports not written (the analyses are stored):", file=sys.stderr)
+        for path, reason in summary.report_failed:
             print(f"  {path}: {reason}", file=sys.stderr)

@@ -33,20 +33,26 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from sqlalchemy.exc import SQLAlchemyError
+
     from passivefit.cli import UsageError
-    from passivefit.store.database import StoreError, open_database
-    from passivefit.store.query import parse_where
+    from passivefit.store.database import StoreError
+    from passivefit.store.query import open_for_reading, parse_where
 
     action = {"list": _list, "export": _export, "plot": _plot}[args.db_command]
     try:
         conditions = parse_where(args.where) if args.where else []
         _check_target(args)
-        database = open_database(args.db, create=False)
+        database = open_for_reading(args.db)
     except (ValueError, StoreError) as exc:
         raise UsageError(str(exc)) from None
     try:
         rows = database.current_analyses(conditions)
         return action(args, database, rows)
+    except SQLAlchemyError as exc:
+        orig = getattr(exc, "orig", None)
+        reason = str(orig if orig is not None else exc).strip().splitlines()[:1]
+        raise UsageError(f"`--db` {args.db}: cannot read it ({''.join(reason)})") from None
     finally:
         database.close()
 
@@ -65,6 +71,10 @@ def _check_target(args: argparse.Namespace) -> None:
         if args.by not in FILTER_COLUMNS:
             raise ValueError(f"`--by`: unknown key {args.by!r}; e.g. region, cell_type, "
                              "preparation, date")
+    if args.db_command in ("export", "plot"):
+        from passivefit.cli import check_writable
+
+        check_writable(args.file, args.db_command)
 
 
 # ---------------------------------------------------------------------------- list

@@ -40,6 +40,9 @@ def run(args: argparse.Namespace) -> int:
 
             raise UsageError(f"`--snapshot` writes a PNG file; give a name ending in .png, "
                              f"not {args.snapshot!r}")
+        from passivefit.cli import check_writable
+
+        check_writable(args.snapshot, "--snapshot")
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     elif not display_available():
         print("passivefit: no display found (DISPLAY and WAYLAND_DISPLAY are unset), so no "

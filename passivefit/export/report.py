@@ -17,6 +17,8 @@ from ``RecordingResult.to_dict()``, the same object the sheets and database hold
 from __future__ import annotations
 
 import json
+import os
+import secrets
 import textwrap
 from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
@@ -66,19 +68,30 @@ def write_report(cells: Sequence[tuple], path: str | Path, *,
     if path.suffix.lower() != ".pdf":
         raise ValueError(f"{path}: the report is a PDF; give a file ending in .pdf")
     when = analysed_at or datetime.now(UTC)
-    with plt.rc_context({"font.size": 7.5, "axes.titlesize": 8.5, "axes.labelsize": 7.5,
-                         "xtick.labelsize": 7, "ytick.labelsize": 7, "legend.fontsize": 6.5,
-                         "pdf.fonttype": 42}), PdfPages(path) as pdf:
-        for recording, result in cells:
-            data = result.to_dict()
-            fig = _figure_page(recording, result, data)
-            pdf.savefig(fig, dpi=RASTER_DPI)
-            plt.close(fig)
-            _numbers_pages(pdf, recording, data, when)
-        info = pdf.infodict()
-        info["Title"] = "passivefit report"
-        info["Creator"] = f"passivefit {cells[0][1].to_dict()['passivefit_version']}" if cells \
-            else "passivefit"
+    # Written under a temporary name in the same folder and renamed when complete, so a
+    # full disk or a crash never leaves a truncated report under the final name.
+    tmp = path.with_name(f".{path.stem}-{secrets.token_hex(4)}.pdf.tmp")
+    try:
+        with plt.rc_context({"font.size": 7.5, "axes.titlesize": 8.5, "axes.labelsize": 7.5,
+                             "xtick.labelsize": 7, "ytick.labelsize": 7,
+                             "legend.fontsize": 6.5, "pdf.fonttype": 42}), \
+                PdfPages(tmp) as pdf:
+            for recording, result in cells:
+                data = result.to_dict()
+                fig = _figure_page(recording, result, data)
+                try:
+                    pdf.savefig(fig, dpi=RASTER_DPI)
+                finally:
+                    plt.close(fig)
+                _numbers_pages(pdf, recording, data, when)
+            info = pdf.infodict()
+            info["Title"] = "passivefit report"
+            info["Creator"] = (f"passivefit {cells[0][1].to_dict()['passivefit_version']}"
+                               if cells else "passivefit")
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
     return path
 
 

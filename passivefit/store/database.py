@@ -277,6 +277,7 @@ class Database:
         settings_hash: str | None = None,
         if_exists: str = "skip",
         analysed_at: datetime | None = None,
+        file_cell_id: str | None = None,
     ) -> StoreOutcome:
         """Store one recording's result in one transaction.
 
@@ -287,7 +288,8 @@ class Database:
         cell_metadata : mapping, optional
             ``cell_id`` and the cell columns (date, region, temperature_C, ...);
             given values update the cell, missing ones leave it as it is. Without a
-            ``cell_id`` the cell is named after the file (its stem).
+            ``cell_id`` the cell is `file_cell_id`, or else named after the file's
+            folder and stem (see `_cell_identity`).
         settings_hash : str, optional
             Identity of the settings; default: hash of ``result["settings"]``.
         if_exists : {"skip", "new_revision"}
@@ -296,6 +298,9 @@ class Database:
             the current analysis. Stored analyses are never overwritten.
         analysed_at : datetime, optional
             Time of the analysis (UTC); default now.
+        file_cell_id : str, optional
+            The cell id the recording file itself carries (used when no other folder
+            has a cell of that name).
         """
         if if_exists not in ("skip", "new_revision"):
             raise ValueError(f"`if_exists` must be 'skip' or 'new_revision', not {if_exists!r}")
@@ -305,7 +310,7 @@ class Database:
             try:
                 with Session(self.engine, expire_on_commit=False) as session, session.begin():
                     return self._store_once(session, result, cell_metadata or {}, digest,
-                                            if_exists, when)
+                                            if_exists, when, file_cell_id)
             except IntegrityError:
                 # Another writer stored the same recording, cell or analysis between
                 # our read and our write; it committed, so the next attempt sees it.
@@ -338,7 +343,8 @@ class Database:
         raise AssertionError("unreachable")
 
     def _store_once(self, session: Session, result: Mapping, metadata: Mapping, digest: str,
-                    if_exists: str, when: datetime) -> StoreOutcome:
+                    if_exists: str, when: datetime,
+                    file_cell_id: str | None = None) -> StoreOutcome:
         source = result["source"]
         version = str(result["passivefit_version"])
         recording = session.scalars(
@@ -348,7 +354,11 @@ class Database:
                                      format=str(source["format"]),
                                      sweep_count=int(source["sweep_count"]), first_seen=when)
             session.add(recording)
-        recording.cell = _upsert_cell(session, metadata, str(source["path"]))
+        if recording.cell is None or metadata.get("cell_id"):
+            recording.cell = _upsert_cell(session, metadata, str(source["path"]), file_cell_id)
+        else:  # a stored recording keeps its cell; given values update it
+            _upsert_cell(session, {**metadata, "cell_id": recording.cell.cell_id},
+                         str(source["path"]))
         session.flush()
         same = (select(AnalysisRow).where(AnalysisRow.recording_pk == recording.id,
                                           AnalysisRow.settings_hash == digest,
@@ -378,8 +388,9 @@ def _schema_version(conn) -> int | None:
     return None if value is None else int(value)
 
 
-def _upsert_cell(session: Session, metadata: Mapping, path: str) -> CellRow:
-    cell_id = str(metadata.get("cell_id") or Path(path).stem)
+def _upsert_cell(session: Session, metadata: Mapping, path: str,
+                 file_cell_id: str | None = None) -> CellRow:
+    cell_id = _cell_identity(session, metadata.get("cell_id"), file_cell_id, Path(path))
     cell = session.scalars(select(CellRow).where(CellRow.cell_id == cell_id)).one_or_none()
     if cell is None:
         cell = CellRow(cell_id=cell_id)
@@ -389,6 +400,35 @@ def _upsert_cell(session: Session, metadata: Mapping, path: str) -> CellRow:
         if value is not None and value != "":
             setattr(cell, key, _cell_value(key, value))
     return cell
+
+
+def _cell_identity(session: Session, given, file_cell_id: str | None, path: Path) -> str:
+    """The cell a recording belongs to.
+
+    The metadata's ``cell_id`` when given; else the file's own cell id, unless a cell of
+    that name already holds recordings from another folder; else the folder and the
+    file stem (``day1/c1``), never the file name alone: files of the same name in
+    different folders are different cells. When even that name is taken by another
+    folder (``/a/day1`` and ``/b/day1``), a digest of the full folder path is appended.
+    """
+    if given:
+        return str(given)
+    folder = path.parent
+    if file_cell_id and not _cell_elsewhere(session, str(file_cell_id), folder):
+        return str(file_cell_id)
+    derived = f"{folder.name}/{path.stem}" if folder.name else path.stem
+    if not _cell_elsewhere(session, derived, folder):
+        return derived
+    import hashlib
+
+    return f"{derived}~{hashlib.sha256(str(folder).encode()).hexdigest()[:8]}"
+
+
+def _cell_elsewhere(session: Session, cell_id: str, folder: Path) -> bool:
+    """True when the cell `cell_id` holds a recording from a folder other than `folder`."""
+    query = (select(RecordingRow.path).join(CellRow, RecordingRow.cell_pk == CellRow.id)
+             .where(CellRow.cell_id == cell_id))
+    return any(Path(p).parent != folder for p in session.scalars(query))
 
 
 def _cell_value(key: str, value) -> float | str:

@@ -97,3 +97,63 @@ def _number(key: str, raw: str) -> float:
 
 def _escape_like(text: str) -> str:
     return text.replace("\\", "\\\\").replace("%", "\\%").replace("_", "\\_")
+
+
+# ---------------------------------------------------------------------------- reading
+def open_for_reading(target: str):
+    """Open the database at `target` for reading only (`passivefit db ...`).
+
+    SQLite files are opened read-only (``mode=ro``); on a read-only file system, where
+    SQLite could not make its shared-memory file, also as immutable, so a database on a
+    read-only mount or a CD can be listed. Other URLs open as `open_database` does.
+    Anything that is not a passivefit database is a one-line `StoreError`.
+    """
+    import sqlite3
+    from pathlib import Path
+    from urllib.parse import quote
+
+    from sqlalchemy import create_engine
+    from sqlalchemy.engine import make_url
+    from sqlalchemy.exc import SQLAlchemyError
+
+    from passivefit.store.database import Database, StoreError, database_url, open_database
+
+    try:
+        url = database_url(target)
+        parsed = make_url(url)
+        if parsed.get_backend_name() != "sqlite":
+            return open_database(target, create=False)
+        path = Path(parsed.database or "")
+        if not path.is_file():
+            raise StoreError(f"`--db` {target}: no database there; fill one first with "
+                             "`passivefit batch FOLDER --db ...`")
+        uri = f"file:{quote(str(path.resolve()))}?mode=ro"
+        if _read_only_folder(path.parent):
+            uri += "&immutable=1"
+        engine = create_engine("sqlite://", creator=lambda: sqlite3.connect(
+            uri, uri=True, timeout=60, check_same_thread=False))
+        database = Database(engine)
+        try:
+            database.prepare_schema(create=False)
+        except BaseException:
+            database.close()
+            raise
+        return database
+    except SQLAlchemyError as exc:
+        orig = getattr(exc, "orig", None)
+        reason = str(orig if orig is not None else exc).strip().splitlines()
+        raise StoreError(f"`--db` {target}: cannot read it as a passivefit database "
+                         f"({reason[0] if reason else type(exc).__name__})") from None
+    except OSError as exc:
+        raise StoreError(f"`--db` {target}: cannot open it ({exc.strerror or exc})") from None
+
+
+def _read_only_folder(folder) -> bool:
+    import os
+
+    try:
+        if os.statvfs(folder).f_flag & os.ST_RDONLY:
+            return True
+    except (OSError, AttributeError):
+        pass
+    return not os.access(folder, os.W_OK)
