@@ -532,3 +532,16 @@ def test_before_a_recording_opens_no_window_is_drawn(qtbot, make_window):
     assert not any(r.isVisible() for r in window.trace.regions.values())
     assert not any(box.isEnabled() for pair in window.windows_bar.boxes.values()
                    for box in pair)
+
+
+def test_the_time_course_tab_shows_every_measured_sweep(qtbot, open_window, recording):
+    """Issue: per-sweep R_in, τ0 and V_rest against sweep, in the window as in the PDF."""
+    import pyqtgraph as pg
+
+    window = open_window(recording)
+    window.tabs.setCurrentWidget(window.time_course)
+    sweeps = [s.to_dict() for s in window.current_result().sweeps]
+    for plot, q in zip(window.time_course.plots, window.time_course.QUANTITIES, strict=True):
+        items = [i for i in plot.getPlotItem().listDataItems() if isinstance(i, pg.PlotDataItem)]
+        shown = sum(len(i.getData()[0]) for i in items)
+        assert shown == sum(1 for s in sweeps if s.get(q.key) is not None) >= 2

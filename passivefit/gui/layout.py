@@ -15,7 +15,7 @@ from passivefit.gui.panels import (
     WindowsBar,
     card,
 )
-from passivefit.gui.plots import ScanView, SemilogView, TraceView, VIView
+from passivefit.gui.plots import ScanView, SemilogView, TimeCourseView, TraceView, VIView
 
 Qt = QtCore.Qt
 
@@ -91,6 +91,8 @@ class WindowLayout:
         self.tabs.setObjectName("sideTabs")
         self.tabs.addTab(sweeps_card, "Sweeps")
         self.tabs.addTab(self.settings_panel, "Analysis settings")
+        self.time_course = TimeCourseView()
+        self.tabs.addTab(self.time_course, "Over time")
         right_split = QtWidgets.QSplitter(Qt.Orientation.Vertical)
         for widget in (self.cell, self.notes, self.tabs):
             right_split.addWidget(widget)

@@ -339,6 +339,46 @@ def _spread_indices(n: int, most: int) -> np.ndarray:
     return np.unique(np.geomspace(1, n, most).astype(int) - 1)
 
 
+# ----------------------------------------------------------------------------- time course
+class TimeCourseView(QtWidgets.QWidget):
+    """R_in, τ0 and V_rest of every sweep in recording order: drift shows here (sweeps
+    used filled, left out hollow)."""
+
+    QUANTITIES = (S.R_IN, S.TAU0, S.V_REST)
+
+    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.plots = [new_plot("", "sweep" if q is S.V_REST else "", q.heading)
+                      for q in self.QUANTITIES]
+        layout = QtWidgets.QVBoxLayout(self)
+        layout.setContentsMargins(0, 0, 0, 0)
+        layout.setSpacing(0)
+        for plot in self.plots:
+            plot.getPlotItem().getAxis("left").setWidth(52)
+            layout.addWidget(plot)
+
+    def show_result(self, result) -> None:
+        sweeps = [] if result is None else [s.to_dict() for s in result.sweeps]
+        change = None if result is None else result.cell.values.get(S.R_IN_CHANGE.key)
+        for plot, q in zip(self.plots, self.QUANTITIES, strict=True):
+            plot.clear()
+            pts = [(s[S.INDEX.key], s[q.key], s[S.ACCEPTED.key]) for s in sweeps
+                   if s.get(q.key) is not None]
+            if len(pts) < 2:
+                _note(plot, WAITING if result is None else "fewer than 2 measured sweeps")
+                continue
+            for used in (True, False):
+                xs = [x for x, _, a in pts if a == used]
+                ys = [y for _, y, a in pts if a == used]
+                if xs:
+                    colour = theme.TEAL if used else theme.MUTED
+                    plot.plot(xs, ys, pen=None, symbol="o", symbolSize=6,
+                              symbolPen=pg.mkPen(colour),
+                              symbolBrush=pg.mkBrush(colour) if used else None)
+        title = "over the recording" + (f" · R_in {change:+.0f} %" if change is not None else "")
+        set_title(self.plots[0], title)
+
+
 # ----------------------------------------------------------------------------- scan
 class ScanView(QtWidgets.QWidget):
     """τ0 and τ1 of the cell average refitted from later and later fit starts, with CIs."""

@@ -251,6 +251,7 @@ class ReviewWindow(WindowLayout, OutputActions, FileActions, QtWidgets.QMainWind
         self.notes.show_result(result)
         self.semilog.show_result(result)
         self.scan.show_result(result)
+        self.time_course.show_result(result)
         self.vi.show_result(result)
         self.header.show_verdict(result, busy)
         self._show_windows()
