@@ -22,3 +22,36 @@ def recording_file(tmp_path_factory) -> Path:
         sample_rate_hz=10_000, filter_hz=2_000, sweep_duration_s=0.4, n_sweeps=8, seed=7,
         cell_id="LOL-2026-12-01-c9")
     return save(recording, tmp_path_factory.mktemp("rec") / "LOL-2026-12-01-c9.csv")
+
+
+@pytest.fixture
+def make_window(qtbot, tmp_path):
+    """A ReviewWindow (not yet open on anything) with a private settings store."""
+    from PySide6 import QtCore
+
+    from passivefit.gui.window import ReviewWindow
+    from passivefit.model.settings import Settings
+
+    store = QtCore.QSettings(str(tmp_path / "gui.ini"), QtCore.QSettings.Format.IniFormat)
+
+    def make(settings=None, size=(1400, 900), *, interactive: bool = False):
+        window = ReviewWindow(settings or Settings(bootstrap=0), store=store,
+                              interactive=interactive)
+        qtbot.addWidget(window)
+        window.resize(*size)
+        window.show()
+        return window
+
+    return make
+
+
+@pytest.fixture
+def open_window(qtbot, make_window):
+    """Open a ReviewWindow on a path and wait for its cell analysis."""
+    def make(path: Path, settings=None, size=(1400, 900)):
+        window = make_window(settings, size)
+        assert window.open_paths([path]), window.last_error
+        qtbot.waitUntil(lambda: window.idle, timeout=30_000)
+        return window
+
+    return make

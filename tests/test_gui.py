@@ -37,27 +37,6 @@ def recording(recording_file, tmp_path) -> Path:
     return Path(shutil.copy(recording_file, tmp_path / recording_file.name))
 
 
-@pytest.fixture
-def open_window(qtbot, tmp_path):
-    """Open a ReviewWindow on a path and wait for its cell analysis."""
-    from PySide6 import QtCore
-
-    from passivefit.gui.window import ReviewWindow
-
-    store = QtCore.QSettings(str(tmp_path / "gui.ini"), QtCore.QSettings.Format.IniFormat)
-
-    def make(path: Path, settings: Settings = SETTINGS):
-        window = ReviewWindow(settings, store=store, interactive=False)
-        qtbot.addWidget(window)
-        window.resize(1400, 900)
-        window.show()
-        assert window.open_paths([path]), window.last_error
-        wait_idle(qtbot, window)
-        return window
-
-    return make
-
-
 def wait_idle(qtbot, window) -> None:
     qtbot.waitUntil(lambda: window.idle, timeout=30_000)
 

@@ -36,35 +36,6 @@ def recording(recording_file, tmp_path) -> Path:
     return Path(shutil.copy(recording_file, folder / recording_file.name))
 
 
-@pytest.fixture
-def make_window(qtbot, tmp_path):
-    from PySide6 import QtCore
-
-    from passivefit.gui.window import ReviewWindow
-
-    store = QtCore.QSettings(str(tmp_path / "gui.ini"), QtCore.QSettings.Format.IniFormat)
-
-    def make(settings: Settings = SETTINGS, interactive: bool = False):
-        window = ReviewWindow(settings, store=store, interactive=interactive)
-        qtbot.addWidget(window)
-        window.resize(1400, 900)
-        window.show()
-        return window
-
-    return make
-
-
-@pytest.fixture
-def open_window(qtbot, make_window):
-    def make(path: Path, settings: Settings = SETTINGS):
-        window = make_window(settings)
-        assert window.open_paths([path]), window.last_error
-        wait_idle(qtbot, window)
-        return window
-
-    return make
-
-
 def wait_idle(qtbot, window) -> None:
     qtbot.waitUntil(lambda: window.idle, timeout=30_000)
 

@@ -33,36 +33,6 @@ def recording(recording_file, tmp_path) -> Path:
     return Path(shutil.copy(recording_file, tmp_path / recording_file.name))
 
 
-@pytest.fixture
-def make_window(qtbot, tmp_path):
-    """A ReviewWindow (not yet open on anything) with a private settings store."""
-    from PySide6 import QtCore
-
-    from passivefit.gui.window import ReviewWindow
-
-    store = QtCore.QSettings(str(tmp_path / "gui.ini"), QtCore.QSettings.Format.IniFormat)
-
-    def make(settings: Settings = SETTINGS, size=(1400, 900)):
-        window = ReviewWindow(settings, store=store, interactive=False)
-        qtbot.addWidget(window)
-        window.resize(*size)
-        window.show()
-        return window
-
-    return make
-
-
-@pytest.fixture
-def open_window(qtbot, make_window):
-    def make(path: Path, settings: Settings = SETTINGS, size=(1400, 900)):
-        window = make_window(settings, size)
-        assert window.open_paths([path]), window.last_error
-        wait_idle(qtbot, window)
-        return window
-
-    return make
-
-
 def wait_idle(qtbot, window) -> None:
     qtbot.waitUntil(lambda: window.idle, timeout=30_000)
 
