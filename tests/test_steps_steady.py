@@ -58,12 +58,3 @@ def test_vi_slope_is_input_resistance_and_flags_curvature():
     assert steady.vi_slope(i, bent).curvature > 0.15
     assert steady.vi_slope(i[:10], 110e6 * i[:10]) is None  # two levels only
 
-
-def test_sag_ratio_of_a_sagging_and_a_flat_response():
-    t = np.arange(8000) / FS
-    flat = -0.07 - 5e-3 * (1 - np.exp(-t / 0.02))
-    assert steady.sag_ratio(flat, -0.07, flat[-1], 40) == pytest.approx(1.0, abs=1e-3)
-    # common practice, no source: sag = steady/peak deflection of an h-current-like relaxation
-    sag = flat + 1e-3 * (1 - np.exp(-t / 0.08))
-    ratio = steady.sag_ratio(sag, -0.07, sag[-1], 40)
-    assert 0.75 < ratio < 0.95

@@ -1,4 +1,4 @@
-"""Baseline, steady state, input resistance, V–I slope and sag."""
+"""Baseline, steady state, input resistance and the V–I slope (sag: core.sag)."""
 
 from __future__ import annotations
 
@@ -46,32 +46,6 @@ def smooth(v: np.ndarray, width: int) -> np.ndarray:
     lo = np.clip(centre - width // 2, 0, v.size)
     hi = np.clip(centre - width // 2 + width, 0, v.size)
     return (csum[hi] - csum[lo]) / (hi - lo)
-
-
-def sag_ratio(step_trace: np.ndarray, v_base: float, v_steady: float, width: int,
-              noise: float = 0.0) -> float | None:
-    """Steady-state deflection over peak deflection (1 = no sag), or None without a deflection.
-
-    Parameters
-    ----------
-    step_trace : ndarray
-        Voltage during the step, in V.
-    v_base, v_steady : float
-        Baseline and steady-state voltage, in V.
-    width : int
-        Smoothing width in samples, so noise does not make a peak.
-    noise : float
-        Noise sd of the trace smoothed over `width` samples, in V: a peak less than 4 of
-        these beyond the steady state is noise, and the ratio is 1.
-    """
-    deflection = v_steady - v_base
-    if deflection == 0:
-        return None
-    smoothed = smooth(step_trace, width)[width:-width or None]
-    peak = np.max(smoothed - v_base) if deflection > 0 else np.min(smoothed - v_base)
-    if abs(peak) - abs(deflection) < 4 * noise:
-        return 1.0
-    return float(deflection / peak)
 
 
 @dataclass(frozen=True)
