@@ -104,6 +104,11 @@ def rho_cross_check(bs, v_inf: float) -> tuple[dict, list[Flag]]:
     return {S.RHO_AMPLITUDE: rho_amp}, flags
 
 
+def _inside(value: float, bounds: tuple[float, float]) -> bool:
+    """Whether a fitted value lies clear of its fit bounds (2 % margin)."""
+    return bounds[0] * 1.02 < value < bounds[1] / 1.02
+
+
 def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | None,
                  cis: dict[str, float | None], L_cyl_samples: np.ndarray | None,
                  passive: bool = True) -> tuple[dict, list[Flag]]:
@@ -127,7 +132,7 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
         for q, spec, value, bounds in ((S.L_BS, S.CABLE_L_UNRESOLVED, bs.L, L_BOUNDS),
                                        (S.RHO, S.CABLE_RHO_UNRESOLVED, bs.rho, RHO_BOUNDS)):
             ci = cis[q.key]
-            if not bounds[0] * 1.02 < value < bounds[1] / 1.02:
+            if not _inside(value, bounds):
                 flags.append(S.CABLE_AT_BOUND.make(value, name=q.label, x=value))
             elif tau1 is None:
                 pass  # no τ1 resolved, so no electrotonic length (fit.tau1_unresolved)
@@ -137,7 +142,7 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
                 flags.append(spec.make(value))
         values[S.TAU0_MODEL] = bs.tau0_s
         values[S.C_TOTAL] = bs.c_total_F(0, step.amplitude_A)
-        if kind == "step" and r_in and RHO_BOUNDS[0] * 1.02 < bs.rho < RHO_BOUNDS[1] / 1.02:
+        if kind == "step" and r_in and _inside(bs.rho, RHO_BOUNDS):
             more, more_flags = rho_cross_check(bs, r_in * step.amplitude_A)
             values.update(more)
             flags.extend(more_flags)
