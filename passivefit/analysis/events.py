@@ -32,14 +32,18 @@ def noise_model(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float
     from passivefit.core import events
 
     used = [f for f in fits if f.fit is not None]
-    baselines = [f.corrected(voltages[f.index], fs)[slice(*span(f.windows_s["baseline"], fs,
-                                                                voltages[f.index].size))]
-                 for f in used]
-    residuals = [np.nan_to_num(residual(f.corrected(voltages[f.index], fs), f.fit, r, fs)[1])
-                 for f in used for r in f.segments]
+
+    def baselines():
+        return [f.corrected(voltages[f.index], fs)[slice(*span(
+            f.windows_s["baseline"], fs, voltages[f.index].size))] for f in used]
+
+    def residuals():   # only when the baselines are too short
+        return [np.nan_to_num(residual(f.corrected(voltages[f.index], fs), f.fit, r, fs)[1])
+                for f in used for r in f.segments]
+
     for segments in (baselines, residuals):
         try:
-            return events.noise_model(segments, fs)
+            return events.noise_model(segments(), fs)
         except ValueError:
             continue
     return None
