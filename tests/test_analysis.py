@@ -181,7 +181,8 @@ def test_bootstrap_runs_when_the_cable_fit_fails(monkeypatch):
     data = analyze(rec, Settings()).to_dict()
     assert data["cell"]["tau0_ms"] == pytest.approx(truth["tau0_ms"], rel=0.02)
     assert data["cell"]["ci_method"] == "bootstrap over sweeps"
-    assert data["cell"]["L_bs"] is None and data["cell"]["bridge_MOhm"] is None
+    assert data["cell"]["L_bs"] is None and data["cell"].get("bridge_MOhm") is None
+    assert data["cell"]["r_in_MOhm"] == data["cell"]["r_in_raw_MOhm"]
 
 
 def test_membrane_area_gives_specific_capacitance_and_resistance():

@@ -3,82 +3,89 @@ jump, L, ρ and the capacitances (docs/references.md §2–§4)."""
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
-from passivefit.analysis.fits import FIT_ERRORS, fit_segments, onset_amplitudes, response_amplitudes
+from passivefit.analysis.fits import FIT_ERRORS, fit_segments, onset_amplitudes
+from passivefit.analysis.windows import span
 from passivefit.core.qc import Flag, percentile_halfwidth
-from passivefit.core.steps import Step
 from passivefit.model import schema as S
 from passivefit.model.results import GroupAverage
 
 
-def bessel_delay_s(filter_hz: float | None) -> float:
-    """Group delay of a 4-pole Bessel low-pass at low frequency, 0.336/fc, in s (0 if None).
+@dataclass(frozen=True)
+class Chain:
+    """What the model knows of the measurement chain: the filter corner (Hz; None =
+    unfiltered or unknown), whether it is estimated, and the variance inflation of the
+    recording's correlated noise."""
 
-    From memory (textbook value for the 4-pole Bessel's normalised group delay,
-    0.3363/fc with fc the −3 dB corner).
-    """
-    return 0.0 if not filter_hz else 0.336 / filter_hz
-
-
-def cable_init(exp_fit, step: Step) -> tuple[float, float, float] | None:
-    """Start values (τ0, L, ρ) for the ball-and-stick fit from an exponential fit."""
-    from passivefit.core import cablefit
-
-    if exp_fit is None or len(exp_fit.taus) < 2:
-        return None
-    amps = response_amplitudes(exp_fit, 0, step.kind)  # segment 0: the first transient
-    kind = "step" if step.kind == "step" else "square"
-    try:
-        return cablefit.initial_guess(exp_fit.taus[0], exp_fit.taus[1], amps[1] / amps[0],
-                                      kind, None if kind == "step" else step.duration_s)
-    except ValueError:
-        return None
+    corner_hz: float | None = None
+    estimate_corner: bool = False
+    noise_factor: float = 1.0
 
 
-def fit_cable(avg: GroupAverage, fs: float, init, delay_s: float
+def noise_factor(avg: GroupAverage, fs: float) -> float:
+    """Variance inflation of the cable fit's errors by the recording's correlated noise,
+    from the combined baseline, lags up to 2 ms (core.qc.correlated_noise_factor)."""
+    from passivefit.core.qc import correlated_noise_factor
+
+    a, b = span(avg.windows_s["baseline"], fs, avg.v_V.size)
+    return correlated_noise_factor(avg.v_V[a:b], int(2e-3 * fs))
+
+
+def fit_cable(avg: GroupAverage, fs: float, init, chain: Chain, profile: bool = False
               ) -> tuple[object | None, Flag | None]:
-    """Ball-and-stick fit of the combined response (core.cablefit): (fit, None), or
-    (None, the flag that says why it failed)."""
+    """Ball-and-stick fit of the combined response with the measurement chain
+    (core.cablefit), searched thoroughly and with profile intervals when `profile`: (fit,
+    None) when it succeeded; (fit, flag) when it converged with a
+    value at its bound (its bridge still counts); (None, flag) when it failed."""
     from passivefit.core import cablefit
 
     fit_segs, records = fit_segments(avg.v_V, fs, avg.step, avg.windows_s)
     segs = [cablefit.CableSegment(
         seg.t, seg.y, seg.weight, kind="charge" if rec.charging else "decay", group=0,
-        duration_s=None if rec.charging else avg.step.duration_s, sample_interval_s=1 / fs)
+        duration_s=None if rec.charging else avg.step.duration_s, sample_interval_s=1 / fs,
+        baseline=avg.v_base_V if rec.charging else None)
         for seg, rec in zip(fit_segs, records, strict=True)]
     if not segs:
         return None, None
     try:
-        bs = cablefit.fit_ballstick(segs, init=init, delay_s=delay_s)
+        bs = cablefit.fit_ballstick(segs, init=init, corner_hz=chain.corner_hz,
+                                    estimate_corner=chain.estimate_corner,
+                                    noise_factor=chain.noise_factor, profile=profile,
+                                    thorough=profile)
     except FIT_ERRORS as exc:
         return None, S.CABLE_FIT_FAILED.make(reason="failed", problem=exc)
     if not bs.success:
-        return None, S.CABLE_FIT_FAILED.make(reason="not_converged", problem=bs.message)
+        converged = not bs.message.startswith("solver")
+        return bs if converged else None, S.CABLE_FIT_FAILED.make(
+            reason="not_converged", problem=bs.message)
     return bs, None
 
 
-def bridge_of(bs, avg: GroupAverage) -> float | None:
-    """Bridge imbalance (Ω): the jump at the step onset that is not membrane charging.
-
-    From the ball-and-stick fit, whose modes sum to the whole membrane response (free
-    exponentials extrapolated to the edge miss the fast components); None without it.
-    """
-    if bs is None or avg.step.kind != "step":
+def bridge_of(bs, avg: GroupAverage) -> tuple[float, float, bool] | None:
+    """Bridge imbalance and its 95 % CI half-width (Ω), the fitted jump at the step onset
+    that is not membrane charging over the step current, and whether the data need it;
+    None without a fitted jump."""
+    if bs is None or avg.step.kind != "step" or not np.isfinite(bs.bridge_V[0]):
         return None
-    return bs.bridge_jump_V(0, avg.v_base_V) / avg.amplitude_A
+    jump, ci = bs.bridge_V[0] / avg.amplitude_A, 1.96 * bs.bridge_se_V[0] / abs(avg.amplitude_A)
+    if not bs.bridge_needed:  # the data are consistent with no jump: so is its interval
+        ci = max(ci, abs(jump))
+    return jump, ci, bs.bridge_needed
 
 
 def model_tau1_ci(bs) -> float:
-    """95 % CI half-width of the model τ1 = τ0/(1 + α1²), propagated from the CIs of τ0,
-    L and ρ (correlations ignored)."""
+    """95 % CI half-width of the model τ1 = τ0/(1 + α1²), propagated from the standard
+    errors of τ0, L and ρ (1.96 se; correlations ignored)."""
     from passivefit.core import cable
 
     def tau1(tau0: float, L: float, rho: float) -> float:
         return tau0 / (1 + cable.ballstick_alphas(L, rho, 1)[0] ** 2)
 
     x = np.array([bs.tau0_s, bs.L, bs.rho])
-    ci = np.array([bs.tau0_ci95_s, bs.L_ci95, bs.rho_ci95])
+    ci = 1.96 * np.array([bs.tau0_se_s, bs.L_se, bs.rho_se])
     base = tau1(*x)
     parts = []
     for k in range(3):
@@ -114,7 +121,7 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
                  passive: bool = True) -> tuple[dict, list[Flag]]:
     """Equivalent cylinder (exponential fit), ball-and-stick and capacitance (cable fit).
 
-    `cis` holds the 95 % half-widths of "L" and "rho" (None without a cable fit);
+    `cis` holds the 95 % intervals (low, high) of "L" and "rho" (None without a cable fit);
     `L_cyl_samples` the resampled L_cyl values for its CI. A cell that is not `passive`
     (it sags) gets only C = τ0/R_in: the cable values assume a passive membrane.
     """
@@ -129,15 +136,18 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
     if bs is not None:
         from passivefit.core.cablefit import L_BOUNDS, RHO_BOUNDS
 
-        for q, spec, value, bounds in ((S.L_BS, S.CABLE_L_UNRESOLVED, bs.L, L_BOUNDS),
-                                       (S.RHO, S.CABLE_RHO_UNRESOLVED, bs.rho, RHO_BOUNDS)):
-            ci = cis[q.key]
+        for q, spec, value, bounds, ends in (
+                (S.L_BS, S.CABLE_L_UNRESOLVED, bs.L, L_BOUNDS, (S.L_CI_LOW, S.L_CI_HIGH)),
+                (S.RHO, S.CABLE_RHO_UNRESOLVED, bs.rho, RHO_BOUNDS, (S.RHO_CI_LOW, S.RHO_CI_HIGH))):
+            lo, hi = cis[q.key]
             if not _inside(value, bounds):
                 flags.append(S.CABLE_AT_BOUND.make(value, name=q.label, x=value))
             elif tau1 is None:
                 pass  # no τ1 resolved, so no electrotonic length (fit.tau1_unresolved)
-            elif ci < value:
-                values[q], values[S.BY_KEY[q.ci]] = value, ci
+            elif np.isfinite(lo) and np.isfinite(hi) and 0 < lo <= value <= hi:
+                # a bounded interval, asymmetric where the likelihood is (profile)
+                values[q], values[S.BY_KEY[q.ci]] = value, (hi - lo) / 2
+                values[ends[0]], values[ends[1]] = lo, hi
             else:
                 flags.append(spec.make(value))
         values[S.TAU0_MODEL] = bs.tau0_s

@@ -40,12 +40,17 @@ def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag
         values[S.R_IN_SLOPE] = fitline.slope_ohm
         values[S.VI_R2] = fitline.r2
         values[S.R_IN], values[S.R_IN_METHOD] = fitline.slope_ohm, "V-I slope"
+        values[S.R_IN_CI] = _t95(i.size - 2) * fitline.slope_se_ohm
         if fitline.r2 < 0.98 or fitline.curvature > 0.15:
             flags.append(S.VI_NONLINEAR.make(fitline.curvature))
             values[S.R_IN], values[S.R_IN_METHOD] = chord, "smallest steps (V-I not linear)"
+            values[S.R_IN_CI] = _ratio_ci(dv[small] / i[small])
     else:
         values[S.R_IN] = np.sum(dv * i) / np.sum(i * i)
         values[S.R_IN_METHOD] = "mean step"
+        values[S.R_IN_CI] = _ratio_ci(dv / i)
+    if values[S.R_IN_CI] is None or not np.isfinite(values[S.R_IN_CI]):
+        del values[S.R_IN_CI]
     neg, pos = dv[i < 0] / i[i < 0], dv[i > 0] / i[i > 0]
     if neg.size and pos.size:
         asym = abs(neg.mean() - pos.mean()) / abs(np.mean(dv / i))
@@ -53,6 +58,20 @@ def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag
         if asym > 0.1:
             flags.append(S.CELL_ASYMMETRIC.make(asym))
     return values, vi, flags
+
+
+def _t95(dof: int) -> float:
+    """Student t's 97.5 % point (two-sided 95 %) for `dof` degrees of freedom."""
+    from scipy.stats import t
+
+    return float(t.ppf(0.975, max(dof, 1)))
+
+
+def _ratio_ci(r: np.ndarray) -> float | None:
+    """95 % CI half-width of the mean of per-sweep ratios ΔV/ΔI; None from one sweep."""
+    if r.size < 2:
+        return None
+    return _t95(r.size - 1) * float(np.std(r, ddof=1)) / np.sqrt(r.size)
 
 
 def pulse_input_resistance(g: GroupAverage, fit, fs: float) -> tuple[dict, list[Flag]]:

@@ -23,12 +23,12 @@ import numpy as np
 
 from passivefit.analysis import checks
 from passivefit.analysis.cable import (
-    bessel_delay_s,
+    Chain,
     bridge_of,
-    cable_init,
     cable_values,
     fit_cable,
     model_tau1_ci,
+    noise_factor,
 )
 from passivefit.analysis.events import cut_out_events
 from passivefit.analysis.fits import FIT_ERRORS, fit_average, fit_start_scan, onset_amplitudes
@@ -79,12 +79,14 @@ def analyze(recording: Recording, settings: Settings | None = None) -> Recording
             settings.windows, fit_end_ms=settings.windows.fit_end_ms or sag_end / MS,
             decay=bool(settings.windows.decay)))
         screened = hyperpolarizing_only(screened)
-    start, tau_init = first_look(screened, voltages, fs, base)
-    effective = base if start is None else replace(base, fit_start_ms=start / MS)
-    fits = [analyze_sweep(voltages[s.index], st, s.index, fs, effective, tau_init)
-            for s, st in chosen]
-    fits = cut_out_events(fits, voltages, fs, lambda f, cut: analyze_sweep(
-        voltages[f.index], f.step, f.index, fs, effective, tau_init, masked_s=cut))
+    fits, effective, tau_init = _fitted_sweeps(chosen, screened, voltages, fs, base)
+    automatic = replace(base, components="auto", fit_start_ms=None)
+    if automatic != base:
+        # spontaneous events are found with the automatic fits, so that the person's
+        # fit start or number of components does not change which samples are used
+        found = _fitted_sweeps(chosen, screened, voltages, fs, automatic)[0]
+        fits = [_with_cut_of(f, auto, voltages[f.index], fs, effective, tau_init)
+                for f, auto in zip(fits, found, strict=True)]
     check_sign(fits, recording.path)
     fits, active = leave_out_active(reject_outliers(fits))
     if sag_end is not None:
@@ -92,8 +94,10 @@ def analyze(recording: Recording, settings: Settings | None = None) -> Recording
         active += [S.FIT_SAG_WINDOW.make(sag_end / MS, end=f"{sag_end / MS:.0f} ms")]
     fits, stability, unstable = stable_stretch(fits, settings.all_sweeps)
     fits = apply_decisions(fits, effective)
-    delay = bessel_delay_s(settings.filter_hz or _metadata_float(recording, "filter_hz"))
-    cell = summarize_cell(fits, voltages, fs, effective, base, delay, sagging=sag_end is not None)
+    corner = settings.filter_hz or _metadata_float(recording, "filter_hz")
+    cell = summarize_cell(fits, voltages, fs, effective, replace(base, fit_start_ms=None),
+                          Chain(corner, estimate_corner=corner is None),
+                          sagging=sag_end is not None)
     cell.values.update(stability)
     cell.flags[:0] = [*recording.flags, *active, *unstable]
     return RecordingResult(
@@ -103,6 +107,36 @@ def analyze(recording: Recording, settings: Settings | None = None) -> Recording
         flags=tuple(cell.flags), effective_settings=effective, protocol=cell.protocol,
         average=cell.average, cable_fit=cell.cable_fit, cell_fit=cell.cell_fit,
         peel=cell.peel, scan=cell.scan, vi=cell.vi)
+
+
+def _fitted_sweeps(chosen, screened: list[SweepFit], voltages: dict[int, np.ndarray],
+                   fs: float, base: Settings):
+    """Every sweep fitted with the fit start and start values of the first look, its
+    spontaneous events cut out; the settings used (`base` with that fit start) and the
+    start values."""
+    start, tau_init = first_look(screened, voltages, fs, base)
+    effective = base if start is None else replace(base, fit_start_ms=start / MS)
+    fits = [analyze_sweep(voltages[s.index], st, s.index, fs, effective, tau_init)
+            for s, st in chosen]
+    fits = cut_out_events(fits, voltages, fs, lambda f, cut: analyze_sweep(
+        voltages[f.index], f.step, f.index, fs, effective, tau_init, masked_s=cut))
+    return fits, effective, tau_init
+
+
+def _with_cut_of(fit: SweepFit, automatic: SweepFit, v: np.ndarray, fs: float,
+                 settings: Settings, tau_init) -> SweepFit:
+    """`fit` with the events cut out that the `automatic` fit of the same sweep found (and
+    left out when they could not be cut)."""
+    if automatic.masked_s == fit.masked_s and automatic.accepted == fit.accepted:
+        return fit
+    events = tuple(f for f in automatic.flags if f.code == S.SWEEP_EVENT.code)
+    if not automatic.accepted and events:   # events that could not be cut out
+        return replace(fit, accepted=False, reject_reason=automatic.reject_reason,
+                       flags=(*fit.flags, *events))
+    new = analyze_sweep(v, fit.step, fit.index, fs, settings, tau_init,
+                        masked_s=automatic.masked_s)
+    kept = tuple(f for f in new.flags if f.code != S.SWEEP_EVENT.code)
+    return replace(new, flags=(*kept, *events))
 
 
 def _metadata_float(recording: Recording, key: str) -> float | None:
@@ -131,13 +165,14 @@ class CellSummary:
 
 
 def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
-                   settings: Settings, asked: Settings | None = None,
-                   delay_s: float = 0.0, sagging: bool = False) -> CellSummary:
+                   settings: Settings, automatic: Settings | None = None,
+                   chain: Chain | None = None, sagging: bool = False) -> CellSummary:
     """Cell-level values from the accepted sweeps.
 
-    `settings` hold the fit start used for the exponential fits; the cable-model fit
-    starts where the person `asked` (default: after the artefact) and shifts time zero
-    by the filter delay `delay_s`. A `sagging` cell gets no cable model.
+    `settings` hold the fit start used for the exponential fits. The model of the whole
+    measurement chain (cell, bridge with its lag, filter) is fitted from the `automatic`
+    start, after the artefact, whatever start the person chose: the bridge, and so R_in,
+    do not depend on it. A `sagging` cell gets no cable model.
     """
     used = [f for f in fits if f.accepted]
     out = CellSummary(tuple(fits), {S.N_SWEEPS_USED: len(used)},
@@ -160,30 +195,33 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         out.flags.append(S.FIT_FAILED.make(problem=exc))
         fit = None
     out.values[S.COMPONENTS_REASON] = choice.get("reason", f"set to {settings.components}")
-    avg_cable = average_of(pool, avg.v_V, fs, asked or settings)
-    bs = None
+    avg_cable = average_of(pool, avg.v_V, fs, automatic or settings)
+    chain = replace(chain or Chain(), noise_factor=noise_factor(avg_cable, fs))
+    bs = bridge = None
     if fit is not None and fit.sag is not None:  # not passive: no cable model
         out.values[S.TAU_SAG] = fit.sag_tau
         out.flags += [S.FIT_SAG_COMPONENT.make(fit.sag_tau / MS, tau=f"{fit.sag_tau / MS:.0f} ms"),
                       S.CABLE_NOT_PASSIVE.make()]
-    elif fit is not None and sagging:
+    elif sagging:
         out.flags.append(S.CABLE_NOT_PASSIVE.make())
-    elif fit is not None:
-        bs, problem = fit_cable(avg_cable, fs, cable_init(fit, pool.step), delay_s)
+    else:  # its start values from its own data, not from the person's exponential fit
+        chain_fit, problem = fit_cable(avg_cable, fs, None, chain, profile=True)
         out.flags.extend([problem] if problem else [])
+        out.values.update(_chain_values(chain_fit, chain))
+        out.flags.extend(_chain_flags(chain_fit, chain))
+        bs = chain_fit if chain_fit is not None and chain_fit.success else None
+        bridge = bridge_of(chain_fit, avg_cable)
     out.average, out.cable_fit, out.cell_fit = avg, bs, fit
     out.values[S.FIT_START] = avg.fit_start_s
     boot = None
     if fit is not None and settings.bootstrap and len(pool.indices) >= 3:
-        cable = None if bs is None else CableContext(avg_cable, bs, delay_s)
+        cable = None if bs is None else CableContext(avg_cable, bs, chain)
         boot = bootstrap(pool, avg, fs, fit, settings.bootstrap, cable)
     out.values[S.CI_METHOD] = "bootstrap over sweeps" if boot is not None else "fit covariance"
     cis = _cable_cis(bs, boot)
 
-    values, flags, fits = _bridge_correction(fits, fit, bs, avg, boot, cis, settings)
-    out.values.update(values)
-    out.flags.extend(flags)
-    out.sweeps = tuple(fits)
+    # R_in: once, from the steady state and the bridge estimate (whatever the fit start,
+    # the number of components or the bootstrap)
     used = [f for f in fits if f.accepted]
     if out.protocol == "pulse" and fit is not None:
         values, flags = checks.pulse_input_resistance(avg, fit, fs)
@@ -191,6 +229,11 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         values, out.vi, flags = checks.input_resistance(used)
     out.values.update(values)
     out.flags.extend(flags)
+    values, flags, fits = _bridge_correction(fits, bridge, out.values, settings)
+    out.values.update(values)
+    out.flags.extend(flags)
+    out.sweeps = tuple(fits)
+    used = [f for f in fits if f.accepted]
     values, flags = checks.sag(used)
     out.values.update(values)
     out.flags.extend(flags)
@@ -225,13 +268,41 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     return out
 
 
-def _cable_cis(bs, boot: dict | None) -> dict[str, float | None]:
-    """95 % CI half-widths of L and ρ: the larger of the bootstrap (few resamples) and the
-    fit-covariance ones; None without a cable fit."""
+def _cable_cis(bs, boot: dict | None) -> dict[str, tuple[float, float] | None]:
+    """95 % intervals of L and ρ: the fit's (profile likelihood where it is not quadratic),
+    widened to the bootstrap's percentile interval where that reaches further; None
+    without a cable fit."""
     if bs is None:
         return {S.L_BS.key: None, S.RHO.key: None}
-    return {S.L_BS.key: max(halfwidth(boot, "L") or 0.0, bs.L_ci95),
-            S.RHO.key: max(halfwidth(boot, "rho") or 0.0, bs.rho_ci95)}
+    out = {}
+    for q, (lo, hi), name in ((S.L_BS, bs.L_interval, "L"), (S.RHO, bs.rho_interval, "rho")):
+        seen = boot[name][np.isfinite(boot[name])] if boot is not None else np.array([])
+        if seen.size >= 5:  # the bootstrap's own (asymmetric) percentile interval
+            b_lo, b_hi = np.percentile(seen, [2.5, 97.5])
+            lo, hi = min(lo, b_lo), max(hi, b_hi)
+        out[q.key] = (lo, hi)
+    return out
+
+
+def _chain_values(fit, chain: Chain) -> dict:
+    """The measurement chain as fitted: filter corner (and where it came from), lag."""
+    if fit is None:
+        return {}
+    values = {S.FILTER_SOURCE: "estimated from the step edge" if chain.estimate_corner
+              else "file or --filter-hz" if chain.corner_hz else "none (unfiltered)"}
+    if fit.corner_hz is not None:
+        values[S.FILTER] = fit.corner_hz
+        if fit.corner_se_hz is not None:
+            values[S.FILTER_CI] = 1.96 * fit.corner_se_hz
+    if np.isfinite(fit.lag_s):
+        values[S.LAG] = fit.lag_s
+    return values
+
+
+def _chain_flags(fit, chain: Chain) -> list[Flag]:
+    if fit is None or not chain.estimate_corner or fit.corner_hz is None:
+        return []
+    return [S.CELL_FILTER_ESTIMATED.make(fit.corner_hz)]
 
 
 def _L_cyl_samples(boot: dict | None, cable: bool) -> np.ndarray | None:
@@ -245,35 +316,43 @@ def _L_cyl_samples(boot: dict | None, cable: bool) -> np.ndarray | None:
                      for t0, t1 in pairs])
 
 
-def _bridge_correction(fits: list[SweepFit], fit, bs, avg: GroupAverage, boot: dict | None,
-                       cis: dict, settings: Settings
+def _bridge_correction(fits: list[SweepFit], bridge: tuple[float, float, bool] | None,
+                       measured: dict, settings: Settings
                        ) -> tuple[dict, list[Flag], list[SweepFit]]:
-    """The bridge jump and, when it is real, the sweeps with it taken out of their R_in.
+    """The bridge jump, and R_in with it taken out when it is real.
 
-    It is subtracted only when the exponential fit shows a second component, the
-    ball-and-stick fit resolves L, and the jump is larger than its own 95 % CI from the
-    bootstrap over sweeps (no bootstrap, no correction): an unresolved cable model cannot
-    tell a bridge error from fast dendritic charging or noise.
+    `bridge` is the fitted jump over the step current, its 95 % CI half-width (from the
+    fit of the measurement chain, not the bootstrap) and whether the data need a jump at
+    all; it is real when they do and the interval excludes zero. `measured` holds the raw
+    R_in from the steady state (and its CI). R_in is then the raw value, or the raw value
+    minus the bridge with the CIs combined.
     """
-    bridge = bridge_of(bs, avg)
-    values: dict = {S.BRIDGE: bridge, S.BRIDGE_APPLIED: False}
+    raw = measured.get(S.R_IN)
+    values: dict = {S.BRIDGE_APPLIED: False}
+    if raw is not None:
+        values[S.R_IN_RAW] = raw
     if bridge is None:
         return values, [], fits
-    ci = halfwidth(boot, "bridge")
-    values[S.BRIDGE_CI] = ci
-    n_taus = len(fit.taus) if fit is not None else 0
-    resolved = ci is not None and n_taus >= 2 and cis[S.L_BS.key] < bs.L and abs(bridge) > ci
-    if not resolved:
-        flags = ([S.CELL_BRIDGE_UNCERTAIN.make(bridge / MOHM)] if abs(bridge) > 5 * MOHM
+    jump, ci, needed = bridge
+    values[S.BRIDGE], values[S.BRIDGE_CI] = jump, ci
+    if raw is not None:
+        values[S.R_IN_CORRECTED] = raw - jump
+    if not (needed and np.isfinite(ci) and abs(jump) > ci):
+        flags = ([S.CELL_BRIDGE_UNCERTAIN.make(jump / MOHM)] if abs(jump) > 5 * MOHM
                  else [])
         return values, flags, fits
     flags = []
-    if abs(bridge) > 5 * MOHM:
+    if abs(jump) > 5 * MOHM:
         what = "subtracted from" if settings.correct_bridge else "left in"
-        flags.append(S.CELL_BRIDGE.make(bridge / MOHM, what=what))
-    if settings.correct_bridge:
-        fits = [with_bridge_removed(f, bridge) for f in fits]
+        flags.append(S.CELL_BRIDGE.make(jump / MOHM, what=what))
+    if settings.correct_bridge and raw is not None:
+        fits = [with_bridge_removed(f, jump) for f in fits]
         values[S.BRIDGE_APPLIED] = True
+        for q in (S.R_IN, S.R_IN_SLOPE, S.R_IN_CHORD):
+            if measured.get(q) is not None:
+                values[q] = measured[q] - jump
+        if measured.get(S.R_IN_CI) is not None:
+            values[S.R_IN_CI] = float(np.hypot(measured[S.R_IN_CI], ci))
     return values, flags, fits
 
 

@@ -83,13 +83,31 @@ def _fit_sweep(v: np.ndarray, fs: float, step: Step, wins: dict, settings: Setti
             fit = fit_exponentials(segs, str(n), tau_init=tau_init[:n])
             if not fit.success and n == 2:  # a small step may not show τ1: one exponential
                 fit = fit_exponentials(segs, "1", tau_init=tau_init[:1])
-        else:  # single sweeps rarely resolve a third component: "auto" stops at two here
-            fit = fit_exponentials(segs, settings.components, max_components=2)
+        elif settings.components == "auto":  # single sweeps rarely resolve a third
+            fit = fit_exponentials(segs, "auto", max_components=2)
+        else:
+            fit = _fewer_if_needed(segs, int(settings.components), tau_init)
         if not fit.success:
             raise ValueError(fit.message)
     except FIT_ERRORS as exc:
         return None, (), f"fit failed: {exc}"
     return label_components(fit, step, records[0].charging), records, None
+
+
+def _fewer_if_needed(segs, n: int, tau_init: tuple[float, ...] | None):
+    """The fit with `n` components, or with fewer when a single sweep cannot carry them
+    (a small step rarely shows τ1, let alone τ2): the sweep keeps its steady state."""
+    for k in range(n, 0, -1):
+        init = tau_init[:k] if tau_init is not None and len(tau_init) >= k else None
+        try:
+            fit = fit_exponentials(segs, str(k), tau_init=init)
+        except FIT_ERRORS:
+            if k == 1:
+                raise
+            continue
+        if fit.success or k == 1:
+            return fit
+    return fit
 
 
 def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,

@@ -7,7 +7,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from passivefit.analysis.cable import bridge_of, fit_cable
+from passivefit.analysis.cable import Chain, fit_cable
 from passivefit.analysis.fits import FIT_ERRORS, fit_average
 from passivefit.analysis.pool import SweepPool
 from passivefit.analysis.windows import span
@@ -26,7 +26,7 @@ class CableContext:
 
     average: GroupAverage      # the combined response with the cable-fit windows
     fit: object                # core.cablefit.BallStickFit of the full data
-    delay_s: float
+    chain: Chain
 
 
 def _baseline(v: np.ndarray, g: GroupAverage, fs: float) -> float:
@@ -44,8 +44,7 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
     """
     rng = np.random.default_rng(seed)
     n = len(fit.taus)   # membrane components; refits use every component
-    out: dict[str, list[float]] = {k: [] for k in ("tau0", "tau1", "tau1_model", "L", "rho",
-                                                   "bridge")}
+    out: dict[str, list[float]] = {k: [] for k in ("tau0", "tau1", "tau1_model", "L", "rho")}
     for _ in range(n_boot):
         pick = rng.integers(0, len(pool.indices), len(pool.indices))
         if np.all(pool.currents[pick] == 0):
@@ -60,17 +59,16 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
             continue
         out["tau0"].append(boot.taus[0])
         out["tau1"].append(boot.taus[1] if n > 1 else np.nan)
-        bs = bridge = None
+        bs = None
         if cable is not None and len(out["tau0"]) <= CABLE_BOOTSTRAP:
             bs0 = cable.fit
-            bs, _ = fit_cable(replace(cable.average, v_V=v), fs, (bs0.tau0_s, bs0.L, bs0.rho),
-                              cable.delay_s)
-            bridge = bridge_of(bs, replace(cable.average,
-                                           v_base_V=_baseline(v, cable.average, fs)))
+            bs, problem = fit_cable(
+                replace(cable.average, v_V=v, v_base_V=_baseline(v, cable.average, fs)), fs,
+                (bs0.tau0_s, bs0.L, bs0.rho), cable.chain)
+            bs = None if problem else bs
         out["tau1_model"].append(bs.taus_s[1] if bs else np.nan)
         out["L"].append(bs.L if bs else np.nan)
         out["rho"].append(bs.rho if bs else np.nan)
-        out["bridge"].append(np.nan if bridge is None else bridge)
     return {k: np.asarray(v, dtype=float) for k, v in out.items()}
 
 

@@ -22,19 +22,26 @@ the steady deflection is ``b0 / b0_over_vinf(L, rho)``. The rest of a charging t
 offset, relative to the baseline, is the instantaneous (bridge) jump.
 
 Fitting is by variable projection (Golub & Pereyra 2003, Inverse Problems 19:R1): for each
-trial (log tau0, log L, log rho) the offsets and scales enter linearly and are solved by
-least squares; :func:`scipy.optimize.least_squares` searches the three nonlinear parameters
-with the Golub–Pereyra Jacobian of the projected residual (sums over the samples analytic,
-the per-mode rates and amplitudes differentiated by central differences). The eigenvalue
-roots are found for all modes at once by Newton's method, warm-started from the last ones.
-Segments may share a scale (``group``), e.g. the onset and the decay of the same step.
-Binned data (``expfit.decimate_tail``) are modelled as exact bin means when the sampling
-interval is given, and a known delay of the recording (a filter's group delay) shifts the
-model in time.
+trial (log tau0, log L, log rho) the offsets, scales and bridge jumps enter linearly and are
+solved by least squares; :func:`scipy.optimize.least_squares` searches the nonlinear
+parameters with the Golub–Pereyra Jacobian of the projected residual (sums over the samples
+analytic, the per-mode rates and amplitudes differentiated by central differences). The
+eigenvalue roots are found for all modes at once by Newton's method, warm-started from the
+last ones. Segments may share a scale (``group``), e.g. the onset and the decay of the same
+step. Binned data (``expfit.decimate_tail``) are modelled as exact bin means when the
+sampling interval is given.
+
+The measurement chain is part of the model (docs/references.md §10): a charge from a known
+``baseline`` adds the bridge jump ``J (1 - exp(-t/lag))`` (a residual series resistance seen
+through the electrode's first-order lag; J is linear, the lag nonlinear), and the amplifier's
+4-pole Bessel low-pass filters the whole response exactly (:mod:`passivefit.core.lowpass`),
+its corner given or estimated with the cell. A decay is the superposition of the pulse's
+two edges, filtered alike.
 
 The sum is truncated where it has converged for the fitted times: every mode with
 ``t_min/tau_n < 30`` is kept (the others are below e^-30 of their amplitude); at t = 0 the
-model uses the exact sum ``sum_n r_n = V_inf/B0`` (docs/references.md §3, B0/V_inf).
+model uses the exact sum ``sum_n r_n = V_inf/B0`` (docs/references.md §3, B0/V_inf); through
+the filter, the modes left out act as one extra mode at the first rate left out.
 
 Units are SI: s, V, A, F.
 """
@@ -43,11 +50,12 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from passivefit.core import cable
+from passivefit.core.lowpass import Lowpass
 from passivefit.core.peel import check_samples
 
 __all__ = [
@@ -72,6 +80,10 @@ _FALLBACK_RHO = 3.0
 _MODE_STEP = 1e-6  # central-difference step of the per-mode vectors in log tau0, log L, log rho
 _GRID_STARTS = 3  # fits tried from the best points of the fallback grid
 _FALLBACK_L_FACTOR = 0.9  # the naive cylinder L overestimates the ball-and-stick L
+LAG_BOUNDS_S = (1e-6, 2e-4)  # electrode lag of the bridge jump (tens of µs; common practice)
+LAG_START_S = 50e-6
+CORNER_BOUNDS = (0.02, 2.0)  # an estimated filter corner, times the sampling rate
+CORNER_START = 0.25
 
 
 @dataclass(frozen=True, eq=False)
@@ -103,6 +115,10 @@ class CableSegment:
         ``weight`` is then the number of consecutive samples it averages, and the model is
         averaged over exactly those samples (no bias from a bin's curvature). None treats
         every point as one instant.
+    baseline : float or None
+        ``"charge"`` only: the known level before the edge (V). The model then holds the
+        whole step from that level — the membrane's charging and a bridge jump — and the
+        segment has no free offset.
     """
 
     t: np.ndarray
@@ -113,6 +129,7 @@ class CableSegment:
     duration_s: float | None = None
     group: object = None
     sample_interval_s: float | None = None
+    baseline: float | None = None
 
 
 # ---------------------------------------------------------------------- model shape
@@ -177,21 +194,15 @@ def _inv_expm1(x: np.ndarray, scale) -> np.ndarray:
     return scale * np.exp(-x) / -np.expm1(-x)
 
 
-def _decay_factor(rate_ratio: np.ndarray, tau0: float, duration: float) -> np.ndarray:
-    """1 - exp(-D/tau_n) per mode (1 for a complete step, D = inf)."""
-    return -np.expm1(-duration * rate_ratio / tau0)
-
-
-def _shape_amplitudes(
-    rate: np.ndarray, ratio: np.ndarray, tau0: float, kinds: Sequence[str], durations: np.ndarray
-) -> np.ndarray:
-    """Signed mode amplitudes per unit b0, shape (n_segments, n_modes + 1)."""
-    out = np.empty((len(kinds), rate.size))
+def _edge_weights(rates: np.ndarray, kinds: Sequence[str], durations: np.ndarray) -> np.ndarray:
+    """Per segment and rate: 1 for a charging edge; exp(-lam*D) - 1 for a decay after a
+    step or pulse of duration D (superposition of its two edges; -1, and 0 for lam = 0,
+    when the step was complete). Shape (n_segments, n_rates); complex rates allowed."""
+    out = np.ones((len(kinds), rates.size), dtype=np.result_type(rates, float))
     for s, kind in enumerate(kinds):
-        if kind == "charge":
-            out[s] = -ratio
-        else:
-            out[s] = ratio * _decay_factor(rate, tau0, durations[s])
+        if kind == "decay":
+            d = durations[s]
+            out[s] = np.expm1(-rates * d) if math.isfinite(d) else np.where(rates == 0, 0.0, -1.0)
     return out
 
 
@@ -202,12 +213,19 @@ def _shape_amplitudes(
 class _Problem:
     """Concatenated samples of all segments and the variable-projection residual.
 
-    Nonlinear parameters theta = (log tau0, log L, log rho); linear ones are the free
-    offsets (one per segment) then the scales (one per group). Single samples come first,
-    then bins (late points, which need only the slow modes).
+    Nonlinear parameters theta = (log tau0, log L, log rho[, log lag][, log corner]): the
+    electrode lag when a bridge jump is fitted, the filter corner when it is estimated.
+    Linear ones are the free offsets (one per segment), the scales b0 (one per group) and
+    the bridge jumps (one per group with a charging segment from a known baseline).
+    Single samples come first, then bins (late points, which need only the slow modes).
+
+    The model is built from "rates": the step (0), the electrode lag (1/lag), the cable's
+    modes (tau0/tau_n) and one extra rate carrying the modes beyond the truncation. Each
+    segment's column is a sum of filtered exponentials over these rates
+    (:mod:`passivefit.core.lowpass`).
     """
 
-    u: np.ndarray  # time since the (delayed) edge of each point's first sample, s
+    u: np.ndarray  # time since the edge of each point's first sample, s
     count: np.ndarray  # samples per bin, for the bins only
     dt: np.ndarray  # their sampling interval, s
     sw: np.ndarray  # sqrt(weight)
@@ -216,16 +234,29 @@ class _Problem:
     kinds: tuple[str, ...]
     durations: np.ndarray  # inf for a complete step
     fixed: np.ndarray  # known offsets (0 where fitted)
+    known_base: np.ndarray  # per segment: a charge from a known baseline (its step is modelled)
     offset_col: np.ndarray  # column of each segment's offset, -1 if known
     scale_col: np.ndarray  # column of each segment's scale
+    bridge_col: np.ndarray  # column of each segment's bridge jump, -1 if none
     n_cols: int
     y_scale: float  # largest swing of any segment (V): the solver sees residuals in its units
+    corner_hz: float | None  # known filter corner (None: unfiltered, or estimated)
+    estimate_corner: bool
+    shortest_dt: float  # shortest sampling interval (s), for the corner's bounds
     n_modes: int = 1  # equalizing modes summed for single samples
     n_bin_modes: int = 1  # ... and for bins
     _y_start: np.ndarray | None = field(default=None, repr=False)
     _offsets: np.ndarray | None = field(default=None, repr=False)
     _key: tuple | None = field(default=None, repr=False)
     _solved: tuple = field(default=(), repr=False)
+
+    @property
+    def lag(self) -> bool:
+        return bool(np.any(self.bridge_col >= 0))
+
+    @property
+    def n_theta(self) -> int:
+        return 3 + self.lag + self.estimate_corner
 
     @property
     def n_single(self) -> int:
@@ -239,6 +270,28 @@ class _Problem:
     def t_min_bins(self) -> float:
         return float(np.min(self.u[self.n_single :])) if self.count.size else math.inf
 
+    def bounds(self) -> tuple[np.ndarray, np.ndarray]:
+        lo = [TAU0_BOUNDS_S[0], L_BOUNDS[0], RHO_BOUNDS[0]]
+        hi = [TAU0_BOUNDS_S[1], L_BOUNDS[1], RHO_BOUNDS[1]]
+        if self.lag:
+            lo.append(LAG_BOUNDS_S[0])
+            hi.append(LAG_BOUNDS_S[1])
+        if self.estimate_corner:
+            lo.append(CORNER_BOUNDS[0] / self.shortest_dt)
+            hi.append(CORNER_BOUNDS[1] / self.shortest_dt)
+        return np.log(lo), np.log(hi)
+
+    def start(self, init: np.ndarray) -> np.ndarray:
+        """Full theta from (log tau0, log L, log rho): lag and corner at their start values."""
+        extra = [math.log(LAG_START_S)] * self.lag
+        extra += [math.log(CORNER_START / self.shortest_dt)] * self.estimate_corner
+        return np.concatenate([init[:3], extra])
+
+    def lowpass(self, theta: np.ndarray) -> Lowpass | None:
+        if self.estimate_corner:
+            return Lowpass(math.exp(theta[-1]))
+        return None if self.corner_hz is None else Lowpass(self.corner_hz)
+
     def modes_for(self, theta: np.ndarray, margin: float = 1.0) -> tuple[int, int]:
         """Mode counts for single samples and bins that converge at ``theta``.
 
@@ -251,60 +304,116 @@ class _Problem:
     def set_modes(self, theta: np.ndarray, margin: float = 1.2) -> None:
         self.n_modes, self.n_bin_modes = self.modes_for(theta, margin)
 
-    def amplitudes(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Mode rates (1/s) and signed amplitudes per unit scale of every segment."""
-        tau0, L, rho = np.exp(theta)
+    def amplitudes(self, theta: np.ndarray):
+        """The rates (1/s) and, per segment, the amplitudes of the scale's and the bridge's
+        columns: on exp(-lam u) (filter gain and edge weight included) and on the filter's
+        exp(p_k u) terms. Returns (rates, direct_b0, direct_bridge, ring_b0, ring_bridge)."""
+        tau0, L, rho = np.exp(theta[:3])
         k = math.tanh(L) / (rho * L)
         warm = self._y_start is not None and self._y_start.size == self.n_modes
         x = _roots(k, self.n_modes, self._y_start if warm else None)
         self._y_start = x - (np.arange(1, self.n_modes + 1) - 0.5) * math.pi
         rate, ratio = _table(x / L, L, rho)
-        return rate / tau0, _shape_amplitudes(rate, ratio, tau0, self.kinds, self.durations)
+        # the modes beyond the truncation, at the first rate left out: they matter only
+        # through the filter's ringing (their own exponentials are < e^-30 at every sample)
+        tail = 1.0 / cable.b0_over_vinf(L, rho) - ratio.sum()
+        x_next = (self.n_modes + 0.5) * math.pi + 0.5 * math.pi
+        lag = math.exp(theta[3]) if self.lag else 1.0
+        rates = np.concatenate(([0.0, 1.0 / lag], rate, [1.0 + (x_next / L) ** 2])) / tau0
+        rates[:2] *= tau0
+        b0 = np.concatenate(([1.0 / cable.b0_over_vinf(L, rho), 0.0], -ratio, [-tail]))
+        bridge = np.zeros_like(b0)
+        bridge[:2] = (1.0, -1.0) if self.lag else 0.0
+        lp = self.lowpass(theta)
+        gain = np.ones_like(rates) if lp is None else lp.gain(rates)
+        weights = _edge_weights(rates, self.kinds, self.durations)
+        direct_b0, direct_bridge = b0 * gain * weights, bridge * gain * weights
+        # a step from a free offset: the offset carries the step's own constant
+        direct_b0[~self.known_base, 0] = 0.0
+        direct_bridge[~self.known_base, 0] = 0.0
+        if lp is None:
+            ring = np.zeros((len(self.kinds), 0), dtype=complex)
+            return rates, direct_b0, direct_bridge, ring, ring
+        pole_weights = lp.pole_weights(rates)
+        edge = _edge_weights(-lp.poles, self.kinds, self.durations)
+        return rates, direct_b0, direct_bridge, edge * (b0 @ pole_weights), \
+            edge * (bridge @ pole_weights)
+
+    def _bases(self, theta: np.ndarray, rates: np.ndarray):
+        """exp(-lam u) per point and rate (bins averaged exactly) and d log/d lam, and the
+        filter's exp(p_k u) per point (bins averaged)."""
+        n1, m = self.n_single, 3 + self.n_bin_modes
+        n, dt = self.count[:, None], self.dt[:, None]
+        e1 = np.exp(-self.u[:n1, None] * rates)
+        x = dt * rates[:m]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            logb = np.where(x > 0, np.log(np.expm1(-n * x) / (n * np.expm1(-x))), 0.0)
+            dlogb = np.where(x > 0, -self.u[n1:, None] + dt * (
+                _inv_expm1(n * x, n) - _inv_expm1(x, 1.0)), 0.0)
+        eb = np.exp(-self.u[n1:, None] * rates[:m] + logb)
+        lp = self.lowpass(theta)
+        if lp is None:
+            ring = np.zeros((self.u.size, 0), dtype=complex)
+        else:
+            z = dt * lp.poles
+            ring = np.exp(self.u[:, None] * lp.poles)
+            ring[n1:] *= np.expm1(n * z) / (n * np.expm1(z))
+        return e1, eb, -self.u[:n1, None], dlogb, ring
+
+    def _sum(self, e1, eb, ring, direct: np.ndarray, rings: np.ndarray) -> np.ndarray:
+        n1, m = self.n_single, eb.shape[1]
+        seg1, segb = self.seg[:n1], self.seg[n1:]
+        value = np.concatenate([np.einsum("pm,pm->p", e1, direct[seg1]),
+                                np.einsum("pm,pm->p", eb, direct[segb, :m])])
+        if ring.shape[1]:
+            value += np.real(np.einsum("pk,pk->p", ring, rings[self.seg]))
+        return value
 
     def shape(self, theta: np.ndarray, derivative: bool = False):
-        """Model per unit scale at every point (unweighted; bins averaged exactly).
+        """Model columns per unit scale and per unit bridge at every point (unweighted).
 
-        With ``derivative``, also d(shape)/d(theta), shape (n_points, 3): the mode rates
-        and amplitudes are differentiated numerically (central differences of cheap
-        per-mode vectors), the sums over the points analytically.
+        With ``derivative``, also their derivatives in theta, shape (n_points, n_theta):
+        for the cable's parameters and the lag the per-rate amplitudes are differentiated
+        numerically (central differences of cheap per-rate vectors) and the sums over the
+        points analytically; the filter corner, when estimated, by differences of the whole.
         """
-        rates, amps = self.amplitudes(theta)
-        n1, m = self.n_single, self.n_bin_modes + 1
-        seg1, segb = self.seg[:n1], self.seg[n1:]
-        n, x = self.count[:, None], self.dt[:, None] * rates[:m]
-        # mean of exp(-rate*t) over n samples dt apart, relative to the first one
-        e1 = np.exp(-self.u[:n1, None] * rates)
-        eb = np.exp(-self.u[n1:, None] * rates[:m] + np.log(np.expm1(-n * x) / (n * np.expm1(-x))))
-        value = np.concatenate(
-            [np.einsum("pm,pm->p", e1, amps[seg1]), np.einsum("pm,pm->p", eb, amps[segb, :m])]
-        )
+        rates, d_b0, d_br, r_b0, r_br = self.amplitudes(theta)
+        e1, eb, dlog1, dlogb, ring = self._bases(theta, rates)
+        value = (self._sum(e1, eb, ring, d_b0, r_b0), self._sum(e1, eb, ring, d_br, r_br))
         if not derivative:
             return value
-        dlog1 = -self.u[:n1, None]  # d log(e)/d rate
-        dlogb = -self.u[n1:, None] + self.dt[:, None] * (_inv_expm1(n * x, n) - _inv_expm1(x, 1.0))
-        out = np.empty((value.size, theta.size))
+        out = (np.empty((self.u.size, theta.size)), np.empty((self.u.size, theta.size)))
+        m = eb.shape[1]
         for j in range(theta.size):
             step = np.zeros_like(theta)
             step[j] = _MODE_STEP
-            (r_up, a_up), (r_dn, a_dn) = (
-                self.amplitudes(theta + step),
-                self.amplitudes(theta - step),
-            )
-            d_rate, d_amp = (r_up - r_dn) / (2 * _MODE_STEP), (a_up - a_dn) / (2 * _MODE_STEP)
-            out[:n1, j] = np.einsum("pm,pm->p", e1 * dlog1 * d_rate, amps[seg1])
-            out[:n1, j] += np.einsum("pm,pm->p", e1, d_amp[seg1])
-            out[n1:, j] = np.einsum("pm,pm->p", eb * dlogb * d_rate[:m], amps[segb, :m])
-            out[n1:, j] += np.einsum("pm,pm->p", eb, d_amp[segb, :m])
+            if self.estimate_corner and j == theta.size - 1:
+                up, down = self.shape(theta + step), self.shape(theta - step)
+                for o, a, b in zip(out, up, down, strict=True):
+                    o[:, j] = (a - b) / (2 * _MODE_STEP)
+                continue
+            up, down = self.amplitudes(theta + step), self.amplitudes(theta - step)
+            d = [(a - b) / (2 * _MODE_STEP) for a, b in zip(up, down, strict=True)]
+            d_rate = d[0]
+            de1, deb = e1 * dlog1 * d_rate, eb * dlogb * d_rate[:m]
+            for o, direct, dd, dr in ((out[0], d_b0, d[1], d[3]), (out[1], d_br, d[2], d[4])):
+                o[:, j] = self._sum(de1, deb, ring[:, :0], direct, dr[:, :0])
+                o[:, j] += self._sum(e1, eb, ring, dd, dr)
+        self.amplitudes(theta)  # leave the warm start at theta
         return value, out
 
-    def _design(self, shape: np.ndarray) -> np.ndarray:
-        """Weighted design matrix, shape (n_points, n_cols), for the given model shape."""
+    def _design(self, shapes) -> np.ndarray:
+        """Weighted design matrix, shape (n_points, n_cols), for the given model columns."""
         if self._offsets is None:
             self._offsets = np.zeros((self.u.size, self.n_cols))
             free = np.flatnonzero(self.offset_col[self.seg] >= 0)
             self._offsets[free, self.offset_col[self.seg[free]]] = self.sw[free]
         a = self._offsets.copy()
-        a[np.arange(self.u.size), self.scale_col[self.seg]] = shape * self.sw
+        rows = np.arange(self.u.size)
+        a[rows, self.scale_col[self.seg]] = shapes[0] * self.sw
+        with_bridge = self.bridge_col[self.seg] >= 0
+        a[rows[with_bridge], self.bridge_col[self.seg[with_bridge]]] = \
+            shapes[1][with_bridge] * self.sw[with_bridge]
         return a
 
     def design(self, theta: np.ndarray) -> np.ndarray:
@@ -316,48 +425,62 @@ class _Problem:
         if key != self._key:
             q, r = np.linalg.qr(self.design(theta))
             qty = q.T @ self.yw
-            self._solved = (np.linalg.solve(r, qty), self.yw - q @ qty, q, r)
+            self._solved = (np.linalg.lstsq(r, qty, rcond=None)[0], self.yw - q @ qty, q, r)
             self._key = key
         return self._solved[:2]
 
     def residual(self, theta: np.ndarray) -> np.ndarray:
         return self.solve(theta)[1]
 
-    def jacobian(self, theta: np.ndarray) -> np.ndarray:
-        """Golub–Pereyra Jacobian of the projected residual, shape (n_points, 3).
+    def _d_columns(self, d_shapes, j: int):
+        """(column index, weighted derivative) of the theta-dependent design columns."""
+        with_bridge = self.bridge_col[self.seg] >= 0
+        yield self.scale_col[self.seg], d_shapes[0][:, j] * self.sw
+        if with_bridge.any():
+            cols = np.where(with_bridge, self.bridge_col[self.seg], 0)
+            yield cols, np.where(with_bridge, d_shapes[1][:, j] * self.sw, 0.0)
 
-        dr/dtheta_j = -(P_perp dA_j A^+ y + (A^+)^T dA_j^T r), where only the scale
-        columns of A depend on theta.
+    def jacobian(self, theta: np.ndarray) -> np.ndarray:
+        """Golub–Pereyra Jacobian of the projected residual, shape (n_points, n_theta).
+
+        dr/dtheta_j = -(P_perp dA_j A^+ y + (A^+)^T dA_j^T r), where only the scale and
+        bridge columns of A depend on theta.
         """
         self.solve(theta)
         coef, resid, q, r = self._solved
-        _, d_shape = self.shape(theta, derivative=True)
-        cols = self.scale_col[self.seg]
+        _, d_shapes = self.shape(theta, derivative=True)
         jac = np.empty((self.u.size, theta.size))
         for j in range(theta.size):
-            d_col = d_shape[:, j] * self.sw
-            first = d_col * coef[cols]
+            first = np.zeros(self.u.size)
+            g = np.zeros(self.n_cols)
+            for cols, d_col in self._d_columns(d_shapes, j):
+                first += d_col * coef[cols]
+                g += np.bincount(cols, weights=d_col * resid, minlength=self.n_cols)
             first -= q @ (q.T @ first)
-            g = np.bincount(cols, weights=d_col * resid, minlength=self.n_cols)
-            jac[:, j] = -(first + q @ np.linalg.solve(r.T, g))
+            jac[:, j] = -(first + q @ np.linalg.lstsq(r.T, g, rcond=None)[0])
         return jac
 
     def full_jacobian(self, theta: np.ndarray) -> np.ndarray:
         """Jacobian of the weighted model in (theta, linear coefficients)."""
         coef, _ = self.solve(theta)
-        shape, d_shape = self.shape(theta, derivative=True)
-        d_model = d_shape * (self.sw * coef[self.scale_col[self.seg]])[:, None]
-        return np.column_stack([d_model, self._design(shape)])
+        shapes, d_shapes = self.shape(theta, derivative=True)
+        d_model = np.zeros((self.u.size, theta.size))
+        for j in range(theta.size):
+            for cols, d_col in self._d_columns(d_shapes, j):
+                d_model[:, j] += d_col * coef[cols]
+        return np.column_stack([d_model, self._design(shapes)])
 
 
-def _check(segments: Sequence[CableSegment], delay_s: float) -> _Problem:
+
+def _check(segments: Sequence[CableSegment], corner_hz: float | None,
+           estimate_corner: bool, bridge: bool, strict: bool = True) -> _Problem:
     if isinstance(segments, CableSegment):
         segments = [segments]
     if len(segments) == 0:
         raise ValueError("no segments given; pass at least one CableSegment(t, y)")
-    if not math.isfinite(delay_s):
-        raise ValueError(f"`delay_s` must be a finite time in s, got {delay_s!r}")
-    parts, kinds, durations, fixed = [], [], [], []
+    if corner_hz is not None and not (math.isfinite(corner_hz) and corner_hz > 0):
+        raise ValueError(f"`corner_hz` must be a positive frequency in Hz, got {corner_hz!r}")
+    parts, kinds, durations, fixed, known = [], [], [], [], []
     offset_col, groups = [], {}
     for k, seg in enumerate(segments):
         if not isinstance(seg, CableSegment):
@@ -373,34 +496,45 @@ def _check(segments: Sequence[CableSegment], delay_s: float) -> _Problem:
                 raise ValueError(
                     f"{label}: `duration_s` must be a positive time in s, got {seg.duration_s!r}"
                 )
-        if seg.offset is not None and not math.isfinite(seg.offset):
-            raise ValueError(f"{label}: a known `offset` must be finite, got {seg.offset!r}")
-        u = t - delay_s
+        for name, value in (("offset", seg.offset), ("baseline", seg.baseline)):
+            if value is not None and not math.isfinite(value):
+                raise ValueError(f"{label}: a known `{name}` must be finite, got {value!r}")
+        if seg.baseline is not None and (seg.kind != "charge" or seg.offset is not None):
+            raise ValueError(f"{label}: `baseline` applies to 'charge' segments without a "
+                             "known `offset`")
         count, dt = _bin_counts(seg, w, label)
-        u = u - 0.5 * (count - 1) * dt  # first sample of each bin
+        u = t - 0.5 * (count - 1) * dt  # first sample of each bin
         if u[0] <= 0:
             raise ValueError(
-                f"{label}: the first sample (t = {t[0]:.3g} s) is not after the edge plus "
-                f"`delay_s` ({delay_s:.3g} s); start the fit later (e.g. 0.3 ms after the edge)"
+                f"{label}: the first sample (t = {t[0]:.3g} s) is not after the edge; start "
+                "the fit after it"
             )
-        need = 2 + (seg.offset is None) + _MIN_EXTRA_POINTS
-        if t.size < need:
+        need = 2 + (seg.offset is None and seg.baseline is None) + _MIN_EXTRA_POINTS
+        if strict and t.size < need:
             raise ValueError(f"{label}: {t.size} samples are too few; pass at least {need}")
         kinds.append(seg.kind)
         durations.append(math.inf if seg.duration_s is None else float(seg.duration_s))
-        fixed.append(0.0 if seg.offset is None else float(seg.offset))
-        offset_col.append(-1 if seg.offset is not None else sum(c >= 0 for c in offset_col))
+        level = seg.offset if seg.offset is not None else seg.baseline
+        fixed.append(0.0 if level is None else float(level))
+        known.append(seg.baseline is not None)
+        offset_col.append(-1 if level is not None else sum(c >= 0 for c in offset_col))
         groups.setdefault(("own", k) if seg.group is None else ("shared", seg.group), []).append(k)
         parts.append((u, np.sqrt(w), y, np.full(t.size, k), count, np.full(t.size, dt)))
     n_off = sum(c >= 0 for c in offset_col)
     scale_col = np.empty(len(segments), dtype=int)
+    bridge_col = np.full(len(segments), -1)
+    n_cols = n_off + len(groups)
     for j, members in enumerate(groups.values()):
         scale_col[members] = n_off + j
+        if bridge and any(known[m] for m in members):  # a jump seen from a known baseline
+            bridge_col[members] = n_cols
+            n_cols += 1
     u, sw, y, seg_index, count, dt = (np.concatenate(p) for p in zip(*parts, strict=True))
     order = np.argsort(count > 1, kind="stable")  # single samples first, then bins
     u, sw, y, seg_index, count, dt = (x[order] for x in (u, sw, y, seg_index, count, dt))
     binned = count > 1
     fixed_arr = np.array(fixed)
+    steps = [np.min(np.diff(p[0])) for p in parts if p[0].size > 1]
     return _Problem(
         u=u,
         count=count[binned],
@@ -411,11 +545,17 @@ def _check(segments: Sequence[CableSegment], delay_s: float) -> _Problem:
         kinds=tuple(kinds),
         durations=np.array(durations),
         fixed=fixed_arr,
+        known_base=np.array(known),
         offset_col=np.array(offset_col),
         scale_col=scale_col,
-        n_cols=n_off + len(groups),
+        bridge_col=bridge_col,
+        n_cols=n_cols,
         y_scale=max(float(np.ptp(y)), np.finfo(float).tiny),
+        corner_hz=None if estimate_corner or corner_hz is None else float(corner_hz),
+        estimate_corner=bool(estimate_corner),
+        shortest_dt=float(min(steps)) if steps else 1e-4,
     )
+
 
 
 def _bin_counts(seg: CableSegment, w: np.ndarray, label: str) -> tuple[np.ndarray, float]:
@@ -479,7 +619,7 @@ def initial_guess(
 
 
 def _guess_from_exponentials(
-    segments: Sequence[CableSegment], delay_s: float
+    segments: Sequence[CableSegment], lowpass: Lowpass | None
 ) -> tuple[float, float, float]:
     """initial_guess from a 2-exponential fit of the segments (amplitudes of the first).
 
@@ -487,8 +627,9 @@ def _guess_from_exponentials(
     """
     from passivefit.core import expfit
 
+    delay = 0.0 if lowpass is None else lowpass.group_delay_s()
     exp_segments = [
-        expfit.Segment(np.asarray(s.t, float) - delay_s, s.y, s.weight, s.offset) for s in segments
+        expfit.Segment(np.asarray(s.t, float) - delay, s.y, s.weight, s.offset) for s in segments
     ]
     try:
         fit = expfit.fit_exponentials(exp_segments, 2)
@@ -517,26 +658,47 @@ class BallStickFit:
         Membrane time constant (s), electrotonic length, dendritic-to-somatic conductance
         ratio.
     tau0_se_s, L_se, rho_se : float
-        Standard errors from the covariance of the full Jacobian (offsets and scales
-        included), scaled by the residual variance. Filtered (correlated) noise makes them
-        too small; a bootstrap over sweeps is the honest interval.
+        Standard errors from the covariance of the full Jacobian (offsets, scales and
+        bridge jumps included), scaled by the residual variance times ``noise_factor``.
     tau0_ci95_s, L_ci95, rho_ci95 : float
-        95 % half-widths (Student t times the standard error; for rho, whose error is
-        skewed, ``exp(log rho +- ...)`` would be better).
+        95 % half-widths: Student t times the standard error for tau0; for L and rho half
+        the width of the interval below.
+    L_interval, rho_interval : (float, float)
+        95 % intervals of L and rho. Where the likelihood is far from quadratic they are
+        profile-likelihood intervals (asymmetric; an end is ``nan`` when the profile does
+        not rise enough before the fit's bound: the value is then not determined on that
+        side); otherwise ``exp(log x -+ t*se)``.
+    profiled : tuple of str
+        Names whose interval comes from the profile likelihood.
     taus_s : numpy.ndarray
         tau0, tau1, tau2, tau3 of the fitted cell (s).
     b_ratios : numpy.ndarray
         B1/B0, B2/B0, B3/B0 of the step charging curve.
     b0_V, b0_se_V, offset_V : numpy.ndarray
         Per segment: scale (V, tau0 amplitude of the step charging curve, sign of the
-        current), its standard error, and offset (V; the given value when known).
+        current), its standard error, and the asymptote (V; for a charge from a known
+        baseline, baseline + membrane deflection + bridge jump).
+    bridge_V, bridge_se_V : numpy.ndarray
+        Per segment: the fitted bridge jump (V; the instantaneous voltage across the
+        residual series resistance) and its standard error; nan where none is fitted.
+    bridge_needed : bool
+        Whether the data need the jump (likelihood ratio test). When they do not, the cell
+        values come from the model without it, and ``bridge_V`` from the one with it.
+    baseline_V : numpy.ndarray
+        Per segment: the known level before a charging edge (nan where not given).
     v_inf_membrane_V : numpy.ndarray
         Per segment: membrane part of the steady deflection, b0/b0_over_vinf(L, rho) (V).
     kinds : tuple of str
     durations_s : numpy.ndarray
         Step/pulse duration per segment (inf for charging and complete steps).
-    delay_s : float
-        Time shift the model was fitted with (s).
+    lag_s, lag_se_s : float
+        Electrode lag of the bridge jump (s) and its standard error; nan without a jump.
+    corner_hz, corner_se_hz : float or None
+        The filter corner the model used (None: unfiltered) and, when it was estimated,
+        its standard error (else None).
+    noise_factor : float
+        Variance inflation of the residual noise the errors were scaled by (1 for white
+        noise; larger for filtered, correlated noise).
     rmse : float
         Weighted root-mean-square residual (V).
     rss : float
@@ -544,7 +706,7 @@ class BallStickFit:
     n_points, n_params, n_modes : int
         Samples (bins count once), free parameters, equalizing modes summed.
     success : bool
-        Converged with L and rho inside their bounds.
+        Converged with tau0, L and rho inside their bounds.
     message : str
     """
 
@@ -557,15 +719,25 @@ class BallStickFit:
     tau0_ci95_s: float
     L_ci95: float
     rho_ci95: float
+    L_interval: tuple[float, float]
+    rho_interval: tuple[float, float]
+    profiled: tuple[str, ...]
     taus_s: np.ndarray
     b_ratios: np.ndarray
     b0_V: np.ndarray
     b0_se_V: np.ndarray
     offset_V: np.ndarray
+    bridge_V: np.ndarray
+    bridge_se_V: np.ndarray
+    baseline_V: np.ndarray
     v_inf_membrane_V: np.ndarray
     kinds: tuple[str, ...]
     durations_s: np.ndarray
-    delay_s: float
+    lag_s: float
+    lag_se_s: float
+    corner_hz: float | None
+    corner_se_hz: float | None
+    noise_factor: float
     rmse: float
     rss: float
     n_points: int
@@ -573,31 +745,41 @@ class BallStickFit:
     n_modes: int
     success: bool
     message: str
+    bridge_needed: bool = True
 
     def evaluate(self, segment_index: int, t: np.ndarray) -> np.ndarray:
-        """Fitted model of one segment at times ``t`` (s from its edge), in V.
+        """Fitted model of one segment at times ``t`` (s from its edge), in V, filtered
+        as it was fitted.
 
-        Before the delayed edge (t <= delay_s) the model holds its value at the edge, which
-        for a charging segment is ``offset - v_inf_membrane`` (the sum over all modes).
+        Before the edge (t <= 0) a charge from a known baseline is at the baseline; other
+        segments hold their value at the edge.
         """
         t = np.asarray(t, dtype=float)
-        u = np.maximum(t - self.delay_s, 0.0)
+        after = t > 0
+        u = np.where(after, t, 1e-12)  # at the edge every mode counts (the tail mode too)
+        order = np.argsort(u, kind="stable")
         kind, duration = self.kinds[segment_index], self.durations_s[segment_index]
-        shortest = np.append(u[u > 0], duration)  # decay: the pulse's modes must converge too
-        n = _modes_needed(self.L, self.tau0_s, float(shortest.min()))
-        rate, ratio = mode_table(self.L, self.rho, n)
-        amps = _shape_amplitudes(rate, ratio, self.tau0_s, (kind,), np.array([duration]))[0]
-        shape = np.exp(-u[..., None] * (rate / self.tau0_s)) @ amps
-        # at the edge add the modes left out: sum_n r_n = V_inf/B0 (docs/references.md §3); their
-        # tau_n < duration/30, so a pulse charged them fully
-        tail = 1.0 / cable.b0_over_vinf(self.L, self.rho) - ratio.sum()
-        shape = np.where(u == 0, shape + (-tail if kind == "charge" else tail), shape)
-        return self.offset_V[segment_index] + self.b0_V[segment_index] * shape
+        base = self.baseline_V[segment_index]
+        seg = CableSegment(u[order], np.zeros(u.size), kind=kind,
+                           duration_s=None if math.isinf(duration) else float(duration),
+                           baseline=None if math.isnan(base) else float(base))
+        has_bridge = self.bridge_needed and not math.isnan(self.bridge_V[segment_index])
+        prob = _check([seg], self.corner_hz, False, has_bridge, strict=False)
+        theta = np.log([self.tau0_s, self.L, self.rho] + ([self.lag_s] if has_bridge else []))
+        prob.set_modes(theta, margin=1.0)
+        shape_b0, shape_bridge = prob.shape(theta)
+        value = np.empty(u.size)
+        value[order] = self.b0_V[segment_index] * shape_b0 + (
+            self.bridge_V[segment_index] * shape_bridge if has_bridge else 0.0)
+        if math.isnan(base):
+            return self.offset_V[segment_index] + value
+        return base + np.where(after, value, 0.0)
 
-    def bridge_jump_V(self, segment_index: int, v_base_V: float) -> float:
+    def bridge_jump_V(self, segment_index: int, v_base_V: float | None = None) -> float:
         """Instantaneous jump at a step onset that is not membrane charging, in V.
 
-        ``offset - v_base - v_inf_membrane``; divide by the step current for the bridge
+        The fitted jump when the segment was fitted from its baseline; otherwise
+        ``offset - v_base - v_inf_membrane``. Divide by the step current for the bridge
         (series) resistance error in Ohm.
         """
         if self.kinds[segment_index] != "charge":
@@ -605,6 +787,10 @@ class BallStickFit:
                 f"segment {segment_index} is a {self.kinds[segment_index]!r} segment; the "
                 "bridge jump needs a charging (step onset) segment"
             )
+        if not math.isnan(self.bridge_V[segment_index]):
+            return float(self.bridge_V[segment_index])
+        if v_base_V is None:
+            raise ValueError("give `v_base_V`: this segment was fitted from a free offset")
         return float(self.offset_V[segment_index] - v_base_V - self.v_inf_membrane_V[segment_index])
 
     def c_total_F(self, segment_index: int, current_A: float) -> float:
@@ -616,6 +802,9 @@ class BallStickFit:
 
     def to_dict(self) -> dict:
         """Plain-JSON summary; keys carry their SI unit."""
+        def plain(x):
+            return None if x is None or not np.isfinite(x) else float(x)
+
         return {
             "tau0_s": self.tau0_s,
             "L": self.L,
@@ -626,13 +815,22 @@ class BallStickFit:
             "tau0_ci95_s": self.tau0_ci95_s,
             "L_ci95": self.L_ci95,
             "rho_ci95": self.rho_ci95,
+            "L_interval": [plain(x) for x in self.L_interval],
+            "rho_interval": [plain(x) for x in self.rho_interval],
+            "profiled": list(self.profiled),
             "taus_s": self.taus_s.tolist(),
             "b_ratios": self.b_ratios.tolist(),
             "b0_V": self.b0_V.tolist(),
             "b0_se_V": self.b0_se_V.tolist(),
             "offset_V": self.offset_V.tolist(),
+            "bridge_V": [plain(x) for x in self.bridge_V],
+            "bridge_se_V": [plain(x) for x in self.bridge_se_V],
+            "bridge_needed": self.bridge_needed,
             "v_inf_membrane_V": self.v_inf_membrane_V.tolist(),
-            "delay_s": self.delay_s,
+            "lag_s": plain(self.lag_s),
+            "corner_hz": plain(self.corner_hz),
+            "corner_se_hz": plain(self.corner_se_hz),
+            "noise_factor": self.noise_factor,
             "rmse_V": self.rmse,
             "n_points": self.n_points,
             "n_modes": self.n_modes,
@@ -644,28 +842,33 @@ class BallStickFit:
 # ---------------------------------------------------------------------------- fitting
 
 
-def _bounds() -> tuple[np.ndarray, np.ndarray]:
-    lo = np.log([TAU0_BOUNDS_S[0], L_BOUNDS[0], RHO_BOUNDS[0]])
-    hi = np.log([TAU0_BOUNDS_S[1], L_BOUNDS[1], RHO_BOUNDS[1]])
-    return lo, hi
-
-
-def _solve(prob: _Problem, theta0: np.ndarray):
-    """least_squares from ``theta0``, enlarging the mode count until it suffices."""
+def _solve(prob: _Problem, theta0: np.ndarray, free: np.ndarray | None = None,
+           tol: float = 1e-12):
+    """least_squares from ``theta0`` over the ``free`` parameters (default all), enlarging
+    the mode count until it suffices."""
     from scipy.optimize import least_squares
 
-    lo, hi = _bounds()
+    lo, hi = prob.bounds()
+    free = np.ones(theta0.size, bool) if free is None else free
     theta = np.clip(theta0, lo + 1e-9, hi - 1e-9)
+
+    def full(x):
+        out = theta.copy()
+        out[free] = x
+        return out
+
     for _ in range(4):
         prob.set_modes(theta)
         res = least_squares(
-            lambda th: prob.residual(th) / prob.y_scale, theta, bounds=(lo, hi), x_scale=1.0,
-            jac=lambda th: prob.jacobian(th) / prob.y_scale,
-            xtol=1e-12, ftol=1e-12, gtol=1e-12, max_nfev=200,
+            lambda x: prob.residual(full(x)) / prob.y_scale, theta[free],
+            bounds=(lo[free], hi[free]), x_scale=1.0,
+            jac=lambda x: prob.jacobian(full(x))[:, free] / prob.y_scale,
+            xtol=tol, ftol=tol, gtol=tol, max_nfev=200,
         )  # fmt: skip
-        theta = res.x
+        theta = full(res.x)
         if np.all(np.array(prob.modes_for(theta)) <= (prob.n_modes, prob.n_bin_modes)):
             break
+    res.x = theta
     return res
 
 
@@ -676,11 +879,12 @@ def _starts(prob: _Problem, theta0: np.ndarray):
     fit from the given start failed.
     """
     yield theta0
-    grid = [
-        np.array([theta0[0], math.log(L), math.log(rho)])
-        for L in np.geomspace(0.1, 4.0, 9)
-        for rho in np.geomspace(0.03, 300.0, 9)
-    ]
+    grid = []
+    for L in np.geomspace(0.1, 4.0, 9):
+        for rho in np.geomspace(0.03, 300.0, 9):
+            point = theta0.copy()
+            point[1:3] = math.log(L), math.log(rho)
+            grid.append(point)
     prob.set_modes(np.array([theta0[0], math.log(4.0), 0.0]), margin=1.0)
     cost = [float(np.sum(prob.residual(g) ** 2)) for g in grid]
     for j in np.argsort(cost)[:_GRID_STARTS]:
@@ -701,9 +905,19 @@ def _problem_with(res, lo: np.ndarray, hi: np.ndarray) -> str:
 def fit_ballstick(
     segments: Sequence[CableSegment],
     init: tuple[float, float, float] | None = None,
-    delay_s: float = 0.0,
+    corner_hz: float | None = None,
+    estimate_corner: bool = False,
+    bridge: bool = True,
+    noise_factor: float = 1.0,
+    profile: bool = False,
+    thorough: bool = False,
 ) -> BallStickFit:
     """Fit a uniform ball-and-stick model to somatic voltage transients.
+
+    The model is the whole measurement chain: the cell's response, a bridge jump (the
+    voltage across a residual series resistance) rising with the electrode's first-order
+    lag, and the amplifier's 4-pole Bessel low-pass applied as a filter
+    (:mod:`passivefit.core.lowpass`).
 
     Parameters
     ----------
@@ -712,9 +926,21 @@ def fit_ballstick(
         amplitudes...), each with its own offset and, unless grouped, its own scale.
     init : (tau0_s, L, rho) or None
         Start values; None takes them from a 2-exponential fit (:func:`initial_guess`).
-    delay_s : float
-        Known delay of the recording against the membrane (s), e.g. the group delay of a
-        low-pass filter: the model is evaluated at ``t - delay_s``. Default 0.
+    corner_hz : float or None
+        The filter's −3 dB corner (Hz); None: unfiltered (or estimated).
+    estimate_corner : bool
+        Fit the corner as well (``corner_hz`` is then ignored).
+    bridge : bool
+        Fit a bridge jump (with its lag) for each group with a charge from a known
+        ``baseline``.
+    noise_factor : float
+        Variance inflation of correlated residual noise (>= 1), applied to the errors.
+    profile : bool
+        Profile-likelihood intervals of L and rho where the likelihood is not quadratic.
+    thorough : bool
+        Fit from the grid's best starts as well as from ``init`` and keep the best, so the
+        answer does not depend on the start; otherwise the grid is tried only when the fit
+        from ``init`` fails.
 
     Returns
     -------
@@ -723,24 +949,50 @@ def fit_ballstick(
     Raises
     ------
     ValueError
-        Bad segments (too few or non-finite samples, samples before the edge plus delay,
-        unknown kind, bad duration) or start values outside the bounds
+        Bad segments (too few or non-finite samples, samples before the edge, unknown
+        kind, bad duration) or start values outside the bounds
         (L in [0.05, 5], rho in [0.01, 1000], tau0 in [0.1 ms, 10 s]).
     """
-    prob = _check(segments, float(delay_s))
+    prob = _check(segments, corner_hz, estimate_corner, bridge)
     if init is None:
-        init = _guess_from_exponentials(segments, float(delay_s))
-    theta0 = _check_init(init)
-    lo, hi = _bounds()
+        init = _guess_from_exponentials(segments, prob.lowpass(prob.start(np.zeros(3))))
+    init = _check_init(init)
+    noise_factor = max(float(noise_factor), 1.0)
+    best, problem = _best_fit(prob, prob.start(init), thorough)
+    if not prob.lag:
+        return _summarize(prob, best.x, problem or "converged", not problem, noise_factor,
+                          profile and not problem)
+    # Is the jump needed? A lagged jump can stand in for fast dendritic charging, so the
+    # cell is read from the model without one unless the data reject that model
+    # (likelihood ratio, chi-square with 2 degrees of freedom at 95 %).
+    with_jump = _summarize(prob, best.x, problem or "converged", not problem, noise_factor,
+                           False)
+    bare = _check(segments, corner_hz, estimate_corner, False)
+    bare_best, bare_problem = _best_fit(bare, bare.start(init), thorough)
+    sigma2 = noise_factor * with_jump.rss / max(with_jump.n_points - with_jump.n_params, 1)
+    needed = 2 * bare_best.cost * bare.y_scale**2 - with_jump.rss > 5.991 * sigma2
+    if needed or bare_problem and not problem:
+        return _summarize(prob, best.x, problem or "converged", not problem, noise_factor,
+                          profile and not problem)
+    fit = _summarize(bare, bare_best.x, bare_problem or "converged", not bare_problem,
+                     noise_factor, profile and not bare_problem)
+    return replace(fit, bridge_V=with_jump.bridge_V, bridge_se_V=with_jump.bridge_se_V,
+                   lag_s=with_jump.lag_s, lag_se_s=with_jump.lag_se_s, bridge_needed=False)
+
+
+def _best_fit(prob: _Problem, theta0: np.ndarray, thorough: bool):
+    """The best fit from ``theta0`` and the grid starts (all of them when ``thorough``,
+    else only after a failure): (result, problem). Fits without a problem win."""
+    lo, hi = prob.bounds()
     tried = []
     for start in _starts(prob, theta0):
         res = _solve(prob, start)
         problem = _problem_with(res, lo, hi)
         tried.append((bool(problem), 2 * res.cost, res, problem))
-        if not problem:
+        if not problem and not thorough:
             break
     _, _, best, problem = min(tried, key=lambda item: item[:2])
-    return _summarize(prob, best.x, problem or "converged", not problem, float(delay_s))
+    return best, problem
 
 
 def _check_init(init) -> np.ndarray:
@@ -758,28 +1010,95 @@ def _check_init(init) -> np.ndarray:
     return np.log([tau0, L, rho])
 
 
+def _profile(prob: _Problem, theta: np.ndarray, j: int, rss: float, sigma2: float,
+             wald: float) -> tuple[float, float]:
+    """95 % profile-likelihood interval of theta[j] (log scale).
+
+    The signed root deviance z(v) = sqrt((RSS_profile(v) - RSS_min)/sigma2) is nearly
+    linear in a parameter even where RSS is not quadratic, so each end (z = 1.96, the
+    chi-square(1) 95 % point) is found by secant steps from the Wald end; a Wald end within
+    0.05 of it is kept. An end is nan when z stays below 1.96 up to the fit's bound.
+    """
+    lo, hi = prob.bounds()
+    free = np.ones(theta.size, bool)
+    free[j] = False
+    target = 1.959964
+
+    def z(v: float, start: np.ndarray) -> tuple[float, np.ndarray]:
+        trial = start.copy()
+        trial[j] = v
+        res = _solve(prob, trial, free, tol=1e-9)
+        excess = float(np.sum(prob.residual(res.x) ** 2)) - rss
+        return math.sqrt(max(excess, 0.0) / sigma2), res.x
+
+    ends = []
+    for sign in (-1.0, 1.0):
+        bound = lo[j] if sign < 0 else hi[j]
+        points = [(theta[j], 0.0)]
+        v, x, end = float(np.clip(theta[j] + sign * wald, lo[j], hi[j])), theta, math.nan
+        for _ in range(6):
+            zv, x = z(v, x)
+            if abs(zv - target) < 0.05:
+                end = v
+                break
+            points.append((v, zv))
+            if zv < target and v == bound:
+                break  # not determined on this side
+            (v0, z0), (v1, z1) = points[-2], points[-1]
+            slope = (z1 - z0) / (v1 - v0) if z1 != z0 else 0.0
+            jump = (target - z1) / slope if slope * sign > 0 else 3.0 * (v1 - theta[j])
+            jump = float(np.clip(jump, -3 * abs(v1 - theta[j]) - 0.05,
+                                 3 * abs(v1 - theta[j]) + 0.05))
+            v = float(np.clip(v1 + jump, min(lo[j], bound), max(hi[j], bound)))
+        else:
+            end = v if points[-1][1] >= target * 0.9 else math.nan
+        ends.append(end)
+    return ends[0], ends[1]
+
+
 def _summarize(
-    prob: _Problem, theta: np.ndarray, message: str, success: bool, delay_s: float
+    prob: _Problem, theta: np.ndarray, message: str, success: bool, noise_factor: float,
+    profile: bool,
 ) -> BallStickFit:
     from scipy.special import stdtrit
 
     prob.set_modes(theta)
     coef, resid = prob.solve(theta)
     rss = float(resid @ resid)
-    n, p = prob.u.size, 3 + prob.n_cols
+    n, p = prob.u.size, theta.size + prob.n_cols
     dof = max(n - p, 1)
     jac = prob.full_jacobian(theta)
-    cov = rss / dof * np.linalg.pinv(jac.T @ jac)
+    cov = noise_factor * rss / dof * np.linalg.pinv(jac.T @ jac)
     se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
     q = float(stdtrit(dof, 0.975))
-    tau0, L, rho = np.exp(theta)
+    tau0, L, rho = np.exp(theta[:3])
     free = prob.offset_col >= 0
     offsets = prob.fixed.copy()
     offsets[free] = coef[prob.offset_col[free]]
+    nt = theta.size
     b0 = coef[prob.scale_col]
-    b0_se = se[3 + prob.scale_col]
+    b0_se = se[nt + prob.scale_col]
+    has = prob.bridge_col >= 0
+    bridge = np.where(has, coef[np.where(has, prob.bridge_col, 0)], np.nan)
+    bridge_se = np.where(has, se[nt + np.where(has, prob.bridge_col, 0)], np.nan)
     rate, ratio = mode_table(L, rho, 3)
     v_inf = b0 / cable.b0_over_vinf(L, rho)
+    offsets[prob.known_base] += v_inf[prob.known_base] + np.nan_to_num(bridge)[prob.known_base]
+    intervals, profiled = {}, []
+    lo, hi = prob.bounds()
+    for j, name in ((1, "L"), (2, "rho")):
+        wald = (theta[j] - q * se[j], theta[j] + q * se[j])
+        if profile and rss > 0:
+            ends = _profile(prob, theta, j, rss, noise_factor * rss / dof, q * se[j])
+            if ends != wald:
+                profiled.append(name)
+            wald = ends
+            prob.set_modes(theta)
+            prob.solve(theta)
+        # an end beyond the fit's bound is not determined by the data
+        intervals[name] = tuple(math.exp(e) if lo[j] <= e <= hi[j] else math.nan
+                                for e in wald)
+    lp = prob.lowpass(theta)
     return BallStickFit(
         tau0_s=float(tau0),
         L=float(L),
@@ -788,17 +1107,27 @@ def _summarize(
         L_se=float(L * se[1]),
         rho_se=float(rho * se[2]),
         tau0_ci95_s=float(q * tau0 * se[0]),
-        L_ci95=float(q * L * se[1]),
-        rho_ci95=float(q * rho * se[2]),
+        L_ci95=float(np.diff(intervals["L"])[0] / 2),
+        rho_ci95=float(np.diff(intervals["rho"])[0] / 2),
+        L_interval=intervals["L"],
+        rho_interval=intervals["rho"],
+        profiled=tuple(profiled),
         taus_s=tau0 / rate,
         b_ratios=ratio[1:].copy(),
         b0_V=b0.copy(),
         b0_se_V=b0_se.copy(),
         offset_V=offsets,
+        bridge_V=bridge,
+        bridge_se_V=bridge_se,
+        baseline_V=np.where(prob.known_base, prob.fixed, np.nan),
         v_inf_membrane_V=v_inf,
         kinds=prob.kinds,
         durations_s=prob.durations.copy(),
-        delay_s=delay_s,
+        lag_s=float(math.exp(theta[3])) if prob.lag else math.nan,
+        lag_se_s=float(math.exp(theta[3]) * se[3]) if prob.lag else math.nan,
+        corner_hz=None if lp is None else lp.corner_hz,
+        corner_se_hz=float(lp.corner_hz * se[nt - 1]) if prob.estimate_corner else None,
+        noise_factor=noise_factor,
         rmse=math.sqrt(rss / n),
         rss=rss,
         n_points=n,

@@ -96,3 +96,26 @@ def robust_sd(x: np.ndarray) -> float:
     input's unit (0 for no data)."""
     x = np.asarray(x, dtype=float)
     return float(1.4826 * np.median(np.abs(x - np.median(x)))) if x.size else 0.0
+
+
+def correlated_noise_factor(x: np.ndarray, max_lag: int) -> float:
+    """Variance inflation of a smooth fit's parameters by correlated noise (>= 1).
+
+    The long-run variance of the detrended noise `x` over its sample variance,
+    1 + 2 sum_k (1 - k/(K+1)) r_k with the Bartlett taper up to lag K = `max_lag` (common
+    practice, no source: the Newey–West estimate of the variance of a mean of correlated
+    samples). 1 for white noise, larger for noise through a low-pass filter.
+    """
+    x = np.asarray(x, dtype=float)
+    x = x[np.isfinite(x)]
+    lags = min(int(max_lag), x.size // 4)
+    if lags < 1:
+        return 1.0
+    k = np.arange(x.size)
+    x = x - np.polyval(np.polyfit(k, x, 1), k)
+    var = float(x @ x) / x.size
+    if var <= 0:
+        return 1.0
+    r = np.array([float(x[:-j] @ x[j:]) / x.size / var for j in range(1, lags + 1)])
+    taper = 1 - np.arange(1, lags + 1) / (lags + 1)
+    return float(max(1.0, 1 + 2 * np.sum(taper * r)))

@@ -4,7 +4,7 @@ Per recording, one A4 page of figures and one or more pages of text:
 
 1. the sweeps with their fitted curves; the combined response with the cell fit;
    the semilog (peel) view; the residuals of the cell fit; the V–I relation; and
-   τ0, τ1 against the fit start (they should reach a plateau);
+   τ0, τ1 of exponential fits against the fit start, beside the cell's values;
 2. the cell values with their 95 % intervals, the flags, the sweeps table, the
    provenance (file hash, version, settings) and the cautions that go with
    cable-theory estimates.
@@ -207,16 +207,21 @@ def _draw_semilog(ax, result, fs: float) -> None:
     keep = distance > floor
     ax.semilogy(t[keep] / MS, distance[keep] / MV, ".", ms=1.2, color=DATA_COLOUR,
                 label="|V − V∞|", rasterized=True)
-    for k, (tau, amp) in enumerate(zip(fit.taus, fit.amplitudes[seg.index], strict=True)):
+    amps = fit.amplitudes[seg.index]
+    for k, (tau, amp) in enumerate(zip(fit.taus, amps, strict=True)):
         line = np.abs(amp) * np.exp(-t / tau)
         ax.semilogy(t / MS, line / MV, color=MODE_COLOURS[k % 3], lw=1.0,
-                    label=f"fit τ{k} = {tau / MS:.3g} ms")
+                    label=f"fit τ0 = {tau / MS:.3g} ms" if k == 0 else f"exp. component {k}")
+    caption, tau1 = result.cell.tau1_caption(), result.cell.values.get(S.TAU1.key)
+    if caption and len(amps) > 1:  # the cell's one τ1, drawn from the component's amplitude
+        ax.semilogy(t / MS, np.abs(amps[1]) * np.exp(-t / (tau1 * MS)) / MV, ":",
+                    color=FIT_COLOUR, lw=1.2, label=caption)
     if peel is not None:
         for k, line in enumerate(peel.lines):
             tl = np.linspace(0.0, line.t_end, 50)
             ax.semilogy(tl / MS, np.exp(line.intercept_log + line.slope * tl) / MV, "--",
                         color=MODE_COLOURS[k % 3], lw=0.8,
-                        label=f"peel line {k} (τ {-1 / line.slope / MS:.3g} ms)")
+                        label=f"peel line {k} (start value)")
     top = float(distance.max())
     ax.set_ylim(max(floor, top * 1e-3) / MV, top * 2 / MV)
     ax.set_xlim(0.0, min(t.max(), 6.0 * fit.taus[0]) / MS)  # beyond ~6 τ0 only noise is left
@@ -292,9 +297,11 @@ def _draw_scan(ax0, ax1, result, data: dict) -> None:
         ax.errorbar(start, value, yerr=np.where(np.isfinite(ci), ci, 0.0), fmt="o-", ms=3,
                     lw=0.8, capsize=2, color=MODE_COLOURS[0 if key == "tau0" else 1])
         if chosen is not None:
-            ax.axhline(chosen, color=FIT_COLOUR, lw=0.7, ls="--", label=f"reported {chosen:.4g}")
+            label = (result.cell.tau1_caption() if key == "tau1"
+                     else f"cell τ0 {chosen:.4g} ms")
+            ax.axhline(chosen, color=FIT_COLOUR, lw=0.7, ls="--", label=label)
             ax.legend(loc="best", frameon=False)
-        ax.set_title(f"{name} against fit start (should plateau)")
+        ax.set_title(f"{name} of exponential fits from later starts")
         ax.set_xlabel("fit start after the step edge (ms)")
         ax.set_ylabel(f"{name} (ms)")
 

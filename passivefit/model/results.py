@@ -162,6 +162,14 @@ class CellResult:
     def to_dict(self) -> dict:
         return dict(self.values)
 
+    def tau1_caption(self) -> str | None:
+        """"cell τ1 2.58 ms (ball-and-stick fit)": the one τ1 every view shows, with its
+        source; None when τ1 was not resolved."""
+        tau1 = self.values.get(S.TAU1.key)
+        if tau1 is None:
+            return None
+        return f"cell τ1 {tau1:.3g} ms ({self.values.get(S.TAU1_SOURCE.key) or 'fit'})"
+
 
 @dataclass(frozen=True)
 class GroupAverage:

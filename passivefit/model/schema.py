@@ -88,7 +88,8 @@ def _ci(key: str, of: str, unit: str = "", scale: float = 1.0) -> Quantity:
 # Cell values, in the order of the JSON contract, then the extras.
 V_REST = Quantity("v_rest_mV", "V_rest", "mV", MV, title="Resting potential V_rest",
                   column=True)
-R_IN = Quantity("r_in_MOhm", "R_in", "MΩ", MOHM, title="Input resistance R_in", column=True)
+R_IN = Quantity("r_in_MOhm", "R_in", "MΩ", MOHM, ci="r_in_ci95_MOhm",
+                title="Input resistance R_in", column=True)
 TAU0 = Quantity("tau0_ms", "τ0", "ms", MS, ci="tau0_ci95_ms",
                 title="Membrane time constant τ0", column=True)
 TAU0_CI = _ci("tau0_ci95_ms", "τ0", "ms", MS)
@@ -142,6 +143,21 @@ V_REST_CHANGE = Quantity("v_rest_change_mV", "V_rest change over the recording",
                          title="V_rest change, first to last quarter of the sweeps")
 HUM = Quantity("hum_mV", "mains hum", "mV", MV, 3, title="Mains hum in the baselines")
 STABLE_SWEEPS = Quantity("stable_sweeps", "sweeps of the stable stretch", kind="text")
+R_IN_CI = _ci("r_in_ci95_MOhm", "R_in", "MΩ", MOHM)
+R_IN_RAW = Quantity("r_in_raw_MOhm", "R_in, raw ΔV/ΔI", "MΩ", MOHM,
+                    title="Input resistance before any bridge correction")
+R_IN_CORRECTED = Quantity("r_in_bridge_corrected_MOhm", "R_in, bridge taken out", "MΩ", MOHM,
+                          title="Input resistance with the fitted bridge jump taken out")
+L_CI_LOW = Quantity("L_ci95_low", "L (ball-and-stick) 95 % CI, low end", digits=4)
+L_CI_HIGH = Quantity("L_ci95_high", "L (ball-and-stick) 95 % CI, high end", digits=4)
+RHO_CI_LOW = Quantity("rho_ci95_low", "ρ 95 % CI, low end", digits=4)
+RHO_CI_HIGH = Quantity("rho_ci95_high", "ρ 95 % CI, high end", digits=4)
+FILTER = Quantity("filter_corner_hz", "filter corner", "Hz", 1.0, 4, ci="filter_corner_ci95_hz",
+                  title="Low-pass filter corner used by the model")
+FILTER_CI = _ci("filter_corner_ci95_hz", "filter corner", "Hz")
+FILTER_SOURCE = Quantity("filter_source", "filter corner from", kind="text")
+LAG = Quantity("electrode_lag_us", "electrode lag", "µs", 1e-6, 3,
+               title="Electrode lag of the bridge jump")
 CM = Quantity("cm_uF_per_cm2", "specific Cm", "µF/cm²", 1e-2, 4)   # SI: F/m²
 RM = Quantity("rm_kOhm_cm2", "specific Rm", "kΩ·cm²", 0.1, 4)      # SI: Ω·m²
 
@@ -151,7 +167,9 @@ CELL_CORE = (V_REST, R_IN, TAU0, TAU0_CI, TAU1, TAU1_CI, C0, C1, L_CYL, L_BS, L_
 CELL_EXTRA = (BRIDGE, BRIDGE_CI, BRIDGE_APPLIED, TAU1_SOURCE, TAU1_EXP, TAU2, TAU0_MODEL, L_CYL_CI,
               RHO_AMPLITUDE, FIT_START, R_IN_METHOD, VI_R2, R_IN_ASYMMETRY, N_COMPONENTS,
               COMPONENTS_REASON, CI_METHOD, REF_STEP, C_RATIO, CM, RM, TAU_SAG, R_IN_PEAK,
-              R_IN_SLOPE, R_IN_CHORD, REBOUND, R_IN_CHANGE, V_REST_CHANGE, STABLE_SWEEPS, HUM)
+              R_IN_SLOPE, R_IN_CHORD, REBOUND, R_IN_CHANGE, V_REST_CHANGE, STABLE_SWEEPS, HUM,
+              R_IN_CI, R_IN_RAW, R_IN_CORRECTED, L_CI_LOW, L_CI_HIGH, RHO_CI_LOW, RHO_CI_HIGH,
+              FILTER, FILTER_CI, FILTER_SOURCE, LAG)
 CELL = CELL_CORE + CELL_EXTRA
 
 # Sweep values (each of `sweeps`), in contract order.
@@ -286,8 +304,12 @@ CELL_BRIDGE = _flag(
     "an instantaneous jump at the step edge shows a bridge imbalance; it is {what} R_in (MΩ)")
 CELL_BRIDGE_UNCERTAIN = _flag(
     "cell.bridge_uncertain", "warning",
-    "the jump at the step edge cannot be told apart from fast charging or noise; R_in is not "
-    "corrected for it (MΩ)")
+    "the jump at the step edge cannot be told apart from zero (its 95 % CI includes it); R_in "
+    "is not corrected for it (MΩ)")
+CELL_FILTER_ESTIMATED = _flag(
+    "cell.filter_estimated", "info",
+    "the file does not state the amplifier's low-pass corner; it was estimated from the step "
+    "edge with the cell (Hz)")
 CELL_ASYMMETRIC = _flag(
     "cell.asymmetric", "warning",
     "depolarizing and hyperpolarizing steps give R_in that differ: the responses are not "

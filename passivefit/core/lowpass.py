@@ -1,0 +1,79 @@
+"""The amplifier's low-pass filter, applied exactly to sums of exponentials.
+
+A recording amplifier filters the voltage with an analog 4-pole Bessel low-pass before it
+is sampled. Its transfer function has four poles ``p_k`` and no zeros,
+``H(s) = prod_k p_k / (p_k - s)`` (unit gain at DC), so by partial fractions the response
+to a unit exponential that starts at an edge, ``x(t) = exp(-lam t)`` for ``t > 0``, is
+
+    y(t) = H(-lam) exp(-lam t) + sum_k c_k / (p_k + lam) exp(p_k t),
+
+with ``c_k`` the residues of ``H`` at its poles (docs/references.md §10). ``y(0) = 0``: the
+filtered response starts continuously at the edge. A step is the case ``lam = 0``. The
+membrane response, the bridge jump and its electrode lag are all sums of such
+exponentials, so the filtered model is exact — no time shift stands in for the filter.
+
+Units: Hz for the corner, s and 1/s elsewhere.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import cache
+
+import numpy as np
+
+__all__ = ["Lowpass"]
+
+
+@cache
+def _unit_bessel() -> tuple[np.ndarray, np.ndarray]:
+    """Poles and residues of the 4-pole Bessel with its −3 dB corner at 1 rad/s."""
+    from scipy.signal import bessel
+
+    _, poles, gain = bessel(4, 1.0, btype="low", analog=True, norm="mag", output="zpk")
+    residues = np.array([gain / np.prod(p - np.delete(poles, k)) for k, p in enumerate(poles)])
+    return poles, residues
+
+
+@dataclass(frozen=True)
+class Lowpass:
+    """A 4-pole Bessel low-pass with its −3 dB corner at ``corner_hz``."""
+
+    corner_hz: float
+
+    def __post_init__(self):
+        if not (np.isfinite(self.corner_hz) and self.corner_hz > 0):
+            raise ValueError(f"the filter corner must be a positive frequency in Hz, "
+                             f"got {self.corner_hz!r}")
+
+    @property
+    def poles(self) -> np.ndarray:
+        """Poles (1/s, complex): the unit poles scaled by the corner in rad/s."""
+        return _unit_bessel()[0] * (2 * np.pi * self.corner_hz)
+
+    @property
+    def residues(self) -> np.ndarray:
+        """Residues of H at its poles (1/s, complex)."""
+        return _unit_bessel()[1] * (2 * np.pi * self.corner_hz)
+
+    def gain(self, rates: np.ndarray) -> np.ndarray:
+        """H(-lam) for decay rates ``lam`` >= 0 (1/s): the factor on exp(-lam t)."""
+        p = self.poles
+        return np.real(np.prod(p / (p + np.asarray(rates, float)[..., None]), axis=-1))
+
+    def pole_weights(self, rates: np.ndarray) -> np.ndarray:
+        """c_k/(p_k + lam), shape (n_rates, 4): the factor on exp(p_k t) per rate."""
+        return self.residues / (self.poles + np.asarray(rates, float)[..., None])
+
+    def response(self, rates: np.ndarray, amplitudes: np.ndarray, t: np.ndarray) -> np.ndarray:
+        """Filtered ``sum_m a_m exp(-lam_m t)`` (0 before the edge), at times ``t`` (s)."""
+        t = np.asarray(t, float)
+        rates, amplitudes = np.asarray(rates, float), np.asarray(amplitudes, float)
+        after = np.maximum(t, 0.0)[..., None]
+        direct = np.exp(-after * rates) @ (amplitudes * self.gain(rates))
+        ringing = np.real(np.exp(after * self.poles) @ (amplitudes @ self.pole_weights(rates)))
+        return np.where(t > 0, direct + ringing, 0.0)
+
+    def group_delay_s(self) -> float:
+        """Low-frequency group delay, sum_k -1/p_k (s); 0.336/fc for this filter."""
+        return float(np.real(np.sum(-1.0 / self.poles)))

@@ -1,0 +1,117 @@
+"""One answer whatever the options: R_in, the bridge and τ1 from the model of the whole
+measurement chain (cell, bridge jump with the electrode's lag, the amplifier's filter)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from passivefit.analysis import Settings, analyze
+from passivefit.core.lowpass import Lowpass
+from passivefit.io import load
+from passivefit.samples import bundled_sample
+from passivefit.simulate import BallStick, StepProtocol, simulate_recording
+
+STEPS = StepProtocol(0.1, 0.4, (-50e-12, -30e-12))
+
+
+# --------------------------------------------------------------------------- the filter
+@pytest.mark.parametrize("rate", [0.0, 50.0, 3_000.0, 40_000.0])
+def test_lowpass_response_is_the_analog_filters(rate):
+    # against scipy's own design of the analog 4-pole Bessel and its linear simulation
+    # (scipy.signal.bessel, scipy.signal.lsim: an outside reference for the partial
+    # fractions of core.lowpass)
+    from scipy.signal import bessel, lsim
+
+    t = np.linspace(0.0, 4e-3, 40_001)
+    b, a = bessel(4, 2 * np.pi * 5_000.0, "low", analog=True, norm="mag")
+    _, expected, _ = lsim((b, a), np.exp(-rate * t), t)
+    got = Lowpass(5_000.0).response([rate], [1.0], t)
+    np.testing.assert_allclose(got, expected, atol=1e-6)  # lsim interpolates linearly
+    assert got[0] == 0.0  # the filtered response starts continuously at the edge
+
+
+def test_lowpass_group_delay():
+    # 4-pole Bessel low-frequency group delay 0.336/fc (from memory, textbook value)
+    assert Lowpass(2_000.0).group_delay_s() == pytest.approx(0.336 / 2_000.0, rel=0.002)
+
+
+# ------------------------------------------------------------------ one R_in, any options
+@pytest.fixture(scope="module")
+def ca1():
+    return load(bundled_sample())
+
+
+def _cell(recording, **settings):
+    return analyze(recording, Settings(**settings)).to_dict()["cell"]
+
+
+def test_r_in_is_one_value_whatever_the_fit_start_components_or_bootstrap(ca1):
+    # the CA1 sample (simulated: R_in 110 MΩ, an 8 MΩ bridge error through a 50 µs lag)
+    reference = _cell(ca1, bootstrap=0)
+    r_in, ci = reference["r_in_MOhm"], reference["r_in_ci95_MOhm"]
+    assert reference["bridge_applied"] is True
+    assert r_in == pytest.approx(110.0, abs=ci)
+    assert reference["r_in_raw_MOhm"] - r_in == pytest.approx(reference["bridge_MOhm"], rel=1e-3)
+    variants = [dict(fit_start_ms=ms, bootstrap=0) for ms in (1.0, 2.0, 3.5, 5.0)]
+    variants += [dict(components=n, bootstrap=0) for n in ("1", "2", "3")]
+    variants += [dict(bootstrap=40)]
+    for options in variants:
+        cell = _cell(ca1, **options)
+        assert abs(cell["r_in_MOhm"] - r_in) < ci, options
+        assert cell["bridge_applied"] is True, options
+
+
+# ------------------------------------------------------------- simulated measurement chains
+def _simulated(bridge_ohm: float, lag_s: float, stated: bool, seed: int = 3):
+    cell = BallStick.from_electrotonic(0.022, 1.0, 5.0, 110e6)
+    rec, truth = simulate_recording(cell, protocol=STEPS, n_sweeps=20, sweep_duration_s=0.8,
+                                    noise_sd_V=0.2e-3, filter_hz=5_000, bridge_ohm=bridge_ohm,
+                                    electrode_tau_s=lag_s, seed=seed)
+    if not stated:
+        rec.metadata["filter_hz"] = None
+    return analyze(rec, Settings(bootstrap=0)).to_dict(), truth
+
+
+def test_a_12_megohm_bridge_with_80_us_lag_is_found_and_taken_out():
+    data, truth = _simulated(12e6, 80e-6, stated=True)
+    cell = data["cell"]
+    assert cell["r_in_MOhm"] == pytest.approx(truth["r_in_MOhm"], rel=0.02)
+    assert abs(cell["bridge_MOhm"] - 12.0) <= cell["bridge_ci95_MOhm"]
+    assert cell["bridge_applied"] is True
+    assert cell["r_in_raw_MOhm"] == pytest.approx(122.0, rel=0.02)
+
+
+def test_a_clean_cell_with_an_unstated_filter_gets_no_bridge():
+    data, truth = _simulated(0.0, 50e-6, stated=False)
+    cell, codes = data["cell"], {f["code"] for f in data["flags"]}
+    assert abs(cell["bridge_MOhm"]) <= cell["bridge_ci95_MOhm"]  # its CI includes zero
+    assert cell["bridge_applied"] is False
+    assert cell["r_in_MOhm"] == cell["r_in_raw_MOhm"]
+    assert cell["r_in_MOhm"] == pytest.approx(truth["r_in_MOhm"], rel=0.01)
+    assert "cell.filter_estimated" in codes
+    assert cell["filter_source"] == "estimated from the step edge"
+    assert cell["filter_corner_hz"] > 0
+
+
+# ------------------------------------------------------------------------------ one τ1
+def test_the_pdf_shows_the_cells_one_tau1(ca1, tmp_path):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from passivefit.export import report
+
+    result = analyze(ca1, Settings(bootstrap=0))
+    caption = result.cell.tau1_caption()
+    assert caption is not None and f"{result.cell.values['tau1_ms']:.3g}" in caption
+    fig, (ax_semilog, ax0, ax1) = plt.subplots(3)
+    report._draw_semilog(ax_semilog, result, ca1.sample_rate_hz)
+    report._draw_scan(ax0, ax1, result, result.to_dict())
+    for ax in (ax_semilog, ax1):
+        labels = ax.get_legend_handles_labels()[1]
+        assert caption in labels
+        other_tau1 = [lab for lab in labels if "τ1" in lab and lab != caption]
+        assert not other_tau1, other_tau1   # no second τ1 value beside the cell's
+    plt.close(fig)
