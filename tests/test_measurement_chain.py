@@ -90,8 +90,25 @@ def test_a_clean_cell_with_an_unstated_filter_gets_no_bridge():
     assert cell["r_in_MOhm"] == cell["r_in_raw_MOhm"]
     assert cell["r_in_MOhm"] == pytest.approx(truth["r_in_MOhm"], rel=0.01)
     assert "cell.filter_estimated" in codes
-    assert cell["filter_source"] == "estimated from the step edge"
-    assert cell["filter_corner_hz"] > 0
+    assert cell["filter_source"] == "estimated from the baseline noise spectrum"
+    assert cell["filter_corner_hz"] == pytest.approx(5_000.0, rel=0.1)
+
+
+@pytest.mark.parametrize("corner", [1_000.0, 2_000.0, 5_000.0])
+def test_the_corner_is_read_from_the_noise_spectrum(corner):
+    # white noise through the simulator's analog 4-pole Bessel (filtered at 8x the rate,
+    # then sampled): the spectrum's roll-off gives the corner back
+    from passivefit.core.lowpass import corner_from_noise
+
+    cell = BallStick.from_electrotonic(0.022, 1.0, 5.0, 110e6)
+    for filter_hz, expected in ((corner, corner), (None, None)):
+        rec, _ = simulate_recording(cell, protocol=STEPS, n_sweeps=20, sweep_duration_s=0.8,
+                                    filter_hz=filter_hz, noise_sd_V=0.3e-3, seed=2)
+        found = corner_from_noise([s.voltage[:1_990] for s in rec.sweeps], 20_000.0)
+        if expected is None:   # white noise: no roll-off, no corner
+            assert found is None
+        else:
+            assert found == pytest.approx(expected, rel=0.06)
 
 
 # ------------------------------------------------------------------------------ one τ1
@@ -115,3 +132,29 @@ def test_the_pdf_shows_the_cells_one_tau1(ca1, tmp_path):
         other_tau1 = [lab for lab in labels if "τ1" in lab and lab != caption]
         assert not other_tau1, other_tau1   # no second τ1 value beside the cell's
     plt.close(fig)
+
+
+def test_the_window_shows_the_cells_one_tau1(qtbot, open_window, recording_file, tmp_path):
+    import shutil
+
+    import pyqtgraph as pg
+
+    window = open_window(shutil.copy(recording_file, tmp_path / recording_file.name))
+    qtbot.waitUntil(lambda: window.idle, timeout=60_000)
+    result = window.current_result()
+    caption = result.cell.tau1_caption()
+    assert caption is not None
+    tau1 = result.cell.values["tau1_ms"]
+    # the card: the value, and its source on hover
+    card = window.cell.values["tau1_ms"]
+    assert card.text().startswith(f"{tau1:.4g}")
+    assert result.cell.values["tau1_source"] in card.toolTip()
+    # the fit-start scan: the cell's line carries the caption
+    lines = [i for i in window.scan.tau1.getPlotItem().items if isinstance(i, pg.InfiniteLine)]
+    assert [line.label.toPlainText() for line in lines] == [caption]
+    assert lines[0].value() == pytest.approx(tau1)
+    # the semilog view: the peel's lines are start values, the cell's τ1 is named once
+    names = [item.name() for item in window.semilog.plot.getPlotItem().listDataItems()
+             if item.name()]
+    assert caption in names
+    assert all("start value" in n for n in names if n.startswith("peel"))

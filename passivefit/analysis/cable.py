@@ -17,12 +17,15 @@ from passivefit.model.results import GroupAverage
 @dataclass(frozen=True)
 class Chain:
     """What the model knows of the measurement chain: the filter corner (Hz; None =
-    unfiltered or unknown), whether it is estimated, and the variance inflation of the
-    recording's correlated noise."""
+    unfiltered or unknown), whether it is estimated, the variance inflation of the
+    recording's correlated noise, whether a bridge jump may be fitted, and where the
+    corner came from."""
 
     corner_hz: float | None = None
     estimate_corner: bool = False
     noise_factor: float = 1.0
+    bridge: bool = True
+    source: str = ""
 
 
 def noise_factor(avg: GroupAverage, fs: float) -> float:
@@ -52,7 +55,7 @@ def fit_cable(avg: GroupAverage, fs: float, init, chain: Chain, profile: bool = 
         return None, None
     try:
         bs = cablefit.fit_ballstick(segs, init=init, corner_hz=chain.corner_hz,
-                                    estimate_corner=chain.estimate_corner,
+                                    estimate_corner=chain.estimate_corner, bridge=chain.bridge,
                                     noise_factor=chain.noise_factor, profile=profile,
                                     thorough=profile)
     except FIT_ERRORS as exc:

@@ -94,10 +94,8 @@ def analyze(recording: Recording, settings: Settings | None = None) -> Recording
         active += [S.FIT_SAG_WINDOW.make(sag_end / MS, end=f"{sag_end / MS:.0f} ms")]
     fits, stability, unstable = stable_stretch(fits, settings.all_sweeps)
     fits = apply_decisions(fits, effective)
-    corner = settings.filter_hz or _metadata_float(recording, "filter_hz")
     cell = summarize_cell(fits, voltages, fs, effective, replace(base, fit_start_ms=None),
-                          Chain(corner, estimate_corner=corner is None),
-                          sagging=sag_end is not None)
+                          _chain(recording, settings, chosen), sagging=sag_end is not None)
     cell.values.update(stability)
     cell.flags[:0] = [*recording.flags, *active, *unstable]
     return RecordingResult(
@@ -137,6 +135,27 @@ def _with_cut_of(fit: SweepFit, automatic: SweepFit, v: np.ndarray, fs: float,
                         masked_s=automatic.masked_s)
     kept = tuple(f for f in new.flags if f.code != S.SWEEP_EVENT.code)
     return replace(new, flags=(*kept, *events))
+
+
+def _chain(recording: Recording, settings: Settings, chosen) -> Chain:
+    """The filter corner: as set, as the file states it, else from the spectrum of the
+    baseline noise (core.lowpass.corner_from_noise), else fitted at the step edge."""
+    from passivefit.core.lowpass import corner_from_noise
+
+    corner = settings.filter_hz or _metadata_float(recording, "filter_hz")
+    if corner is not None:
+        return Chain(corner, source=CORNER_GIVEN)
+    baselines = [s.voltage[st.baseline_start:st.onset] for s, st in chosen if st is not None]
+    corner = corner_from_noise(baselines, recording.sample_rate_hz)
+    if corner is not None:
+        return Chain(corner, source=CORNER_FROM_NOISE)
+    return Chain(None, estimate_corner=True, source=CORNER_FROM_EDGE)
+
+
+#: Where the filter corner came from (`filter_source`).
+CORNER_GIVEN = "file or --filter-hz"
+CORNER_FROM_NOISE = "estimated from the baseline noise spectrum"
+CORNER_FROM_EDGE = "estimated from the step edge"
 
 
 def _metadata_float(recording: Recording, key: str) -> float | None:
@@ -215,7 +234,9 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     out.values[S.FIT_START] = avg.fit_start_s
     boot = None
     if fit is not None and settings.bootstrap and len(pool.indices) >= 3:
-        cable = None if bs is None else CableContext(avg_cable, bs, chain)
+        # the resamples refit the model the data chose (with or without a jump)
+        cable = None if bs is None else CableContext(
+            avg_cable, bs, replace(chain, bridge=bs.bridge_needed))
         boot = bootstrap(pool, avg, fs, fit, settings.bootstrap, cable)
     out.values[S.CI_METHOD] = "bootstrap over sweeps" if boot is not None else "fit covariance"
     cis = _cable_cis(bs, boot)
@@ -270,16 +291,19 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
 
 def _cable_cis(bs, boot: dict | None) -> dict[str, tuple[float, float] | None]:
     """95 % intervals of L and ρ: the fit's (profile likelihood where it is not quadratic),
-    widened to the bootstrap's percentile interval where that reaches further; None
-    without a cable fit."""
+    widened to the bootstrap's where that reaches further (its robust spread of log L and
+    log ρ, as few cable refits make percentiles unstable); None without a cable fit."""
     if bs is None:
         return {S.L_BS.key: None, S.RHO.key: None}
+    from passivefit.core.qc import robust_sd
+
     out = {}
-    for q, (lo, hi), name in ((S.L_BS, bs.L_interval, "L"), (S.RHO, bs.rho_interval, "rho")):
+    for q, value, (lo, hi), name in ((S.L_BS, bs.L, bs.L_interval, "L"),
+                                     (S.RHO, bs.rho, bs.rho_interval, "rho")):
         seen = boot[name][np.isfinite(boot[name])] if boot is not None else np.array([])
-        if seen.size >= 5:  # the bootstrap's own (asymmetric) percentile interval
-            b_lo, b_hi = np.percentile(seen, [2.5, 97.5])
-            lo, hi = min(lo, b_lo), max(hi, b_hi)
+        if seen.size >= 5:  # the resamples' robust spread, on the log scale (skewed values)
+            spread = 1.96 * robust_sd(np.log(seen))
+            lo, hi = min(lo, value * np.exp(-spread)), max(hi, value * np.exp(spread))
         out[q.key] = (lo, hi)
     return out
 
@@ -288,8 +312,8 @@ def _chain_values(fit, chain: Chain) -> dict:
     """The measurement chain as fitted: filter corner (and where it came from), lag."""
     if fit is None:
         return {}
-    values = {S.FILTER_SOURCE: "estimated from the step edge" if chain.estimate_corner
-              else "file or --filter-hz" if chain.corner_hz else "none (unfiltered)"}
+    values = {S.FILTER_SOURCE: chain.source if fit.corner_hz is not None
+              else "none (unfiltered)"}
     if fit.corner_hz is not None:
         values[S.FILTER] = fit.corner_hz
         if fit.corner_se_hz is not None:
@@ -300,9 +324,9 @@ def _chain_values(fit, chain: Chain) -> dict:
 
 
 def _chain_flags(fit, chain: Chain) -> list[Flag]:
-    if fit is None or not chain.estimate_corner or fit.corner_hz is None:
+    if fit is None or chain.source == CORNER_GIVEN or fit.corner_hz is None:
         return []
-    return [S.CELL_FILTER_ESTIMATED.make(fit.corner_hz)]
+    return [S.CELL_FILTER_ESTIMATED.make(fit.corner_hz, how=chain.source)]
 
 
 def _L_cyl_samples(boot: dict | None, cable: bool) -> np.ndarray | None:
@@ -325,7 +349,8 @@ def _bridge_correction(fits: list[SweepFit], bridge: tuple[float, float, bool] |
     fit of the measurement chain, not the bootstrap) and whether the data need a jump at
     all; it is real when they do and the interval excludes zero. `measured` holds the raw
     R_in from the steady state (and its CI). R_in is then the raw value, or the raw value
-    minus the bridge with the CIs combined.
+    minus the bridge with the CIs combined. The raw value's CI takes in the bridge the
+    data cannot rule out.
     """
     raw = measured.get(S.R_IN)
     values: dict = {S.BRIDGE_APPLIED: False}
@@ -340,6 +365,9 @@ def _bridge_correction(fits: list[SweepFit], bridge: tuple[float, float, bool] |
     if not (needed and np.isfinite(ci) and abs(jump) > ci):
         flags = ([S.CELL_BRIDGE_UNCERTAIN.make(jump / MOHM)] if abs(jump) > 5 * MOHM
                  else [])
+        if measured.get(S.R_IN_CI) is not None:
+            # the raw R_in holds whatever bridge the data cannot rule out: up to |jump| + CI
+            values[S.R_IN_CI] = float(np.hypot(measured[S.R_IN_CI], abs(jump) + ci))
         return values, flags, fits
     flags = []
     if abs(jump) > 5 * MOHM:

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from collections import Counter
 from dataclasses import dataclass, replace
+from functools import cached_property
 
 import numpy as np
 
@@ -39,20 +40,27 @@ class SweepPool:
     base: float                 # V, mean baseline
     gaps: bool = False          # some samples are cut out (NaN)
 
-    def combine(self, pick: np.ndarray | None = None) -> np.ndarray:
-        """The combined response (V) of all sweeps, or of the sweeps at positions `pick`.
+    def combine(self, weights: np.ndarray | None = None) -> np.ndarray:
+        """The combined response (V) of all sweeps, or with each sweep counted `weights`
+        times (a bootstrap resample: no copy of the sweeps is made).
 
         Samples cut out of a sweep (NaN: a spontaneous event) are left out of the sums at
         their times; where every sweep is cut out the response is NaN.
         """
-        i = self.currents if pick is None else self.currents[pick]
-        d = self.deflections if pick is None else self.deflections[pick]
+        i = self.currents if weights is None else self.currents * weights
         if not self.gaps:
-            return self.base + self.step.amplitude_A * (i @ d) / (i @ i)
-        seen = np.isfinite(d)
+            return self.base + self.step.amplitude_A * (i @ self.deflections) / (
+                i @ self.currents)
+        seen, filled = self._filled
         with np.errstate(invalid="ignore", divide="ignore"):
-            h = (i @ np.where(seen, d, 0.0)) / ((i * i) @ seen)
+            h = (i @ filled) / ((i * self.currents) @ seen)
         return self.base + self.step.amplitude_A * h
+
+    @cached_property
+    def _filled(self) -> tuple[np.ndarray, np.ndarray]:
+        """Where each sweep was seen (as 0/1) and its deflection with the gaps as 0."""
+        seen = np.isfinite(self.deflections)
+        return seen.astype(float), np.where(seen, self.deflections, 0.0)
 
 
 def sweep_pool(fits: list[SweepFit], voltages: dict[int, np.ndarray]) -> SweepPool | None:

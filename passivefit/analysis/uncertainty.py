@@ -46,10 +46,11 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
     n = len(fit.taus)   # membrane components; refits use every component
     out: dict[str, list[float]] = {k: [] for k in ("tau0", "tau1", "tau1_model", "L", "rho")}
     for _ in range(n_boot):
-        pick = rng.integers(0, len(pool.indices), len(pool.indices))
-        if np.all(pool.currents[pick] == 0):
+        size = len(pool.indices)
+        counts = np.bincount(rng.integers(0, size, size), minlength=size).astype(float)
+        if np.all(pool.currents[counts > 0] == 0):
             continue
-        v = pool.combine(pick)
+        v = pool.combine(counts)
         try:
             boot, _ = fit_average(replace(g, v_V=v), fs, str(fit.n_total),
                                   tau_init=fit.all_taus)

@@ -73,9 +73,7 @@ def format_table(data: dict) -> str:
     lines = [f"{src['path']}  ({src['format']}, {src['sweep_count']} sweeps, "
              f"{cell[S.N_SWEEPS_USED.key]} used)", ""]
     for q in S.SUMMARY:
-        value = _fmt(cell.get(q.key))
-        if q.ci and cell.get(q.ci) is not None:
-            value += f" ± {_fmt(cell[q.ci], 2)}"
+        value = _fmt(cell.get(q.key)) + S.uncertainty_text(cell, q)
         lines.append(f"  {q.label:<20} {value:>18} {q.unit}")
     lines += ["", "  " + "  ".join(f"{_heading(q):>{w}}" for q, w in SWEEP_WIDTHS) + "  status"]
     for s in data["sweeps"]:

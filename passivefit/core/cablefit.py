@@ -77,7 +77,7 @@ _NEWTON_STEPS = 50
 _MIN_EXTRA_POINTS = 3
 _KINDS = ("charge", "decay")
 _FALLBACK_RHO = 3.0
-_MODE_STEP = 1e-6  # central-difference step of the per-mode vectors in log tau0, log L, log rho
+_MODE_STEP = 1e-6  # difference step of the per-mode vectors in log tau0, log L, log rho
 _GRID_STARTS = 3  # fits tried from the best points of the fallback grid
 _FALLBACK_L_FACTOR = 0.9  # the naive cylinder L overestimates the ball-and-stick L
 LAG_BOUNDS_S = (1e-6, 2e-4)  # electrode lag of the bridge jump (tens of µs; common practice)
@@ -374,10 +374,12 @@ class _Problem:
 
         With ``derivative``, also their derivatives in theta, shape (n_points, n_theta):
         for the cable's parameters and the lag the per-rate amplitudes are differentiated
-        numerically (central differences of cheap per-rate vectors) and the sums over the
-        points analytically; the filter corner, when estimated, by differences of the whole.
+        numerically (forward differences of cheap per-rate vectors: the Jacobian only
+        steers the search) and the sums over the points analytically; the filter corner,
+        when estimated, by central differences of the whole.
         """
-        rates, d_b0, d_br, r_b0, r_br = self.amplitudes(theta)
+        base = self.amplitudes(theta)
+        rates, d_b0, d_br, r_b0, r_br = base
         e1, eb, dlog1, dlogb, ring = self._bases(theta, rates)
         value = (self._sum(e1, eb, ring, d_b0, r_b0), self._sum(e1, eb, ring, d_br, r_br))
         if not derivative:
@@ -392,8 +394,8 @@ class _Problem:
                 for o, a, b in zip(out, up, down, strict=True):
                     o[:, j] = (a - b) / (2 * _MODE_STEP)
                 continue
-            up, down = self.amplitudes(theta + step), self.amplitudes(theta - step)
-            d = [(a - b) / (2 * _MODE_STEP) for a, b in zip(up, down, strict=True)]
+            up = self.amplitudes(theta + step)
+            d = [(a - b) / _MODE_STEP for a, b in zip(up, base, strict=True)]
             d_rate = d[0]
             de1, deb = e1 * dlog1 * d_rate, eb * dlogb * d_rate[:m]
             for o, direct, dd, dr in ((out[0], d_b0, d[1], d[3]), (out[1], d_br, d[2], d[4])):

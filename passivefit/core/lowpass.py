@@ -77,3 +77,56 @@ class Lowpass:
     def group_delay_s(self) -> float:
         """Low-frequency group delay, sum_k -1/p_k (s); 0.336/fc for this filter."""
         return float(np.real(np.sum(-1.0 / self.poles)))
+
+
+def corner_from_noise(segments: list[np.ndarray], sample_rate_hz: float) -> float | None:
+    """The corner (Hz) of the 4-pole Bessel that shaped the noise of `segments` (V), from
+    their averaged power spectrum; None when the spectrum shows no roll-off between 0.05
+    and 0.45 of the sampling rate (the filter acts beyond what the samples show, or the
+    noise is not white before the filter: biological noise falls with frequency).
+
+    The amplifier's noise is white before its filter, so its spectrum is a·|H(f)|² + b,
+    with b the noise added after the filter (the converter's). For each corner on a fine
+    logarithmic grid a and b are solved by least squares relative to the spectrum, and
+    the corner with the smallest misfit is kept. Frequencies below 2 % of the sampling
+    rate are left out (slow drift, mains hum, 1/f noise).
+    """
+    from scipy.signal import welch
+
+    fs = float(sample_rate_hz)
+    usable = [np.asarray(s, float) for s in segments if np.size(s) >= 64]
+    usable = [s[np.isfinite(s)] for s in usable]
+    usable = [s for s in usable if s.size >= 64]
+    if not usable:
+        return None
+    n = min(256, min(s.size for s in usable))
+    spectra = [welch(s, fs=fs, nperseg=n, detrend="linear")[1] for s in usable]
+    f = welch(usable[0], fs=fs, nperseg=n)[0]
+    p = np.mean(spectra, axis=0)
+    keep = (f > 0.02 * fs) & (p > 0)
+    f, p = f[keep], p[keep]
+    if f.size < 8:
+        return None
+    band = p > 1e-4 * p.max()   # below, the spectrum is the converter's floor or nothing
+    f, p = f[band], p[band]
+    best = None
+    for corner in np.geomspace(0.01 * fs, 0.6 * fs, 160):
+        h2 = np.abs(_response(f, corner)) ** 2
+        design = np.column_stack([h2, np.ones_like(h2)]) / p[:, None]
+        coef, *_ = np.linalg.lstsq(design, np.ones_like(p), rcond=None)
+        model = design @ np.clip(coef, 0.0, None)
+        if coef[0] * h2[0] <= 3 * max(coef[1], 0.0) or np.any(model <= 0):
+            continue   # a roll-off must show: the filtered noise well above the floor
+        misfit = float(np.sum(np.log(model) ** 2))   # on the log scale, relative to p
+        if best is None or misfit < best[0]:
+            best = (misfit, corner)
+    if best is None or not 0.05 * fs <= best[1] <= 0.45 * fs:
+        return None   # no roll-off, or one no amplifier would be set to (coloured noise)
+    return float(best[1])
+
+
+def _response(f_hz: np.ndarray, corner_hz: float) -> np.ndarray:
+    """H(i 2π f) of the 4-pole Bessel with its corner at `corner_hz` (complex)."""
+    p = Lowpass(corner_hz).poles
+    s = 2j * np.pi * np.asarray(f_hz, float)[:, None]
+    return np.prod(p / (p - s), axis=1)

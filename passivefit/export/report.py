@@ -429,9 +429,7 @@ def _value_rows(cell: Mapping) -> list[tuple[str, str, str]]:
     for q in VALUE_ROWS:
         value = cell.get(q.key)
         text = "— (not estimable: see flags)" if value is None else _fmt(value)
-        if value is not None and q.ci and cell.get(q.ci) is not None:
-            text += f" ± {_fmt(cell[q.ci], 2)}"
-        rows.append((q.title or q.label, text, q.unit))
+        rows.append((q.title or q.label, text + S.uncertainty_text(cell, q), q.unit))
     return rows
 
 
@@ -439,14 +437,13 @@ def _more_rows(cell: Mapping) -> list[tuple[str, str, str]]:
     """Every other cell value that was estimated (how R_in, τ1 and the CIs were found,
     the fit start, sag, drift, …), with its CI where it has one."""
     shown = {q.key for q in VALUE_ROWS} | {q.ci for q in VALUE_ROWS if q.ci}
+    shown |= {e.key for ends in S.INTERVALS.values() for e in ends}
     rows = []
     for q in S.CELL_EXTRA:
         value = cell.get(q.key)
         if q.key in shown or value is None or value is False or q.key.endswith("ci95"):
             continue
-        text = textwrap.shorten(_fmt(value), 70)
-        if q.ci and cell.get(q.ci) is not None:
-            text += f" ± {_fmt(cell[q.ci], 2)}"
+        text = textwrap.shorten(_fmt(value), 70) + S.uncertainty_text(cell, q)
         rows.append((q.title or q.label, text, q.unit))
     return rows
 

@@ -185,13 +185,15 @@ class CellCard(QtWidgets.QFrame):
         cell = result.cell.to_dict() if result is not None else {}
         for q in S.SUMMARY:
             text = fmt(cell.get(q.key))
-            if q.ci and cell.get(q.ci) is not None and cell.get(q.key) is not None:
+            sure = S.uncertainty_text(cell, q)
+            if sure:
                 text += (f"<span style='font-weight:400; font-size:9pt; color:{theme.MUTED}'>"
-                         f" ± {fmt(cell[q.ci], 2)}</span>")
+                         f"{sure}</span>")
             label = self.values[q.key]
             label.setText(text)
             label.setStyleSheet("")
-            label.setToolTip("")
+            label.setToolTip("from the " + cell[S.TAU1_SOURCE.key] if q is S.TAU1
+                             and cell.get(S.TAU1_SOURCE.key) else "")
         if result is not None and cell.get(S.BRIDGE.key) is not None \
                 and not bridge_applied(result):
             label = self.values[S.BRIDGE.key]

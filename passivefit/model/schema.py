@@ -161,6 +161,25 @@ LAG = Quantity("electrode_lag_us", "electrode lag", "µs", 1e-6, 3,
 CM = Quantity("cm_uF_per_cm2", "specific Cm", "µF/cm²", 1e-2, 4)   # SI: F/m²
 RM = Quantity("rm_kOhm_cm2", "specific Rm", "kΩ·cm²", 0.1, 4)      # SI: Ω·m²
 
+#: Asymmetric 95 % intervals (low, high) of values whose likelihood is skewed.
+INTERVALS = {L_BS.key: (L_CI_LOW, L_CI_HIGH), RHO.key: (RHO_CI_LOW, RHO_CI_HIGH)}
+
+
+
+def uncertainty_text(cell: Mapping, q: Quantity) -> str:
+    """How sure a value of `cell` (display units) is, for tables and cards: " (2.5–11)"
+    for a skewed interval, " ± 0.29" from the CI half-width, "" without either."""
+    if cell.get(q.key) is None:
+        return ""
+    ends = [cell.get(e.key) for e in INTERVALS.get(q.key, ())]
+    if len(ends) == 2 and None not in ends:
+        low, high = ends
+        return f" ({low:.2g}–{high:.2g})"
+    if q.ci and cell.get(q.ci) is not None:
+        return f" ± {cell[q.ci]:.2g}"
+    return ""
+
+
 #: The `cell` object of the JSON contract: these keys always, null when not estimable.
 CELL_CORE = (V_REST, R_IN, TAU0, TAU0_CI, TAU1, TAU1_CI, C0, C1, L_CYL, L_BS, L_CI, RHO,
              RHO_CI, C_TAU, C_TOTAL, SAG_RATIO, N_SWEEPS_USED)
@@ -308,8 +327,7 @@ CELL_BRIDGE_UNCERTAIN = _flag(
     "is not corrected for it (MΩ)")
 CELL_FILTER_ESTIMATED = _flag(
     "cell.filter_estimated", "info",
-    "the file does not state the amplifier's low-pass corner; it was estimated from the step "
-    "edge with the cell (Hz)")
+    "the file does not state the amplifier's low-pass corner; it was {how} (Hz)")
 CELL_ASYMMETRIC = _flag(
     "cell.asymmetric", "warning",
     "depolarizing and hyperpolarizing steps give R_in that differ: the responses are not "

@@ -350,12 +350,13 @@ def simulate_recording(
     # itself would move a 5 kHz corner at 20 kHz down by 15 %)
     up = 1 if ba is None else OVERSAMPLE
     fine = np.repeat(unit, up)
+    ba_fine = None if ba is None else _bessel(filter_hz, up * sample_rate_hz)
     unit_response = _apply_filter(
-        None if ba is None else _bessel(filter_hz, up * sample_rate_hz),
+        ba_fine,
         cell.soma_response(fine, dt / up) + bridge_ohm * _electrode_lag(
             fine, dt / up, electrode_tau_s),
     )[::up]
-    white_sd = noise_sd_V / _noise_gain(ba)
+    white_sd = noise_sd_V / _noise_gain(ba_fine)
     rng = np.random.default_rng(seed)
 
     # Membrane potentials (deviation from rest) of the extended cell, one per sweep.
@@ -406,7 +407,9 @@ def simulate_recording(
         event_times.append([float(x * 1e3) for x in times])
         event_amps.append([float(x * 1e3) for x in sizes])
         signal = signal + events
-        noise = _apply_filter(ba, rng.normal(0.0, white_sd, n)) if noise_sd_V > 0 else 0.0
+        # the amplifier's white noise through its analog filter, then sampled
+        noise = (_apply_filter(ba_fine, rng.normal(0.0, white_sd, n * up))[::up]
+                 if noise_sd_V > 0 else 0.0)
         voltage = v_rest_V + _apply_filter(ba, signal) + noise
         if membrane is None:
             voltage += amp * unit_response
