@@ -90,10 +90,10 @@ def _is_candidate(path: Path, root: Path, exclude: set[Path]) -> bool:
         return False
     if path.resolve() in exclude:
         return False
-    return not (path.suffix.lower() in (".csv", ".tsv") and _is_own_csv(path))
+    return not (path.suffix.lower() in (".csv", ".tsv") and is_own_csv(path))
 
 
-def _is_own_csv(path: Path) -> bool:
+def is_own_csv(path: Path) -> bool:
     """True for sheets and metadata tables: their header starts with one of our names."""
     try:
         with open(path, encoding="utf-8-sig", errors="replace") as f:
