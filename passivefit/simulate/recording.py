@@ -138,6 +138,47 @@ def _electrode_lag(current: np.ndarray, dt_s: float, tau_s: float) -> np.ndarray
     return lfilter([0.0, 1.0 - a], [1.0, -a], current)
 
 
+def noiseless_sweep(
+    cell: BallStick,
+    protocol: StepProtocol | PulseProtocol,
+    *,
+    amplitude_A: float,
+    sample_rate_hz: float,
+    sweep_duration_s: float,
+    filter_hz: float | None = None,
+    bridge_ohm: float = 0.0,
+    electrode_tau_s: float = 50e-6,
+) -> np.ndarray:
+    """The recorded voltage deviation of one sweep without noise, drift, hum or events.
+
+    The same chain as :func:`simulate_recording` (cell response, residual bridge through
+    the electrode lag, the Bessel filter), for a current of `amplitude_A` (A) during the
+    protocol's step or pulse; in V, from the resting potential.
+    """
+    n = int(round(sweep_duration_s * sample_rate_hz))
+    dt = 1.0 / sample_rate_hz
+    unit = _unit_command(protocol, n, sample_rate_hz)
+    v = cell.soma_response(unit, dt) + bridge_ohm * _electrode_lag(unit, dt, electrode_tau_s)
+    ba = None if filter_hz is None else _bessel(filter_hz, sample_rate_hz)
+    return amplitude_A * _apply_filter(ba, v)
+
+
+def filtered_noise_acf(filter_hz: float | None, sample_rate_hz: float, lags: int) -> np.ndarray:
+    """Autocorrelation (lag 0 = 1) of white noise after the recording's Bessel filter, at
+    lags 0..`lags` samples (the noise model of :func:`simulate_recording`)."""
+    if filter_hz is None:
+        out = np.zeros(lags + 1)
+        out[0] = 1.0
+        return out
+    from scipy.signal import lfilter
+
+    impulse = np.zeros(max(4096, 8 * (lags + 1)))
+    impulse[0] = 1.0
+    h = lfilter(*_bessel(filter_hz, sample_rate_hz), impulse)
+    acf = np.array([np.dot(h[: h.size - k], h[k:]) for k in range(lags + 1)])
+    return acf / acf[0]
+
+
 def _events(
     rng: np.random.Generator,
     rate_per_s: float,
