@@ -336,7 +336,7 @@ class DesignAdvice:
                          "amplitude_rms_pA": _round(p.amplitude_A * 1e12, 5),
                          "sample_rate_hz": p.sample_rate_hz,
                          "filter_hz": p.filter_hz,
-                         "fit_start_ms": _round(p.fit_start_s * 1e3, 4)},
+                         S.FIT_START.key: S.FIT_START.display(p.fit_start_s)},
             "values": [b.to_dict() for b in self.bounds],
             "changes": [c.to_dict() for c in self.changes],
             "max_sweeps": self.max_sweeps,
