@@ -237,3 +237,29 @@ def test_bad_values_are_one_line_errors(bad, match):
             **bad}
     with pytest.raises(ValueError, match=match):
         advise(**args)
+
+
+def test_text_lines_say_the_advice(advice):
+    lines = design.text_lines(advice)
+    assert lines[0].split()[:3] == ["value", "now", "bound"]
+    assert any(line.startswith("τ0") and " 40" in line for line in lines)   # sweeps needed
+    assert any("brief pulses instead of steps" in line for line in lines)
+    assert advice.advice in lines and any(line.startswith("Assumptions:") for line in lines)
+
+
+@pytest.mark.gui
+def test_design_panel_shows_the_advice(qtbot, advice):
+    pytest.importorskip("pytestqt")
+    from passivefit.gui.design_panel import DesignPanel
+
+    panel = DesignPanel()
+    qtbot.addWidget(panel)
+    assert panel.values.rowCount() == 0 and "No advice" in panel.advice.text()
+    panel.show_advice(advice)
+    assert panel.values.rowCount() == len(design.NAMES)
+    assert panel.values.item(0, 0).text() == "τ0 (ms)"
+    assert panel.values.item(0, 6).text() == "40"
+    assert panel.changes.rowCount() == len(advice.changes)
+    assert panel.advice.text() == advice.advice
+    panel.show_advice(None)
+    assert panel.values.rowCount() == 0
