@@ -267,7 +267,10 @@ class Bound:
     target_ci : float or None
         The target half-width (absolute).
     sweeps_needed : int or None
-        Sweeps of this protocol for the target (None: no target, or more than the limit).
+        Sweeps of this protocol for the target, from the achieved CI when there is one,
+        else from the bound (None: no target, or more than the limit).
+    sweeps_needed_bound : int or None
+        The same from the bound alone: what an efficient estimator would need.
     note : str
         The answer in words.
     """
@@ -280,6 +283,7 @@ class Bound:
     target_ci: float | None
     sweeps_needed: int | None
     note: str
+    sweeps_needed_bound: int | None = None
 
     def to_dict(self) -> dict:
         q = QUANTITY[self.name]
@@ -288,7 +292,8 @@ class Bound:
                 "achieved_ci95": _shown(q, self.achieved_ci),
                 "efficiency": _round(self.efficiency, 3),
                 "target_ci95": _shown(q, self.target_ci),
-                "sweeps_needed": self.sweeps_needed, "note": self.note}
+                "sweeps_needed": self.sweeps_needed,
+                "sweeps_needed_bound": self.sweeps_needed_bound, "note": self.note}
 
 
 @dataclass(frozen=True)
@@ -476,7 +481,7 @@ def advise(*, tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge_ohm: 
     for name, value in (("tau0_s", tau0_s), ("L", L), ("rho", rho), ("r_in_ohm", r_in_ohm),
                         ("sweep_s", sweep_s), ("sample_rate_hz", sample_rate_hz),
                         ("noise_sd_V", noise_sd_V), ("duration_s", duration_s)):
-        if not (math.isfinite(value) and value > 0):
+        if not (isinstance(value, int | float) and math.isfinite(value) and value > 0):
             raise ValueError(f"`{name}` must be a finite positive number, not {value!r}")
     if kind not in ("step", "pulse"):
         raise ValueError(f"`kind` must be 'step' or 'pulse', not {kind!r}")
@@ -528,7 +533,19 @@ def _bound(name: str, value: float, crlb_ci: float, achieved: float | None,
                     f"({needed - n} more)")
     elif not math.isfinite(crlb_ci):
         note = f"{q.label} is not resolved by this protocol"
-    return Bound(name, value, crlb_ci, achieved, efficiency, target, needed, note)
+    if name == "r_in":
+        note = ("the bound of R_in counts the bridge as unknown; an R_in that takes the bridge "
+                "as balanced can be narrower")
+    return Bound(name, value, crlb_ci, achieved, efficiency, target, needed, note,
+                 _needed(n, crlb_ci, target, max_sweeps))
+
+
+def _needed(n: int, ci: float, target: float | None, max_sweeps: int) -> int | None:
+    """Sweeps for a CI of `ci` with `n` sweeps to shrink to `target` (as 1/√n)."""
+    if target is None or not target > 0 or not math.isfinite(ci):
+        return None
+    count = max(float(n), n * (ci / target) ** 2)
+    return None if count > max_sweeps else math.ceil(count - 1e-9)
 
 
 def _changes(cell, bridge_ohm: float, protocol: Protocol, sd: float, now: dict
