@@ -263,3 +263,11 @@ def test_design_panel_shows_the_advice(qtbot, advice):
     assert panel.advice.text() == advice.advice
     panel.show_advice(None)
     assert panel.values.rowCount() == 0
+
+
+def test_protocol_changes_can_be_left_out(advice):
+    quick = advise(**CELL, **STEPS, amplitudes_A=[-50e-12, -30e-12], noise_sd_V=0.3e-3,
+                   n_sweeps=10, achieved_ci={"tau0": 0.8e-3, "L": 0.05},
+                   protocol_changes=False)
+    assert quick.changes == () and quick.to_dict()["changes"] == []
+    assert quick.bounds == advice.bounds
