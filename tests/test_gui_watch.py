@@ -89,3 +89,32 @@ def test_a_missing_folder_is_said_in_the_window(make_window, tmp_path):
     window = make_window()
     assert not window.watch_folder(tmp_path / "nowhere")
     assert "no such folder" in window.last_error and not window.watching
+
+
+def test_a_recording_that_cannot_be_opened_does_not_stop_the_watch(qtbot, make_window, folder,
+                                                                    recording_file):
+    """The sample ABF has no command waveform: without a person to type the step it
+    cannot be opened; the watch says so and opens the next recording."""
+    repo = Path(__file__).resolve().parent.parent
+    window = make_window(Settings(bootstrap=0))
+    assert window.watch_folder(folder, settle_s=0.2, interval_s=0.05)
+    shutil.copy(repo / "sample_recordings" / "LOL-2026-11-12-c3_CA3.abf", folder / "c3.abf")
+    qtbot.waitUntil(lambda: "no step found" in window.last_error, timeout=15_000)
+    assert window.watching and window.state is None
+    shutil.copy(recording_file, folder / "c4.csv")
+    qtbot.waitUntil(lambda: _shown(window) == "c4.csv", timeout=15_000)
+    qtbot.waitUntil(lambda: window.idle, timeout=60_000)
+    assert window.state.result is not None
+
+
+def test_no_second_poll_while_one_runs(make_window, folder):
+    window = make_window()
+    assert window.watch_folder(folder, settle_s=0.2)
+    calls = []
+    window._poll_watch_once = lambda: calls.append(1)
+    window._watch_polling = True             # as while a dialog of a poll is open
+    window._poll_watch()
+    assert calls == []
+    window._watch_polling = False
+    window._poll_watch()
+    assert calls == [1]

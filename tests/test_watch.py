@@ -260,3 +260,30 @@ def test_watch_command_analyses_files_it_and_stops_on_ctrl_c(recording_file, fol
     finally:
         database.close()
     assert [Path(r.recording["path"]).name for r in rows] == ["new.csv"]
+
+
+def test_a_file_being_written_when_the_watch_starts_counts_as_new(recording_file, folder):
+    clock = FakeClock()
+    content = recording_file.read_bytes()
+    target = folder / "started.csv"
+    target.write_bytes(content[:2000])
+    watcher = FolderWatcher(folder, settle_s=1.0, clock=clock)   # existing: ignored …
+    clock.now = 2.0
+    assert watcher.poll() == []
+    with open(target, "ab") as f:                                 # … until it changes
+        f.write(content[2000:])
+    assert watcher.poll() == []
+    clock.now = 3.5
+    found = watcher.poll()
+    assert [f.path.name for f in found] == ["started.csv"]
+    assert len(found[0].recording.sweeps) == 8
+
+
+@pytest.mark.parametrize("extra, words", [(["--db", "/proc/no-such-folder/x.db"], "--db"),
+                                          (["--settle", "-1"], "--settle")])
+def test_bad_watch_options_are_one_line_errors(folder, capsys, extra, words):
+    from passivefit.cli import main
+
+    assert main(["watch", str(folder), "--no-window", *extra]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and err.startswith("passivefit: error: ") and words in err

@@ -44,24 +44,40 @@ def run(args: argparse.Namespace) -> int:
         if not (math.isfinite(value) and 0 <= value <= 3600):
             raise UsageError(f"`{option}` takes 0 to 3600 seconds, not {value:g}")
     settings = settings_from(args)
-    # The folder is checked first: a bad folder is one line and exit 2 (WatchError).
+    # The folder and the database are checked first: one line and exit 2 (WatchError,
+    # StoreError or the database library's error, through cli.main).
     FolderWatcher(args.folder, settle_s=args.settle)
-    if not args.no_window:
-        window_status = _run_window(args, settings)
-        if window_status is not None:
-            return window_status
     database = None
     if args.db:
         from passivefit.store.database import open_database
 
         database = open_database(args.db, create=True)
-    watcher = FolderWatcher(args.folder, settle_s=args.settle,
-                            include_existing=args.include_existing)
     try:
+        if not args.no_window:
+            if database is not None:
+                database.close()
+                database = None
+            window_status = _run_window(args, settings)
+            if window_status is not None:
+                return window_status
+            if args.db:
+                database = open_database(args.db, create=True)
+        watcher = FolderWatcher(args.folder, settle_s=args.settle,
+                                include_existing=args.include_existing,
+                                loader=_loader(settings))
         return _loop(watcher, settings, database, args.poll)
     finally:
         if database is not None:
             database.close()
+
+
+def _loader(settings):
+    def load_one(path):
+        from passivefit.io import load
+
+        return load(path, channel=settings.reader_channel)
+
+    return load_one
 
 
 def _run_window(args: argparse.Namespace, settings) -> int | None:
@@ -99,21 +115,22 @@ def _loop(watcher, settings, database, poll_s: float) -> int:
 
     print(f"watching {watcher.folder} for finished recordings (Ctrl-C ends)",
           file=sys.stderr, flush=True)
-    analysed = 0
+    analysed = [0]      # counted before its line is printed: Ctrl-C may come at any point
     try:
         while True:
             for item in watcher.poll():
-                analysed += _handle(item, settings, database)
+                _handle(item, settings, database, analysed)
             time.sleep(poll_s)
     except KeyboardInterrupt:
-        print(f"watch: stopped; {analysed} recording{'s' if analysed != 1 else ''} analysed",
+        n = analysed[0]
+        print(f"watch: stopped; {n} recording{'s' if n != 1 else ''} analysed",
               file=sys.stderr, flush=True)
     return 0
 
 
-def _handle(item, settings, database) -> int:
-    """Analyse (and file) one finished recording; 1 when analysed. Problems are one line
-    each and the watch goes on."""
+def _handle(item, settings, database, analysed: list[int]) -> None:
+    """Analyse (and file) one finished recording, counting it in `analysed`. Problems are
+    one line each and the watch goes on."""
     import time
 
     from passivefit.cli import error_line, os_reason
@@ -123,7 +140,7 @@ def _handle(item, settings, database) -> int:
 
     if isinstance(item, Unreadable):
         print(error_line(str(item.path), item.reason), file=sys.stderr, flush=True)
-        return 0
+        return
     from passivefit.analysis import analyze
 
     try:
@@ -132,11 +149,11 @@ def _handle(item, settings, database) -> int:
         check_fitted(str(item.path), data, settings)
     except LoadError as exc:
         print(error_line(exc.path, exc.reason), file=sys.stderr, flush=True)
-        return 0
+        return
     except Exception as exc:  # noqa: BLE001 - one bad file must not end the watch
         print(error_line(str(item.path), f"analysis failed ({type(exc).__name__}: {exc})"),
               file=sys.stderr, flush=True)
-        return 0
+        return
     line = f"{time.strftime('%H:%M:%S')}  {summary_line(item.path, data)}"
     if database is not None:
         try:
@@ -148,5 +165,5 @@ def _handle(item, settings, database) -> int:
             reason = str(getattr(exc, "orig", None) or exc).strip().splitlines()
             print(error_line(str(item.path), f"not filed: {reason[0] if reason else exc}"),
                   file=sys.stderr)
+    analysed[0] += 1
     print(line, flush=True)
-    return 1

@@ -62,8 +62,15 @@ class WatchActions:
         return self.watcher is not None
 
     def _poll_watch(self) -> None:
-        if self.watcher is None:
-            return
+        if self.watcher is None or getattr(self, "_watch_polling", False):
+            return      # a dialog opened from here runs its own loop: no second poll inside
+        self._watch_polling = True
+        try:
+            self._poll_watch_once()
+        finally:
+            self._watch_polling = False
+
+    def _poll_watch_once(self) -> None:
         try:
             found = self.watcher.poll()
         except WatchError as exc:
