@@ -271,3 +271,11 @@ def test_protocol_changes_can_be_left_out(advice):
                    protocol_changes=False)
     assert quick.changes == () and quick.to_dict()["changes"] == []
     assert quick.bounds == advice.bounds
+
+
+def test_a_parameter_without_information_leaves_the_others_finite():
+    fisher = np.diag([4.0, 0.0, 9.0])
+    fisher[0, 2] = fisher[2, 0] = 1.0
+    cov = covariance(fisher)
+    assert np.isinf(cov[1, 1])
+    assert cov[[0, 2]][:, [0, 2]] == pytest.approx(np.linalg.inv([[4.0, 1.0], [1.0, 9.0]]))

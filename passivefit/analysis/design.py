@@ -181,17 +181,20 @@ def fisher_information(jac: np.ndarray, sigma: float, acf: Sequence[float] | Non
 
 
 def covariance(fisher: np.ndarray) -> np.ndarray:
-    """The CRLB covariance F⁻¹; directions with no information get an infinite variance."""
+    """The CRLB covariance F⁻¹. A direction with no information (an eigenvalue of the
+    scaled F below 1e-12 of the largest) gives an infinite variance to the parameters
+    that take part in it (loading above 1e-3); the others keep finite values."""
     scale = np.sqrt(np.clip(np.diag(fisher), 1e-300, None))
     f = fisher / np.outer(scale, scale)
     w, v = np.linalg.eigh(f)
-    cov = np.zeros_like(f)
     tiny = w.max() * 1e-12 if w.size and w.max() > 0 else np.inf
-    for lam, vec in zip(w, v.T, strict=True):
-        cov += np.outer(vec, vec) / lam if lam > tiny else np.outer(vec, vec) * np.inf
-    with np.errstate(invalid="ignore"):
-        cov = cov / np.outer(scale, scale)
-    return np.where(np.isnan(cov), np.inf, cov)
+    good = w > tiny
+    cov = (v[:, good] / w[good]) @ v[:, good].T
+    lost = np.any(np.abs(v[:, ~good]) > 1e-3, axis=1)
+    cov = cov / np.outer(scale, scale)
+    cov[lost, :] = np.inf
+    cov[:, lost] = np.inf
+    return cov
 
 
 def profile_out(fisher: np.ndarray, nuisance: Sequence[int]) -> np.ndarray:
