@@ -37,7 +37,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -329,7 +329,6 @@ class DesignAdvice:
     advice: str
     assumptions: str
     max_sweeps: int = MAX_SWEEPS
-    whitened: bool = field(default=True)
 
     def bound(self, name: str) -> Bound:
         return next(b for b in self.bounds if b.name == name)
