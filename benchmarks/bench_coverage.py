@@ -59,7 +59,7 @@ def one(c: dict) -> dict:
         rec.metadata["filter_hz"] = None
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        out = analyze(rec, Settings()).cell.to_dict()
+        out = analyze(rec, Settings(), advise=False).cell.to_dict()
     truth = {"τ0": c["tau_s"] * 1e3, "τ1": cell.taus(2)[1] * 1e3, "L": c["L"], "ρ": c["rho"],
              "R_in": c["r_in"] / 1e6, "bridge": c["bridge"] / 1e6}
     got = {}

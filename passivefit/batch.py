@@ -90,10 +90,10 @@ def _is_candidate(path: Path, root: Path, exclude: set[Path]) -> bool:
         return False
     if path.resolve() in exclude:
         return False
-    return not (path.suffix.lower() in (".csv", ".tsv") and _is_own_csv(path))
+    return not (path.suffix.lower() in (".csv", ".tsv") and is_own_csv(path))
 
 
-def _is_own_csv(path: Path) -> bool:
+def is_own_csv(path: Path) -> bool:
     """True for sheets and metadata tables: their header starts with one of our names."""
     try:
         with open(path, encoding="utf-8-sig", errors="replace") as f:
@@ -168,7 +168,7 @@ def analyse_file(path: str, settings, reports: str | None = None) -> FileOutcome
         from passivefit.io.recording import LoadError
 
         recording = load(path, channel=settings.reader_channel)
-        analysis = analyze(recording, settings)
+        analysis = analyze(recording, settings, advise=False)  # advice is for the rig
         outcome = FileOutcome(path, analysis.to_dict(), _plain_metadata(recording.metadata))
     except LoadError as exc:
         return FileOutcome(path, error=exc.reason)

@@ -21,6 +21,7 @@ ROOT = PACKAGE.parent
 LAYERS = (
     ("cli",),
     ("gui",),
+    ("watch",),
     ("batch",),
     ("export", "store", "samples"),
     ("analysis",),

@@ -57,8 +57,11 @@ from passivefit.model.settings import Settings
 MS, MOHM = 1e-3, 1e6
 
 
-def analyze(recording: Recording, settings: Settings | None = None) -> RecordingResult:
-    """Fit every sweep and the cell; the one entry point for CLI, GUI, batch and tests."""
+def analyze(recording: Recording, settings: Settings | None = None, *,
+            advise: bool = True) -> RecordingResult:
+    """Fit every sweep and the cell; the one entry point for CLI, GUI, batch and tests.
+
+    With `advise`, also what to record next (the `design` block: analysis.design)."""
     settings = settings or Settings()
     fs = recording.sample_rate_hz
     steps = sweep_steps(recording, settings)
@@ -98,13 +101,14 @@ def analyze(recording: Recording, settings: Settings | None = None) -> Recording
                           _chain(recording, settings, chosen), sagging=sag_end is not None)
     cell.values.update(stability)
     cell.flags[:0] = [*recording.flags, *active, *unstable]
+    advice = _design(cell, chosen, recording.sample_rate_hz) if advise else None
     return RecordingResult(
         source={"path": recording.path, "sha256": recording.sha256, "format": recording.format,
                 "sweep_count": len(recording.sweeps)},
         settings=settings, sweeps=cell.sweeps, cell=CellResult.from_si(cell.values),
         flags=tuple(cell.flags), effective_settings=effective, protocol=cell.protocol,
         average=cell.average, cable_fit=cell.cable_fit, cell_fit=cell.cell_fit,
-        peel=cell.peel, scan=cell.scan, vi=cell.vi)
+        peel=cell.peel, scan=cell.scan, vi=cell.vi, design=advice)
 
 
 def _fitted_sweeps(chosen, screened: list[SweepFit], voltages: dict[int, np.ndarray],
@@ -156,6 +160,38 @@ def _chain(recording: Recording, settings: Settings, chosen) -> Chain:
 CORNER_GIVEN = "file or --filter-hz"
 CORNER_FROM_NOISE = "estimated from the baseline noise spectrum"
 CORNER_FROM_EDGE = "estimated from the step edge"
+
+
+def _design(cell: CellSummary, chosen, fs: float):
+    """What to record next (analysis.design.advise) from the cell's values and the
+    protocol as recorded; None when the cell has no cable model to bound."""
+    from passivefit.analysis import design
+
+    v, bs, avg = cell.values, cell.cable_fit, cell.average
+    used = [f for f in cell.sweeps if f.accepted]
+    if bs is None or avg is None or not used or not v.get(S.R_IN) or S.TAU0 not in v:
+        return None
+    step = avg.step
+    # the noise of baselines without events (they are cut out of the fits as well)
+    clean = {f.index for f in used if not any(a < f.step.onset / fs for a, _ in f.masked_s)}
+    baselines = [s.voltage[st.baseline_start:st.onset] for s, st in chosen
+                 if st is not None and s.index in clean]
+    if not baselines:
+        return None
+    noise_sd, acf = design.noise_autocorrelation(baselines)
+    achieved = {"tau0": v.get(S.TAU0_CI), "tau1": v.get(S.TAU1_CI), "L": v.get(S.L_CI),
+                "rho": v.get(S.RHO_CI), "r_in": v.get(S.R_IN_CI), "bridge": v.get(S.BRIDGE_CI)}
+    try:
+        return design.advise(
+            tau0_s=v[S.TAU0], L=v.get(S.L_BS) or bs.L, rho=v.get(S.RHO) or bs.rho,
+            r_in_ohm=v[S.R_IN], bridge_ohm=v[S.BRIDGE] if v.get(S.BRIDGE_APPLIED) else 0.0,
+            kind=step.kind, onset_s=step.onset / fs, duration_s=step.duration_s,
+            amplitudes_A=[f.step.amplitude_A for f in used], sweep_s=avg.v_V.size / fs,
+            sample_rate_hz=fs, filter_hz=bs.corner_hz, noise_sd_V=noise_sd, noise_acf=acf,
+            n_sweeps=len(used), achieved_ci=achieved, fit_start_s=avg.fit_start_s,
+            electrode_tau_s=bs.lag_s if np.isfinite(bs.lag_s) else 50e-6)
+    except (ValueError, np.linalg.LinAlgError):
+        return None
 
 
 def _metadata_float(recording: Recording, key: str) -> float | None:

@@ -1,4 +1,4 @@
-"""The `passivefit` command: analyze, batch, gui, db, demo.
+"""The `passivefit` command: analyze, batch, gui, db, watch, demo.
 
 Every command lives in this package, and only here are errors turned into exit codes and
 one-line messages: the rest of passivefit raises domain errors (`LoadError`,
@@ -50,6 +50,8 @@ COMMANDS = [
     ("gui", "passivefit.cli.gui", "open the review window on recordings"),
     ("batch", "passivefit.cli.batch", "analyse folders of recordings into a cell database"),
     ("db", "passivefit.cli.db", "list, export and plot the cell database"),
+    ("watch", "passivefit.cli.watch", "analyse each recording as the acquisition program "
+     "finishes it"),
     ("demo", "passivefit.cli.demo", "write the simulated sample recordings to a folder"),
 ]
 

@@ -31,7 +31,7 @@ last ones. Segments may share a scale (``group``), e.g. the onset and the decay 
 step. Binned data (``expfit.decimate_tail``) are modelled as exact bin means when the
 sampling interval is given.
 
-The measurement chain is part of the model (docs/references.md §10): a charge from a known
+The measurement chain is part of the model (docs/references.md §11): a charge from a known
 ``baseline`` adds the bridge jump ``J (1 - exp(-t/lag))`` (a residual series resistance seen
 through the electrode's first-order lag; J is linear, the lag nonlinear), and the amplifier's
 4-pole Bessel low-pass filters the whole response exactly (:mod:`passivefit.core.lowpass`),
@@ -1047,6 +1047,8 @@ def _profile(prob: _Problem, theta: np.ndarray, j: int, rss: float, sigma2: floa
             if zv < target and v == bound:
                 break  # not determined on this side
             (v0, z0), (v1, z1) = points[-2], points[-1]
+            if v1 == v0:
+                break
             slope = (z1 - z0) / (v1 - v0) if z1 != z0 else 0.0
             jump = (target - z1) / slope if slope * sign > 0 else 3.0 * (v1 - theta[j])
             jump = float(np.clip(jump, -3 * abs(v1 - theta[j]) - 0.05,

@@ -7,7 +7,7 @@ to a unit exponential that starts at an edge, ``x(t) = exp(-lam t)`` for ``t > 0
 
     y(t) = H(-lam) exp(-lam t) + sum_k c_k / (p_k + lam) exp(p_k t),
 
-with ``c_k`` the residues of ``H`` at its poles (docs/references.md §10). ``y(0) = 0``: the
+with ``c_k`` the residues of ``H`` at its poles (docs/references.md §11). ``y(0) = 0``: the
 filtered response starts continuously at the edge. A step is the case ``lam = 0``. The
 membrane response, the bridge jump and its electrode lag are all sums of such
 exponentials, so the filtered model is exact — no time shift stands in for the filter.

@@ -101,6 +101,46 @@ def run_window(paths, settings, snapshot: str | Path | None = None) -> int:
     return status
 
 
+def run_watch_window(folder, settings, *, settle_s: float, include_existing: bool = False,
+                     database: str | None = None) -> int:
+    """Open the window and watch `folder` (``passivefit watch`` without ``--no-window``).
+
+    Ctrl-C in the terminal closes the window cleanly. Raises `WindowError` when the
+    folder cannot be watched.
+    """
+    import signal
+
+    from passivefit.gui.window import ReviewWindow
+
+    app = make_app()
+    window = ReviewWindow(settings)
+    if not _start_watch(window, folder, settle_s, include_existing, database):
+        _dispose(app, window)
+        raise WindowError(window.last_error)
+    window.show()
+    previous = signal.signal(signal.SIGINT, lambda *_: app.quit())
+    wake = QtCore.QTimer()      # lets Python see Ctrl-C while Qt's loop runs
+    wake.timeout.connect(lambda: None)
+    wake.start(200)
+    try:
+        status = app.exec()
+    finally:
+        wake.stop()
+        signal.signal(signal.SIGINT, previous)
+        _dispose(app, window)
+    return status
+
+
+def _start_watch(window, folder, settle_s: float, include_existing: bool,
+                 database: str | None) -> bool:
+    interactive, window.interactive = window.interactive, False   # no dialog before show
+    try:
+        return window.watch_folder(folder, settle_s=settle_s, include_existing=include_existing,
+                                   database=database)
+    finally:
+        window.interactive = interactive
+
+
 def _dispose(app: QtWidgets.QApplication, window: QtWidgets.QWidget) -> None:
     """Close and delete the window before Python exits.
 

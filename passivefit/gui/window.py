@@ -28,6 +28,7 @@ from passivefit.gui.panels import (
     status_sentence,
 )
 from passivefit.gui.state import WINDOW_NAMES, ReviewState, expand_paths
+from passivefit.gui.watching import WatchActions
 from passivefit.gui.worker import AnalysisRunner
 from passivefit.io.recording import LoadError, StepSpec
 from passivefit.model.settings import Settings
@@ -46,7 +47,8 @@ def fitting_size(width: int, height: int) -> tuple[int, int]:
     return min(width, free.width()), min(height, free.height())
 
 
-class ReviewWindow(WindowLayout, OutputActions, FileActions, QtWidgets.QMainWindow):
+class ReviewWindow(WindowLayout, OutputActions, FileActions, WatchActions,
+                   QtWidgets.QMainWindow):
     """Review recordings one by one: check fits, move windows, keep or reject sweeps.
 
     Parameters

@@ -221,6 +221,7 @@ class RecordingResult:
     protocol: str = "step"
     effective_settings: Settings | None = None  # settings with the automatic fit start filled in
     cable_fit: object | None = None         # core.cablefit.BallStickFit of the combined response
+    design: object | None = None            # analysis.design.DesignAdvice: what to record next
 
     def to_dict(self) -> dict:
         return {
@@ -230,4 +231,5 @@ class RecordingResult:
             "cell": self.cell.to_dict(),
             "sweeps": [s.to_dict() for s in self.sweeps],
             "flags": [f.to_dict() for f in self.flags],
+            "design": None if self.design is None else self.design.to_dict(),
         }

@@ -67,8 +67,8 @@ class Settings:
     bootstrap : int
         Resamples over sweeps for the cell-level CIs (0 = Jacobian CIs only).
     filter_hz : float or None
-        Corner of the amplifier's 4-pole Bessel low-pass, in Hz; its delay (0.336/fc)
-        shifts time zero of the cable-model fit. None: from the file's metadata, else 0.
+        Corner of the amplifier's 4-pole Bessel low-pass, in Hz, which the cable-model fit
+        applies. None: from the file's metadata, else estimated.
     area_um2 : float or None
         Total membrane area of the cell, in µm², when known (e.g. from a reconstruction):
         gives the specific capacitance Cm = C_total/area and Rm = τ0/Cm.

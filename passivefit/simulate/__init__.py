@@ -23,6 +23,8 @@ from passivefit.simulate.cell import LAB_NAME, BallStick, compartmental_modes
 from passivefit.simulate.recording import (
     PulseProtocol,
     StepProtocol,
+    filtered_noise_acf,
+    noiseless_sweep,
     simulate_recording,
     truth_to_json,
 )
@@ -36,6 +38,8 @@ __all__ = [
     "Spiking",
     "StepProtocol",
     "compartmental_modes",
+    "filtered_noise_acf",
+    "noiseless_sweep",
     "simulate_recording",
     "truth_to_json",
 ]

@@ -142,6 +142,63 @@ def _electrode_lag(current: np.ndarray, dt_s: float, tau_s: float) -> np.ndarray
     return lfilter([0.0, 1.0 - a], [1.0, -a], current)
 
 
+def noiseless_sweep(
+    cell: BallStick,
+    protocol: StepProtocol | PulseProtocol,
+    *,
+    amplitude_A: float,
+    sample_rate_hz: float,
+    sweep_duration_s: float,
+    filter_hz: float | None = None,
+    bridge_ohm: float = 0.0,
+    electrode_tau_s: float = 50e-6,
+    oversample: int = 0,
+) -> np.ndarray:
+    """The recorded voltage deviation of one sweep without noise, drift, hum or events.
+
+    The same chain as :func:`simulate_recording` (cell response, residual bridge through
+    the electrode lag, the Bessel filter), for a current of `amplitude_A` (A) during the
+    protocol's step or pulse; in V, from the resting potential. `oversample` > 0 filters
+    at that many times the rate instead of OVERSAMPLE (faster, the corner less exact).
+    """
+    n = int(round(sweep_duration_s * sample_rate_hz))
+    unit = _unit_command(protocol, n, sample_rate_hz)
+    return amplitude_A * _passive_unit(cell, unit, sample_rate_hz, filter_hz, bridge_ohm,
+                                       electrode_tau_s, oversample or OVERSAMPLE)
+
+
+def _passive_unit(cell: BallStick, unit: np.ndarray, sample_rate_hz: float,
+                  filter_hz: float | None, bridge_ohm: float, electrode_tau_s: float,
+                  oversample: int = 0) -> np.ndarray:
+    """The recorded response (V) to the unit command `unit`: the cell, the bridge through
+    the electrode lag and the filter, computed at OVERSAMPLE times the rate, where the
+    digitised filter is the analog one within 0.2 % (the bilinear map at the rate itself
+    would move a 5 kHz corner at 20 kHz down by 15 %), then sampled."""
+    up = 1 if filter_hz is None else oversample or OVERSAMPLE
+    fine, dt = np.repeat(unit, up), 1.0 / (up * sample_rate_hz)
+    v = cell.soma_response(fine, dt) + bridge_ohm * _electrode_lag(fine, dt, electrode_tau_s)
+    ba = None if filter_hz is None else _bessel(filter_hz, up * sample_rate_hz)
+    return _apply_filter(ba, v)[::up]
+
+
+def filtered_noise_acf(filter_hz: float | None, sample_rate_hz: float, lags: int) -> np.ndarray:
+    """Autocorrelation (lag 0 = 1) of white noise after the recording's Bessel filter, at
+    lags 0..`lags` samples (the noise model of :func:`simulate_recording`: the analog
+    filter at OVERSAMPLE times the rate, then sampled)."""
+    if filter_hz is None:
+        out = np.zeros(lags + 1)
+        out[0] = 1.0
+        return out
+    from scipy.signal import lfilter
+
+    impulse = np.zeros(OVERSAMPLE * max(4096, 8 * (lags + 1)))
+    impulse[0] = 1.0
+    h = lfilter(*_bessel(filter_hz, OVERSAMPLE * sample_rate_hz), impulse)
+    power = np.abs(np.fft.rfft(h, 2 * h.size)) ** 2      # autocorrelation by FFT
+    acf = np.fft.irfft(power)[: OVERSAMPLE * (lags + 1): OVERSAMPLE]
+    return acf / acf[0]
+
+
 def _events(
     rng: np.random.Generator,
     rate_per_s: float,
@@ -345,17 +402,10 @@ def simulate_recording(
     if not unit.any():
         raise ValueError(f"the {protocol.kind} is shorter than one sample at {sample_rate_hz:g} Hz")
     ba = None if filter_hz is None else _bessel(filter_hz, sample_rate_hz)
-    # the passive response through the filter, computed at OVERSAMPLE times the rate, where
-    # the digitised filter is the analog one within 0.2 % (the bilinear map at the rate
-    # itself would move a 5 kHz corner at 20 kHz down by 15 %)
-    up = 1 if ba is None else OVERSAMPLE
-    fine = np.repeat(unit, up)
+    up = 1 if ba is None else OVERSAMPLE   # noise and passive response: the analog filter
     ba_fine = None if ba is None else _bessel(filter_hz, up * sample_rate_hz)
-    unit_response = _apply_filter(
-        ba_fine,
-        cell.soma_response(fine, dt / up) + bridge_ohm * _electrode_lag(
-            fine, dt / up, electrode_tau_s),
-    )[::up]
+    unit_response = _passive_unit(cell, unit, sample_rate_hz, filter_hz, bridge_ohm,
+                                  electrode_tau_s)
     white_sd = noise_sd_V / _noise_gain(ba_fine)
     rng = np.random.default_rng(seed)
 
