@@ -661,28 +661,29 @@ def _fmt(x: float | None, digits: int = 3) -> str:
     return "—" if x is None or not math.isfinite(x) else f"{x:.{digits}g}"
 
 
-def text_lines(advice: DesignAdvice) -> list[str]:
-    """The advice as plain lines (the PDF report, a terminal): one row per value, the
-    protocol changes, the advice and its assumptions."""
-    data = advice.to_dict()
+def text_lines(advice: DesignAdvice | Mapping) -> list[str]:
+    """The advice (or its JSON `design` block) as plain lines (the PDF report, a
+    terminal): one row per value, the protocol changes, the advice and its assumptions."""
+    data = advice.to_dict() if isinstance(advice, DesignAdvice) else advice
     lines = [f"{'value':<20} {'now':>9} {'bound ±':>9} {'achieved ±':>10} {'effic.':>6} "
              f"{'target ±':>9} {'sweeps':>7}"]
     for row in data["values"]:
         unit = f" {row['unit']}" if row["unit"] else ""
         needed = row["sweeps_needed"]
-        sweeps = "—" if row["target_ci95"] is None else ("> " + str(advice.max_sweeps)
+        sweeps = "—" if row["target_ci95"] is None else (f"> {data['max_sweeps']}"
                                                          if needed is None else str(needed))
         lines.append(f"{(row['label'] + unit)[:20]:<20} {_fmt(row['value'], 4):>9} "
                      f"{_fmt(row['crlb_ci95'], 2):>9} {_fmt(row['achieved_ci95'], 2):>10} "
                      f"{_fmt(row['efficiency'], 2):>6} {_fmt(row['target_ci95'], 2):>9} "
                      f"{sweeps:>7}")
-    lines.append(f"(95 % half-widths for the {advice.n_sweeps} sweeps used; noise sd "
-                 f"{_fmt(advice.noise_sd_V * 1e3, 3)} mV)")
-    lines.append("If the protocol changed (same sweeps): L and ρ intervals narrower by")
-    for change in advice.changes:
-        lines.append(f"  {change.change:<30} L ×{_fmt(change.L_narrower, 2):<5} "
-                     f"ρ ×{_fmt(change.rho_narrower, 2):<5} ({change.detail})")
-    lines += [b.note for b in advice.bounds if b.note]
-    lines.append(advice.advice)
-    lines.append("Assumptions: " + advice.assumptions)
+    lines.append(f"(95 % half-widths for the {data['n_sweeps']} sweeps used; noise sd "
+                 f"{_fmt(data['noise_sd_mV'], 3)} mV)")
+    if data["changes"]:
+        lines.append("If the protocol changed (same sweeps): L and ρ intervals narrower by")
+    for change in data["changes"]:
+        lines.append(f"  {change['change']:<30} L ×{_fmt(change['L_narrower_by'], 2):<5} "
+                     f"ρ ×{_fmt(change['rho_narrower_by'], 2):<5} ({change['detail']})")
+    lines += [row["note"] for row in data["values"] if row["note"]]
+    lines.append(data["advice"])
+    lines.append("Assumptions: " + data["assumptions"])
     return [line for line in lines if line]

@@ -416,6 +416,14 @@ def _numbers_pages(pdf, recording, data: dict, when: datetime) -> None:
                                          zip(body[:half], right, strict=True)]
     for line in lines:
         pages.row([(LEFT, line)], step=0.0105, family="monospace", fontsize=6)
+    if data.get("design"):
+        from passivefit.analysis.design import text_lines
+
+        pages.y -= 0.008
+        pages.title("What to record next")
+        for line in text_lines(data["design"]):
+            for part in textwrap.wrap(line, 150) or [""]:
+                pages.row([(LEFT, part)], step=0.0105, family="monospace", fontsize=6)
     pages.y -= 0.008
     pages.title("Provenance")
     pages.paragraphs(_provenance_lines(data, when), width=118)

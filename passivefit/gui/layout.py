@@ -5,6 +5,7 @@ from __future__ import annotations
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
+from passivefit.gui.design_panel import DesignPanel
 from passivefit.gui.dialogs import SettingsPanel
 from passivefit.gui.panels import (
     CellCard,
@@ -93,6 +94,8 @@ class WindowLayout:
         self.tabs.addTab(self.settings_panel, "Analysis settings")
         self.time_course = TimeCourseView()
         self.tabs.addTab(self.time_course, "Over time")
+        self.design_panel = DesignPanel()
+        self.tabs.addTab(self.design_panel, "Record next")
         right_split = QtWidgets.QSplitter(Qt.Orientation.Vertical)
         for widget in (self.cell, self.notes, self.tabs):
             right_split.addWidget(widget)

@@ -293,7 +293,7 @@ class SemilogView(QtWidgets.QWidget):
         self.plot = new_plot("Semilog", "time from the step edge (ms)", "|V − V∞| (mV)")
         self.plot.setLogMode(x=False, y=True)
         self.legend = self.plot.getPlotItem().addLegend(
-            offset=(-8, 8), labelTextColor=theme.INK,
+            offset=(-8, 8), labelTextColor=theme.INK, labelTextSize="7pt",
             brush=pg.mkBrush(255, 255, 255, 215))      # readable over the late points
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
@@ -326,7 +326,7 @@ class SemilogView(QtWidgets.QWidget):
             y = np.exp(line.intercept_log + line.slope * t) / MV
             colour = STAGE_COLOURS[stage % len(STAGE_COLOURS)]
             self.plot.plot(t / MS, y, pen=pg.mkPen(colour, width=2),
-                           name=f"peel τ{stage} ≈ {-1 / line.slope / MS:.3g} ms (start value)")
+                           name=f"peel τ{stage} {-1 / line.slope / MS:.3g} ms, start value")
         caption = result.cell.tau1_caption()
         if caption and len(peel.lines) > 1:  # the cell's one τ1, from the second line's start
             t = np.linspace(0.0, min(t_end, 2.5 * peel.lines[1].t_end), 100)
@@ -423,7 +423,8 @@ class ScanView(QtWidgets.QWidget):
                 label = (result.cell.tau1_caption() if key == "tau1"
                          else f"cell τ0 {value:.4g} ms")
                 plot.addItem(pg.InfiniteLine(angle=0, pos=value, label=label, labelOpts={
-                    "position": 0.85, "color": theme.EDGE}, pen=pg.mkPen(
+                    "position": 0.02, "anchors": [(0, 1), (0, 1)], "color": theme.EDGE},
+                    pen=pg.mkPen(
                     theme.EDGE, style=QtCore.Qt.PenStyle.DashLine)))
             plot.getPlotItem().getViewBox().autoRange(padding=0.12)
             plot.setXRange(x[0], x[-1], padding=0.08)

@@ -254,6 +254,7 @@ class ReviewWindow(WindowLayout, OutputActions, FileActions, WatchActions,
         self.semilog.show_result(result)
         self.scan.show_result(result)
         self.time_course.show_result(result)
+        self.design_panel.show_advice(result.design if result is not None else None)
         self.vi.show_result(result)
         self.header.show_verdict(result, busy)
         self._show_windows()
