@@ -382,3 +382,52 @@ def test_live_refit_with_the_analysis_settings_gives_the_analysis_values(sample,
     assert moved.taus_s != result.sweeps[0].taus_s
     live = state.refit_sweep()        # the analysis's settings again: its values again
     assert not _same_values(live, state.result_sweep(state.current))
+
+
+@pytest.mark.slow
+def test_analysing_a_folder_shows_its_progress(qtbot, make_window, recording_file, tmp_path):
+    """File › Analyse a folder into the database: the batch runs in the background and the
+    status bar shows files done of total, sweeps per second and time left."""
+    from passivefit.io import load, save
+
+    folder = tmp_path / "folder"
+    folder.mkdir()
+    shutil.copy(recording_file, folder / "a.csv")
+    other = load(recording_file)
+    for sweep in other.sweeps:            # a second cell: other content, not a duplicate
+        sweep.voltage = sweep.voltage + 1e-3
+    save(other, folder / "b.csv")
+    window = make_window()
+    events, labels, values = [], [], []
+    window.folder_runner.progress.connect(events.append)
+    window.folder_runner.progress.connect(
+        lambda _e: (labels.append(window.folder_label.text()),
+                    values.append((window.folder_progress.value(),
+                                   window.folder_progress.maximum()))))
+    db = tmp_path / "cells.sqlite"
+    assert window.analyse_folder(folder, str(db), workers=1)
+    assert window.folder_progress.isVisible()
+    assert not window.analyse_folder(folder, str(db))          # one folder at a time
+    assert "still being analysed" in window.last_error
+    qtbot.waitUntil(lambda: not window.folder_runner.busy, timeout=300_000)
+    assert [e.done for e in events] == [0, 1, 2]
+    assert values == [(0, 2), (1, 2), (2, 2)]
+    assert labels[0].startswith("folder: 0/2 files · — sweeps/s · — left")
+    assert labels[-1].startswith("folder: 2/2 files · ") and "0:00 left" in labels[-1]
+    assert " sweeps/s" in labels[-1] and "— sweeps/s" not in labels[-1]
+    assert not window.folder_progress.isVisible() and window.folder_label.text() == ""
+    assert window.statusBar().currentMessage().startswith("folder analysed: 2 stored (16 sweeps)")
+    from passivefit.store.database import open_database
+
+    database = open_database(str(db), create=False)
+    assert len(database.current_analyses()) == 2
+    database.close()
+
+
+def test_a_folder_that_cannot_be_analysed_is_said_in_one_line(qtbot, make_window, tmp_path):
+    window = make_window()
+    assert window.analyse_folder(tmp_path / "nowhere", str(tmp_path / "c.sqlite"))
+    qtbot.waitUntil(lambda: not window.folder_runner.busy, timeout=60_000)
+    assert window.last_error.startswith("the folder could not be analysed: ")
+    assert "nowhere" in window.last_error and "\n" not in window.last_error
+    assert not window.folder_progress.isVisible()
