@@ -161,8 +161,11 @@ class Recording:
         )
 
         fs = self.sample_rate_hz
+        # the command in the voltage's type: float32 beside 16-bit ADC data (half the
+        # memory; the step's amplitude then reads to 1e-8 relative)
         sweeps = [
-            Sweep(s.index, s.voltage, step.command(s.n_samples, fs, k))
+            Sweep(s.index, s.voltage,
+                  step.command(s.n_samples, fs, k).astype(s.voltage.dtype, copy=False))
             for k, s in enumerate(self.sweeps)
         ]
         user = [find_steps(s.current, fs) for s in sweeps]
