@@ -48,6 +48,13 @@ def wait_idle(app, window) -> None:
         time.sleep(0.01)
 
 
+def settle(app, rounds: int = 5) -> None:
+    """Process pending events (the paints the cell result scheduled) before timing."""
+    for _ in range(rounds):
+        app.processEvents()
+        time.sleep(0.02)
+
+
 class PaintCounter:
     """Counts paint events of widgets (to check that a step really redrew)."""
 
@@ -82,6 +89,7 @@ def main() -> None:
         window.show()
         window.open_paths([path])
         wait_idle(app, window)
+        settle(app)          # the redraws the finished analysis asked for are not the drag's
         state, trace = window.state, window.trace
         samples = state.voltage(state.current).size
         region = trace.regions["fit"]
