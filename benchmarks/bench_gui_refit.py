@@ -1,8 +1,9 @@
 """Live refit in the review window: from a window drag to the redrawn fit.
 
 Run:  .venv/bin/python benchmarks/bench_gui_refit.py
-Target (issue: desktop window): median ≤ 50 ms from the region-change event to the
-redraw, for a sweep of 20,000 samples (1 s at 20 kHz), on one core.
+Target (issue #14): 90th percentile ≤ 35 ms and max ≤ 60 ms from the region-change
+event to the redraw, for a sweep of 20,000 samples (1 s at 20 kHz), on one core (the
+first issue asked for a median ≤ 50 ms).
 
 The window runs offscreen. Each step moves the fit window's start line the way a
 mouse drag does (``sigRegionChanged`` only), which refits the sweep on screen with
@@ -47,6 +48,13 @@ def wait_idle(app, window) -> None:
         time.sleep(0.01)
 
 
+def settle(app, rounds: int = 5) -> None:
+    """Process pending events (the paints the cell result scheduled) before timing."""
+    for _ in range(rounds):
+        app.processEvents()
+        time.sleep(0.02)
+
+
 class PaintCounter:
     """Counts paint events of widgets (to check that a step really redrew)."""
 
@@ -81,6 +89,7 @@ def main() -> None:
         window.show()
         window.open_paths([path])
         wait_idle(app, window)
+        settle(app)          # the redraws the finished analysis asked for are not the drag's
         state, trace = window.state, window.trace
         samples = state.voltage(state.current).size
         region = trace.regions["fit"]
@@ -126,7 +135,8 @@ def main() -> None:
     print("|---|---|---|---|---|")
     q90 = statistics.quantiles(live, n=10)[-1]
     print(f"| drag → sweep refit → redraw, {samples} samples ({N_MOVES} moves) | "
-          f"{median * 1e3:.1f} ms | {q90 * 1e3:.1f} ms | {max(live) * 1e3:.1f} ms | ≤ 50 ms |")
+          f"{median * 1e3:.1f} ms | {q90 * 1e3:.1f} ms | {max(live) * 1e3:.1f} ms | "
+          "p90 ≤ 35 ms, max ≤ 60 ms |")
     print(f"| same, forcing a full repaint of both plots | {statistics.median(full) * 1e3:.1f} ms"
           f" | {statistics.quantiles(full, n=10)[-1] * 1e3:.1f} ms | {max(full) * 1e3:.1f} ms |"
           " |")

@@ -200,33 +200,140 @@ def _plain_metadata(metadata: dict) -> dict:
 
 
 # ---------------------------------------------------------------------------- progress
-class Progress:
-    """A one-line progress bar on a terminal, plain lines otherwise."""
+@dataclass(frozen=True)
+class ProgressEvent:
+    """Where a batch stands after a file (or at its start, with `status` "").
 
-    def __init__(self, total: int, stream=None) -> None:
-        self.total, self.done, self.stream = total, 0, stream or sys.stderr
-        self.tty = self.stream.isatty()
+    Attributes
+    ----------
+    status : str
+        What happened to the file: "stored", "skipped" or "failed"; "" at the start.
+    path, detail : str
+        The file, and what to say about it (the sweeps and values, or why).
+    done, total : int
+        Files finished (any status) and files in the batch.
+    stored, skipped, failed : int
+        Files finished with each status.
+    sweeps : int
+        Sweeps analysed and stored so far.
+    elapsed_s : float
+        Seconds since the batch started.
+    """
+
+    status: str
+    path: str
+    detail: str
+    done: int
+    total: int
+    stored: int
+    skipped: int
+    failed: int
+    sweeps: int
+    elapsed_s: float
+
+    @property
+    def sweeps_per_s(self) -> float | None:
+        """Sweeps analysed per second so far (None before the first)."""
+        return self.sweeps / self.elapsed_s if self.sweeps and self.elapsed_s > 0 else None
+
+    @property
+    def remaining_s(self) -> float | None:
+        """Seconds left, from the time per analysed file so far (None before the first;
+        skipped files take no time and are not counted)."""
+        analysed = self.stored + self.failed
+        if not analysed or self.elapsed_s <= 0:
+            return None
+        return (self.total - self.done) * self.elapsed_s / analysed
+
+    def summary(self) -> str:
+        """One line: files done of total, sweeps per second, time left, counts."""
+        rate = self.sweeps_per_s
+        left = self.remaining_s
+        return (f"{self.done}/{self.total} files · "
+                f"{'—' if rate is None else f'{rate:.1f}'} sweeps/s · "
+                f"{'—' if left is None else clock_time(left)} left · "
+                f"stored {self.stored}, skipped {self.skipped}, failed {self.failed}")
+
+
+def clock_time(seconds: float) -> str:
+    """Seconds as m:ss, or h:mm:ss from an hour on."""
+    whole = int(round(max(seconds, 0.0)))
+    hours, rest = divmod(whole, 3600)
+    minutes, secs = divmod(rest, 60)
+    return f"{hours}:{minutes:02d}:{secs:02d}" if hours else f"{minutes}:{secs:02d}"
+
+
+class Progress:
+    """Counts a batch's files and sweeps and passes a :class:`ProgressEvent` to
+    `callback` after each file (and one at the start).
+
+    The default callback is a :class:`ConsoleProgress` on `stream` (stderr): one
+    updating line on a terminal, plain lines otherwise.
+    """
+
+    def __init__(self, total: int, callback=None, *, stream=None, clock=time.monotonic) -> None:
+        self.total, self.done, self.sweeps = total, 0, 0
+        self.callback = callback if callback is not None else ConsoleProgress(stream)
+        self.clock = clock
+        self.started = clock()
         self.counts = {"stored": 0, "skipped": 0, "failed": 0}
 
-    def update(self, status: str, path: str, detail: str = "") -> None:
+    def event(self, status: str = "", path: str = "", detail: str = "") -> ProgressEvent:
+        return ProgressEvent(status, path, detail, self.done, self.total, self.counts["stored"],
+                             self.counts["skipped"], self.counts["failed"], self.sweeps,
+                             self.clock() - self.started)
+
+    def start(self) -> None:
+        self.callback(self.event())
+
+    def update(self, status: str, path: str, detail: str = "", sweeps: int = 0) -> None:
         self.done += 1
         self.counts[status] += 1
+        self.sweeps += sweeps
+        self.callback(self.event(status, path, detail))
+
+    def finish(self) -> None:
+        finish = getattr(self.callback, "finish", None)
+        if finish is not None:
+            finish()
+
+
+class ConsoleProgress:
+    """A batch's progress on a terminal: one line rewritten after each file (bar, files
+    done of total, sweeps per second, time left, counts) on `stream` when it is a
+    terminal; otherwise one plain line per file on stdout."""
+
+    WIDTH = 24
+
+    def __init__(self, stream=None) -> None:
+        self.stream = stream or sys.stderr
+        self.tty = _is_terminal(self.stream)
+        self.shown = False
+
+    def __call__(self, event: ProgressEvent) -> None:
         if self.tty:
-            width = 24
-            filled = width * self.done // max(self.total, 1)
-            line = (f"\r[{'#' * filled}{'.' * (width - filled)}] {self.done}/{self.total} "
-                    f"stored {self.counts['stored']}, skipped {self.counts['skipped']}, "
-                    f"failed {self.counts['failed']}  {Path(path).name[:40]}")
-            self.stream.write(line.ljust(110)[:110])
+            filled = self.WIDTH * event.done // max(event.total, 1)
+            line = (f"\r[{'#' * filled}{'.' * (self.WIDTH - filled)}] {event.summary()}  "
+                    f"{Path(event.path).name[:40]}")
+            self.stream.write(line.ljust(130)[:130])
             self.stream.flush()
-        else:
-            text = f"{status:<8} {path}" + (f": {detail}" if detail else "")
+            self.shown = True
+        elif event.status:
+            text = f"{event.status:<8} {event.path}" + (f": {event.detail}" if event.detail
+                                                        else "")
             print(text, file=sys.stdout, flush=True)
 
     def finish(self) -> None:
-        if self.tty:
+        if self.shown:
             self.stream.write("\n")
             self.stream.flush()
+
+
+def _is_terminal(stream) -> bool:
+    try:
+        return bool(stream.isatty())
+    except (AttributeError, ValueError):   # no isatty, or a closed stream
+        return False
 
 
 # ---------------------------------------------------------------------------- the run
@@ -249,8 +356,13 @@ class BatchError(InputError):
 def run_batch(paths: list[str], db: str, settings, *, workers: int | None = None,
               sheet: str | None = None, metadata: str | None = None,
               reports: str | None = None, reanalyse: bool = False,
-              limits: Limits = Limits()) -> BatchSummary:
+              limits: Limits = Limits(), progress=None) -> BatchSummary:
     """Analyse every recording under `paths` into the database `db`.
+
+    `progress(event)` is called with a :class:`ProgressEvent` once at the start and after
+    every file (in this thread); the default, :class:`ConsoleProgress`, draws one line on
+    a terminal and prints a line per file otherwise. It may have a ``finish()``, called
+    at the end.
 
     Everything is checked before anything is written: bad options, an unreadable
     metadata sheet, a sheet that cannot be written or a missing path raise
@@ -284,7 +396,7 @@ def run_batch(paths: list[str], db: str, settings, *, workers: int | None = None
     started = time.perf_counter()
     try:
         summary = _run_files(files, settings, database, notes, workers, reanalyse, reports,
-                             limits, db)
+                             limits, db, progress)
         summary.failed[:0] = unreadable
         if sheet:
             try:
@@ -370,7 +482,7 @@ def _default_workers() -> int:
 
 def _run_files(files: list[Path], settings, database, metadata: dict[Path, dict], workers: int,
                reanalyse: bool, reports: str | None, limits: Limits = Limits(),
-               db: str = "") -> BatchSummary:
+               db: str = "", callback=None) -> BatchSummary:
     from sqlalchemy.exc import SQLAlchemyError
 
     from passivefit import __version__
@@ -380,7 +492,8 @@ def _run_files(files: list[Path], settings, database, metadata: dict[Path, dict]
     digest = settings.settings_hash()
     done = set() if reanalyse else database.analysed_hashes(digest, __version__)
     summary = BatchSummary()
-    progress = Progress(len(files))
+    progress = Progress(len(files), callback)
+    progress.start()
     todo: list[Path] = []
     seen: dict[str, Path] = {}
     for path in files:
@@ -627,9 +740,10 @@ def _store_outcome(outcome: FileOutcome, database, metadata: dict[Path, dict], d
         summary.stored.append(outcome.path)
         summary.sweeps += len(outcome.result.get("sweeps", ()))
         cell = outcome.result.get("cell") or {}
-        progress.update("stored", outcome.path, f"{len(outcome.result.get('sweeps', ()))} "
-                        f"sweeps, tau0 {_fmt(cell.get(S.TAU0.key))} ms, R_in "
-                        f"{_fmt(cell.get(S.R_IN.key))} MOhm")
+        n_sweeps = len(outcome.result.get("sweeps", ()))
+        progress.update("stored", outcome.path, f"{n_sweeps} sweeps, tau0 "
+                        f"{_fmt(cell.get(S.TAU0.key))} ms, R_in {_fmt(cell.get(S.R_IN.key))} MOhm",
+                        sweeps=n_sweeps)
     else:
         summary.skipped.append(outcome.path)
         progress.update("skipped", outcome.path, "stored meanwhile by another writer")

@@ -168,3 +168,28 @@ def test_samples_give_the_recorded_results(golden):
     new["source"]["path"] = old["source"]["path"]
     differences = _close(new, old)
     assert not differences, "\n".join(differences[:20])
+
+
+#: the command line of each golden file's settings (the CA3 sample has no command channel)
+_GOLDEN_ARGS = {"": [], ".b0c2": ["--bootstrap", "0", "--components", "2"]}
+_GOLDEN_STEP = {"LOL-2026-11-12-c3_CA3.abf": ["--step", "100", "300", "-40"]}
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("golden", sorted(GOLDEN.glob("*.json")), ids=lambda p: p.stem)
+def test_command_json_gives_the_recorded_results(golden, capsys):
+    """`passivefit analyze --json` prints, for each bundled sample, the values recorded in
+    tests/data/golden to round-off (the same comparison as above, through the command)."""
+    from passivefit.cli import main
+
+    old = json.loads(golden.read_text())
+    name = Path(old["source"]["path"]).name
+    suffix = golden.name[len(name):-len(".json")]
+    argv = ["analyze", str(ROOT / "sample_recordings" / name), "--json",
+            *_GOLDEN_STEP.get(name, []), *_GOLDEN_ARGS[suffix]]
+    assert main(argv) == 0
+    new = json.loads(capsys.readouterr().out)
+    assert new["settings"] == old["settings"]
+    new["source"]["path"] = old["source"]["path"]
+    differences = _close(new, old)
+    assert not differences, "\n".join(differences[:20])

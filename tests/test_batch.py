@@ -274,25 +274,97 @@ def test_two_batches_on_the_same_files_do_not_duplicate(lab, tmp_path):
     assert status.count("stored") == N_FILES and status.count("skipped") == N_FILES
 
 
+class _Terminal:
+    """A fake terminal: a text buffer that says it is a tty."""
+
+    def __init__(self) -> None:
+        import io
+
+        self.buffer = io.StringIO()
+
+    def isatty(self) -> bool:
+        return True
+
+    def write(self, text: str) -> None:
+        self.buffer.write(text)
+
+    def flush(self) -> None:
+        pass
+
+
+class _Clock:
+    """A clock moved by hand (s)."""
+
+    def __init__(self) -> None:
+        self.now = 100.0
+
+    def __call__(self) -> float:
+        return self.now
+
+
 def test_progress_is_one_rewritten_line_on_a_terminal(capsys):
+    from passivefit.batch import Progress
+
+    screen, clock = _Terminal(), _Clock()
+    progress = Progress(4, stream=screen, clock=clock)
+    progress.start()
+    for status, sweeps in (("stored", 10), ("skipped", 0), ("failed", 0), ("stored", 10)):
+        clock.now += 2.0 if status != "skipped" else 0.0
+        progress.update(status, "/data/lol/LOL-2026-11-03-c1.nwb", "detail", sweeps=sweeps)
+    progress.finish()
+    text = screen.buffer.getvalue()
+    assert text.count("\r") == 5 and text.endswith("\n") and text.count("\n") == 1
+    lines = text.split("\r")
+    assert "0/4 files · — sweeps/s · — left" in lines[1]
+    # after the first file: 10 sweeps in 2 s; 3 files left at 2 s per analysed file
+    assert "1/4 files · 5.0 sweeps/s · 0:06 left · stored 1, skipped 0, failed 0" in lines[2]
+    # after the third (one skipped, taking no time): 10 sweeps in 4 s, 1 file left, 2 s each
+    assert "3/4 files · 2.5 sweeps/s · 0:02 left" in lines[4]
+    assert "4/4 files · 3.3 sweeps/s · 0:00 left · stored 2, skipped 1, failed 1" in lines[5]
+    assert "[########################]" in lines[5] and "LOL-2026-11-03-c1.nwb" in lines[5]
+    assert capsys.readouterr().out == ""  # no per-file lines when the line is shown
+
+
+def test_progress_is_plain_lines_when_not_a_terminal(capsys):
     import io
 
     from passivefit.batch import Progress
 
-    class Terminal(io.StringIO):
-        def isatty(self):
-            return True
-
-    screen = Terminal()
-    progress = Progress(4, stream=screen)
-    for status in ("stored", "skipped", "failed", "stored"):
-        progress.update(status, "/data/lol/LOL-2026-11-03-c1.nwb", "detail")
+    pipe = io.StringIO()          # isatty() is False, as for a pipe or a file
+    progress = Progress(2, stream=pipe)
+    progress.start()
+    progress.update("stored", "/data/a.nwb", "4 sweeps", sweeps=4)
+    progress.update("failed", "/data/b.nwb", "not a recording")
     progress.finish()
-    text = screen.getvalue()
-    assert text.count("\r") == 4 and text.endswith("\n") and text.count("\n") == 1
-    assert "4/4 stored 2, skipped 1, failed 1" in text.split("\r")[-1]
-    assert "[########################]" in text
-    assert capsys.readouterr().out == ""  # no per-file lines when the bar is shown
+    assert pipe.getvalue() == ""
+    assert capsys.readouterr().out.splitlines() == ["stored   /data/a.nwb: 4 sweeps",
+                                                    "failed   /data/b.nwb: not a recording"]
+
+
+def test_clock_time():
+    from passivefit.batch import clock_time
+
+    assert [clock_time(s) for s in (0, 59.6, 61, 3599, 3600, 7325)] == [
+        "0:00", "1:00", "1:01", "59:59", "1:00:00", "2:02:05"]
+
+
+@pytest.mark.slow
+def test_run_batch_tells_its_progress_to_a_callback(lab, tmp_path, capsys):
+    """The callback the window uses: an event at the start and one per file, in order."""
+    from passivefit.batch import run_batch
+    from passivefit.model.settings import Settings
+
+    folder, _ = lab
+    events = []
+    summary = run_batch([str(folder / "day1")], str(tmp_path / "p.db"), Settings(bootstrap=0),
+                        workers=1, progress=events.append)
+    n = N_FILES // 2
+    assert len(summary.stored) == n
+    assert [e.done for e in events] == list(range(n + 1)) and events[0].status == ""
+    assert all(e.total == n for e in events)
+    assert events[-1].sweeps == 4 * n and events[-1].stored == n
+    assert events[-1].sweeps_per_s > 0 and events[-1].remaining_s == 0
+    assert capsys.readouterr().out == ""   # the callback replaced the lines
 
 
 @pytest.mark.slow

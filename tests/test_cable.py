@@ -302,3 +302,19 @@ def test_implausible():
     )
     # missing values are skipped, not flagged
     assert cable.implausible(tau0=20e-3, tau1=None, L=None) == []
+
+
+def test_ballstick_roots_match_a_bracketing_solver():
+    """The vectorised Newton-bisection roots equal scipy's brentq (xtol 1e-15) to round-off."""
+    from scipy.optimize import brentq
+
+    from passivefit.core.cable import ballstick_alphas
+
+    rng = np.random.default_rng(5)
+    for _ in range(200):
+        L, rho = 10 ** rng.uniform(-1.5, 0.7), 10 ** rng.uniform(-1, 2.5)
+        k = math.tanh(L) / rho / L
+        ref = [brentq(lambda x, k=k: math.sin(x) + k * x * math.cos(x), (i - 0.5) * math.pi,
+                      i * math.pi, xtol=1e-15) / L for i in range(1, 31)]
+        np.testing.assert_allclose(ballstick_alphas(L, rho, 30), ref, rtol=1e-14)
+    np.testing.assert_allclose(ballstick_alphas(1.0, np.inf, 3), np.pi * np.arange(1, 4))

@@ -317,3 +317,67 @@ def test_crlb_two_segments_and_binned_sigma():
     # two identical segments with free offsets: the bound shrinks by sqrt(2)
     both = crlb_taus([t, t], 1e-3, [0.02], [[5e-3], [-5e-3]])
     assert both[0] == pytest.approx(single[0] / np.sqrt(2), rel=1e-9)
+
+
+# ------------------------------------------------------------------- damping
+
+
+def _oscillation_case():
+    """Two binned segments (onset and offset of a combined response, fit-start scan of the
+    simulated sample LOL-2026-11-03-c1_CA1.nwb) on which the former damping rule, a fixed
+    10x cut after every accepted step, oscillated (tau1 ~1.86 <-> 1.89 ms) for all 100
+    iterations without converging."""
+    from pathlib import Path
+
+    data = np.load(Path(__file__).parent / "data" / "expfit_oscillation.npz")
+    segments = [Segment(data[f"t{i}"], data[f"y{i}"], data[f"w{i}"]) for i in range(2)]
+    return segments, data["tau_init"]
+
+
+def test_gain_ratio_damping_converges_where_the_fixed_cut_oscillated():
+    from passivefit.core.expfit import (
+        _check_segments,
+        _levenberg_marquardt,
+        _Projected,
+        _theta_bounds,
+    )
+
+    segments, tau_init = _oscillation_case()
+    checked = _check_segments(segments, 2)
+    prob = _Projected(checked, 2)
+    lo, hi = _theta_bounds(prob, checked, (1e-5, 10.0))
+    theta0 = np.log(np.sort(tau_init)[::-1] / prob.scale)
+    sol = _levenberg_marquardt(prob, theta0, lo, hi)
+    assert sol.status == 1, sol.message
+    # the fixed 10x cut used all 100 iterations here; the gain-ratio rule needed 21
+    assert sol.iterations <= 40
+    fit = fit_exponentials(segments, 2, tau_init)
+    assert fit.success, fit.message
+    # it stops at the minimum: restarted from there, the solver moves the log taus by
+    # less than 2 % of their standard errors
+    again = _levenberg_marquardt(prob, sol.x, lo, hi)
+    assert np.all(np.abs(again.x - sol.x) < 0.02 * fit.tau_se / fit.taus)
+    assert again.cost <= sol.cost
+
+
+def test_gain_ratio_damping_needs_few_iterations_on_noisy_sweeps():
+    from passivefit.core.expfit import (
+        _check_segments,
+        _levenberg_marquardt,
+        _peel_init,
+        _Projected,
+        _theta_bounds,
+    )
+
+    rng = np.random.default_rng(14)
+    counts = []
+    for _ in range(20):
+        (t_on, y_on), (t_off, y_off) = step_pair([0.020, 0.0015], [4e-3, 0.8e-3], rng, 0.2e-3)
+        checked = _check_segments([Segment(t_on, y_on), Segment(t_off, y_off)], 2)
+        prob = _Projected(checked, 2)
+        lo, hi = _theta_bounds(prob, checked, (1e-5, 10.0))
+        theta0 = np.log(np.sort(_peel_init(checked, 2))[::-1] / prob.scale)
+        sol = _levenberg_marquardt(prob, theta0, lo, hi)
+        assert sol.status == 1, sol.message
+        counts.append(sol.iterations)
+    assert max(counts) < 100 and np.median(counts) <= 15, counts

@@ -21,7 +21,7 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from passivefit.analysis import Settings, Windows, analyze_sweep
+from passivefit.analysis import Settings
 
 pytestmark = pytest.mark.gui
 pytest.importorskip("pytestqt")
@@ -54,16 +54,18 @@ def test_dragging_the_fit_window_refits_the_sweep_like_the_core(qtbot, open_wind
 
     after = state.sweep_fit()
     assert after.taus_s[0] != before
-    core = analyze_sweep(state.voltage(state.current), step, state.current, state.fs,
-                         SETTINGS.with_sweep_windows(0, Windows(fit_ms=(4.0, 120.0))))
-    assert_allclose(after.taus_s, core.taus_s, rtol=1e-9)
     assert_allclose(state.window_ms("fit"), (4.0, 120.0), atol=0.1)   # one sample at 10 kHz
     assert window.windows_bar.boxes["fit"][0].value() == pytest.approx(4.0, abs=0.1)
     row = window.table._rows[state.current]
-    assert float(window.table.item(row, 4).text()) == pytest.approx(core.taus_s[0] * 1e3,
+    assert float(window.table.item(row, 4).text()) == pytest.approx(after.taus_s[0] * 1e3,
                                                                     rel=1e-3)
     wait_idle(qtbot, window)
     assert state.result.settings.windows.fit_ms == (4.0, 120.0)
+    # the live fit (started from the sweep's previous fit) found what the analysis found
+    # for this sweep with the new window, to the solver's tolerance
+    done = state.result_sweep(state.current)
+    assert_allclose(after.taus_s, done.taus_s, rtol=1e-3)
+    assert_allclose(after.r_in_ohm, done.r_in_ohm, rtol=1e-6)
     # Rall 1969 Biophys J 9:1483 [pub]: τ0 of a uniform passive cell equals its τm
     assert state.result.cell["tau0_ms"] == pytest.approx(TAU_M_S * 1e3, rel=0.05)
 
@@ -331,3 +333,101 @@ def test_the_state_alone_reviews_a_recording(recording, tmp_path):
     assert state.undo() and state.undo() and not state.undo()
     assert state.settings == SETTINGS
     assert np.isfinite(state.refit_sweep().taus_s[0])
+
+
+_SWEEP_VALUES = ("v_rest_V", "dv_ss_V", "r_in_ohm", "taus_s", "amps_V", "rmse_V", "bridge_ohm",
+                 "sag", "r_in_peak_ohm", "rebound_V", "noise_V", "drift_V", "trend")
+
+
+def _same_values(live, done) -> list[str]:
+    """The sweep values (SI) that differ between two SweepFits, beyond 1e-12 relative."""
+    out = []
+    for name in _SWEEP_VALUES:
+        a, b = getattr(live, name), getattr(done, name)
+        if (a is None) != (b is None) or (a is not None and not np.allclose(
+                np.asarray(a, float), np.asarray(b, float), rtol=1e-12, atol=0)):
+            out.append(f"{name}: {a} (analysis {b})")
+    if live.windows_s != done.windows_s:
+        out.append(f"windows_s: {live.windows_s} (analysis {done.windows_s})")
+    return out
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("sample", ["LOL-2026-11-03-c1_CA1.nwb",
+                                    "LOL-2026-11-19-c4_L5-pulses.nwb"])
+def test_live_refit_with_the_analysis_settings_gives_the_analysis_values(sample, tmp_path):
+    """With the windows the analysis used, a live refit of each sweep gives the analysis's
+    values (the CA1 sample has spontaneous events cut out and its bridge subtracted, the
+    L5 sample is fitted on brief pulses); also after a drag and back."""
+    from passivefit.gui.state import ReviewState
+
+    state = ReviewState.open(REPO / "sample_recordings" / sample, restore=False,
+                             autosave=False, review_file=tmp_path / "r.json")
+    state.run_analysis()
+    result = state.result
+    assert any(f.masked_s for f in result.sweeps) or sample.endswith("pulses.nwb")
+    checked = 0
+    for index in state.indices:
+        done = state.result_sweep(index)
+        if done is None or done.step is None or done.fit is None:
+            continue
+        live = state.refit_sweep(index)
+        assert not _same_values(live, done), (index, _same_values(live, done))
+        checked += 1
+    assert checked >= 5
+    state.go_to(state.indices[0])
+    shown = state.window_ms("fit")
+    state.preview_window("fit", (shown[0] + 1.0, shown[1]))
+    moved = state.sweep_fit()
+    assert moved.taus_s != result.sweeps[0].taus_s
+    live = state.refit_sweep()        # the analysis's settings again: its values again
+    assert not _same_values(live, state.result_sweep(state.current))
+
+
+@pytest.mark.slow
+def test_analysing_a_folder_shows_its_progress(qtbot, make_window, recording_file, tmp_path):
+    """File › Analyse a folder into the database: the batch runs in the background and the
+    status bar shows files done of total, sweeps per second and time left."""
+    from passivefit.io import load, save
+
+    folder = tmp_path / "folder"
+    folder.mkdir()
+    shutil.copy(recording_file, folder / "a.csv")
+    other = load(recording_file)
+    for sweep in other.sweeps:            # a second cell: other content, not a duplicate
+        sweep.voltage = sweep.voltage + 1e-3
+    save(other, folder / "b.csv")
+    window = make_window()
+    events, labels, values = [], [], []
+    window.folder_runner.progress.connect(events.append)
+    window.folder_runner.progress.connect(
+        lambda _e: (labels.append(window.folder_label.text()),
+                    values.append((window.folder_progress.value(),
+                                   window.folder_progress.maximum()))))
+    db = tmp_path / "cells.sqlite"
+    assert window.analyse_folder(folder, str(db), workers=1)
+    assert window.folder_progress.isVisible()
+    assert not window.analyse_folder(folder, str(db))          # one folder at a time
+    assert "still being analysed" in window.last_error
+    qtbot.waitUntil(lambda: not window.folder_runner.busy, timeout=300_000)
+    assert [e.done for e in events] == [0, 1, 2]
+    assert values == [(0, 2), (1, 2), (2, 2)]
+    assert labels[0].startswith("folder: 0/2 files · — sweeps/s · — left")
+    assert labels[-1].startswith("folder: 2/2 files · ") and "0:00 left" in labels[-1]
+    assert " sweeps/s" in labels[-1] and "— sweeps/s" not in labels[-1]
+    assert not window.folder_progress.isVisible() and window.folder_label.text() == ""
+    assert window.statusBar().currentMessage().startswith("folder analysed: 2 stored (16 sweeps)")
+    from passivefit.store.database import open_database
+
+    database = open_database(str(db), create=False)
+    assert len(database.current_analyses()) == 2
+    database.close()
+
+
+def test_a_folder_that_cannot_be_analysed_is_said_in_one_line(qtbot, make_window, tmp_path):
+    window = make_window()
+    assert window.analyse_folder(tmp_path / "nowhere", str(tmp_path / "c.sqlite"))
+    qtbot.waitUntil(lambda: not window.folder_runner.busy, timeout=60_000)
+    assert window.last_error.startswith("the folder could not be analysed: ")
+    assert "nowhere" in window.last_error and "\n" not in window.last_error
+    assert not window.folder_progress.isVisible()

@@ -130,7 +130,7 @@ def hum(used: list[SweepFit], voltages: dict[int, np.ndarray], fs: float
     for f in used:
         v = f.corrected(voltages[f.index], fs)
         a, b = span(f.windows_s["baseline"], fs, v.size)
-        segments.append(v[a:b])
+        segments.append(np.array(v[a:b], dtype=np.float64))  # not a view: frees the sweep
     freq, amp, floor = mains_hum(segments, fs)
     if floor == 0.0 or amp < max(HUM_FLOOR_FACTOR * floor, HUM_MIN_V):
         return {}, []

@@ -33,9 +33,10 @@ def noise_model(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float
 
     used = [f for f in fits if f.fit is not None]
 
-    def baselines():
-        return [f.corrected(voltages[f.index], fs)[slice(*span(
-            f.windows_s["baseline"], fs, voltages[f.index].size))] for f in used]
+    def baselines():   # copies of the stretches, not views that keep whole sweeps alive
+        return [np.array(f.corrected(voltages[f.index], fs)[slice(*span(
+            f.windows_s["baseline"], fs, voltages[f.index].size))], dtype=np.float64)
+            for f in used]
 
     def residuals():   # only when the baselines are too short
         return [np.nan_to_num(residual(f.corrected(voltages[f.index], fs), f.fit, r, fs)[1])

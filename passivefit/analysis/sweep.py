@@ -112,13 +112,17 @@ def _fewer_if_needed(segs, n: int, tau_init: tuple[float, ...] | None):
 
 def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
                   settings: Settings, tau_init: tuple[float, ...] | None = None,
-                  masked_s: tuple[tuple[float, float], ...] = ()) -> SweepFit:
+                  masked_s: tuple[tuple[float, float], ...] = (),
+                  cache: dict | None = None) -> SweepFit:
     """Baseline, steady state, sag, fitted transients and tests of one sweep.
 
     `tau_init` (s), from a fit of the combined sweeps, starts the fit there and fixes the
     number of components (at most two: single sweeps rarely resolve a third).
     `masked_s` are (start, end) times (s) cut out of the fits and the steady state:
     spontaneous events (analysis.events).
+    `cache`, a dict kept by the caller for this sweep's voltage `v` only, keeps the work
+    that the fit and steady windows do not change (baseline level, drift, noise, the
+    artefact's end, sag), so a refit with another fit window redoes only the fit.
     """
     if step is None:
         return SweepFit(index, False, "no step in this sweep", None)
@@ -128,20 +132,16 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
     b0, b1 = span(guess["baseline"], fs, v.size)
     if b1 - b0 < 10:
         return SweepFit(index, False, "no baseline before the step", step)
-    seen = mask(v, masked_s, fs)    # what the levels, the fits and the steady state read
-    if np.count_nonzero(np.isfinite(seen[b0:b1])) < max(10, (b1 - b0) // 4):
-        seen = mask(v, [m for m in masked_s if m[1] < b0 / fs or m[0] > b1 / fs], fs)
-    v_base = steady.robust_level(seen[b0:b1])
-    drift = baseline_drift(seen, step, fs, v_base, (b0, b1))
-    trend = (0.0, 0.0)
-    if drift is not None and settings.correct_drift:
-        trend = drift[1:]
-        v = v - trend[0] * (np.arange(v.size) / fs - trend[1])
-        seen = seen - trend[0] * (np.arange(v.size) / fs - trend[1])
-        v_base = steady.robust_level(seen[b0:b1])
-    noise = steady.noise_sd(v[b0:b1])
-    wins = resolve_windows(step, v.size, fs, w,
-                           fit_start_after_artefact(v, step, fs, noise, settings))
+    key = (step.onset, step.offset, b0, b1, tuple(masked_s), settings.correct_drift,
+           settings.fit_start_ms)
+    prep = cache.get(key) if cache is not None else None
+    if prep is None:
+        prep = _prepare(v, step, fs, settings, masked_s, b0, b1)
+        if cache is not None:
+            cache.clear()            # one baseline at a time: a drag moves one window
+            cache[key] = prep
+    v, seen, v_base, drift, trend, noise, fit_start, sag_values = prep
+    wins = resolve_windows(step, v.size, fs, w, fit_start)
     fit, records, fit_error = _fit_sweep(seen, fs, step, wins, settings, tau_init)
 
     v_ss = dv = r_in = bridge = sag = rmse = r_peak = rebound = None
@@ -165,7 +165,7 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         if v_ss is not None:
             dv = v_ss - v_base
             r_in = dv / step.amplitude_A    # the cell's bridge estimate is subtracted later
-            sag, r_peak, rebound = _sag(v, step, fs, v_base)
+            sag, r_peak, rebound = sag_values()
     elif fit is not None:
         amps = response_amplitudes(fit, 0, "pulse")
 
@@ -195,6 +195,35 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         drift_V=drift, trend=trend, windows_s=wins, masked_s=masked_s, segments=records,
         fit=fit, flags=tuple(flags),
     )
+
+
+def _prepare(v: np.ndarray, step: Step, fs: float, settings: Settings,
+             masked_s: tuple[tuple[float, float], ...], b0: int, b1: int) -> tuple:
+    """The part of `analyze_sweep` that only the baseline window (samples b0:b1), the cut
+    out stretches and the drift and fit-start settings change: (voltage with the drift
+    taken out, the same with the stretches cut out, baseline level, drift, trend, noise,
+    fit start after the artefact, and a function giving the sag, measured once)."""
+    seen = mask(v, masked_s, fs)    # what the levels, the fits and the steady state read
+    if np.count_nonzero(np.isfinite(seen[b0:b1])) < max(10, (b1 - b0) // 4):
+        seen = mask(v, [m for m in masked_s if m[1] < b0 / fs or m[0] > b1 / fs], fs)
+    v_base = steady.robust_level(seen[b0:b1])
+    drift = baseline_drift(seen, step, fs, v_base, (b0, b1))
+    trend = (0.0, 0.0)
+    if drift is not None and settings.correct_drift:
+        trend = drift[1:]
+        v = v - trend[0] * (np.arange(v.size) / fs - trend[1])
+        seen = seen - trend[0] * (np.arange(v.size) / fs - trend[1])
+        v_base = steady.robust_level(seen[b0:b1])
+    noise = steady.noise_sd(v[b0:b1])
+    fit_start = fit_start_after_artefact(v, step, fs, noise, settings)
+    measured: list = []
+
+    def sag_values() -> tuple[float | None, float | None, float | None]:
+        if not measured:
+            measured.append(_sag(v, step, fs, v_base))
+        return measured[0]
+
+    return v, seen, v_base, drift, trend, noise, fit_start, sag_values
 
 
 def _sag(v: np.ndarray, step: Step, fs: float, v_base: float

@@ -40,7 +40,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     import math
 
-    from passivefit.batch import Limits, run_batch
+    from passivefit.batch import ConsoleProgress, Limits, run_batch
     from passivefit.cli import UsageError
     from passivefit.store.database import StoreError
 
@@ -54,7 +54,8 @@ def run(args: argparse.Namespace) -> int:
     try:
         summary = run_batch(args.paths, args.db, settings_from(args), workers=args.workers,
                             sheet=args.sheet, metadata=args.metadata, reports=args.reports,
-                            reanalyse=args.reanalyse, limits=limits)
+                            reanalyse=args.reanalyse, limits=limits,
+                            progress=ConsoleProgress(sys.stderr))
     except StoreError as exc:
         raise UsageError(str(exc)) from None
     _report(summary)

@@ -139,19 +139,56 @@ def _soma_over_ginf(L: float, rho: float) -> float:
 
 
 def _alphas_from_s(L: float, s: float, n: int) -> np.ndarray:
-    """Roots alpha_k (k = 1..n) of sin(x) + (s/L)*x*cos(x) = 0 with x = alpha*L."""
-    from scipy.optimize import brentq
+    """Roots alpha_k (k = 1..n) of sin(x) + (s/L)*x*cos(x) = 0 with x = alpha*L.
 
+    All n roots at once by Newton's method kept inside each root's bracket
+    ((k - 1/2)*pi, k*pi], with bisection whenever Newton would leave it. On the
+    bracket the function is monotone (its derivative (1 + s/L)*cos(x) - (s/L)*x*sin(x)
+    has one sign there), so the root is unique and the iteration converges to the last
+    bits of a double, as tightly as a bracketing solver with xtol 1e-15.
+    """
     k = s / L
-    out = np.empty(n)
-    for i in range(1, n + 1):
-        lo, hi = (i - 0.5) * math.pi, i * math.pi
-        if k == 0.0:
-            x = hi
+    i = np.arange(1, n + 1, dtype=float)
+    hi = i * math.pi
+    if k == 0.0:
+        return hi / L
+    lo = (i - 0.5) * math.pi
+    sign_lo = np.sign(np.sin(lo))  # f(lo) = sin(lo); f(hi) has the opposite sign
+    x = 0.5 * (lo + hi)
+    for _ in range(100):
+        sin, cos = np.sin(x), np.cos(x)
+        f = sin + k * x * cos
+        below = np.sign(f) == sign_lo  # root lies above x
+        lo = np.where(below, x, lo)
+        hi = np.where(below, hi, x)
+        df = (1.0 + k) * cos - k * x * sin
+        with np.errstate(divide="ignore", invalid="ignore"):
+            newton = x - f / df
+        inside = (newton >= lo) & (newton <= hi)
+        new = np.where(inside, newton, 0.5 * (lo + hi))
+        done = inside & (np.abs(new - x) <= 4.0 * np.finfo(float).eps * np.abs(x))
+        x = new
+        if np.all(done | (f == 0.0)):
+            break
+    return x / L
+
+
+def _bisect(f, lo: float, hi: float) -> float:
+    """Root of ``f`` in [lo, hi], where f(lo) and f(hi) differ in sign, to within
+    1e-15 + 4 eps |x| (the tolerance a bracketing solver would be given); plain
+    bisection: about 50 evaluations of a cheap function, once per cell."""
+    f_lo = f(lo)
+    tol = 4.0 * np.finfo(float).eps
+    while hi - lo > 1e-15 + tol * abs(lo):
+        mid = 0.5 * (lo + hi)
+        f_mid = f(mid)
+        if f_mid == 0.0:
+            return mid
+        if (f_mid > 0) == (f_lo > 0):
+            lo, f_lo = mid, f_mid
         else:
-            x = brentq(lambda x: math.sin(x) + k * x * math.cos(x), lo, hi, xtol=1e-15)
-        out[i - 1] = x / L
-    return out
+            hi = mid
+    return 0.5 * (lo + hi)
 
 
 def ballstick_alphas(L: float, rho: float, n: int) -> np.ndarray:
@@ -263,7 +300,7 @@ def estimate_ballstick(
 
     docs/references.md §3: with alpha1 = sqrt(tau0/tau1 - 1), L is searched in
     (pi/(2*alpha1), pi/alpha1); for each trial L, rho_inf = -alpha1*cot(alpha1*L), and
-    the brief-pulse ratio C1/C0 it implies is matched to the measured one (brentq).
+    the brief-pulse ratio C1/C0 it implies is matched to the measured one (by bisection).
     Then rho = rho_inf*tanh(L).
 
     Parameters
@@ -289,8 +326,6 @@ def estimate_ballstick(
         When no uniform ball-and-stick has these values (e.g. the ratio is too large:
         somatic shunt or non-uniform membrane).
     """
-    from scipy.optimize import brentq
-
     t0, t1 = _tau_pair(tau0, tau1)
     r = float(ratio)
     c = _brief_pulse_ratio(t0, t1, r, kind, duration_s)
@@ -316,7 +351,7 @@ def estimate_ballstick(
             f"{name} = {r:.4g} is too close to the limits of a uniform ball-and-stick "
             "to solve for L and rho"
         )
-    x = brentq(mismatch, lo, hi, xtol=1e-15, rtol=4 * np.finfo(float).eps)
+    x = _bisect(mismatch, lo, hi)
     L = x / a1
     return L, math.tanh(L) * a1 / -math.tan(x)
 

@@ -309,6 +309,7 @@ class _Solution:
     cost: float
     status: int  # 1 converged, 0 iteration limit
     message: str
+    iterations: int = 0  # accepted steps taken
 
 
 def _levenberg_marquardt(
@@ -320,12 +321,21 @@ def _levenberg_marquardt(
     tiny, so this loop costs little beyond one residual and Jacobian per step;
     that makes it several times faster here than scipy's general trust-region
     solver, whose per-iteration overhead dominates for such small problems.
+
+    The damping follows the gain ratio rho = actual / predicted decrease of the
+    cost (Nielsen's rule; Madsen, Nielsen & Tingleff 2004, Methods for non-linear
+    least squares problems, IMM DTU, §3.2; docs/references.md §6 [mem]): an accepted
+    step scales the damping by max(1/3, 1 - (2 rho - 1)^3), so it shrinks only
+    when the quadratic model predicted the decrease well, and each rejection
+    multiplies it by a factor that doubles. Cutting the damping by a fixed 10x
+    after every accepted step instead made the iterates oscillate between an
+    undamped overshoot and a heavily damped step.
     """
     theta = np.clip(theta0, lo + 1e-3 * (hi - lo), hi - 1e-3 * (hi - lo))
     r = prob.residual(theta)
     cost = float(r @ r)
-    lam = 1e-3
-    for _ in range(max_iter):
+    lam, nu = 1e-3, 2.0
+    for it in range(max_iter):
         jac = prob.jacobian(theta)
         grad = jac.T @ r
         hess = jac.T @ jac
@@ -337,13 +347,19 @@ def _levenberg_marquardt(
             cost_trial = float(r_trial @ r_trial)
             if cost_trial <= cost:
                 break
-            lam *= 10.0
+            lam *= nu
+            nu *= 2.0
             if lam > 1e10:
-                return _Solution(theta, 0.5 * cost, 1, "no further decrease of the cost")
-        moved = np.abs(trial - theta)
+                return _Solution(theta, 0.5 * cost, 1, "no further decrease of the cost", it)
+        moved = trial - theta
         decrease = cost - cost_trial
+        # decrease of the linearised cost |r + J h|^2 for the step taken (after clipping)
+        predicted = -float(moved @ (2.0 * grad + hess @ moved))
+        rho = decrease / predicted if predicted > 0 else 0.0
+        lam = min(max(lam * max(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3), 1e-12), 1e10)
+        nu = 2.0
         theta, r, cost = trial, r_trial, cost_trial
-        lam = max(lam * 0.1, 1e-12)
+        moved = np.abs(moved)
         # negligible against the statistical error of theta, or against rounding
         try:
             var_scale = np.abs(np.diag(np.linalg.inv(hess)))
@@ -351,8 +367,8 @@ def _levenberg_marquardt(
             var_scale = np.zeros(theta.size)
         se = np.sqrt(cost / max(prob.n_points - prob.n_params, 1) * var_scale)
         if np.all(moved < np.maximum(_XTOL, _SE_FRACTION * se)) or decrease <= _FTOL * cost:
-            return _Solution(theta, 0.5 * cost, 1, "converged")
-    return _Solution(theta, 0.5 * cost, 0, f"no convergence in {max_iter} iterations")
+            return _Solution(theta, 0.5 * cost, 1, "converged", it + 1)
+    return _Solution(theta, 0.5 * cost, 0, f"no convergence in {max_iter} iterations", max_iter)
 
 
 def _problems(theta: np.ndarray, lo: float, hi: float, status: int) -> str:

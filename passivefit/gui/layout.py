@@ -120,6 +120,14 @@ class WindowLayout:
         self.busy_label = QtWidgets.QLabel("")
         self.watch_label = QtWidgets.QLabel("")
         self.statusBar().addPermanentWidget(self.watch_label)
+        self.folder_label = QtWidgets.QLabel("")       # a folder analysed into a database
+        self.folder_progress = QtWidgets.QProgressBar()
+        self.folder_progress.setFixedWidth(110)
+        self.folder_progress.setFixedHeight(12)
+        self.folder_progress.setTextVisible(False)
+        self.folder_progress.hide()
+        self.statusBar().addPermanentWidget(self.folder_label)
+        self.statusBar().addPermanentWidget(self.folder_progress)
         self.statusBar().addPermanentWidget(self.busy_label)
         self.statusBar().addPermanentWidget(self.progress)
         self.statusBar().addPermanentWidget(QtWidgets.QLabel("F1: keys"))
@@ -148,6 +156,8 @@ class WindowLayout:
         self._action(file_menu, "Export parameter sheet…", "Ctrl+E", self._ask_export)
         self._action(file_menu, "Export PDF report…", "Ctrl+P", self._ask_report)
         self._action(file_menu, "Add cell to database…", "Ctrl+D", self._ask_database)
+        self._action(file_menu, "Analyse a folder into the database…", "Ctrl+Shift+D",
+                     self._ask_analyse_folder)
         file_menu.addSeparator()
         self._action(file_menu, "Quit", "Ctrl+Q", self.close)
         edit = bar.addMenu("&Edit")

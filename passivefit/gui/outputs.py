@@ -170,4 +170,62 @@ class OutputActions:
         except Exception as exc:  # noqa: BLE001 - a store that fails must not end the review
             self._problem(database_problem(target, exc))
 
+    def analyse_folder(self, folder: str | Path, target: str, workers: int | None = None
+                       ) -> bool:
+        """Analyse every recording in `folder` (and its subfolders) into the cell database
+        `target` with the window's settings, in the background, as `passivefit batch`
+        does; the status bar shows the files done, sweeps per second and time left.
+
+        False (and said) when another folder is still being analysed.
+        """
+        if not self.folder_runner.start([folder], target, self.base_settings, workers):
+            self._problem("a folder is still being analysed; wait until it has finished")
+            return False
+        self.folder_label.setText(f"analysing {Path(folder).name}…")
+        self.folder_progress.setRange(0, 0)
+        self.folder_progress.show()
+        return True
+
+    def _folder_progress(self, event) -> None:
+        self.folder_progress.setRange(0, max(event.total, 1))
+        self.folder_progress.setValue(event.done)
+        self.folder_label.setText("folder: " + event.summary())
+
+    def _folder_done(self, summary) -> None:
+        self.folder_progress.hide()
+        self.folder_label.setText("")
+        rate = (f", {summary.sweeps / summary.seconds:.0f} sweeps/s"
+                if summary.sweeps and summary.seconds > 0 else "")
+        message = (f"folder analysed: {len(summary.stored)} stored ({summary.sweeps} sweeps), "
+                   f"{len(summary.skipped)} skipped, {len(summary.failed)} failed in "
+                   f"{summary.seconds:.0f} s{rate}")
+        if summary.failed:
+            path, reason = summary.failed[0]
+            self._problem(f"{message}; {Path(path).name}: {reason}"
+                          + (f" (and {len(summary.failed) - 1} more)"
+                             if len(summary.failed) > 1 else ""))
+        else:
+            self.statusBar().showMessage(message, 15000)
+
+    def _folder_failed(self, message: str) -> None:
+        self.folder_progress.hide()
+        self.folder_label.setText("")
+        self._problem(f"the folder could not be analysed: {message}")
+
+    def _ask_analyse_folder(self) -> None:
+        folder = QtWidgets.QFileDialog.getExistingDirectory(
+            self, "Analyse a folder of recordings into the database", self._last_folder())
+        if not folder:
+            return
+        target = self.store.value("database", "")
+        if not target:
+            target, _ = QtWidgets.QFileDialog.getSaveFileName(
+                self, "Cell database (SQLite file)", str(Path.home() / "cells.sqlite"),
+                "SQLite database (*.sqlite *.db)", options=(
+                    QtWidgets.QFileDialog.Option.DontConfirmOverwrite))
+            if not target:
+                return
+            self.store.setValue("database", target)
+        self.analyse_folder(folder, target)
+
     # ------------------------------------------------------------------ recent files

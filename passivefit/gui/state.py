@@ -37,6 +37,8 @@ from passivefit.analysis import (
     analyze_sweep,
     sweep_steps,
 )
+from passivefit.analysis.start import StartValues, start_values
+from passivefit.analysis.sweep import with_bridge_removed
 from passivefit.io.recording import LoadError, Recording
 
 REVIEW_FORMAT = "passivefit-review"
@@ -400,6 +402,13 @@ class ReviewState:
         self.settings = settings
         self._voltage = {s.index: s.voltage for s in recording.sweeps}
         self._floor: dict[int, float] = {}
+        # the live refit: what the newest analysis started its sweep fits from, the work
+        # per sweep that the fit and steady windows do not change, and the bridge (Ω) the
+        # analysis took out of each sweep's R_in
+        self._starts: dict[Settings, StartValues] = {}
+        self._start: StartValues | None = None
+        self._prep: dict[int, dict] = {}
+        self._removed: dict[int, float] = {}
         self.position = min(max(position, 0), len(self.indices) - 1)
         self.result: RecordingResult | None = None
         self.live: dict[int, SweepFit] = {}
@@ -548,13 +557,64 @@ class ReviewState:
 
     # ------------------------------------------------------------------ fitting
     def refit_sweep(self, index: int | None = None, settings: Settings | None = None) -> SweepFit:
-        """Fit one sweep now with `settings` (default: the current ones) and show it."""
+        """Fit one sweep now with `settings` (default: the current ones) and show it.
+
+        Once the cell has been analysed, the sweep is fitted as the analysis fitted it: read
+        up to its next step, with the analysis's fit start and sag window, its spontaneous
+        events cut out, its start values, and the bridge the analysis found taken out of
+        R_in; with the analysis's own settings the values are the analysis's. While a
+        window moves, each fit starts from the sweep's newest one, and the baseline, noise,
+        drift, artefact and sag are measured once (they do not depend on the fit window).
+        """
         index = self.current if index is None else index
-        fit = analyze_sweep(self._voltage[index], self.steps[index], index, self.fs,
-                            settings or self.settings)
+        asked = settings or self.settings
+        step = self.steps[index]
+        start = self._start
+        v = self._voltage[index]
+        if step is not None:
+            v = v[:step.region_end]
+        if start is None:
+            fit = analyze_sweep(v, step, index, self.fs, asked,
+                                cache=self._prep.setdefault(index, {}))
+        else:
+            effective = start.effective_for(asked)
+            done = self.result_sweep(index)
+            masked = done.masked_s if done is not None else ()
+            fit = analyze_sweep(v, step, index, self.fs, effective,
+                                self._start_taus(index, effective), masked,
+                                cache=self._prep.setdefault(index, {}))
+            removed = self._bridge_removed(index, v, masked)
+            if removed:
+                fit = with_bridge_removed(fit, removed)
         self.live[index] = fit
         self.sweep_refitted.emit(fit)
         return fit
+
+    def _start_taus(self, index: int, effective: Settings) -> tuple[float, ...] | None:
+        """Start values of a sweep's live fit: the analysis's own with its settings (so the
+        values are the same), else the sweep's newest fit when it has as many components."""
+        tau_init = self._start.tau_init
+        if tau_init is None or effective == self._start.effective:
+            return tau_init
+        newest = self.sweep_fit(index)
+        full = getattr(getattr(newest, "fit", None), "full", None)
+        if full is not None and full.taus.size == min(len(tau_init), 2):
+            return tuple(float(t) for t in full.taus)
+        return tau_init
+
+    def _bridge_removed(self, index: int, v, masked) -> float:
+        """The bridge (Ω) the analysis took out of a sweep's deflection and R_in: the
+        difference between the sweep fitted with the analysis's settings and its result."""
+        if index not in self._removed:
+            done, removed = self.result_sweep(index), 0.0
+            if done is not None and done.dv_ss_V is not None and done.step is not None:
+                raw = analyze_sweep(v, done.step, index, self.fs, self._start.effective,
+                                    self._start.tau_init, masked,
+                                    cache=self._prep.setdefault(index, {}))
+                if raw.dv_ss_V is not None:
+                    removed = (raw.dv_ss_V - done.dv_ss_V) / done.step.amplitude_A
+            self._removed[index] = removed
+        return self._removed[index]
 
     def preview_window(self, name: str, span_ms: tuple[float, float], *,
                        this_sweep_only: bool = False) -> SweepFit:
@@ -604,14 +664,20 @@ class ReviewState:
         return result
 
     def compute(self, settings: Settings) -> RecordingResult:
-        """The full analysis with `settings` (safe to call from a worker thread)."""
-        return analyze(self.recording, settings)
+        """The full analysis with `settings` (safe to call from a worker thread), and where
+        its sweep fits started, kept for the live refits."""
+        result = analyze(self.recording, settings)
+        self._starts[settings] = start_values(self.recording, settings)
+        return result
 
     def accept_result(self, result: RecordingResult) -> bool:
         """Keep a finished analysis unless the settings changed meanwhile (then False)."""
         if result.settings != self.settings:
             return False
         self.result = result
+        self._start = self._starts.pop(result.settings, None)
+        self._starts.clear()
+        self._removed.clear()
         self.live.clear()
         self.result_changed.emit(result)
         return True
@@ -642,6 +708,8 @@ class ReviewState:
         if settings.step != self.settings.step:
             self.steps = self._steps_for(settings)
             self._floor.clear()
+            self._prep.clear()
+            self._start = None           # the analysis's steps are not these
         self.settings = settings
         self.live.clear()
         if self.autosave:

@@ -29,7 +29,7 @@ from passivefit.gui.panels import (
 )
 from passivefit.gui.state import WINDOW_NAMES, ReviewState, expand_paths
 from passivefit.gui.watching import WatchActions
-from passivefit.gui.worker import AnalysisRunner
+from passivefit.gui.worker import AnalysisRunner, FolderRunner
 from passivefit.io.recording import LoadError, StepSpec
 from passivefit.model.settings import Settings
 
@@ -87,6 +87,10 @@ class ReviewWindow(WindowLayout, OutputActions, FileActions, WatchActions,
         self.runner.finished.connect(self._analysis_done)
         self.runner.failed.connect(self._analysis_failed)
         self.runner.busy_changed.connect(self._busy)
+        self.folder_runner = FolderRunner(self)
+        self.folder_runner.progress.connect(self._folder_progress)
+        self.folder_runner.finished.connect(self._folder_done)
+        self.folder_runner.failed.connect(self._folder_failed)
         self.setWindowTitle("passivefit · review")
         self.setStyleSheet(theme.STYLE_SHEET)
         self.setAcceptDrops(True)

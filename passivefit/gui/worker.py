@@ -83,3 +83,73 @@ class AnalysisRunner(QtCore.QObject):
         """Block until the running analysis ends (for closing the window)."""
         self._waiting = None
         return self.pool.waitForDone(msecs)
+
+
+class _FolderSignals(QtCore.QObject):
+    progress = QtCore.Signal(object)      # batch.ProgressEvent
+    done = QtCore.Signal(object, str)     # batch.BatchSummary (None on error), error
+
+
+class _FolderJob(QtCore.QRunnable):
+    def __init__(self, paths, target: str, settings, workers, signals: _FolderSignals) -> None:
+        super().__init__()
+        self.paths, self.target, self.settings = paths, target, settings
+        self.workers, self.signals = workers, signals
+        self.setAutoDelete(True)
+
+    def run(self) -> None:
+        from passivefit.batch import run_batch
+
+        try:
+            summary = run_batch(self.paths, self.target, self.settings, workers=self.workers,
+                                progress=self.signals.progress.emit)
+        except Exception as exc:  # noqa: BLE001 - shown to the person, the window goes on
+            self.signals.done.emit(None, str(exc).splitlines()[0] if str(exc)
+                                   else type(exc).__name__)
+        else:
+            self.signals.done.emit(summary, "")
+
+
+class FolderRunner(QtCore.QObject):
+    """Analyses folders of recordings into a cell database (`batch.run_batch`) in a worker
+    thread, one folder at a time, and passes on the batch's progress.
+
+    Signals
+    -------
+    progress(ProgressEvent)   at the start and after every file
+    finished(BatchSummary)
+    failed(message)           the batch could not run (one line)
+    """
+
+    progress = QtCore.Signal(object)
+    finished = QtCore.Signal(object)
+    failed = QtCore.Signal(str)
+
+    def __init__(self, parent: QtCore.QObject | None = None) -> None:
+        super().__init__(parent)
+        self.pool = QtCore.QThreadPool(self)
+        self.pool.setMaxThreadCount(1)
+        self._signals = _FolderSignals()
+        self._signals.progress.connect(self.progress)
+        self._signals.done.connect(self._done)
+        self.busy = False
+
+    def start(self, paths, target: str, settings, workers: int | None = None) -> bool:
+        """Start analysing `paths` into `target`; False when a folder is still running."""
+        if self.busy:
+            return False
+        self.busy = True
+        self.pool.start(_FolderJob([str(p) for p in paths], str(target), settings, workers,
+                                   self._signals))
+        return True
+
+    def _done(self, summary, error: str) -> None:
+        self.busy = False
+        if error:
+            self.failed.emit(error)
+        else:
+            self.finished.emit(summary)
+
+    def wait(self, msecs: int = -1) -> bool:
+        """Block until the folder's analysis ends (tests, closing)."""
+        return self.pool.waitForDone(msecs)

@@ -256,30 +256,50 @@ def _channel_list(abf: Any) -> str:
     return ", ".join(f"{k}: {_channel_label(abf, ch)}" for k, ch in enumerate(abf.channelList))
 
 
-def _channel_data(abf: Any, ch: int, scale: float) -> list[np.ndarray]:
-    """Every sweep of one input channel, copied, in SI units."""
+def _channel_data(abf: Any, ch: int, scale: float, dtype=np.float32) -> list[np.ndarray]:
+    """Every sweep of one input channel, copied, in SI units, as float32 by default.
+
+    ABF data are 16-bit ADC samples (or float32 in float-format files); float32 holds
+    them to within round-off at half the memory of float64. Each value is scaled in
+    float64 and then rounded once to `dtype`. (A recorded current is read as float64:
+    the step finder's thresholds were set on float64 currents.)
+    """
     out = []
     for k in abf.sweepList:
         abf.setSweep(k, channel=ch)
-        out.append(np.array(abf.sweepY, dtype=np.float64) * scale)
+        out.append((np.asarray(abf.sweepY, dtype=np.float64) * scale).astype(dtype, copy=False))
     return out
 
 
-def _vm_problem(traces: list[np.ndarray]) -> str | None:
+def _channel_views(abf: Any, ch: int) -> list[np.ndarray]:
+    """Every sweep of one input channel as pyabf holds it (views, in the file's unit):
+    looked at before choosing the channel, so that only the chosen one is copied."""
+    out = []
+    for k in abf.sweepList:
+        abf.setSweep(k, channel=ch)
+        out.append(abf.sweepY)
+    return out
+
+
+def _vm_problem(traces: list[np.ndarray], scale: float = 1.0) -> str | None:
     """Why a voltage channel is not a membrane potential, or None when it looks like one.
 
-    A membrane potential sits roughly within −120…+20 mV, varies by more than 0.5 mV
-    (steps, noise, events) and is not piecewise constant like a copy of a command
-    (common practice, no source).
+    `traces` times `scale` are in V. A membrane potential sits roughly within −120…+20 mV,
+    varies by more than 0.5 mV (steps, noise, events) and is not piecewise constant like
+    a copy of a command (common practice, no source).
     """
-    allv = np.concatenate(traces)
-    median = float(np.median(allv))
-    low, high = (float(x) for x in np.percentile(allv, [1, 99]))
+    allv = np.concatenate(traces)  # one copy, sorted in place by the percentiles
+    low, median, high = (float(x) * scale for x in np.percentile(allv, [1, 50, 99],
+                                                                 overwrite_input=True))
+    if scale < 0:
+        low, high = high, low
+    del allv
     if not _VM_RANGE_V[0] <= median <= _VM_RANGE_V[1]:
         return f"sits at {median * 1e3:.4g} mV, outside −120…+20 mV"
     if high - low < _VM_MIN_SPREAD_V:
         return f"is flat ({(high - low) * 1e3:.3g} mV between its 1st and 99th percentile)"
-    steady = float(np.mean(np.concatenate([np.diff(t) == 0 for t in traces])))
+    flat = sum(int(np.count_nonzero(np.diff(t) == 0)) for t in traces)
+    steady = flat / max(sum(t.size - 1 for t in traces), 1)
     if steady > _COMMAND_COPY_FRACTION:
         return "is piecewise constant, like a copy of a command"
     return None
@@ -442,7 +462,7 @@ def _choose_current(path: Path, abf: Any, rate: float, dac: int, command_units: 
     if amps:
         i_label = _channel_label(abf, amps[0])
         recorded = _channel_data(abf, amps[0], _units_scale(abf.adcUnits[amps[0]],
-                                                            _CURRENT_UNITS) or 1.0)
+                                                            _CURRENT_UNITS) or 1.0, np.float64)
     rec_steps = [find_steps(r, rate) for r in recorded] if recorded is not None else []
     cmd_steps = [find_steps(c, rate) for c in commands] if commands is not None else []
     if recorded is not None and (any(rec_steps) or not any(cmd_steps)):
@@ -471,8 +491,8 @@ def _response_V(traces: list[np.ndarray], currents: list[np.ndarray] | None,
         step = find_step(c, rate)
         if step is None:
             continue
-        before = v[step.baseline_start : step.onset].mean()
-        during = v[(step.onset + step.offset) // 2 : step.offset].mean()
+        before = v[step.baseline_start : step.onset].mean(dtype=np.float64)
+        during = v[(step.onset + step.offset) // 2 : step.offset].mean(dtype=np.float64)
         total += abs(float(during - before))
     return total
 
@@ -487,9 +507,9 @@ def _choose_voltage(path: Path, abf: Any, volt: list[int], channel: int | str | 
                                   f"(channels: {_channel_list(abf)}); choose one in mV")
         return v_ch, _channel_data(abf, v_ch, _units_scale(abf.adcUnits[v_ch],
                                                            _VOLTAGE_UNITS) or 1.0), []
-    traces = {c: _channel_data(abf, c, _units_scale(abf.adcUnits[c], _VOLTAGE_UNITS) or 1.0)
-              for c in volt}
-    problems = {c: _vm_problem(traces[c]) for c in volt}
+    scales = {c: _units_scale(abf.adcUnits[c], _VOLTAGE_UNITS) or 1.0 for c in volt}
+    views = {c: _channel_views(abf, c) for c in volt}   # in the file's unit, not copied
+    problems = {c: _vm_problem(views[c], scales[c]) for c in volt}
     good = [c for c in volt if problems[c] is None]
     if len(volt) == 1 and (problems[volt[0]] or "").startswith("is flat"):
         good = volt  # the only channel: `validate` names a flat sweep
@@ -497,11 +517,13 @@ def _choose_voltage(path: Path, abf: Any, volt: list[int], channel: int | str | 
         listed = "; ".join(f"{_channel_label(abf, c)} {problems[c]}" for c in volt)
         raise LoadError(path, f"no channel looks like a membrane potential ({listed}); "
                               f"choose one with `channel` if one is")
-    responses = {c: _response_V(traces[c], current.currents, rate) for c in good}
+    responses = {c: abs(scales[c]) * _response_V(views[c], current.currents, rate)
+                 for c in good}
     v_ch = max(good, key=lambda c: responses[c])  # the first of equals: max keeps order
+    traces = _channel_data(abf, v_ch, scales[v_ch])
     if len(volt) == 1:
-        return v_ch, traces[v_ch], []
-    median_mV = float(np.median(np.concatenate(traces[v_ch]))) * 1e3
+        return v_ch, traces, []
+    median_mV = float(np.median(np.concatenate(traces))) * 1e3
     others = "; ".join(
         f"{_channel_label(abf, c)} "
         + (problems[c] or f"answers the steps less ({responses[c] * 1e3:.3g} mV in all "
@@ -509,7 +531,7 @@ def _choose_voltage(path: Path, abf: Any, volt: list[int], channel: int | str | 
         for c in volt if c != v_ch)
     flag = S.PROTOCOL_CHANNEL.make(median_mV * 1e-3, channel=_channel_label(abf, v_ch),
                                    median=f"{median_mV:.1f} mV", others=others)
-    return v_ch, traces[v_ch], [flag]
+    return v_ch, traces, [flag]
 
 
 def _read(path: Path, abf: Any, rate: float, channel: int | str | None) -> Recording:

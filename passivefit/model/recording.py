@@ -1,6 +1,8 @@
 """The one data model every reader returns: a recording of current-clamp sweeps.
 
-All arrays are float64 in SI units (volts, amperes, seconds).
+All arrays are in SI units (volts, amperes, seconds): float64, or float32 where the
+file holds samples of a 16-bit ADC (ABF), which float32 keeps exactly to within
+round-off at half the memory; the analysis computes sums and fits in float64.
 """
 
 from __future__ import annotations
@@ -51,6 +53,12 @@ class StepSpec:
         return np.where(on, self.amplitude_of(sweep_index), 0.0)
 
 
+def _as_float(x) -> np.ndarray:
+    """`x` as float32 when it is float32 already (no copy), else as float64."""
+    x = np.asarray(x)
+    return x if x.dtype == np.float32 else np.asarray(x, dtype=np.float64)
+
+
 @dataclass
 class Sweep:
     """One sweep: the membrane voltage and, when known, the injected current.
@@ -60,10 +68,11 @@ class Sweep:
     index : int
         Sweep number within the recording, from 0.
     voltage : ndarray
-        Membrane potential, in V.
+        Membrane potential, in V: float64, or float32 as given (16-bit ADC data).
     current : ndarray or None
         Injected (command or recorded) current, in A, same length as `voltage`;
-        None when the file carries no current and no step was given.
+        None when the file carries no current and no step was given. float64, or
+        float32 as given.
     """
 
     index: int
@@ -71,9 +80,9 @@ class Sweep:
     current: np.ndarray | None = None
 
     def __post_init__(self) -> None:
-        self.voltage = np.asarray(self.voltage, dtype=np.float64)
+        self.voltage = _as_float(self.voltage)
         if self.current is not None:
-            self.current = np.asarray(self.current, dtype=np.float64)
+            self.current = _as_float(self.current)
             if self.current.shape != self.voltage.shape:
                 raise ValueError(
                     f"sweep {self.index}: current has {self.current.size} samples, "
@@ -152,8 +161,11 @@ class Recording:
         )
 
         fs = self.sample_rate_hz
+        # the command in the voltage's type: float32 beside 16-bit ADC data (half the
+        # memory; the step's amplitude then reads to 1e-8 relative)
         sweeps = [
-            Sweep(s.index, s.voltage, step.command(s.n_samples, fs, k))
+            Sweep(s.index, s.voltage,
+                  step.command(s.n_samples, fs, k).astype(s.voltage.dtype, copy=False))
             for k, s in enumerate(self.sweeps)
         ]
         user = [find_steps(s.current, fs) for s in sweeps]
