@@ -1,9 +1,9 @@
 """`analyze()`: Recording + Settings → RecordingResult, stage by stage, top to bottom.
 
-1. steps: each sweep's step, each sweep read up to its next step (windows.sweep_steps);
-2. sag: whether the cell sags, and then the fit window before the sag (pool.sag_window);
-3. first look: the accepted sweeps combined and fitted once, for the fit start after
-   0.8 τ1 and start values (pool.first_look);
+1.–3. (start.start_values) steps: each sweep's step, each sweep read up to its next step
+   (windows.sweep_steps); sag: whether the cell sags, and then the fit window before the
+   sag (pool.sag_window); first look: the accepted sweeps combined and fitted once, for
+   the fit start after 0.8 τ1 and start values (pool.first_look);
 4. sweeps: each sweep fitted and tested (sweep.analyze_sweep), its spontaneous events
    cut out (events), the step's sign checked, outliers, active sweeps and an unstable
    stretch left out (selection), the person's decisions applied;
@@ -32,24 +32,24 @@ from passivefit.analysis.cable import (
 )
 from passivefit.analysis.events import cut_out_events
 from passivefit.analysis.fits import FIT_ERRORS, fit_average, fit_start_scan, onset_amplitudes
-from passivefit.analysis.pool import average_of, first_look, sag_window, sweep_pool
+from passivefit.analysis.pool import average_of, first_look, sweep_pool
 from passivefit.analysis.selection import (
     check_sign,
     hyperpolarizing_only,
     leave_out_active,
     stable_stretch,
 )
+from passivefit.analysis.start import start_values
 from passivefit.analysis.sweep import (
     analyze_sweep,
     apply_decisions,
-    baseline_only,
     reject_outliers,
     with_bridge_removed,
 )
 from passivefit.analysis.uncertainty import CableContext, bootstrap, halfwidth
-from passivefit.analysis.windows import span, sweep_steps
+from passivefit.analysis.windows import span
 from passivefit.core.qc import Flag
-from passivefit.io.recording import LoadError, Recording
+from passivefit.io.recording import Recording
 from passivefit.model import schema as S
 from passivefit.model.results import CellResult, GroupAverage, RecordingResult, SweepFit
 from passivefit.model.settings import Settings
@@ -64,30 +64,18 @@ def analyze(recording: Recording, settings: Settings | None = None, *,
     With `advise`, also what to record next (the `design` block: analysis.design)."""
     settings = settings or Settings()
     fs = recording.sample_rate_hz
-    steps = sweep_steps(recording, settings)
-    chosen = [(s, st) for s, st in zip(recording.sweeps, steps, strict=True)
-              if settings.sweeps is None or s.index in settings.sweeps]
-    if not chosen:
-        raise LoadError(recording.path, f"none of the sweeps {list(settings.sweeps or [])} exist; "
-                        f"the file has sweeps 0-{len(recording.sweeps) - 1}")
-    # each sweep is read up to its next step (the step's region)
-    voltages = {s.index: s.voltage[:st.region_end] if st is not None else s.voltage
-                for s, st in chosen}
-
-    screened = [baseline_only(voltages[s.index], st, s.index, fs, settings) for s, st in chosen]
-    sag_end = sag_window(screened, voltages, fs) if settings.windows.fit_ms is None else None
-    base = settings
-    if sag_end is not None:   # fit the charging before the sag acts, and not the rebound
-        base = replace(settings, windows=replace(
-            settings.windows, fit_end_ms=settings.windows.fit_end_ms or sag_end / MS,
-            decay=bool(settings.windows.decay)))
-        screened = hyperpolarizing_only(screened)
-    fits, effective, tau_init = _fitted_sweeps(chosen, screened, voltages, fs, base)
+    start = start_values(recording, settings)   # steps, sag window, first look
+    chosen, screened, voltages = start.chosen, start.screened, start.voltages
+    base, sag_end = start.base, start.sag_end_s
+    effective, tau_init = start.effective, start.tau_init
+    fits = _fitted_sweeps(chosen, voltages, fs, effective, tau_init)
     automatic = replace(base, components="auto", fit_start_ms=None)
     if automatic != base:
         # spontaneous events are found with the automatic fits, so that the person's
         # fit start or number of components does not change which samples are used
-        found = _fitted_sweeps(chosen, screened, voltages, fs, automatic)[0]
+        auto_start, auto_init = first_look(screened, voltages, fs, automatic)
+        found = _fitted_sweeps(chosen, voltages, fs, automatic if auto_start is None else
+                               replace(automatic, fit_start_ms=auto_start / MS), auto_init)
         fits = [_with_cut_of(f, auto, voltages[f.index], fs, effective, tau_init)
                 for f, auto in zip(fits, found, strict=True)]
     check_sign(fits, recording.path)
@@ -111,18 +99,14 @@ def analyze(recording: Recording, settings: Settings | None = None, *,
         peel=cell.peel, scan=cell.scan, vi=cell.vi, design=advice)
 
 
-def _fitted_sweeps(chosen, screened: list[SweepFit], voltages: dict[int, np.ndarray],
-                   fs: float, base: Settings):
-    """Every sweep fitted with the fit start and start values of the first look, its
-    spontaneous events cut out; the settings used (`base` with that fit start) and the
-    start values."""
-    start, tau_init = first_look(screened, voltages, fs, base)
-    effective = base if start is None else replace(base, fit_start_ms=start / MS)
+def _fitted_sweeps(chosen, voltages: dict[int, np.ndarray], fs: float, effective: Settings,
+                   tau_init) -> list[SweepFit]:
+    """Every sweep fitted with `effective` settings from the start values `tau_init`, its
+    spontaneous events cut out."""
     fits = [analyze_sweep(voltages[s.index], st, s.index, fs, effective, tau_init)
             for s, st in chosen]
-    fits = cut_out_events(fits, voltages, fs, lambda f, cut: analyze_sweep(
+    return cut_out_events(fits, voltages, fs, lambda f, cut: analyze_sweep(
         voltages[f.index], f.step, f.index, fs, effective, tau_init, masked_s=cut))
-    return fits, effective, tau_init
 
 
 def _with_cut_of(fit: SweepFit, automatic: SweepFit, v: np.ndarray, fs: float,

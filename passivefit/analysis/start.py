@@ -9,7 +9,7 @@ as `pipeline.analyze` (steps, screening, sag window, first look).
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -17,7 +17,7 @@ from passivefit.analysis.pool import first_look, sag_window
 from passivefit.analysis.selection import hyperpolarizing_only
 from passivefit.analysis.sweep import baseline_only
 from passivefit.analysis.windows import sweep_steps
-from passivefit.io.recording import Recording
+from passivefit.io.recording import LoadError, Recording
 from passivefit.model.settings import Settings
 
 MS = 1e-3
@@ -41,6 +41,12 @@ class StartValues:
         End of the charging fit of a sagging cell (s after the onset), None = no sag.
     voltages : dict of int to numpy.ndarray
         Each chosen sweep's voltage (V) up to its next step.
+    chosen : list of (Sweep, Step or None)
+        The sweeps analysed, with their steps.
+    screened : list of SweepFit
+        Their baselines measured (only the hyperpolarizing ones in a sagging cell).
+    base : Settings
+        `settings` with the fit window before a sag.
     """
 
     settings: Settings
@@ -49,6 +55,9 @@ class StartValues:
     start_s: float | None
     sag_end_s: float | None
     voltages: dict[int, np.ndarray]
+    chosen: list = field(default_factory=list)
+    screened: list = field(default_factory=list)
+    base: Settings | None = None
 
     def effective_for(self, settings: Settings) -> Settings:
         """`settings` (e.g. with a window moved) as the analysis would fit sweeps with them,
@@ -73,6 +82,10 @@ def start_values(recording: Recording, settings: Settings) -> StartValues:
     steps = sweep_steps(recording, settings)
     chosen = [(s, st) for s, st in zip(recording.sweeps, steps, strict=True)
               if settings.sweeps is None or s.index in settings.sweeps]
+    if not chosen:
+        raise LoadError(recording.path, f"none of the sweeps {list(settings.sweeps or [])} exist; "
+                        f"the file has sweeps 0-{len(recording.sweeps) - 1}")
+    # each sweep is read up to its next step (the step's region)
     voltages = {s.index: s.voltage[:st.region_end] if st is not None else s.voltage
                 for s, st in chosen}
     screened = [baseline_only(voltages[s.index], st, s.index, fs, settings) for s, st in chosen]
@@ -85,4 +98,5 @@ def start_values(recording: Recording, settings: Settings) -> StartValues:
         screened = hyperpolarizing_only(screened)
     start, tau_init = first_look(screened, voltages, fs, base)
     effective = base if start is None else replace(base, fit_start_ms=start / MS)
-    return StartValues(settings, effective, tau_init, start, sag_end, voltages)
+    return StartValues(settings, effective, tau_init, start, sag_end, voltages, chosen,
+                       screened, base)
