@@ -29,7 +29,9 @@ def ca1_json():
 
 
 def test_analyze_json_follows_the_contract(ca1_json):
-    assert set(ca1_json) == {"passivefit_version", "source", "settings", "cell", "sweeps", "flags"}
+    # the contract's keys, and the `design` block (what to record next) beside them
+    assert set(ca1_json) == {"passivefit_version", "source", "settings", "cell", "sweeps", "flags",
+                             "design"}
     assert set(ca1_json["source"]) == {"path", "sha256", "format", "sweep_count"}
     assert ca1_json["source"]["format"] == "nwb"
     assert ca1_json["source"]["sweep_count"] == 20
