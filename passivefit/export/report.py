@@ -402,7 +402,7 @@ def _numbers_pages(pdf, recording, data: dict, when: datetime) -> None:
                 label, text, unit = row
                 cells += [(x, textwrap.shorten(label, 34)),
                           (x + 0.23, textwrap.shorten(f"{text} {unit}".strip(), 30))]
-        pages.row(cells, step=0.0105, fontsize=6.8)
+        pages.row(cells, step=0.0100, fontsize=6.8)
     pages.y -= 0.008
     pages.title("Flags")
     pages.paragraphs(_flag_lines(data), width=118)
@@ -415,20 +415,15 @@ def _numbers_pages(pdf, recording, data: dict, when: datetime) -> None:
         lines = [f"{head:<78}{head}"] + [f"{a:<78}{b}" for a, b in
                                          zip(body[:half], right, strict=True)]
     for line in lines:
-        pages.row([(LEFT, line)], step=0.0105, family="monospace", fontsize=6)
-    if data.get("design"):
-        from passivefit.analysis.design import text_lines
-
-        pages.y -= 0.008
+        pages.row([(LEFT, line)], step=0.0098, family="monospace", fontsize=6)
+    if data.get("design"):   # its full table is in the JSON and the window
         pages.title("What to record next")
-        for line in text_lines(data["design"]):
-            for part in textwrap.wrap(line, 150) or [""]:
-                pages.row([(LEFT, part)], step=0.0105, family="monospace", fontsize=6)
+        pages.paragraphs([data["design"]["advice"]], width=138, fontsize=6.6)
     pages.y -= 0.008
     pages.title("Provenance")
     pages.paragraphs(_provenance_lines(data, when), width=118)
     pages.title("Cautions")
-    pages.paragraphs(CAUTIONS.split("\n"), width=138, fontsize=6.6)
+    pages.paragraphs(CAUTIONS.split("\n"), width=150, fontsize=6.2)
     pages.close()
 
 
@@ -449,7 +444,7 @@ def _more_rows(cell: Mapping) -> list[tuple[str, str, str]]:
     rows = []
     for q in S.CELL_EXTRA:
         value = cell.get(q.key)
-        if q.key in shown or value is None or value is False or q.key.endswith("ci95"):
+        if q.key in shown or value is None or value is False or "ci95" in q.key:
             continue
         text = textwrap.shorten(_fmt(value), 70) + S.uncertainty_text(cell, q)
         rows.append((q.title or q.label, text, q.unit))

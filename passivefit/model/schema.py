@@ -175,8 +175,11 @@ def uncertainty_text(cell: Mapping, q: Quantity) -> str:
     if len(ends) == 2 and None not in ends:
         low, high = ends
         return f" ({low:.2g}–{high:.2g})"
-    if q.ci and cell.get(q.ci) is not None:
-        return f" ± {cell[q.ci]:.2g}"
+    ci = cell.get(q.ci) if q.ci else None
+    if isinstance(ci, list | tuple) and len(ci) == 2 and None not in ci:   # (low, high)
+        return f" ({ci[0]:.2g}–{ci[1]:.2g})"
+    if isinstance(ci, int | float):
+        return f" ± {ci:.2g}"
     return ""
 
 
