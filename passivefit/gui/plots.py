@@ -459,17 +459,26 @@ class VIView(QtWidgets.QWidget):
                        symbolBrush=pg.mkBrush(theme.TEAL))
         slope = vi.get("slope")
         x = np.array([min(0.0, i_pa.min()), max(0.0, i_pa.max())])
-        chord = result.cell.values.get(S.R_IN_CHORD.key)
-        if slope is not None and result.cell.values.get(S.R_IN.key) == chord:
+        values = result.cell.values
+        chord = values.get(S.R_IN_CHORD.key)
+        if slope is not None and values.get(S.R_IN.key) == chord:
             # the relation bends: R_in is the chord of the smallest steps, drawn as such
-            line = chord * 1e6 * x * PA / MV
-            set_title(self.plot, f"bends · smallest steps {chord:.4g} MΩ")
+            # (through the raw points: a bridge taken out is added back)
+            raw = chord + ((values.get(S.BRIDGE.key) or 0.0)
+                           if values.get(S.BRIDGE_APPLIED.key) else 0.0)
+            line = raw * 1e6 * x * PA / MV
+            title = f"bends · smallest steps {raw:.4g} MΩ"
         elif slope is not None:
             line = (slope.slope_ohm * x * PA + slope.intercept_V) / MV
-            set_title(self.plot, f"slope {slope.slope_ohm / 1e6:.4g} MΩ · r² {slope.r2:.4f}")
+            title = f"slope {slope.slope_ohm / 1e6:.4g} MΩ · r² {slope.r2:.4f}"
         else:   # one amplitude: the line through the origin is ΔV/ΔI
             r_in = float(np.sum(vi["dv_V"] * vi["current_A"]) / np.sum(vi["current_A"] ** 2))
             line = r_in * x * PA / MV
-            set_title(self.plot, f"one step · ΔV/ΔI {r_in / 1e6:.4g} MΩ")
+            title = f"one step · ΔV/ΔI {r_in / 1e6:.4g} MΩ"
+        if values.get(S.BRIDGE_APPLIED.key) and values.get(S.R_IN.key) is not None:
+            # the points are the raw deflections; the cell's R_in has the bridge taken out
+            title = f"raw {title.split(' · ')[-1 if 'bends' in title else 0]} · " \
+                    f"R_in {values[S.R_IN.key]:.4g} MΩ, bridge out"
+        set_title(self.plot, title)
         self.plot.plot(x, line, pen=pg.mkPen(theme.TERRACOTTA, width=1.6))
         self.plot.getPlotItem().getViewBox().autoRange(padding=0.1)
