@@ -93,7 +93,9 @@ def _advise(recording, result, targets=None) -> design.DesignAdvice:
                          kind="step", onset_s=ONSET_S, duration_s=DURATION_S,
                          amplitudes_A=amps, sweep_s=SWEEP_S, sample_rate_hz=FS, filter_hz=FC,
                          noise_sd_V=sd, noise_acf=acf, n_sweeps=len(used),
-                         achieved_ci=_cis(cell), targets=targets, fit_start_s=FIT_START_S)
+                         achieved_ci=_cis(cell), targets=targets, fit_start_s=FIT_START_S,
+                         bridge_known=result.cable_fit is not None
+                         and not result.cable_fit.bridge_needed)
 
 
 def _ml_check(cell_row, repeats: int, seed: int) -> list[tuple]:
@@ -156,7 +158,8 @@ def main() -> None:
         truth = design.advise(tau0_s=tau0, L=L, rho=rho, r_in_ohm=r_in, kind="step",
                               onset_s=ONSET_S, duration_s=DURATION_S, amplitudes_A=amps,
                               sweep_s=SWEEP_S, sample_rate_hz=FS, filter_hz=FC,
-                              noise_sd_V=noise, n_sweeps=N0, fit_start_s=FIT_START_S)
+                              noise_sd_V=noise, n_sweeps=N0, fit_start_s=FIT_START_S,
+                              bridge_known=True)   # the cells have no bridge error
         for v in SHOWN + ("r_in",):
             got = [f[v] for f in fits if f[v] is not None]
             empirical = float(np.std(got, ddof=1)) if len(got) > 2 else math.nan

@@ -280,3 +280,14 @@ def test_a_parameter_without_information_leaves_the_others_finite():
     cov = covariance(fisher)
     assert np.isinf(cov[1, 1])
     assert cov[[0, 2]][:, [0, 2]] == pytest.approx(np.linalg.inv([[4.0, 1.0], [1.0, 9.0]]))
+
+
+def test_a_known_bridge_can_only_narrow_the_bounds(advice):
+    # fixing a nuisance parameter adds no uncertainty (the Schur complement is the smaller
+    # information: Kay 1993 ch. 3); the analysis fits no jump when the data need none
+    known = advise(**CELL, **STEPS, amplitudes_A=[-50e-12, -30e-12], noise_sd_V=0.3e-3,
+                   n_sweeps=10, protocol_changes=False, bridge_known=True)
+    for name in ("tau0", "tau1", "L", "rho", "r_in"):
+        assert known.bound(name).crlb_ci <= advice.bound(name).crlb_ci * (1 + 1e-9)
+    assert known.bound("rho").crlb_ci < 0.95 * advice.bound("rho").crlb_ci
+    assert not math.isfinite(known.bound("bridge").crlb_ci)

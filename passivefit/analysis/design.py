@@ -230,6 +230,9 @@ class Protocol:
         Samples this long after each edge are not used (the electrode artefact), in s.
     electrode_tau_s : float
         Time constant of the residual bridge's artefact, in s.
+    bridge_known : bool
+        The analysis fitted no bridge jump (its data did not need one): the bridge is then
+        not a parameter of the bound either.
     """
 
     kind: str
@@ -241,6 +244,7 @@ class Protocol:
     filter_hz: float | None
     fit_start_s: float = 0.0
     electrode_tau_s: float = 50e-6
+    bridge_known: bool = False
 
     def keep(self) -> np.ndarray:
         n = int(round(self.sweep_s * self.sample_rate_hz))
@@ -400,7 +404,13 @@ def cell_covariance(tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge
     jac = jacobian(_forward(protocol), theta, steps)
     fisher = fisher_information(jac, noise_sd_V, _model_acf(protocol) if acf is None else acf,
                                 protocol.keep())
-    return covariance(n_sweeps * profile_out(fisher, [5]))
+    if not protocol.bridge_known:
+        return covariance(n_sweeps * profile_out(fisher, [5]))
+    keep = [0, 1, 2, 3, 5]   # the bridge held at its value: not estimated
+    cov = np.zeros((5, 5))
+    cov[:4, :4] = covariance(n_sweeps * profile_out(fisher[np.ix_(keep, keep)], [4]))
+    cov[4, 4] = math.inf
+    return cov
 
 
 def _sds(cov: np.ndarray, tau0_s: float, L: float, rho: float, r_in_ohm: float
@@ -425,7 +435,8 @@ def _sds(cov: np.ndarray, tau0_s: float, L: float, rho: float, r_in_ohm: float
         return math.sqrt(var) if math.isfinite(var) and var >= 0 else math.inf
 
     with np.errstate(invalid="ignore"):
-        var_tau1 = float(grad @ cov @ grad) if np.all(np.isfinite(cov[:3, :3])) else math.inf
+        var_tau1 = (float(grad[:3] @ cov[:3, :3] @ grad[:3]) if np.all(np.isfinite(cov[:3, :3]))
+                    else math.inf)
     return {"tau0": tau0_s * sd(cov[0, 0]), "tau1": tau1 * sd(var_tau1),
             "L": L * sd(cov[1, 1]), "rho": rho * sd(cov[2, 2]),
             "r_in": r_in_ohm * sd(cov[3, 3]), "bridge": sd(cov[4, 4])}, tau1
@@ -440,7 +451,7 @@ def advise(*, tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge_ohm: 
            targets: Mapping[str, float] | None = None,
            noise_acf: Sequence[float] | None = None, fit_start_s: float = 0.0,
            electrode_tau_s: float = 50e-6, max_sweeps: int = MAX_SWEEPS,
-           protocol_changes: bool = True) -> DesignAdvice:
+           protocol_changes: bool = True, bridge_known: bool = False) -> DesignAdvice:
     """The CRLB of this cell under this protocol, and what to record next.
 
     Parameters
@@ -480,6 +491,9 @@ def advise(*, tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge_ohm: 
     protocol_changes : bool
         Also compute the protocol changes (most of the time: about 1 s of the 1.4 s of a
         1 s sweep at 20 kHz on a 2-core machine); False leaves `changes` empty.
+    bridge_known : bool
+        The analysis fitted no bridge jump (a likelihood-ratio test found none): the bound
+        then holds the bridge at `bridge_ohm` instead of estimating it, as the fit did.
 
     Raises
     ------
@@ -501,7 +515,7 @@ def advise(*, tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge_ohm: 
         raise ValueError("every amplitude is 0: the sweeps carry no information on the cell")
     sign = -1.0 if np.sum(amps) < 0 else 1.0
     protocol = Protocol(kind, onset_s, duration_s, sign * rms, sweep_s, sample_rate_hz,
-                        filter_hz, fit_start_s, electrode_tau_s)
+                        filter_hz, fit_start_s, electrode_tau_s, bridge_known)
     cell = (tau0_s, L, rho, r_in_ohm)
     cov = cell_covariance(*cell, bridge_ohm, protocol, noise_sd_V, n_sweeps, noise_acf)
     sds, tau1 = _sds(cov, *cell)

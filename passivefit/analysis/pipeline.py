@@ -173,7 +173,8 @@ def _design(cell: CellSummary, chosen, fs: float):
             amplitudes_A=[f.step.amplitude_A for f in used], sweep_s=avg.v_V.size / fs,
             sample_rate_hz=fs, filter_hz=bs.corner_hz, noise_sd_V=noise_sd, noise_acf=acf,
             n_sweeps=len(used), achieved_ci=achieved, fit_start_s=avg.fit_start_s,
-            electrode_tau_s=bs.lag_s if np.isfinite(bs.lag_s) else 50e-6)
+            electrode_tau_s=bs.lag_s if np.isfinite(bs.lag_s) else 50e-6,
+            bridge_known=not bs.bridge_needed)
     except (ValueError, np.linalg.LinAlgError):
         return None
 
