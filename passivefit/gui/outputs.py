@@ -153,9 +153,9 @@ class OutputActions:
             except (OSError, ValueError) as exc:
                 self._problem(write_problem(path, exc))
 
-    def _ask_database(self) -> None:
-        if self.state is None:
-            return
+    def _database_target(self) -> str | None:
+        """The cell database last used, else one the person picks (remembered); None when
+        they cancel."""
         target = self.store.value("database", "")
         if not target:
             target, _ = QtWidgets.QFileDialog.getSaveFileName(
@@ -163,8 +163,16 @@ class OutputActions:
                 "SQLite database (*.sqlite *.db)", options=(
                     QtWidgets.QFileDialog.Option.DontConfirmOverwrite))
             if not target:
-                return
+                return None
             self.store.setValue("database", target)
+        return target
+
+    def _ask_database(self) -> None:
+        if self.state is None:
+            return
+        target = self._database_target()
+        if target is None:
+            return
         try:
             self.add_to_database(target)
         except Exception as exc:  # noqa: BLE001 - a store that fails must not end the review
@@ -217,15 +225,8 @@ class OutputActions:
             self, "Analyse a folder of recordings into the database", self._last_folder())
         if not folder:
             return
-        target = self.store.value("database", "")
-        if not target:
-            target, _ = QtWidgets.QFileDialog.getSaveFileName(
-                self, "Cell database (SQLite file)", str(Path.home() / "cells.sqlite"),
-                "SQLite database (*.sqlite *.db)", options=(
-                    QtWidgets.QFileDialog.Option.DontConfirmOverwrite))
-            if not target:
-                return
-            self.store.setValue("database", target)
-        self.analyse_folder(folder, target)
+        target = self._database_target()
+        if target is not None:
+            self.analyse_folder(folder, target)
 
     # ------------------------------------------------------------------ recent files
