@@ -974,8 +974,9 @@ def fit_ballstick(
     sigma2 = noise_factor * with_jump.rss / max(with_jump.n_points - with_jump.n_params, 1)
     needed = 2 * bare_best.cost * bare.y_scale**2 - with_jump.rss > 5.991 * sigma2
     if needed or bare_problem and not problem:
-        return _summarize(prob, best.x, problem or "converged", not problem, noise_factor,
-                          profile and not problem)
+        if not (profile and not problem):
+            return with_jump   # the same summary: no profile to add
+        return _summarize(prob, best.x, problem or "converged", True, noise_factor, True)
     fit = _summarize(bare, bare_best.x, bare_problem or "converged", not bare_problem,
                      noise_factor, profile and not bare_problem)
     return replace(fit, bridge_V=with_jump.bridge_V, bridge_se_V=with_jump.bridge_se_V,
