@@ -31,6 +31,20 @@ def test_lowpass_response_is_the_analog_filters(rate):
     assert got[0] == 0.0  # the filtered response starts continuously at the edge
 
 
+@pytest.mark.parametrize("n", [64, 255, 256])
+def test_noise_spectrum_is_welchs(n):
+    # core.lowpass computes Welch's periodogram itself (numpy only); against scipy's
+    # (scipy.signal.welch, linear detrend, Hann window, half overlap: an outside reference),
+    # equal to a constant factor, which the corner search does not see
+    from scipy.signal import welch
+
+    from passivefit.core.lowpass import _welch
+
+    x = np.random.default_rng(3).normal(size=3_000).cumsum() * 0.01
+    ratio = welch(x, fs=1.0, nperseg=n, detrend="linear")[1] / _welch(x, n)
+    np.testing.assert_allclose(ratio, ratio[0], rtol=1e-10)
+
+
 def test_lowpass_group_delay():
     # 4-pole Bessel low-frequency group delay 0.336/fc (from memory, textbook value)
     assert Lowpass(2_000.0).group_delay_s() == pytest.approx(0.336 / 2_000.0, rel=0.002)

@@ -17,6 +17,7 @@ Units: Hz for the corner, s and 1/s elsewhere.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from functools import cache
 
@@ -25,12 +26,27 @@ import numpy as np
 __all__ = ["Lowpass"]
 
 
+#: The reverse Bessel polynomial of order 4, highest power first: H(s) = 105/θ4(s) has the
+#: flattest group delay of any 4-pole low-pass (docs/references.md §11).
+_THETA4 = np.array([1.0, 10.0, 45.0, 105.0, 105.0])
+
+
 @cache
 def _unit_bessel() -> tuple[np.ndarray, np.ndarray]:
-    """Poles and residues of the 4-pole Bessel with its −3 dB corner at 1 rad/s."""
-    from scipy.signal import bessel
+    """Poles and residues of the 4-pole Bessel with its −3 dB corner at 1 rad/s.
 
-    _, poles, gain = bessel(4, 1.0, btype="low", analog=True, norm="mag", output="zpk")
+    The roots of θ4 are scaled by the frequency w3 where |H(iw3)|² = 1/2. With x = w²,
+    |θ4(iw)|² = (x² − 45x + 105)² + x(105 − 10x)², so w3² is the positive root of
+    |θ4(iw)|² − 2·105² (a quartic in x).
+    """
+    real = np.polymul([1.0, -45.0, 105.0], [1.0, -45.0, 105.0])
+    imag = np.polymul([1.0, 0.0], np.polymul([-10.0, 105.0], [-10.0, 105.0]))
+    magnitude = np.polyadd(real, imag)
+    magnitude[-1] -= 2 * 105.0**2
+    x = np.roots(magnitude)
+    w3 = math.sqrt(min(r.real for r in x if abs(r.imag) < 1e-9 and r.real > 0))
+    poles = np.roots(_THETA4) / w3
+    gain = float(np.real(np.prod(-poles)))
     residues = np.array([gain / np.prod(p - np.delete(poles, k)) for k, p in enumerate(poles)])
     return poles, residues
 
@@ -74,6 +90,15 @@ class Lowpass:
         ringing = np.real(np.exp(after * self.poles) @ (amplitudes @ self.pole_weights(rates)))
         return np.where(t > 0, direct + ringing, 0.0)
 
+    def noise_acf(self, lags_s: np.ndarray) -> np.ndarray:
+        """Autocorrelation (1 at lag 0) of white noise after the filter, at lags >= 0 (s):
+        with h(t) = sum_k c_k exp(p_k t), R(tau) = sum_jk c_k c_j exp(p_j tau)/-(p_k + p_j)
+        (docs/references.md §11)."""
+        p, c = self.poles, self.residues
+        weights = c[:, None] * c[None, :] / -(p[:, None] + p[None, :])
+        acf = np.real(np.exp(np.asarray(lags_s, float)[:, None] * p) @ weights.sum(axis=0))
+        return acf / float(np.real(weights.sum()))
+
     def group_delay_s(self) -> float:
         """Low-frequency group delay, sum_k -1/p_k (s); 0.336/fc for this filter."""
         return float(np.real(np.sum(-1.0 / self.poles)))
@@ -91,8 +116,6 @@ def corner_from_noise(segments: list[np.ndarray], sample_rate_hz: float) -> floa
     the corner with the smallest misfit is kept. Frequencies below 2 % of the sampling
     rate are left out (slow drift, mains hum, 1/f noise).
     """
-    from scipy.signal import welch
-
     fs = float(sample_rate_hz)
     usable = [np.asarray(s, float) for s in segments if np.size(s) >= 64]
     usable = [s[np.isfinite(s)] for s in usable]
@@ -100,9 +123,7 @@ def corner_from_noise(segments: list[np.ndarray], sample_rate_hz: float) -> floa
     if not usable:
         return None
     n = min(256, min(s.size for s in usable))
-    spectra = [welch(s, fs=fs, nperseg=n, detrend="linear")[1] for s in usable]
-    f = welch(usable[0], fs=fs, nperseg=n)[0]
-    p = np.mean(spectra, axis=0)
+    f, p = np.fft.rfftfreq(n, 1.0 / fs), np.mean([_welch(s, n) for s in usable], axis=0)
     keep = (f > 0.02 * fs) & (p > 0)
     f, p = f[keep], p[keep]
     if f.size < 8:
@@ -123,6 +144,22 @@ def corner_from_noise(segments: list[np.ndarray], sample_rate_hz: float) -> floa
     if best is None or not 0.05 * fs <= best[1] <= 0.45 * fs:
         return None   # no roll-off, or one no amplifier would be set to (coloured noise)
     return float(best[1])
+
+
+def _welch(x: np.ndarray, n: int) -> np.ndarray:
+    """Welch's averaged periodogram of `x` (to a constant factor, which the corner search
+    does not see): segments of `n` samples overlapping by half, each detrended by a
+    straight line and tapered by a periodic Hann window."""
+    step = n - n // 2
+    starts = np.arange(0, x.size - n + 1, step)
+    segments = x[starts[:, None] + np.arange(n)]
+    t = np.arange(n) - (n - 1) / 2
+    slope = segments @ t / (t @ t)
+    segments = segments - segments.mean(axis=1, keepdims=True) - slope[:, None] * t
+    window = 0.5 - 0.5 * np.cos(2 * np.pi * np.arange(n) / n)
+    power = np.mean(np.abs(np.fft.rfft(segments * window, axis=1)) ** 2, axis=0)
+    power[1:(n + 1) // 2] *= 2   # one-sided: the negative frequencies folded in
+    return power
 
 
 def _response(f_hz: np.ndarray, corner_hz: float) -> np.ndarray:
