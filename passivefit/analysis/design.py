@@ -6,12 +6,14 @@ x = s(θ) + w, with Gaussian noise w of covariance C, is the inverse of the Fish
 information F = Jᵀ C⁻¹ J, J = ∂s/∂θ (docs/references.md §10); a derived value g(θ) has
 the bound ∇gᵀ F⁻¹ ∇g. Here
 
-- s(θ) is one sweep of the recorded protocol as the simulator makes it without noise
-  (``passivefit.simulate.noiseless_sweep``: the ball-and-stick response, the residual
-  bridge through the electrode lag, the 4-pole Bessel filter), at the fitted cell;
+- s(θ) is one sweep of the recorded protocol without noise, the model the analysis fits
+  (core.cablefit, docs/references.md §3 and §11): the ball-and-stick response, the
+  residual bridge through the electrode lag, the 4-pole Bessel filter applied exactly,
+  at the fitted cell;
 - θ = (ln τ0, ln L, ln ρ, ln R_in, R_bridge) plus, as a nuisance, each sweep's baseline
-  level; J is taken by central differences (in the logarithms: the bound of a relative
-  error comes out directly);
+  level; J is analytic in ln R_in, R_bridge and the baseline (s is linear in them) and
+  taken by central differences in ln τ0, ln L and ln ρ (in the logarithms: the bound of
+  a relative error comes out directly);
 - the noise is Gaussian and stationary with the standard deviation measured from the
   baselines. Filtered noise is correlated: it is whitened by an autoregressive model
   fitted to its autocorrelation (the measured one, or else that of white noise through
@@ -54,7 +56,7 @@ QUANTITY = {"tau0": S.TAU0, "tau1": S.TAU1, "L": S.L_BS, "rho": S.RHO, "r_in": S
 PULSE_S = 0.5e-3                   # the brief pulse of the "pulses instead of steps" change
 AR_ORDER = 64                      # autoregressive order of the noise whitening
 _LOG_STEP = 1e-4                   # central-difference step in the logarithms
-DESIGN_OVERSAMPLE = 2              # the model's filter at 2x the rate: a bound needs no more
+_NEGLIGIBLE = 40.0                 # an exponential past 40 time constants is left out (e^-40)
 
 
 # ---------------------------------------------------------------------------- generic
@@ -80,14 +82,13 @@ def ar_whitener(acf: Sequence[float], order: int | None = None) -> tuple[np.ndar
     Yule–Walker equations (docs/references.md §10); with `acf` = [1, 0, ...] (white noise)
     the filter is [1] and the ratio 1.
     """
-    from scipy.linalg import solve_toeplitz
-
     r = np.asarray(acf, dtype=float)
     r = r / r[0]
     p = min(len(r) - 1, AR_ORDER) if order is None else min(order, len(r) - 1)
     if p < 1 or np.allclose(r[1:p + 1], 0.0):
         return np.ones(1), 1.0
-    a = solve_toeplitz(r[:p], r[1:p + 1])
+    lags = np.arange(p)
+    a = np.linalg.solve(r[np.abs(lags[:, None] - lags)], r[1:p + 1])
     ratio = float(1.0 - np.dot(a, r[1:p + 1]))
     if not (math.isfinite(ratio) and ratio > 1e-6):       # not positive definite: no whitening
         return np.ones(1), 1.0
@@ -169,16 +170,22 @@ def fisher_information(jac: np.ndarray, sigma: float, acf: Sequence[float] | Non
     64 the bound of Bessel-filtered noise is within about 5 % of the exact JᵀC⁻¹J
     (slightly optimistic; tests/test_design.py).
     """
-    from scipy.signal import lfilter
-
     ratio = 1.0
     used = np.ones(jac.shape[0], dtype=bool) if keep is None else np.asarray(keep, bool).copy()
     if acf is not None:
         b, ratio = ar_whitener(acf)
-        jac = lfilter(b, [1.0], jac, axis=0)
+        jac = _fir(b, jac)
         used[: b.size - 1] = False
     jac = jac[used]
     return jac.T @ jac / (sigma**2 * ratio)
+
+
+def _fir(b: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """`x` filtered along its first axis by the FIR filter `b` (zero history)."""
+    out = b[0] * x
+    for k in range(1, min(b.size, x.shape[0])):
+        out[k:] += b[k] * x[:-k]
+    return out
 
 
 def covariance(fisher: np.ndarray) -> np.ndarray:
@@ -369,28 +376,104 @@ def _shown(q, x: float | None) -> float | None:
 
 def _forward(protocol: Protocol):
     """θ = (ln τ0, ln L, ln ρ, ln R_in, R_bridge, baseline) → one sweep (V)."""
-    from passivefit.simulate import BallStick, PulseProtocol, StepProtocol, noiseless_sweep
-
-    shape = (PulseProtocol(protocol.onset_s, protocol.duration_s, 1.0) if protocol.kind ==
-             "pulse" else StepProtocol(protocol.onset_s, protocol.duration_s, (1.0,)))
+    membrane, bridge = _membrane_unit(protocol), _bridge_unit(protocol)
 
     def model(theta: np.ndarray) -> np.ndarray:
-        tau0, L, rho, r_in = np.exp(theta[:4])
-        cell = BallStick.from_electrotonic(tau0, L, rho, r_in)
-        v = noiseless_sweep(cell, shape, amplitude_A=protocol.amplitude_A,
-                            sample_rate_hz=protocol.sample_rate_hz,
-                            sweep_duration_s=protocol.sweep_s, filter_hz=protocol.filter_hz,
-                            bridge_ohm=theta[4], electrode_tau_s=protocol.electrode_tau_s,
-                            oversample=DESIGN_OVERSAMPLE)
-        return v + theta[5]
+        return (protocol.amplitude_A * (math.exp(theta[3]) * membrane(theta[:3])
+                                        + theta[4] * bridge) + theta[5])
 
     return model
 
 
-def _model_acf(protocol: Protocol) -> np.ndarray:
-    from passivefit.simulate import filtered_noise_acf
+def _sweep_of(protocol: Protocol, edge_response) -> np.ndarray:
+    """One sweep of `protocol` from the response to a unit step at an edge
+    (`edge_response(u)`, u the times after the edge, ascending): the step's onset minus
+    its end."""
+    t = np.arange(int(round(protocol.sweep_s * protocol.sample_rate_hz))) / protocol.sample_rate_hz
+    out = np.zeros(t.size)
+    for edge, sign in ((protocol.onset_s, 1.0), (protocol.onset_s + protocol.duration_s, -1.0)):
+        after = t > edge
+        if after.any():
+            out[after] += sign * edge_response(t[after] - edge)
+    return out
 
-    return filtered_noise_acf(protocol.filter_hz, protocol.sample_rate_hz, AR_ORDER)
+
+def _filtered_sum(u: np.ndarray, rates: np.ndarray, amplitudes: np.ndarray,
+                  lowpass) -> np.ndarray:
+    """Σ a_m exp(−λ_m u) through the filter (core.lowpass; None: unfiltered) at the times
+    `u` > 0 after an edge (ascending). Each exponential is summed only where it is above
+    e^-40 of its amplitude, so fast modes cost a few samples each."""
+    out = np.zeros(u.size)
+    direct = amplitudes * (1.0 if lowpass is None else lowpass.gain(rates))
+    terms = list(zip(rates, direct))
+    if lowpass is not None:
+        terms += zip(-lowpass.poles, amplitudes @ lowpass.pole_weights(rates))
+    for rate, a in terms:
+        n = u.size if rate.real <= 0 else int(np.searchsorted(u, _NEGLIGIBLE / rate.real))
+        out[:n] += np.real(a * np.exp(-rate * u[:n]))
+    return out
+
+
+def _membrane_unit(protocol: Protocol):
+    """(ln τ0, ln L, ln ρ) → the membrane's sweep response per unit R_in × current (its
+    steady deflection 1): the ball-and-stick modes (core.cablefit.mode_table), the modes
+    beyond the shortest sampled time lumped into one (their sum at the edge is exact)."""
+    from passivefit.core.cable import b0_over_vinf
+    from passivefit.core.cablefit import mode_table, modes_needed
+    from passivefit.core.lowpass import Lowpass
+
+    lowpass = None if protocol.filter_hz is None else Lowpass(protocol.filter_hz)
+    dt = 1.0 / protocol.sample_rate_hz
+
+    def unit(log_cell: np.ndarray) -> np.ndarray:
+        tau0, L, rho = np.exp(log_cell)
+        n = modes_needed(L, tau0, dt)
+        rate, ratio = mode_table(L, rho, n + 1)
+        b0 = b0_over_vinf(L, rho)
+        ratio[-1] = 1.0 / b0 - ratio[:-1].sum()   # the modes left out, at the next rate
+        rates = np.concatenate(([0.0], rate / tau0))
+        amplitudes = np.concatenate(([1.0], -b0 * ratio))
+        return _sweep_of(protocol, lambda u: _filtered_sum(u, rates, amplitudes, lowpass))
+
+    return unit
+
+
+def _bridge_unit(protocol: Protocol) -> np.ndarray:
+    """The residual bridge's sweep response per unit resistance × current: a jump through
+    the electrode's first-order lag, filtered."""
+    from passivefit.core.lowpass import Lowpass
+
+    lowpass = None if protocol.filter_hz is None else Lowpass(protocol.filter_hz)
+    rates = np.array([0.0, 1.0 / protocol.electrode_tau_s])
+    return _sweep_of(protocol, lambda u: _filtered_sum(u, rates, np.array([1.0, -1.0]),
+                                                       lowpass))
+
+
+def _sweep_jacobian(protocol: Protocol, theta: np.ndarray) -> np.ndarray:
+    """∂s/∂θ of one sweep, θ = (ln τ0, ln L, ln ρ, ln R_in, R_bridge, baseline): analytic
+    in the last three (s is linear in R_in, R_bridge and the baseline), central
+    differences in the cell's logarithms."""
+    membrane = _membrane_unit(protocol)
+    scale = protocol.amplitude_A * math.exp(theta[3])
+    cols = []
+    for i in range(3):
+        up, down = theta[:3].copy(), theta[:3].copy()
+        up[i] += _LOG_STEP
+        down[i] -= _LOG_STEP
+        cols.append(scale * (membrane(up) - membrane(down)) / (2.0 * _LOG_STEP))
+    cols.append(scale * membrane(theta[:3]))
+    cols.append(protocol.amplitude_A * _bridge_unit(protocol))
+    cols.append(np.ones(cols[0].size))
+    return np.column_stack(cols)
+
+
+def _model_acf(protocol: Protocol) -> np.ndarray:
+    from passivefit.core.lowpass import Lowpass
+
+    lags = np.arange(AR_ORDER + 1) / protocol.sample_rate_hz
+    if protocol.filter_hz is None:
+        return (lags == 0).astype(float)
+    return Lowpass(protocol.filter_hz).noise_acf(lags)
 
 
 def cell_covariance(tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge_ohm: float,
@@ -400,8 +483,7 @@ def cell_covariance(tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge
     `protocol` (each sweep's baseline estimated too); `acf` None: the filter's."""
     theta = np.array([math.log(tau0_s), math.log(L), math.log(rho), math.log(r_in_ohm),
                       bridge_ohm, 0.0])
-    steps = [_LOG_STEP] * 4 + [1e-3 * r_in_ohm, 1e-4]
-    jac = jacobian(_forward(protocol), theta, steps)
+    jac = _sweep_jacobian(protocol, theta)
     fisher = fisher_information(jac, noise_sd_V, _model_acf(protocol) if acf is None else acf,
                                 protocol.keep())
     if not protocol.bridge_known:

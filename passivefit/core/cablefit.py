@@ -66,6 +66,7 @@ __all__ = [
     "fit_ballstick",
     "initial_guess",
     "mode_table",
+    "modes_needed",
 ]
 
 L_BOUNDS = (0.05, 5.0)
@@ -183,7 +184,7 @@ def _table(alphas: np.ndarray, L: float, rho: float) -> tuple[np.ndarray, np.nda
     return rate, np.concatenate(([1.0], pulse / rate[1:]))
 
 
-def _modes_needed(L: float, tau0: float, t_min: float) -> int:
+def modes_needed(L: float, tau0: float, t_min: float) -> int:
     """Equalizing modes with t_min/tau_n < _TRUNCATION (alpha_n >= (n - 1/2)pi/L)."""
     alpha = math.sqrt(max(_TRUNCATION * tau0 / t_min - 1.0, 0.0))
     return int(min(max(math.ceil(L * alpha / math.pi + 0.5), 1), _MAX_MODES))
@@ -298,8 +299,8 @@ class _Problem:
         ``margin`` > 1 allows L and tau0 to grow by that factor during a search.
         """
         tau0, L = margin * math.exp(theta[0]), min(margin * math.exp(theta[1]), L_BOUNDS[1])
-        n = _modes_needed(L, tau0, self.t_min)
-        return n, min(_modes_needed(L, tau0, self.t_min_bins), n)
+        n = modes_needed(L, tau0, self.t_min)
+        return n, min(modes_needed(L, tau0, self.t_min_bins), n)
 
     def set_modes(self, theta: np.ndarray, margin: float = 1.2) -> None:
         self.n_modes, self.n_bin_modes = self.modes_for(theta, margin)
