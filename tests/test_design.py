@@ -51,6 +51,33 @@ def test_bound_of_one_exponential_matches_the_closed_form(n):
     assert _bound_tau(t, sigma) == pytest.approx(closed_form_var_tau(t, sigma), rel=1e-6)
 
 
+@pytest.mark.parametrize("kind", ["step", "pulse"])
+def test_sweep_jacobian_is_the_models_derivative(kind):
+    # the analytic columns (R_in, bridge, baseline) against central differences of the
+    # whole sweep model, and the model against the simulator's chain (docs/references.md
+    # §11: the filter by partial fractions, the simulator's by an 8x oversampled digital
+    # Bessel)
+    from passivefit.simulate import BallStick, PulseProtocol, StepProtocol, noiseless_sweep
+
+    duration = 0.4 if kind == "step" else 0.5e-3
+    protocol = design.Protocol(kind, 0.1, duration, -50e-12, 0.6, 20_000.0, 5_000.0, 0.5e-3,
+                               80e-6)
+    theta = np.array([math.log(0.02), 0.0, math.log(3.0), math.log(150e6), 5e6, 1e-3])
+    numeric = jacobian(design._forward(protocol), theta, [1e-4] * 4 + [1e3, 1e-6])
+    analytic = design._sweep_jacobian(protocol, theta)
+    for j in range(6):
+        np.testing.assert_allclose(analytic[:, j], numeric[:, j],
+                                   atol=1e-6 * np.max(np.abs(numeric[:, j])))
+    shape = (StepProtocol(0.1, duration, (1.0,)) if kind == "step"
+             else PulseProtocol(0.1, duration, 1.0))
+    simulated = noiseless_sweep(BallStick.from_electrotonic(0.02, 1.0, 3.0, 150e6), shape,
+                                amplitude_A=-50e-12, sample_rate_hz=20_000.0,
+                                sweep_duration_s=0.6, filter_hz=5_000.0, bridge_ohm=5e6,
+                                electrode_tau_s=80e-6)
+    model = design._forward(protocol)(theta) - theta[5]
+    np.testing.assert_allclose(model, simulated, atol=1e-3 * np.max(np.abs(simulated)))
+
+
 def test_long_record_gives_the_asymptotic_precision():
     t = np.arange(int(20 * TAU / DT)) * DT
     sigma = 0.2e-3

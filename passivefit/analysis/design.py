@@ -455,16 +455,10 @@ def _sweep_jacobian(protocol: Protocol, theta: np.ndarray) -> np.ndarray:
     differences in the cell's logarithms."""
     membrane = _membrane_unit(protocol)
     scale = protocol.amplitude_A * math.exp(theta[3])
-    cols = []
-    for i in range(3):
-        up, down = theta[:3].copy(), theta[:3].copy()
-        up[i] += _LOG_STEP
-        down[i] -= _LOG_STEP
-        cols.append(scale * (membrane(up) - membrane(down)) / (2.0 * _LOG_STEP))
-    cols.append(scale * membrane(theta[:3]))
-    cols.append(protocol.amplitude_A * _bridge_unit(protocol))
-    cols.append(np.ones(cols[0].size))
-    return np.column_stack(cols)
+    cell = scale * jacobian(membrane, theta[:3], [_LOG_STEP] * 3)
+    linear = [scale * membrane(theta[:3]), protocol.amplitude_A * _bridge_unit(protocol),
+              np.ones(cell.shape[0])]
+    return np.column_stack([cell, *linear])
 
 
 def _model_acf(protocol: Protocol) -> np.ndarray:
@@ -745,7 +739,7 @@ def _assumptions(measured_acf: bool, fit_start_s: float) -> str:
     noise = ("stationary Gaussian noise with the autocorrelation measured from the baselines"
              if measured_acf else "stationary Gaussian noise: white noise through the "
              "recorded filter")
-    return (f"Cramér–Rao bound of the ball-and-stick model of the simulator for a passive cell "
+    return (f"Cramér–Rao bound of the fitted ball-and-stick model (bridge lag, filter) for a passive cell "
             f"in {noise} (whitened by an autoregressive model); each sweep's baseline "
             f"estimated; samples within {fit_start_s * 1e3:g} ms of each current edge left "
             "out; no drift, events or active conductances. Sweeps needed scale the achieved "
