@@ -157,9 +157,16 @@ class Event:
 # --------------------------------------------------------------------------- internals
 
 
-@lru_cache(maxsize=4096)
-def _kernel_norm(shape: EventShape, fs_hz: float, n_pre: int, n_post: int) -> float:
-    return float(np.linalg.norm(_kernel(shape, fs_hz, n_pre, n_post)))
+@lru_cache(maxsize=64)
+def _tail_kernels(shape: EventShape, fs_hz: float, n_pre: int, n_post: int, n_min: int
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """Row m: the kernel of a window with m samples after the onset (n_min <= m < n_post),
+    zero-padded to the full window; and its norm."""
+    kernels, norms = np.zeros((n_post, n_pre + n_post)), np.zeros(n_post)
+    for m in range(n_min, n_post):
+        k = _kernel(shape, fs_hz, n_pre, m)
+        kernels[m, : k.size], norms[m] = k, np.linalg.norm(k)
+    return kernels, norms
 
 
 def _basis(n: int, shape: EventShape, fs_hz: float) -> np.ndarray:
@@ -352,11 +359,15 @@ def event_scan(
     sd = np.full(r.size, noise.detector_sd_V)
     if r.size >= full.size:
         amp[n_pre : r.size - n_post + 1] = _correlate_valid(r, full)
-    # shortened windows at the end of the segment
-    for j in range(max(n_pre, r.size - n_post + 1), r.size - n_min + 1):
-        k = _kernel(shape, fs_hz, n_pre, r.size - j)
-        amp[j] = float(k @ r[j - n_pre :])
-        sd[j] = noise.detector_sd_V * _kernel_norm(shape, fs_hz, n_pre, r.size - j) / full_norm
+    # shortened windows at the end of the segment (m samples left after the onset)
+    j = np.arange(max(n_pre, r.size - n_post + 1), r.size - n_min + 1)
+    if j.size:
+        kernels, norms = _tail_kernels(shape, fs_hz, n_pre, n_post, n_min)
+        m = r.size - j
+        windows = np.lib.stride_tricks.sliding_window_view(
+            np.concatenate((r, np.zeros(n_post))), n_pre + n_post)[j - n_pre]
+        amp[j] = np.einsum("ij,ij->i", kernels[m], windows)
+        sd[j] = noise.detector_sd_V * norms[m] / full_norm
     valid = np.isfinite(amp)
     onset = (np.flatnonzero(valid) + start) / fs_hz
     return onset, amp[valid], amp[valid] / sd[valid]
