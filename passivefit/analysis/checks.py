@@ -10,7 +10,7 @@ import numpy as np
 
 from passivefit.analysis.fits import FIT_ERRORS, fit_average, residual
 from passivefit.core import steady
-from passivefit.core.qc import Flag, runs_test_z
+from passivefit.core.qc import Flag, runs_test_z, t975
 from passivefit.model import schema as S
 from passivefit.model.results import GroupAverage, SweepFit
 
@@ -40,7 +40,7 @@ def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag
         values[S.R_IN_SLOPE] = fitline.slope_ohm
         values[S.VI_R2] = fitline.r2
         values[S.R_IN], values[S.R_IN_METHOD] = fitline.slope_ohm, "V-I slope"
-        values[S.R_IN_CI] = _t95(i.size - 2) * fitline.slope_se_ohm
+        values[S.R_IN_CI] = t975(i.size - 2) * fitline.slope_se_ohm
         if fitline.r2 < 0.98 or fitline.curvature > 0.15:
             flags.append(S.VI_NONLINEAR.make(fitline.curvature))
             values[S.R_IN], values[S.R_IN_METHOD] = chord, "smallest steps (V-I not linear)"
@@ -60,18 +60,11 @@ def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag
     return values, vi, flags
 
 
-def _t95(dof: int) -> float:
-    """Student t's 97.5 % point (two-sided 95 %) for `dof` degrees of freedom."""
-    from scipy.special import stdtrit  # as the fits use it (scipy.stats: ~1 s to import)
-
-    return float(stdtrit(max(dof, 1), 0.975))
-
-
 def _ratio_ci(r: np.ndarray) -> float | None:
     """95 % CI half-width of the mean of per-sweep ratios ΔV/ΔI; None from one sweep."""
     if r.size < 2:
         return None
-    return _t95(r.size - 1) * float(np.std(r, ddof=1)) / np.sqrt(r.size)
+    return t975(r.size - 1) * float(np.std(r, ddof=1)) / np.sqrt(r.size)
 
 
 def pulse_input_resistance(g: GroupAverage, fit, fs: float) -> tuple[dict, list[Flag]]:

@@ -405,9 +405,9 @@ def _filtered_sum(u: np.ndarray, rates: np.ndarray, amplitudes: np.ndarray,
     e^-40 of its amplitude, so fast modes cost a few samples each."""
     out = np.zeros(u.size)
     direct = amplitudes * (1.0 if lowpass is None else lowpass.gain(rates))
-    terms = list(zip(rates, direct))
+    terms = list(zip(rates, direct, strict=True))
     if lowpass is not None:
-        terms += zip(-lowpass.poles, amplitudes @ lowpass.pole_weights(rates))
+        terms += zip(-lowpass.poles, amplitudes @ lowpass.pole_weights(rates), strict=True)
     for rate, a in terms:
         n = u.size if rate.real <= 0 else int(np.searchsorted(u, _NEGLIGIBLE / rate.real))
         out[:n] += np.real(a * np.exp(-rate * u[:n]))
@@ -739,8 +739,8 @@ def _assumptions(measured_acf: bool, fit_start_s: float) -> str:
     noise = ("stationary Gaussian noise with the autocorrelation measured from the baselines"
              if measured_acf else "stationary Gaussian noise: white noise through the "
              "recorded filter")
-    return (f"Cramér–Rao bound of the fitted ball-and-stick model (bridge lag, filter) for a passive cell "
-            f"in {noise} (whitened by an autoregressive model); each sweep's baseline "
+    return (f"Cramér–Rao bound of the fitted ball-and-stick model (bridge lag, filter) for a "
+            f"passive cell in {noise} (whitened by an autoregressive model); each sweep's baseline "
             f"estimated; samples within {fit_start_s * 1e3:g} ms of each current edge left "
             "out; no drift, events or active conductances. Sweeps needed scale the achieved "
             "CI (else the bound) by 1/√n.")

@@ -57,6 +57,7 @@ import numpy as np
 from passivefit.core import cable
 from passivefit.core.lowpass import Lowpass
 from passivefit.core.peel import check_samples
+from passivefit.core.qc import t975
 
 __all__ = [
     "L_BOUNDS",
@@ -1066,7 +1067,6 @@ def _summarize(
     prob: _Problem, theta: np.ndarray, message: str, success: bool, noise_factor: float,
     profile: bool,
 ) -> BallStickFit:
-    from scipy.special import stdtrit
 
     prob.set_modes(theta)
     coef, resid = prob.solve(theta)
@@ -1076,7 +1076,7 @@ def _summarize(
     jac = prob.full_jacobian(theta)
     cov = noise_factor * rss / dof * np.linalg.pinv(jac.T @ jac)
     se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
-    q = float(stdtrit(dof, 0.975))
+    q = t975(dof)
     tau0, L, rho = np.exp(theta[:3])
     free = prob.offset_col >= 0
     offsets = prob.fixed.copy()

@@ -33,6 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from passivefit.core.peel import check_samples, geometric_bins, peel_checked
+from passivefit.core.qc import f_survival, t975
 
 _MIN_EXTRA_POINTS = 3  # points required beyond the number of free parameters
 _MAX_EXP_ARG = 700.0  # exp() argument clip: exp(700) ~ 1e304 < float64 max
@@ -437,7 +438,6 @@ def fit_exponentials(
 
 
 def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool) -> ExpFit:
-    from scipy.special import stdtrit
 
     k = prob.k
     order = np.argsort(theta)[::-1]
@@ -467,7 +467,7 @@ def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool)
         amplitudes=prob.coef[:, :k].copy(),
         offsets=offsets,
         tau_se=tau_se,
-        tau_ci95=tau_se * float(stdtrit(dof, 0.975)),
+        tau_ci95=tau_se * t975(dof),
         amp_se=coef_se[:, :k].copy(),
         rmse=math.sqrt(rss / n),
         n_points=n,
@@ -527,7 +527,6 @@ def _record(fit: ExpFit) -> dict:
 
 def _component_problems(fit: ExpFit) -> list[str]:
     """Reasons to distrust a fit's components (empty when all look real)."""
-    from scipy.special import stdtrit
 
     out = []
     if not fit.success:
@@ -537,7 +536,7 @@ def _component_problems(fit: ExpFit) -> list[str]:
         out.append(f"tau CI wider than the value for component(s) {wide.tolist()}")
     if fit.taus.size > 1 and np.min(fit.taus[:-1] / fit.taus[1:]) < _MIN_TAU_RATIO:
         out.append(f"taus closer than a factor {_MIN_TAU_RATIO}")
-    q = float(stdtrit(max(fit.n_points - fit.n_params, 1), 0.975))
+    q = t975(max(fit.n_points - fit.n_params, 1))
     with np.errstate(divide="ignore", invalid="ignore"):
         z = np.abs(fit.amplitudes) / fit.amp_se
     weak = np.flatnonzero(~(np.nanmax(z, axis=0) > q))
@@ -581,8 +580,6 @@ def fit_auto(
         The chosen fit and a record ``{"criterion", "per_n", "chosen", "reason"}``;
         ``per_n[n]`` holds bic, aic, rss, taus_s, success, F-test p and problems.
     """
-    from scipy.special import fdtrc  # F survival function (scipy.stats: ~1 s to import)
-
     if int(max_components) < 1:
         raise ValueError(f"`max_components` must be at least 1, got {max_components}")
     fits: dict[int, ExpFit] = {}
@@ -605,7 +602,7 @@ def fit_auto(
         extra = fits[n].n_params - prev.n_params
         dof = fits[n].n_points - fits[n].n_params
         f_stat = ((prev.rss - fits[n].rss) / extra) / max(fits[n].rss / max(dof, 1), 1e-300)
-        p_value = float(fdtrc(extra, max(dof, 1), f_stat))
+        p_value = f_survival(extra, max(dof, 1), f_stat)
         per_n[n]["f_p"] = p_value
         if stopped:
             continue

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -119,3 +121,82 @@ def correlated_noise_factor(x: np.ndarray, max_lag: int) -> float:
     r = np.array([float(x[:-j] @ x[j:]) / x.size / var for j in range(1, lags + 1)])
     taper = 1 - np.arange(1, lags + 1) / (lags + 1)
     return float(max(1.0, 1 + 2 * np.sum(taper * r)))
+
+
+_Z975 = 1.959963984540054   # the normal distribution's 97.5 % quantile
+
+
+@lru_cache(maxsize=512)
+def t975(dof: int) -> float:
+    """The 97.5 % quantile of Student's t with `dof` degrees of freedom (at least 1): the
+    factor on a standard error for a two-sided 95 % interval (docs/references.md §12).
+
+    For up to 1000 degrees of freedom Newton's method on the exact distribution function,
+    a finite series for integer dof; beyond, the Cornish–Fisher expansion about the normal
+    quantile to 1/dof⁴ (its error is far below round-off there).
+    """
+    nu = max(int(dof), 1)
+    z = _Z975
+    if nu > 1000:
+        return (z + (z**3 + z) / (4 * nu) + (5 * z**5 + 16 * z**3 + 3 * z) / (96 * nu**2)
+                + (3 * z**7 + 19 * z**5 + 17 * z**3 - 15 * z) / (384 * nu**3)
+                + (79 * z**9 + 776 * z**7 + 1482 * z**5 - 1920 * z**3 - 945 * z)
+                / (92160 * nu**4))
+    log_norm = (math.lgamma((nu + 1) / 2) - math.lgamma(nu / 2)
+                - 0.5 * math.log(nu * math.pi))
+    t = 12.7 if nu == 1 else z + (z**3 + z) / (4 * nu)
+    for _ in range(100):
+        density = math.exp(log_norm - (nu + 1) / 2 * math.log1p(t * t / nu))
+        step = (_central_probability(t, nu) - 0.95) / (2 * density)
+        t -= step
+        if abs(step) < 1e-13 * t:
+            break
+    return t
+
+
+def _central_probability(t: float, nu: int) -> float:
+    """P(|T| < t) for Student's t with integer `nu` dof (Abramowitz & Stegun 26.7.3–4)."""
+    theta = math.atan(t / math.sqrt(nu))
+    c = math.cos(theta) ** 2
+    if nu % 2:   # odd: (2/π)(θ + sinθ cosθ Σ_{k<(ν−1)/2} (2·4···2k)/(3·5···(2k+1)) cos^{2k}θ)
+        if nu == 1:
+            return 2 / math.pi * theta
+        k = np.arange(1, (nu - 1) // 2)
+        series = 1.0 + float(np.cumprod(2 * k / (2 * k + 1) * c).sum())
+        return 2 / math.pi * (theta + math.sin(theta) * math.cos(theta) * series)
+    k = np.arange(1, nu // 2)   # even: sinθ Σ_{k<ν/2} (1·3···(2k−1))/(2·4···2k) cos^{2k}θ
+    return math.sin(theta) * (1.0 + float(np.cumprod((2 * k - 1) / (2 * k) * c).sum()))
+
+
+def f_survival(d1: float, d2: float, f: float) -> float:
+    """P(F > f) for Fisher's F with (d1, d2) degrees of freedom: the regularized incomplete
+    beta I_x(d2/2, d1/2) at x = d2/(d2 + d1 f) (docs/references.md §12)."""
+    if not f > 0:
+        return 1.0
+    return _incomplete_beta(d2 / 2, d1 / 2, d2 / (d2 + d1 * f))
+
+
+def _incomplete_beta(a: float, b: float, x: float) -> float:
+    """Regularized incomplete beta I_x(a, b) by its continued fraction, evaluated with
+    Lentz's method (Abramowitz & Stegun 26.5.8), on the side of x where it converges."""
+    if x <= 0.0 or x >= 1.0:
+        return 0.0 if x <= 0.0 else 1.0
+    if x > (a + 1) / (a + b + 2):
+        return 1.0 - _incomplete_beta(b, a, 1.0 - x)
+    tiny = 1e-300
+    front = math.exp(a * math.log(x) + b * math.log1p(-x) + math.lgamma(a + b)
+                     - math.lgamma(a) - math.lgamma(b)) / a
+    d = 1.0 - (a + b) * x / (a + 1)
+    c, d = 1.0, 1.0 / (d if abs(d) > tiny else tiny)
+    value = d
+    for m in range(1, 10_000):
+        for numerator in (m * (b - m) * x / ((a + 2 * m - 1) * (a + 2 * m)),
+                          -(a + m) * (a + b + m) * x / ((a + 2 * m) * (a + 2 * m + 1))):
+            d = 1.0 + numerator * d
+            d = 1.0 / (d if abs(d) > tiny else tiny)
+            c = 1.0 + numerator / c
+            c = c if abs(c) > tiny else tiny
+            value *= c * d
+        if abs(c * d - 1.0) < 1e-15:
+            break
+    return front * value
