@@ -360,14 +360,14 @@ def event_scan(
     if r.size >= full.size:
         amp[n_pre : r.size - n_post + 1] = _correlate_valid(r, full)
     # shortened windows at the end of the segment (m samples left after the onset)
-    j = np.arange(max(n_pre, r.size - n_post + 1), r.size - n_min + 1)
-    if j.size:
+    first, last = max(n_pre, r.size - n_post + 1), r.size - n_min   # onsets j, m = N - j
+    if last >= first:
         kernels, norms = _tail_kernels(shape, fs_hz, n_pre, n_post, n_min)
-        m = r.size - j
+        rows = slice(r.size - first, r.size - last - 1 if r.size - last > 0 else None, -1)
         windows = np.lib.stride_tricks.sliding_window_view(
-            np.concatenate((r, np.zeros(n_post))), n_pre + n_post)[j - n_pre]
-        amp[j] = np.einsum("ij,ij->i", kernels[m], windows)
-        sd[j] = noise.detector_sd_V * norms[m] / full_norm
+            np.concatenate((r, np.zeros(n_post))), n_pre + n_post)[first - n_pre:last - n_pre + 1]
+        amp[first:last + 1] = np.einsum("ij,ij->i", kernels[rows], windows)
+        sd[first:last + 1] = noise.detector_sd_V * norms[rows] / full_norm
     valid = np.isfinite(amp)
     onset = (np.flatnonzero(valid) + start) / fs_hz
     return onset, amp[valid], amp[valid] / sd[valid]
