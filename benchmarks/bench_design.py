@@ -106,7 +106,7 @@ def _ml_check(cell_row, repeats: int, seed: int) -> list[tuple]:
     from scipy.signal import lfilter
 
     from passivefit.simulate import filtered_noise_acf
-    from passivefit.simulate.recording import _apply_filter, _bessel, _noise_gain
+    from passivefit.simulate.recording import OVERSAMPLE, _apply_filter, _bessel, _noise_gain
 
     name, tau0, L, rho, r_in, noise = cell_row
     amps = np.array(_protocol(r_in).amplitudes_A)
@@ -118,15 +118,15 @@ def _ml_check(cell_row, repeats: int, seed: int) -> list[tuple]:
     whiten, _ = design.ar_whitener(filtered_noise_acf(FC, FS, design.AR_ORDER))
     keep = protocol.keep()
     keep[: whiten.size - 1] = False
-    ba = _bessel(FC, FS)
+    ba = _bessel(FC, OVERSAMPLE * FS)   # the simulator's noise: the analog filter, sampled
     sd = noise / math.sqrt(N0)
     scale = np.array([1, 1, 1, 1, 1e6, 1e-3])
     truth = model(theta)
     rng = np.random.default_rng(seed)
     found = []
     for _ in range(repeats):
-        white = rng.normal(0, sd / _noise_gain(ba), truth.size + 2000)
-        y = truth + _apply_filter(ba, white)[2000:]
+        white = rng.normal(0, sd / _noise_gain(ba), OVERSAMPLE * (truth.size + 2000))
+        y = truth + _apply_filter(ba, white)[::OVERSAMPLE][2000:]
 
         def residual(p, y=y):
             return lfilter(whiten, [1.0], model(p * scale) - y)[keep] / sd
