@@ -35,6 +35,7 @@ from passivefit.simulate import BallStick, StepProtocol, simulate_recording
 FS, FC, SWEEP_S, ONSET_S, DURATION_S = 20_000.0, 5_000.0, 1.0, 0.1, 0.4
 N0 = 10
 CAP = 150
+ML_REPEATS = 40   # noisy copies in part 0 (each fit is quick)
 FIT_START_S = 0.5e-3
 #: name, tau0 (s), L, rho, R_in (Ohm), noise sd (V)
 CELLS = (
@@ -132,7 +133,8 @@ def _ml_check(cell_row, repeats: int, seed: int) -> list[tuple]:
             return lfilter(whiten, [1.0], model(p * scale) - y)[keep] / sd
 
         start = theta / scale + np.array([0.02, -0.03, 0.05, 0.01, 0.1, 0.0])
-        found.append(least_squares(residual, start, x_scale="jac").x[:3])
+        found.append(least_squares(residual, start, x_scale="jac", xtol=1e-12, ftol=1e-12,
+                                   gtol=1e-12).x[:3])
     spread = np.std(np.array(found), axis=0, ddof=1)
     return [(name, v, math.sqrt(cov[i, i]), spread[i])
             for i, v in enumerate(("ln tau0", "ln L", "ln rho"))]
@@ -145,7 +147,7 @@ def main() -> None:
     repeats = 6 if args.quick else 16
     repeats_new = 4 if args.quick else 8
     started = time.perf_counter()
-    ml_rows = [row for k in (0, 2) for row in _ml_check(CELLS[k], repeats, 900 + k)]
+    ml_rows = [row for k in (0, 2) for row in _ml_check(CELLS[k], ML_REPEATS, 900 + k)]
     bound_rows, advice_rows = [], []
     for k, (name, tau0, L, rho, r_in, noise) in enumerate(CELLS):
         cell = BallStick.from_electrotonic(tau0, L, rho, r_in)
@@ -199,7 +201,7 @@ def _print(ml_rows, bound_rows, advice_rows, repeats: int, seconds: float) -> No
           f"steps of -9/-6/-3 mV; {platform.processor() or platform.machine()}, "
           f"{seconds:.0f} s")
     print()
-    print(f"0. The bound against a maximum-likelihood fit of its own model ({repeats} noisy "
+    print(f"0. The bound against a maximum-likelihood fit of its own model ({ML_REPEATS} noisy "
           f"copies, the information of {N0} sweeps)")
     print("| cell | parameter | CRLB sd | sd of the ML fits | CRLB / ML |")
     print("|---|---|---|---|---|")
