@@ -9,7 +9,7 @@ import numpy as np
 
 from passivefit.analysis.fits import FIT_ERRORS, fit_segments, onset_amplitudes
 from passivefit.analysis.windows import span
-from passivefit.core.qc import Flag, percentile_halfwidth
+from passivefit.core.qc import Flag, bootstrap_halfwidth
 from passivefit.model import schema as S
 from passivefit.model.results import GroupAverage
 
@@ -169,7 +169,7 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
     if tau1 is None or fit.sag is not None or not passive:  # no τ1, or not a passive cell
         return values, flags
     values[S.L_CYL] = cable.cylinder_L(tau0, tau1)
-    values[S.L_CYL_CI] = None if L_cyl_samples is None else percentile_halfwidth(L_cyl_samples)
+    values[S.L_CYL_CI] = None if L_cyl_samples is None else bootstrap_halfwidth(L_cyl_samples)
     # amplitude ratios of free exponentials are trustworthy only with τ2 fitted as well
     ratios = {}
     if len(fit.taus) >= 3:

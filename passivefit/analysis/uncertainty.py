@@ -1,5 +1,5 @@
 """95 % confidence intervals: a bootstrap over sweeps (resample the accepted sweeps with
-replacement, refit the combined response) and its percentile half-widths."""
+replacement, refit the combined response) and its 95 % half-widths (core.qc.bootstrap_halfwidth)."""
 
 from __future__ import annotations
 
@@ -12,7 +12,7 @@ from passivefit.analysis.fits import FIT_ERRORS, fit_average
 from passivefit.analysis.pool import SweepPool
 from passivefit.analysis.windows import span
 from passivefit.core import steady
-from passivefit.core.qc import percentile_halfwidth
+from passivefit.core.qc import bootstrap_halfwidth
 from passivefit.model.results import GroupAverage
 
 #: Ball-and-stick refits in the bootstrap (each costs ~10 ms); their CI is the larger of
@@ -75,4 +75,4 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
 
 def halfwidth(boot: dict | None, name: str) -> float | None:
     """The bootstrap's 95 % half-width of `name`; None without a bootstrap."""
-    return percentile_halfwidth(boot[name]) if boot is not None else None
+    return bootstrap_halfwidth(boot[name]) if boot is not None else None
