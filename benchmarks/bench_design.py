@@ -94,7 +94,9 @@ def _advise(recording, result, targets=None) -> design.DesignAdvice:
                          kind="step", onset_s=ONSET_S, duration_s=DURATION_S,
                          amplitudes_A=amps, sweep_s=SWEEP_S, sample_rate_hz=FS, filter_hz=FC,
                          noise_sd_V=sd, noise_acf=acf, n_sweeps=len(used),
-                         achieved_ci=_cis(cell), targets=targets, fit_start_s=FIT_START_S,
+                         achieved_ci=_cis(cell), targets=targets,
+                         fit_start_s=(result.design.protocol.fit_start_s if result.design
+                                      else FIT_START_S),   # the samples the analysis used
                          bridge_known=result.cable_fit is not None
                          and not result.cable_fit.bridge_needed)
 

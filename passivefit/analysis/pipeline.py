@@ -172,7 +172,8 @@ def _design(cell: CellSummary, chosen, fs: float):
             kind=step.kind, onset_s=step.onset / fs, duration_s=step.duration_s,
             amplitudes_A=[f.step.amplitude_A for f in used], sweep_s=avg.v_V.size / fs,
             sample_rate_hz=fs, filter_hz=bs.corner_hz, noise_sd_V=noise_sd, noise_acf=acf,
-            n_sweeps=len(used), achieved_ci=achieved, fit_start_s=avg.fit_start_s,
+            n_sweeps=len(used), achieved_ci=achieved,
+            fit_start_s=cell.cable_average.fit_start_s,   # the samples the chain fit used
             electrode_tau_s=bs.lag_s if np.isfinite(bs.lag_s) else 50e-6,
             bridge_known=not bs.bridge_needed)
     except (ValueError, np.linalg.LinAlgError):
@@ -199,6 +200,7 @@ class CellSummary:
     average: GroupAverage | None = None
     cell_fit: object | None = None
     cable_fit: object | None = None
+    cable_average: GroupAverage | None = None   # with the windows of the chain fit
     peel: object | None = None
     scan: dict | None = None
     vi: dict | None = None
@@ -251,7 +253,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         out.flags.extend(_chain_flags(chain_fit, chain))
         bs = chain_fit if chain_fit is not None and chain_fit.success else None
         bridge = bridge_of(chain_fit, avg_cable)
-    out.average, out.cable_fit, out.cell_fit = avg, bs, fit
+    out.average, out.cable_fit, out.cell_fit, out.cable_average = avg, bs, fit, avg_cable
     out.values[S.FIT_START] = avg.fit_start_s
     boot = None
     if fit is not None and settings.bootstrap and len(pool.indices) >= 3:
