@@ -11,7 +11,13 @@ from passivefit.gui import theme
 from passivefit.gui.panels import card
 
 Qt = QtCore.Qt
-HEADINGS = ("value", "now", "bound ±", "achieved ±", "efficiency", "target ±", "sweeps")
+HEADINGS = ("value", "now", "bound ±", "CI ±", "effic.", "target ±", "sweeps")
+#: What each column holds (the headings' tooltips).
+EXPLAINED = ("", "the value now", "95 % half-width of the Cramér–Rao bound for the sweeps used",
+             "the 95 % CI half-width the analysis achieved",
+             "efficiency: bound ± over CI ± (1: no unbiased estimator could do better)",
+             "the target 95 % half-width",
+             "sweeps of this protocol for the target (from the CI achieved, else the bound)")
 
 
 def _fmt(x, digits: int = 3) -> str:
@@ -32,8 +38,14 @@ class DesignPanel(QtWidgets.QFrame):
         frame, layout = card("What to record next")
         outer = QtWidgets.QVBoxLayout(self)
         outer.setContentsMargins(0, 0, 0, 0)
-        outer.addWidget(frame)
+        scroll = QtWidgets.QScrollArea()   # the tables keep their full height; the panel scrolls
+        scroll.setWidgetResizable(True)
+        scroll.setFrameShape(QtWidgets.QFrame.Shape.NoFrame)
+        scroll.setWidget(frame)
+        outer.addWidget(scroll)
         self.values = self._table(HEADINGS)
+        for column, tip in enumerate(EXPLAINED):
+            self.values.horizontalHeaderItem(column).setToolTip(tip)
         layout.addWidget(self.values)
         self.changes = self._table(("protocol change", "L narrower ×", "ρ narrower ×"))
         layout.addWidget(self.changes)
@@ -56,9 +68,22 @@ class DesignPanel(QtWidgets.QFrame):
         table.setEditTriggers(QtWidgets.QAbstractItemView.EditTrigger.NoEditTriggers)
         table.setSelectionMode(QtWidgets.QAbstractItemView.SelectionMode.NoSelection)
         table.setFocusPolicy(Qt.FocusPolicy.NoFocus)
-        table.horizontalHeader().setSectionResizeMode(
-            QtWidgets.QHeaderView.ResizeMode.ResizeToContents)
+        header = table.horizontalHeader()   # the names as wide as they are, numbers share the rest
+        header.setSectionResizeMode(QtWidgets.QHeaderView.ResizeMode.Stretch)
+        header.setSectionResizeMode(0, QtWidgets.QHeaderView.ResizeMode.ResizeToContents)
+        table.setVerticalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
+        table.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
+        table.setSizePolicy(QtWidgets.QSizePolicy.Policy.Expanding,
+                            QtWidgets.QSizePolicy.Policy.Fixed)
         return table
+
+    @staticmethod
+    def _fit_height(table: QtWidgets.QTableWidget) -> None:
+        """Make `table` exactly as tall as its header and rows (it never scrolls)."""
+        table.resizeRowsToContents()
+        rows = sum(table.rowHeight(r) for r in range(table.rowCount()))
+        table.setFixedHeight(table.horizontalHeader().sizeHint().height() + rows
+                             + 2 * table.frameWidth())
 
     def show_advice(self, advice) -> None:
         """Fill the panel from `advice` (None: empty, with a word why)."""
@@ -67,6 +92,8 @@ class DesignPanel(QtWidgets.QFrame):
             self.changes.setRowCount(0)
             self.advice.setText("No advice yet: it needs a ball-and-stick fit of the cell.")
             self.assumptions.setText("")
+            self._fit_height(self.values)
+            self._fit_height(self.changes)
             return
         data = advice.to_dict()
         self.values.setRowCount(len(data["values"]))
@@ -97,6 +124,8 @@ class DesignPanel(QtWidgets.QFrame):
                 self.changes.setItem(r, c, item)
         self.advice.setText(data["advice"])
         self.assumptions.setText(data["assumptions"])
+        self._fit_height(self.values)
+        self._fit_height(self.changes)
 
 
 def _colour(name: str):
