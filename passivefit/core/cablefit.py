@@ -974,12 +974,97 @@ class BallStickFit:
 # ---------------------------------------------------------------------------- fitting
 
 
-def _solve(prob: _Problem, theta0: np.ndarray, free: np.ndarray | None = None,
-           tol: float = 1e-12):
-    """least_squares from ``theta0`` over the ``free`` parameters (default all), enlarging
-    the mode count until it suffices."""
+@dataclass
+class _Solution:
+    """The end of a search: x, half the sum of squared scaled residuals, status (> 0
+    converged, 0 evaluation limit) and a message."""
+
+    x: np.ndarray
+    cost: float
+    status: int
+    message: str
+    nfev: int = 0
+
+
+def _levenberg_marquardt(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray,
+                         tol: float, max_nfev: int = 200) -> _Solution:
+    """Levenberg–Marquardt for the few nonlinear parameters, inside the box [lo, hi].
+
+    Each step solves the damped normal equations through the SVD of the column-scaled
+    Jacobian (Marquardt's scaling), so one SVD serves every damping tried. Trial points
+    are clipped into the box, and a parameter at its bound whose gradient points out of
+    the box is held there for the step (an active set). The damping follows the gain
+    ratio of actual to predicted decrease (Nielsen's rule; Madsen, Nielsen & Tingleff
+    2004, §3.2; docs/references.md §6), as in ``expfit._levenberg_marquardt``.
+
+    It stops when the linear model predicts a decrease below ``tol`` times the cost, an
+    accepted step decreases the cost by less than that, or a step moves x by less than
+    ``tol (tol + |x|)`` — the criteria of :func:`scipy.optimize.least_squares` with
+    ``ftol = xtol = tol``.
+    """
+    x = np.clip(x0, lo, hi)
+    r = fun(x)
+    cost, nfev, lam, nu = float(r @ r), 1, 1e-3, 2.0
+    while nfev < max_nfev:
+        j = jac(x)
+        grad = j.T @ r
+        held = ((x <= lo) & (grad > 0)) | ((x >= hi) & (grad < 0))
+        move = ~held
+        scale = np.sqrt(np.sum(j[:, move] ** 2, axis=0))
+        scale[scale == 0] = 1.0
+        u, sv, vt = np.linalg.svd(j[:, move] / scale, full_matrices=False)
+        ur = u.T @ r
+        if float(np.sum(ur**2)) <= tol * cost:  # the Gauss-Newton step gains nothing
+            return _Solution(x, 0.5 * cost, 1, "the predicted decrease is below the tolerance",
+                             nfev)
+        while True:
+            step = np.zeros_like(x)
+            step[move] = -(vt.T @ (sv / (sv**2 + lam) * ur)) / scale
+            trial = np.clip(x + step, lo, hi)
+            r_trial = fun(trial)
+            nfev += 1
+            cost_trial = float(r_trial @ r_trial)
+            if cost_trial < cost:
+                break
+            moved = trial - x
+            if np.linalg.norm(moved) <= tol * (tol + np.linalg.norm(x)) or nfev >= max_nfev:
+                return _Solution(x, 0.5 * cost, 1 if nfev < max_nfev else 0,
+                                 "no further decrease of the cost" if nfev < max_nfev else
+                                 "the evaluation limit was reached", nfev)
+            lam *= nu
+            nu *= 2.0
+        moved = trial - x
+        fit = r + j @ moved
+        predicted = cost - float(fit @ fit)
+        gain = (cost - cost_trial) / predicted if predicted > 0 else 0.0
+        lam = min(max(lam * max(1.0 / 3.0, 1.0 - (2.0 * gain - 1.0) ** 3), 1e-12), 1e10)
+        nu = 2.0
+        decrease = cost - cost_trial
+        x, r, cost = trial, r_trial, cost_trial
+        if decrease <= tol * cost:
+            return _Solution(x, 0.5 * cost, 2, "the decrease of the cost is below the "
+                             "tolerance", nfev)
+        if np.linalg.norm(moved) <= tol * (tol + np.linalg.norm(x)):
+            return _Solution(x, 0.5 * cost, 3, "the step is below the tolerance", nfev)
+    return _Solution(x, 0.5 * cost, 0, "the evaluation limit was reached", nfev)
+
+
+def _trust_region(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray,
+                  tol: float) -> _Solution:
+    """:func:`scipy.optimize.least_squares` (trust region reflective): slower per step,
+    but its scaling by the distance to the bounds follows a curved valley along a bound
+    where :func:`_levenberg_marquardt` crawls."""
     from scipy.optimize import least_squares
 
+    res = least_squares(fun, x0, jac=jac, bounds=(lo, hi), x_scale=1.0, xtol=tol, ftol=tol,
+                        gtol=tol, max_nfev=200)
+    return _Solution(res.x, float(res.cost), int(res.status), str(res.message), int(res.nfev))
+
+
+def _solve(prob: _Problem, theta0: np.ndarray, free: np.ndarray | None = None,
+           tol: float = 1e-12) -> _Solution:
+    """Levenberg–Marquardt from ``theta0`` over the ``free`` parameters (default all),
+    enlarging the mode count until it suffices."""
     lo, hi = prob.bounds()
     free = np.ones(theta0.size, bool) if free is None else free
     theta = np.clip(theta0, lo + 1e-9, hi - 1e-9)
@@ -991,12 +1076,11 @@ def _solve(prob: _Problem, theta0: np.ndarray, free: np.ndarray | None = None,
 
     for _ in range(4):
         prob.set_modes(theta)
-        res = least_squares(
-            lambda x: prob.residual(full(x)) / prob.y_scale, theta[free],
-            bounds=(lo[free], hi[free]), x_scale=1.0,
-            jac=lambda x: prob.jacobian(full(x))[:, free] / prob.y_scale,
-            xtol=tol, ftol=tol, gtol=tol, max_nfev=200,
-        )  # fmt: skip
+        fun = lambda x: prob.residual(full(x)) / prob.y_scale  # noqa: E731
+        jac = lambda x: prob.jacobian(full(x))[:, free] / prob.y_scale  # noqa: E731
+        res = _levenberg_marquardt(fun, jac, theta[free], lo[free], hi[free], tol)
+        if res.status <= 0:  # a crawl along a curved valley: the trust-region solver
+            res = _trust_region(fun, jac, theta[free], lo[free], hi[free], tol)
         theta = full(res.x)
         if np.all(np.array(prob.modes_for(theta)) <= (prob.n_modes, prob.n_bin_modes)):
             break
