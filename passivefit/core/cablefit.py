@@ -1079,7 +1079,11 @@ def _solve(prob: _Problem, theta0: np.ndarray, free: np.ndarray | None = None,
         fun = lambda x: prob.residual(full(x)) / prob.y_scale  # noqa: E731
         jac = lambda x: prob.jacobian(full(x))[:, free] / prob.y_scale  # noqa: E731
         res = _levenberg_marquardt(fun, jac, theta[free], lo[free], hi[free], tol)
-        if res.status <= 0:  # a crawl along a curved valley: the trust-region solver
+        cell = free & (np.arange(theta.size) < 3)  # tau0, L, rho
+        at_bound = np.any(np.minimum(full(res.x) - lo, hi - full(res.x))[cell] < 1e-6)
+        if res.status <= 0 or at_bound:
+            # a crawl along a curved valley, or tau0, L or rho at a bound (where the cost
+            # is flat, the trust-region solver stops short of it, as the fit always did)
             res = _trust_region(fun, jac, theta[free], lo[free], hi[free], tol)
         theta = full(res.x)
         if np.all(np.array(prob.modes_for(theta)) <= (prob.n_modes, prob.n_bin_modes)):
