@@ -23,12 +23,13 @@ offset, relative to the baseline, is the instantaneous (bridge) jump.
 
 Fitting is by variable projection (Golub & Pereyra 2003, Inverse Problems 19:R1): for each
 trial (log tau0, log L, log rho) the offsets, scales and bridge jumps enter linearly and are
-solved by least squares; :func:`scipy.optimize.least_squares` searches the nonlinear
-parameters with the Golub–Pereyra Jacobian of the projected residual (sums over the samples
-analytic, the per-mode rates and amplitudes differentiated by central differences). The
-eigenvalue roots are found for all modes at once by Newton's method, warm-started from the
-last ones. Segments may share a scale (``group``), e.g. the onset and the decay of the same
-step. Binned data (``expfit.decimate_tail``) are modelled as exact bin means when the
+solved by least squares; a small Levenberg–Marquardt loop searches the nonlinear
+parameters with the Golub–Pereyra Jacobian of the projected residual (the sums over the
+samples and the per-mode rates and amplitudes differentiated analytically), and
+:func:`scipy.optimize.least_squares` takes over where it does not converge or ends at a
+bound. The eigenvalue roots are found for all modes at once by Newton's method,
+warm-started from the last ones. Segments may share a scale (``group``), e.g. the onset
+and the decay of the same step. Binned data (``expfit.decimate_tail``) are modelled as exact bin means when the
 sampling interval is given.
 
 The measurement chain is part of the model (docs/references.md §11): a charge from a known
@@ -77,7 +78,7 @@ _NEWTON_STEPS = 50
 _MIN_EXTRA_POINTS = 3
 _KINDS = ("charge", "decay")
 _FALLBACK_RHO = 3.0
-_MODE_STEP = 1e-6  # difference step of the per-mode vectors in log tau0, log L, log rho
+_MODE_STEP = 1e-6  # difference step in the filter corner, when it is estimated
 _GRID_STARTS = 3  # fits tried from the best points of the fallback grid
 _FALLBACK_L_FACTOR = 0.9  # the naive cylinder L overestimates the ball-and-stick L
 LAG_BOUNDS_S = (1e-6, 2e-4)  # electrode lag of the bridge jump (tens of µs; common practice)
