@@ -29,8 +29,8 @@ samples and the per-mode rates and amplitudes differentiated analytically), and
 :func:`scipy.optimize.least_squares` takes over where it does not converge or ends at a
 bound. The eigenvalue roots are found for all modes at once by Newton's method,
 warm-started from the last ones. Segments may share a scale (``group``), e.g. the onset
-and the decay of the same step. Binned data (``expfit.decimate_tail``) are modelled as exact bin means when the
-sampling interval is given.
+and the decay of the same step. Binned data (``expfit.decimate_tail``) are modelled as
+exact bin means when the sampling interval is given.
 
 The measurement chain is part of the model (docs/references.md §11): a charge from a known
 ``baseline`` adds the bridge jump ``J (1 - exp(-t/lag))`` (a residual series resistance seen
