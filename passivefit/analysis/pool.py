@@ -43,7 +43,9 @@ class SweepPool:
 
     def combine(self, weights: np.ndarray | None = None) -> np.ndarray:
         """The combined response (V) of all sweeps, or with each sweep counted `weights`
-        times (a bootstrap resample: no copy of the sweeps is made).
+        times (a bootstrap resample: no copy of the sweeps is made). `weights` of shape
+        (k, n_sweeps) give k responses at once, shape (k, n_samples), in one pass over
+        the sweeps.
 
         Samples cut out of a sweep (NaN: a spontaneous event) are left out of the sums at
         their times; where every sweep is cut out the response is NaN.
@@ -52,18 +54,18 @@ class SweepPool:
         """
         w = self.currents if weights is None else self.currents * weights
         n = self.deflections.shape[1]
-        num = np.empty(n)
-        den = np.empty(n) if self.gaps else None
+        num = np.empty(w.shape[:-1] + (n,))
+        den = np.empty(w.shape[:-1] + (n,)) if self.gaps else None
         for a in range(0, n, _BLOCK):
             d = self.deflections[:, a:a + _BLOCK].astype(np.float64, copy=False)
             if self.gaps:
                 seen = np.isfinite(d)
-                num[a:a + _BLOCK] = w @ np.where(seen, d, 0.0)
-                den[a:a + _BLOCK] = (w * self.currents) @ seen
+                num[..., a:a + _BLOCK] = w @ np.where(seen, d, 0.0)
+                den[..., a:a + _BLOCK] = (w * self.currents) @ seen
             else:
-                num[a:a + _BLOCK] = w @ d
+                num[..., a:a + _BLOCK] = w @ d
         if not self.gaps:
-            return self.base + self.step.amplitude_A * num / (w @ self.currents)
+            return self.base + self.step.amplitude_A * num / (w @ self.currents)[..., None]
         with np.errstate(invalid="ignore", divide="ignore"):
             h = num / den
         return self.base + self.step.amplitude_A * h

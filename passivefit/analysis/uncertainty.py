@@ -35,6 +35,17 @@ def _baseline(v: np.ndarray, g: GroupAverage, fs: float) -> float:
     return steady.robust_level(v[a:b])
 
 
+#: Samples (resamples × samples) combined per pass over the sweeps: 32 MB of float64.
+_COMBINE_BUDGET = 4_000_000
+
+
+def _combined(pool: SweepPool, weights: np.ndarray):
+    """The combined response of each row of `weights`, several per pass over the sweeps."""
+    per_pass = max(1, _COMBINE_BUDGET // pool.deflections.shape[1])
+    for a in range(0, len(weights), per_pass):
+        yield from pool.combine(weights[a:a + per_pass])
+
+
 def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
               cable: CableContext | None = None, seed: int = 0) -> dict[str, np.ndarray]:
     """Cell values refitted on sweeps resampled with replacement.
@@ -45,12 +56,11 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
     rng = np.random.default_rng(seed)
     n = len(fit.taus)   # membrane components; refits use every component
     out: dict[str, list[float]] = {k: [] for k in ("tau0", "tau1", "tau1_model", "L", "rho")}
-    for _ in range(n_boot):
-        size = len(pool.indices)
-        counts = np.bincount(rng.integers(0, size, size), minlength=size).astype(float)
-        if np.all(pool.currents[counts > 0] == 0):
-            continue
-        v = pool.combine(counts)
+    size = len(pool.indices)
+    counts = np.array([np.bincount(rng.integers(0, size, size), minlength=size)
+                       for _ in range(n_boot)], dtype=float).reshape(n_boot, size)
+    usable = np.array([c for c in counts if not np.all(pool.currents[c > 0] == 0)])
+    for v in _combined(pool, usable):
         try:
             boot, _ = fit_average(replace(g, v_V=v), fs, str(fit.n_total),
                                   tau_init=fit.all_taus)

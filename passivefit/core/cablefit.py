@@ -23,13 +23,14 @@ offset, relative to the baseline, is the instantaneous (bridge) jump.
 
 Fitting is by variable projection (Golub & Pereyra 2003, Inverse Problems 19:R1): for each
 trial (log tau0, log L, log rho) the offsets, scales and bridge jumps enter linearly and are
-solved by least squares; :func:`scipy.optimize.least_squares` searches the nonlinear
-parameters with the Golub–Pereyra Jacobian of the projected residual (sums over the samples
-analytic, the per-mode rates and amplitudes differentiated by central differences). The
-eigenvalue roots are found for all modes at once by Newton's method, warm-started from the
-last ones. Segments may share a scale (``group``), e.g. the onset and the decay of the same
-step. Binned data (``expfit.decimate_tail``) are modelled as exact bin means when the
-sampling interval is given.
+solved by least squares; a small Levenberg–Marquardt loop searches the nonlinear
+parameters with the Golub–Pereyra Jacobian of the projected residual (the sums over the
+samples and the per-mode rates and amplitudes differentiated analytically), and
+:func:`scipy.optimize.least_squares` takes over where it does not converge or ends at a
+bound. The eigenvalue roots are found for all modes at once by Newton's method,
+warm-started from the last ones. Segments may share a scale (``group``), e.g. the onset
+and the decay of the same step. Binned data (``expfit.decimate_tail``) are modelled as
+exact bin means when the sampling interval is given.
 
 The measurement chain is part of the model (docs/references.md §11): a charge from a known
 ``baseline`` adds the bridge jump ``J (1 - exp(-t/lag))`` (a residual series resistance seen
@@ -79,7 +80,7 @@ _NEWTON_STEPS = 50
 _MIN_EXTRA_POINTS = 3
 _KINDS = ("charge", "decay")
 _FALLBACK_RHO = 3.0
-_MODE_STEP = 1e-6  # difference step of the per-mode vectors in log tau0, log L, log rho
+_MODE_STEP = 1e-6  # difference step in the filter corner, when it is estimated
 _GRID_STARTS = 3  # fits tried from the best points of the fallback grid
 _FALLBACK_L_FACTOR = 0.9  # the naive cylinder L overestimates the ball-and-stick L
 LAG_BOUNDS_S = (1e-6, 2e-4)  # electrode lag of the bridge jump (tens of µs; common practice)
@@ -208,6 +209,66 @@ def _edge_weights(rates: np.ndarray, kinds: Sequence[str], durations: np.ndarray
     return out
 
 
+def _edge_slopes(rates: np.ndarray, kinds: Sequence[str], durations: np.ndarray) -> np.ndarray:
+    """d/d lam of :func:`_edge_weights` (real rates): -D exp(-lam D) for a decay after a
+    step or pulse of finite duration D, 0 otherwise."""
+    out = np.zeros((len(kinds), rates.size))
+    for s, kind in enumerate(kinds):
+        if kind == "decay" and math.isfinite(durations[s]):
+            out[s] = -durations[s] * np.exp(-rates * durations[s])
+    return out
+
+
+def _mode_slopes(x: np.ndarray, L: float, rho: float, x_next: float, rates: np.ndarray,
+                 b0: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Derivatives of the rates and of the step amplitudes of :meth:`_Problem.amplitudes`
+    in log tau0, log L and log rho, shape (3, n_rates) each.
+
+    The roots x_n of f(x, k) = sin x + k x cos x = 0, k = tanh(L)/(rho L), move with k as
+    dx/dk = -f_k/f_x = -x cos x / ((1 + k) cos x - k x sin x) (implicit differentiation);
+    alpha_n = x_n/L, tau0/tau_n = 1 + alpha_n^2 and the amplitudes (docs/references.md §3)
+    follow by the chain rule.
+    """
+    tau0 = 1.0 / rates[2]
+    t = math.tanh(L)
+    s = t / rho  # G_S/G_inf
+    k = s / L
+    alpha = x / L
+    cos, sin = np.cos(x), np.sin(x)
+    dx_dk = -x * cos / ((1.0 + k) * cos - k * x * sin)
+    # per log L and log rho: dL, ds, dk
+    dL = np.array([L, 0.0])
+    ds = np.array([L * (1.0 - t * t) / rho, -s])
+    dk = np.array([k * (2.0 * L / math.sinh(2.0 * L) - 1.0), -k])
+    d_alpha = dk[:, None] * dx_dk / L - np.array([[1.0], [0.0]]) * alpha
+    rate = 1.0 + alpha**2
+    d_rate = 2.0 * alpha * d_alpha
+    # pulse ratio 2P/Q with P = L + s, Q = L + s + L alpha^2 s^2 (cable._pulse_ratio_s)
+    P = L + s
+    Q = P + L * (alpha * s) ** 2
+    dP = dL + ds
+    dQ = dP[:, None] + (dL[:, None] * s * s + 2.0 * L * s * ds[:, None]) * alpha**2 \
+        + 2.0 * L * s * s * alpha * d_alpha
+    pulse = 2.0 * P / Q
+    d_pulse = 2.0 * (dP[:, None] * Q - P * dQ) / Q**2
+    d_ratio = (d_pulse - pulse / rate * d_rate) / rate
+    # 1/(B0/V_inf) = (s + L)/(s + tanh L) (cable.b0_over_vinf)
+    dt = (1.0 - t * t) * dL
+    d_inv = ((ds + dL) * (s + t) - (s + L) * (ds + dt)) / (s + t) ** 2
+    d_tail = d_inv - d_ratio.sum(axis=1)
+    d_next = np.array([-2.0 * (x_next / L) ** 2, 0.0])
+    # per rate: step, lag, mode 0, modes 1..n, the tail mode
+    d_rates = np.zeros((3, rates.size))
+    d_rates[0, 2:] = -rates[2:]
+    d_rates[1:, 3:-1] = d_rate / tau0
+    d_rates[1:, -1] = d_next / tau0
+    d_b0 = np.zeros((3, rates.size))
+    d_b0[1:, 0] = d_inv
+    d_b0[1:, 3:-1] = -d_ratio
+    d_b0[1:, -1] = -d_tail
+    return d_rates, d_b0
+
+
 # ------------------------------------------------------------------------- problem
 
 
@@ -251,6 +312,7 @@ class _Problem:
     _offsets: np.ndarray | None = field(default=None, repr=False)
     _key: tuple | None = field(default=None, repr=False)
     _solved: tuple = field(default=(), repr=False)
+    _ring_cache: dict = field(default_factory=dict, repr=False)
 
     @property
     def lag(self) -> bool:
@@ -306,10 +368,15 @@ class _Problem:
     def set_modes(self, theta: np.ndarray, margin: float = 1.2) -> None:
         self.n_modes, self.n_bin_modes = self.modes_for(theta, margin)
 
-    def amplitudes(self, theta: np.ndarray):
+    def amplitudes(self, theta: np.ndarray, derivative: bool = False):
         """The rates (1/s) and, per segment, the amplitudes of the scale's and the bridge's
         columns: on exp(-lam u) (filter gain and edge weight included) and on the filter's
-        exp(p_k u) terms. Returns (rates, direct_b0, direct_bridge, ring_b0, ring_bridge)."""
+        exp(p_k u) terms. Returns (rates, direct_b0, direct_bridge, ring_b0, ring_bridge).
+
+        With ``derivative``, also a list with the same five arrays differentiated in each
+        of log tau0, log L, log rho (and log lag when fitted), by the implicit derivative
+        of the eigenvalue equation (:func:`_mode_slopes`) and the chain rule.
+        """
         tau0, L, rho = np.exp(theta[:3])
         k = math.tanh(L) / (rho * L)
         warm = self._y_start is not None and self._y_start.size == self.n_modes
@@ -329,81 +396,141 @@ class _Problem:
         lp = self.lowpass(theta)
         gain = np.ones_like(rates) if lp is None else lp.gain(rates)
         weights = _edge_weights(rates, self.kinds, self.durations)
-        direct_b0, direct_bridge = b0 * gain * weights, bridge * gain * weights
         # a step from a free offset: the offset carries the step's own constant
-        direct_b0[~self.known_base, 0] = 0.0
-        direct_bridge[~self.known_base, 0] = 0.0
+        free = np.ones(rates.size)
+        free[0] = 0.0
+        filt = gain * weights * np.where(self.known_base[:, None], 1.0, free)
+        direct_b0, direct_bridge = b0 * filt, bridge * filt
         if lp is None:
-            ring = np.zeros((len(self.kinds), 0), dtype=complex)
-            return rates, direct_b0, direct_bridge, ring, ring
-        pole_weights = lp.pole_weights(rates)
-        edge = _edge_weights(-lp.poles, self.kinds, self.durations)
-        return rates, direct_b0, direct_bridge, edge * (b0 @ pole_weights), \
-            edge * (bridge @ pole_weights)
+            ring_b0 = ring_bridge = np.zeros((len(self.kinds), 0), dtype=complex)
+        else:
+            pole_weights = lp.pole_weights(rates)
+            edge = self._ring_edges(lp)
+            ring_b0, ring_bridge = edge * (b0 @ pole_weights), edge * (bridge @ pole_weights)
+        base = rates, direct_b0, direct_bridge, ring_b0, ring_bridge
+        if not derivative:
+            return base
+        # the same in each parameter (leading axis): rates and b0 move, the bridge's
+        # amplitudes are constants; through the filter's gain, the edge weights and the
+        # filter's pole weights, all functions of the rates
+        d_rates, d_b0 = _mode_slopes(x, L, rho, x_next, rates, b0)
+        if self.lag:
+            d_rates = np.vstack([d_rates, np.zeros(rates.size)])
+            d_rates[3, 1] = -rates[1]
+            d_b0 = np.vstack([d_b0, np.zeros(rates.size)])
+        d_gain = np.zeros_like(rates) if lp is None else np.real(
+            np.prod(lp.poles / (lp.poles + rates[:, None]), axis=-1)
+            * np.sum(-1.0 / (lp.poles + rates[:, None]), axis=-1))
+        d_filt = (d_gain * weights + gain * _edge_slopes(rates, self.kinds, self.durations)) \
+            * np.where(self.known_base[:, None], 1.0, free)
+        d_filt = d_rates[:, None, :] * d_filt  # (n_par, n_segments, n_rates)
+        d_direct_b0 = d_b0[:, None, :] * filt + b0 * d_filt
+        d_direct_bridge = bridge * d_filt
+        if lp is None:
+            d_ring_b0 = d_ring_bridge = np.zeros((d_rates.shape[0],) + ring_b0.shape, complex)
+        else:
+            d_pole_weights = -pole_weights / (lp.poles + rates[:, None]) * d_rates[:, :, None]
+            d_ring_b0 = edge * (d_b0 @ pole_weights + b0 @ d_pole_weights)[:, None, :]
+            d_ring_bridge = edge * (bridge @ d_pole_weights)[:, None, :]
+        return base, (d_rates, d_direct_b0, d_direct_bridge, d_ring_b0, d_ring_bridge)
 
-    def _bases(self, theta: np.ndarray, rates: np.ndarray):
-        """exp(-lam u) per point and rate (bins averaged exactly) and d log/d lam, and the
-        filter's exp(p_k u) per point (bins averaged)."""
+    def _ring_edges(self, lp: Lowpass) -> np.ndarray:
+        """Edge weights of the filter's own terms, per segment and pole (cached)."""
+        if self._ring_cache.get("edges_hz") != lp.corner_hz:
+            self._ring_cache["edges"] = _edge_weights(-lp.poles, self.kinds, self.durations)
+            self._ring_cache["edges_hz"] = lp.corner_hz
+        return self._ring_cache["edges"]
+
+    def _ring_bases(self, lp: Lowpass) -> np.ndarray:
+        """The filter's exp(p_k u) per point and pole, bins averaged (cached)."""
+        if self._ring_cache.get("bases_hz") != lp.corner_hz:
+            n, dt, n1 = self.count[:, None], self.dt[:, None], self.n_single
+            z = dt * lp.poles
+            ring = np.exp(self.u[:, None] * lp.poles)
+            ring[n1:] *= np.expm1(n * z) / (n * np.expm1(z))
+            self._ring_cache["bases"] = ring
+            self._ring_cache["bases_hz"] = lp.corner_hz
+        return self._ring_cache["bases"]
+
+    def _bases(self, theta: np.ndarray, rates: np.ndarray, derivative: bool = False):
+        """exp(-lam u) per point and rate for single samples and bins (bins averaged
+        exactly), the filter's exp(p_k u) per point (bins averaged) and, with
+        ``derivative``, d/d lam of the bins' exp(-lam u) (for single samples it is -u
+        times their exp(-lam u))."""
         n1, m = self.n_single, 3 + self.n_bin_modes
         n, dt = self.count[:, None], self.dt[:, None]
         e1 = np.exp(-self.u[:n1, None] * rates)
         x = dt * rates[:m]
         with np.errstate(invalid="ignore", divide="ignore"):
             logb = np.where(x > 0, np.log(np.expm1(-n * x) / (n * np.expm1(-x))), 0.0)
-            dlogb = np.where(x > 0, -self.u[n1:, None] + dt * (
-                _inv_expm1(n * x, n) - _inv_expm1(x, 1.0)), 0.0)
-        eb = np.exp(-self.u[n1:, None] * rates[:m] + logb)
+            eb = np.exp(-self.u[n1:, None] * rates[:m] + logb)
+            if derivative:
+                eb_d = eb * np.where(x > 0, -self.u[n1:, None] + dt * (
+                    _inv_expm1(n * x, n) - _inv_expm1(x, 1.0)), 0.0)
         lp = self.lowpass(theta)
-        if lp is None:
-            ring = np.zeros((self.u.size, 0), dtype=complex)
-        else:
-            z = dt * lp.poles
-            ring = np.exp(self.u[:, None] * lp.poles)
-            ring[n1:] *= np.expm1(n * z) / (n * np.expm1(z))
-        return e1, eb, -self.u[:n1, None], dlogb, ring
+        ring = np.zeros((self.u.size, 0), dtype=complex) if lp is None else self._ring_bases(lp)
+        return e1, eb, ring, (eb_d if derivative else None)
 
-    def _sum(self, e1, eb, ring, direct: np.ndarray, rings: np.ndarray) -> np.ndarray:
+    def _sum(self, e1, eb, ring, direct: np.ndarray, rings: np.ndarray | None) -> np.ndarray:
+        """Per point, the sum over the rates of its bases times its segment's amplitudes,
+        for K sets of amplitudes at once: ``direct`` (K, n_segments, n_rates) on
+        exp(-lam u) and ``rings`` (K, n_segments, n_poles) on the filter's terms (None:
+        none). Returns shape (n_points, K)."""
         n1, m = self.n_single, eb.shape[1]
-        seg1, segb = self.seg[:n1], self.seg[n1:]
-        value = np.concatenate([np.einsum("pm,pm->p", e1, direct[seg1]),
-                                np.einsum("pm,pm->p", eb, direct[segb, :m])])
-        if ring.shape[1]:
-            value += np.real(np.einsum("pk,pk->p", ring, rings[self.seg]))
-        return value
+        k, n_seg, n_rates = direct.shape
+        flat = direct.reshape(k * n_seg, n_rates)
+        out = np.empty((self.u.size, k))
+        rows = np.arange(self.u.size)
+        out[:n1] = (e1 @ flat.T).reshape(n1, k, n_seg)[rows[:n1], :, self.seg[:n1]]
+        out[n1:] = (eb @ flat[:, :m].T).reshape(-1, k, n_seg)[rows[n1:] - n1, :,
+                                                             self.seg[n1:]]
+        if rings is not None and ring.shape[1]:
+            rr = np.real(ring @ rings.reshape(k * n_seg, -1).T).reshape(-1, k, n_seg)
+            out += rr[rows, :, self.seg]
+        return out
 
     def shape(self, theta: np.ndarray, derivative: bool = False):
         """Model columns per unit scale and per unit bridge at every point (unweighted).
 
         With ``derivative``, also their derivatives in theta, shape (n_points, n_theta):
-        for the cable's parameters and the lag the per-rate amplitudes are differentiated
-        numerically (forward differences of cheap per-rate vectors: the Jacobian only
-        steers the search) and the sums over the points analytically; the filter corner,
+        for the cable's parameters and the lag analytically (the per-rate amplitudes by
+        :meth:`amplitudes`, the sums over the points in closed form); the filter corner,
         when estimated, by central differences of the whole.
         """
-        base = self.amplitudes(theta)
-        rates, d_b0, d_br, r_b0, r_br = base
-        e1, eb, dlog1, dlogb, ring = self._bases(theta, rates)
-        value = (self._sum(e1, eb, ring, d_b0, r_b0), self._sum(e1, eb, ring, d_br, r_br))
+        base = self.amplitudes(theta, derivative)
+        if derivative:
+            base, slopes = base
+        rates = base[0]
+        e1, eb, ring, eb_d = self._bases(theta, rates, derivative)
+        direct, rings = np.stack(base[1:3]), np.stack(base[3:5])
         if not derivative:
-            return value
+            value = self._sum(e1, eb, ring, direct, rings)
+            return value[:, 0], value[:, 1]
+        n_num = theta.size - self.estimate_corner  # differentiated through the amplitudes
+        d_rates, d_b0, d_br, r_b0, r_br = slopes
+        n_seg, n_rates = direct.shape[1:]
+        # K = 2 + 2 n_num amplitude sets: (b0, bridge), then (d b0, d bridge) per parameter
+        plain = self._sum(e1, eb, ring,
+                          np.concatenate([direct, np.stack([d_b0, d_br], axis=1).reshape(
+                              2 * d_b0.shape[0], n_seg, n_rates)]),
+                          np.concatenate([rings, np.stack([r_b0, r_br], axis=1).reshape(
+                              2 * r_b0.shape[0], n_seg, rings.shape[2])]))
+        # through the rates: d exp(-lam u)/d lam is -u exp(-lam u) for single samples
+        through = self._sum(e1, eb_d, ring,
+                            (direct[None] * d_rates[:, None, None, :]).reshape(
+                                -1, n_seg, n_rates), None)
+        n1 = self.n_single
+        through[:n1] *= -self.u[:n1, None]
+        value = (plain[:, 0], plain[:, 1])
         out = (np.empty((self.u.size, theta.size)), np.empty((self.u.size, theta.size)))
-        m = eb.shape[1]
-        for j in range(theta.size):
+        for c in range(2):
+            out[c][:, :n_num] = plain[:, 2 + c::2] + through[:, c::2]
+        if self.estimate_corner:
             step = np.zeros_like(theta)
-            step[j] = _MODE_STEP
-            if self.estimate_corner and j == theta.size - 1:
-                up, down = self.shape(theta + step), self.shape(theta - step)
-                for o, a, b in zip(out, up, down, strict=True):
-                    o[:, j] = (a - b) / (2 * _MODE_STEP)
-                continue
-            up = self.amplitudes(theta + step)
-            d = [(a - b) / _MODE_STEP for a, b in zip(up, base, strict=True)]
-            d_rate = d[0]
-            de1, deb = e1 * dlog1 * d_rate, eb * dlogb * d_rate[:m]
-            for o, direct, dd, dr in ((out[0], d_b0, d[1], d[3]), (out[1], d_br, d[2], d[4])):
-                o[:, j] = self._sum(de1, deb, ring[:, :0], direct, dr[:, :0])
-                o[:, j] += self._sum(e1, eb, ring, dd, dr)
-        self.amplitudes(theta)  # leave the warm start at theta
+            step[-1] = _MODE_STEP
+            up, down = self.shape(theta + step), self.shape(theta - step)
+            for o, a, b in zip(out, up, down, strict=True):
+                o[:, -1] = (a - b) / (2 * _MODE_STEP)
         return value, out
 
     def _design(self, shapes) -> np.ndarray:
@@ -436,13 +563,21 @@ class _Problem:
     def residual(self, theta: np.ndarray) -> np.ndarray:
         return self.solve(theta)[1]
 
-    def _d_columns(self, d_shapes, j: int):
-        """(column index, weighted derivative) of the theta-dependent design columns."""
-        with_bridge = self.bridge_col[self.seg] >= 0
-        yield self.scale_col[self.seg], d_shapes[0][:, j] * self.sw
-        if with_bridge.any():
-            cols = np.where(with_bridge, self.bridge_col[self.seg], 0)
-            yield cols, np.where(with_bridge, d_shapes[1][:, j] * self.sw, 0.0)
+    def _d_design(self, d_shapes):
+        """The weighted derivatives of the theta-dependent design columns (scale, then
+        bridge), each (n_points, n_theta), with one-hot maps (n_cols, n_points) from the
+        points to their columns."""
+        if "maps" not in self._ring_cache:
+            rows = np.arange(self.u.size)
+            scale = np.zeros((self.n_cols, self.u.size))
+            scale[self.scale_col[self.seg], rows] = 1.0
+            bridge = np.zeros((self.n_cols, self.u.size))
+            has = self.bridge_col[self.seg] >= 0
+            bridge[self.bridge_col[self.seg[has]], rows[has]] = 1.0
+            self._ring_cache["maps"] = (scale, bridge)
+        scale, bridge = self._ring_cache["maps"]
+        sw = self.sw[:, None]
+        return (d_shapes[0] * sw, scale), (d_shapes[1] * sw * bridge.sum(axis=0)[:, None], bridge)
 
     def jacobian(self, theta: np.ndarray) -> np.ndarray:
         """Golub–Pereyra Jacobian of the projected residual, shape (n_points, n_theta).
@@ -453,25 +588,21 @@ class _Problem:
         self.solve(theta)
         coef, resid, q, r = self._solved
         _, d_shapes = self.shape(theta, derivative=True)
-        jac = np.empty((self.u.size, theta.size))
-        for j in range(theta.size):
-            first = np.zeros(self.u.size)
-            g = np.zeros(self.n_cols)
-            for cols, d_col in self._d_columns(d_shapes, j):
-                first += d_col * coef[cols]
-                g += np.bincount(cols, weights=d_col * resid, minlength=self.n_cols)
-            first -= q @ (q.T @ first)
-            jac[:, j] = -(first + q @ np.linalg.lstsq(r.T, g, rcond=None)[0])
-        return jac
+        first = np.zeros((self.u.size, theta.size))
+        g = np.zeros((self.n_cols, theta.size))
+        for d_col, to_col in self._d_design(d_shapes):
+            first += d_col * (coef @ to_col)[:, None]
+            g += to_col @ (d_col * resid[:, None])
+        first -= q @ (q.T @ first)
+        return -(first + q @ np.linalg.lstsq(r.T, g, rcond=None)[0])
 
     def full_jacobian(self, theta: np.ndarray) -> np.ndarray:
         """Jacobian of the weighted model in (theta, linear coefficients)."""
         coef, _ = self.solve(theta)
         shapes, d_shapes = self.shape(theta, derivative=True)
         d_model = np.zeros((self.u.size, theta.size))
-        for j in range(theta.size):
-            for cols, d_col in self._d_columns(d_shapes, j):
-                d_model[:, j] += d_col * coef[cols]
+        for d_col, to_col in self._d_design(d_shapes):
+            d_model += d_col * (coef @ to_col)[:, None]
         return np.column_stack([d_model, self._design(shapes)])
 
 
@@ -846,12 +977,97 @@ class BallStickFit:
 # ---------------------------------------------------------------------------- fitting
 
 
-def _solve(prob: _Problem, theta0: np.ndarray, free: np.ndarray | None = None,
-           tol: float = 1e-12):
-    """least_squares from ``theta0`` over the ``free`` parameters (default all), enlarging
-    the mode count until it suffices."""
+@dataclass
+class _Solution:
+    """The end of a search: x, half the sum of squared scaled residuals, status (> 0
+    converged, 0 evaluation limit) and a message."""
+
+    x: np.ndarray
+    cost: float
+    status: int
+    message: str
+    nfev: int = 0
+
+
+def _levenberg_marquardt(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray,
+                         tol: float, max_nfev: int = 200) -> _Solution:
+    """Levenberg–Marquardt for the few nonlinear parameters, inside the box [lo, hi].
+
+    Each step solves the damped normal equations through the SVD of the column-scaled
+    Jacobian (Marquardt's scaling), so one SVD serves every damping tried. Trial points
+    are clipped into the box, and a parameter at its bound whose gradient points out of
+    the box is held there for the step (an active set). The damping follows the gain
+    ratio of actual to predicted decrease (Nielsen's rule; Madsen, Nielsen & Tingleff
+    2004, §3.2; docs/references.md §6), as in ``expfit._levenberg_marquardt``.
+
+    It stops when the linear model predicts a decrease below ``tol`` times the cost, an
+    accepted step decreases the cost by less than that, or a step moves x by less than
+    ``tol (tol + |x|)`` — the criteria of :func:`scipy.optimize.least_squares` with
+    ``ftol = xtol = tol``.
+    """
+    x = np.clip(x0, lo, hi)
+    r = fun(x)
+    cost, nfev, lam, nu = float(r @ r), 1, 1e-3, 2.0
+    while nfev < max_nfev:
+        j = jac(x)
+        grad = j.T @ r
+        held = ((x <= lo) & (grad > 0)) | ((x >= hi) & (grad < 0))
+        move = ~held
+        scale = np.sqrt(np.sum(j[:, move] ** 2, axis=0))
+        scale[scale == 0] = 1.0
+        u, sv, vt = np.linalg.svd(j[:, move] / scale, full_matrices=False)
+        ur = u.T @ r
+        if float(np.sum(ur**2)) <= tol * cost:  # the Gauss-Newton step gains nothing
+            return _Solution(x, 0.5 * cost, 1, "the predicted decrease is below the tolerance",
+                             nfev)
+        while True:
+            step = np.zeros_like(x)
+            step[move] = -(vt.T @ (sv / (sv**2 + lam) * ur)) / scale
+            trial = np.clip(x + step, lo, hi)
+            r_trial = fun(trial)
+            nfev += 1
+            cost_trial = float(r_trial @ r_trial)
+            if cost_trial < cost:
+                break
+            moved = trial - x
+            if np.linalg.norm(moved) <= tol * (tol + np.linalg.norm(x)) or nfev >= max_nfev:
+                return _Solution(x, 0.5 * cost, 1 if nfev < max_nfev else 0,
+                                 "no further decrease of the cost" if nfev < max_nfev else
+                                 "the evaluation limit was reached", nfev)
+            lam *= nu
+            nu *= 2.0
+        moved = trial - x
+        fit = r + j @ moved
+        predicted = cost - float(fit @ fit)
+        gain = (cost - cost_trial) / predicted if predicted > 0 else 0.0
+        lam = min(max(lam * max(1.0 / 3.0, 1.0 - (2.0 * gain - 1.0) ** 3), 1e-12), 1e10)
+        nu = 2.0
+        decrease = cost - cost_trial
+        x, r, cost = trial, r_trial, cost_trial
+        if decrease <= tol * cost:
+            return _Solution(x, 0.5 * cost, 2, "the decrease of the cost is below the "
+                             "tolerance", nfev)
+        if np.linalg.norm(moved) <= tol * (tol + np.linalg.norm(x)):
+            return _Solution(x, 0.5 * cost, 3, "the step is below the tolerance", nfev)
+    return _Solution(x, 0.5 * cost, 0, "the evaluation limit was reached", nfev)
+
+
+def _trust_region(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray,
+                  tol: float) -> _Solution:
+    """:func:`scipy.optimize.least_squares` (trust region reflective): slower per step,
+    but its scaling by the distance to the bounds follows a curved valley along a bound
+    where :func:`_levenberg_marquardt` crawls."""
     from scipy.optimize import least_squares
 
+    res = least_squares(fun, x0, jac=jac, bounds=(lo, hi), x_scale=1.0, xtol=tol, ftol=tol,
+                        gtol=tol, max_nfev=200)
+    return _Solution(res.x, float(res.cost), int(res.status), str(res.message), int(res.nfev))
+
+
+def _solve(prob: _Problem, theta0: np.ndarray, free: np.ndarray | None = None,
+           tol: float = 1e-12) -> _Solution:
+    """Levenberg–Marquardt from ``theta0`` over the ``free`` parameters (default all),
+    enlarging the mode count until it suffices."""
     lo, hi = prob.bounds()
     free = np.ones(theta0.size, bool) if free is None else free
     theta = np.clip(theta0, lo + 1e-9, hi - 1e-9)
@@ -863,12 +1079,15 @@ def _solve(prob: _Problem, theta0: np.ndarray, free: np.ndarray | None = None,
 
     for _ in range(4):
         prob.set_modes(theta)
-        res = least_squares(
-            lambda x: prob.residual(full(x)) / prob.y_scale, theta[free],
-            bounds=(lo[free], hi[free]), x_scale=1.0,
-            jac=lambda x: prob.jacobian(full(x))[:, free] / prob.y_scale,
-            xtol=tol, ftol=tol, gtol=tol, max_nfev=200,
-        )  # fmt: skip
+        fun = lambda x: prob.residual(full(x)) / prob.y_scale  # noqa: E731
+        jac = lambda x: prob.jacobian(full(x))[:, free] / prob.y_scale  # noqa: E731
+        res = _levenberg_marquardt(fun, jac, theta[free], lo[free], hi[free], tol)
+        cell = free & (np.arange(theta.size) < 3)  # tau0, L, rho
+        at_bound = np.any(np.minimum(full(res.x) - lo, hi - full(res.x))[cell] < 1e-6)
+        if res.status <= 0 or at_bound:
+            # a crawl along a curved valley, or tau0, L or rho at a bound (where the cost
+            # is flat, the trust-region solver stops short of it, as the fit always did)
+            res = _trust_region(fun, jac, theta[free], lo[free], hi[free], tol)
         theta = full(res.x)
         if np.all(np.array(prob.modes_for(theta)) <= (prob.n_modes, prob.n_bin_modes)):
             break
