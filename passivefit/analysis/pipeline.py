@@ -287,7 +287,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     if fit is None:
         return out
 
-    values, flags = _time_constants(fit, bs, avg, boot, fs, sagging)
+    values, flags = _time_constants(fit, bs, avg, boot, fs, sagging, chain.noise_factor)
     out.values.update(values)
     out.flags.extend(flags)
     tau1 = values.get(S.TAU1)
@@ -408,14 +408,19 @@ def _bridge_correction(fits: list[SweepFit], bridge: tuple[float, float, bool] |
 
 
 def _time_constants(fit, bs, avg: GroupAverage, boot: dict | None, fs: float,
-                    sagging: bool = False
+                    sagging: bool = False, noise_factor: float = 1.0
                     ) -> tuple[dict, list[Flag]]:
-    """τ0, τ1 (τ2) with CIs and the component amplitudes of the reference step."""
+    """τ0, τ1 (τ2) with CIs and the component amplitudes of the reference step.
+
+    τ0's CI is the larger of the bootstrap's and the fit's, the fit's widened for the
+    correlated noise (`noise_factor`, a variance ratio): the bootstrap over sweeps sees
+    what changes between sweeps, the fit what the noise allows, and from ten sweeps the
+    bootstrap's sd alone scatters by a quarter."""
     n = len(fit.taus)
-    hw = halfwidth(boot, "tau0")
     amps = onset_amplitudes(fit, avg)
+    tau0_ci = float(fit.tau_ci95[0]) * float(np.sqrt(max(noise_factor, 1.0)))
     values: dict = {S.N_COMPONENTS: n, S.TAU0: fit.taus[0],
-                    S.TAU0_CI: hw if hw is not None else fit.tau_ci95[0],
+                    S.TAU0_CI: max(halfwidth(boot, "tau0") or 0.0, tau0_ci),
                     S.C0: amps[0], S.REF_STEP: avg.amplitude_A}
     if n >= 2:
         values[S.C1] = amps[1]
