@@ -43,6 +43,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from passivefit.core.qc import detrended
 from passivefit.model import schema as S
 
 Z95 = 1.959963984540054            # two-sided 95 % normal quantile
@@ -112,8 +113,7 @@ def noise_autocorrelation(baselines: Sequence[np.ndarray], lags: int = AR_ORDER
         x = np.asarray(x, dtype=float)
         if x.size <= 2 * lags + 2:
             continue
-        t = np.arange(x.size)
-        x = x - np.polyval(np.polyfit(t, x, 1), t)
+        x = detrended(x)
         for k in range(lags + 1):
             acov[k] += float(np.dot(x[: x.size - k], x[k:]))
         total += float(np.dot(x, x))

@@ -101,6 +101,13 @@ def robust_sd(x: np.ndarray) -> float:
     return float(1.4826 * np.median(np.abs(x - np.median(x)))) if x.size else 0.0
 
 
+def detrended(x: np.ndarray) -> np.ndarray:
+    """`x` less its least-squares straight line (over the sample index)."""
+    x = np.asarray(x, dtype=float)
+    t = np.arange(x.size) - (x.size - 1) / 2   # centred: the slope and the mean apart
+    return x - x.mean() - (t @ x / (t @ t) if x.size > 1 else 0.0) * t
+
+
 def correlated_noise_factor(x: np.ndarray, max_lag: int) -> float:
     """Variance inflation of a smooth fit's parameters by correlated noise (>= 1).
 
@@ -114,8 +121,7 @@ def correlated_noise_factor(x: np.ndarray, max_lag: int) -> float:
     lags = min(int(max_lag), x.size // 4)
     if lags < 1:
         return 1.0
-    k = np.arange(x.size)
-    x = x - np.polyval(np.polyfit(k, x, 1), k)
+    x = detrended(x)
     var = float(x @ x) / x.size
     if var <= 0:
         return 1.0

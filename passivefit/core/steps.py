@@ -225,8 +225,8 @@ def _segment(x: np.ndarray, f: np.ndarray, start: int, stop: int, trim: int,
     level = float(np.median(part))
     trend, spread = 0.0, 0.0
     if part.size > 2:
-        t = np.arange(part.size, dtype=np.float64)
-        trend = float(np.polyfit(t, part, 1)[0]) * (stop - start)
+        t = np.arange(part.size, dtype=np.float64) - (part.size - 1) / 2   # centred
+        trend = float(t @ part / (t @ t)) * (stop - start)   # least-squares slope
         low, high = np.percentile(f[start + k : stop - k], [1, 99])
         spread = float(high - low)
     flat = abs(trend) <= threshold and spread <= threshold
