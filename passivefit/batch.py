@@ -347,6 +347,7 @@ class BatchSummary:
     seconds: float = 0.0
     unused_metadata: int = 0
     report_failed: list[tuple[str, str]] = field(default_factory=list)
+    not_started: list[str] = field(default_factory=list)   # left when the batch was stopped
 
 
 class BatchError(InputError):
@@ -356,13 +357,17 @@ class BatchError(InputError):
 def run_batch(paths: list[str], db: str, settings, *, workers: int | None = None,
               sheet: str | None = None, metadata: str | None = None,
               reports: str | None = None, reanalyse: bool = False,
-              limits: Limits = Limits(), progress=None) -> BatchSummary:
+              limits: Limits = Limits(), progress=None, stop=None) -> BatchSummary:
     """Analyse every recording under `paths` into the database `db`.
 
     `progress(event)` is called with a :class:`ProgressEvent` once at the start and after
     every file (in this thread); the default, :class:`ConsoleProgress`, draws one line on
     a terminal and prints a line per file otherwise. It may have a ``finish()``, called
     at the end.
+
+    `stop()`, when given, is asked after every file: once it returns True the files in
+    progress are abandoned, the worker processes end, and the files not yet analysed are
+    listed in `not_started` (what was stored stays stored).
 
     Everything is checked before anything is written: bad options, an unreadable
     metadata sheet, a sheet that cannot be written or a missing path raise
@@ -396,7 +401,7 @@ def run_batch(paths: list[str], db: str, settings, *, workers: int | None = None
     started = time.perf_counter()
     try:
         summary = _run_files(files, settings, database, notes, workers, reanalyse, reports,
-                             limits, db, progress)
+                             limits, db, progress, stop)
         summary.failed[:0] = unreadable
         if sheet:
             try:
@@ -482,7 +487,7 @@ def _default_workers() -> int:
 
 def _run_files(files: list[Path], settings, database, metadata: dict[Path, dict], workers: int,
                reanalyse: bool, reports: str | None, limits: Limits = Limits(),
-               db: str = "", callback=None) -> BatchSummary:
+               db: str = "", callback=None, stop=None) -> BatchSummary:
     from sqlalchemy.exc import SQLAlchemyError
 
     from passivefit import __version__
@@ -515,9 +520,16 @@ def _run_files(files: list[Path], settings, database, metadata: dict[Path, dict]
         else:
             todo.append(path)
         seen.setdefault(sha, path)
+    finished: set[str] = set()
+    outcomes = _analyse_all(todo, settings, workers, reports, limits)
     try:
-        for outcome in _analyse_all(todo, settings, workers, reports, limits):
+        for outcome in outcomes:
             _store_outcome(outcome, database, metadata, digest, reanalyse, summary, progress)
+            finished.add(str(outcome.path))
+            if stop is not None and stop():
+                outcomes.close()   # its workers end
+                summary.not_started = [str(p) for p in todo if str(p) not in finished]
+                break
     except (SQLAlchemyError, OSError) as exc:
         reason = _first_line(exc) if isinstance(exc, SQLAlchemyError) else exc.strerror
         raise StoreError(f"`--db` {db}: cannot write to the database ({reason}); "

@@ -370,6 +370,30 @@ def test_run_batch_tells_its_progress_to_a_callback(lab, tmp_path, capsys):
     assert capsys.readouterr().out == ""   # the callback replaced the lines
 
 
+def test_a_batch_asked_to_stop_ends_after_the_file_it_stored(lab, tmp_path):
+    """The window's "Stop analysing the folder": `stop()` is asked after every file; once
+    it says so, the rest are listed as not started and what was stored stays."""
+    import multiprocessing
+
+    from passivefit.batch import run_batch
+    from passivefit.model.settings import Settings
+    from passivefit.store.database import open_database
+
+    folder, _ = lab
+    db = tmp_path / "stopped.db"
+    stored = []
+    summary = run_batch([str(folder / "day1")], str(db), Settings(bootstrap=0), workers=1,
+                        progress=lambda e: stored.append(e.stored), stop=lambda: stored[-1] >= 1)
+    n = N_FILES // 2
+    assert len(summary.stored) == 1
+    assert len(summary.not_started) == n - 1
+    assert not set(summary.not_started) & set(summary.stored)
+    assert not multiprocessing.active_children()     # its worker processes ended
+    database = open_database(str(db), create=False)
+    assert len(database.current_analyses()) == 1
+    database.close()
+
+
 @pytest.mark.slow
 def test_batch_writes_a_report_per_analysed_recording(lab, tmp_path, run_batch):
     from passivefit.io.recording import file_sha256

@@ -424,6 +424,32 @@ def test_analysing_a_folder_shows_its_progress(qtbot, make_window, recording_fil
     database.close()
 
 
+@pytest.mark.slow
+def test_analysing_a_folder_can_be_stopped(qtbot, make_window, recording_file, tmp_path):
+    """File › Stop analysing the folder: the batch ends after the file it stores; the
+    status bar says how many were not analysed."""
+    from passivefit.io import load, save
+
+    folder = tmp_path / "folder"
+    folder.mkdir()
+    base = load(recording_file)
+    for k in range(3):                    # three cells with other content
+        for sweep in base.sweeps:
+            sweep.voltage = sweep.voltage + 1e-3
+        save(base, folder / f"c{k}.csv")
+    window = make_window()
+    assert not window.stop_folder_action.isEnabled()
+    assert window.analyse_folder(folder, str(tmp_path / "cells.sqlite"), workers=1)
+    assert window.stop_folder_action.isEnabled()
+    window.stop_folder_action.trigger()   # asked before the first file is stored
+    assert window.folder_label.text().startswith("stopping")
+    qtbot.waitUntil(lambda: not window.folder_runner.busy, timeout=300_000)
+    assert window.statusBar().currentMessage().startswith(
+        "folder stopped: 2 not analysed, 1 stored")
+    assert not window.stop_folder_action.isEnabled()
+    assert not window.folder_progress.isVisible()
+
+
 def test_a_folder_that_cannot_be_analysed_is_said_in_one_line(qtbot, make_window, tmp_path):
     window = make_window()
     assert window.analyse_folder(tmp_path / "nowhere", str(tmp_path / "c.sqlite"))

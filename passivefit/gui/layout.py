@@ -158,6 +158,9 @@ class WindowLayout:
         self._action(file_menu, "Add cell to database…", "Ctrl+D", self._ask_database)
         self._action(file_menu, "Analyse a folder into the database…", "Ctrl+Shift+D",
                      self._ask_analyse_folder)
+        self.stop_folder_action = self._action(file_menu, "Stop analysing the folder", "",
+                                               self.stop_folder)
+        self.stop_folder_action.setEnabled(False)
         file_menu.addSeparator()
         self._action(file_menu, "Quit", "Ctrl+Q", self.close)
         edit = bar.addMenu("&Edit")

@@ -192,7 +192,14 @@ class OutputActions:
         self.folder_label.setText(f"analysing {Path(folder).name}…")
         self.folder_progress.setRange(0, 0)
         self.folder_progress.show()
+        self.stop_folder_action.setEnabled(True)
         return True
+
+    def stop_folder(self) -> None:
+        """Stop the folder's analysis after the file being stored; what is stored stays."""
+        if self.folder_runner.busy:
+            self.folder_runner.stop()
+            self.folder_label.setText("stopping after the file being stored…")
 
     def _folder_progress(self, event) -> None:
         self.folder_progress.setRange(0, max(event.total, 1))
@@ -202,9 +209,12 @@ class OutputActions:
     def _folder_done(self, summary) -> None:
         self.folder_progress.hide()
         self.folder_label.setText("")
+        self.stop_folder_action.setEnabled(False)
         rate = (f", {summary.sweeps / summary.seconds:.0f} sweeps/s"
                 if summary.sweeps and summary.seconds > 0 else "")
-        message = (f"folder analysed: {len(summary.stored)} stored ({summary.sweeps} sweeps), "
+        done = (f"folder stopped: {len(summary.not_started)} not analysed, "
+                if summary.not_started else "folder analysed: ")
+        message = (f"{done}{len(summary.stored)} stored ({summary.sweeps} sweeps), "
                    f"{len(summary.skipped)} skipped, {len(summary.failed)} failed in "
                    f"{summary.seconds:.0f} s{rate}")
         if summary.failed:
@@ -218,6 +228,7 @@ class OutputActions:
     def _folder_failed(self, message: str) -> None:
         self.folder_progress.hide()
         self.folder_label.setText("")
+        self.stop_folder_action.setEnabled(False)
         self._problem(f"the folder could not be analysed: {message}")
 
     def _ask_analyse_folder(self) -> None:

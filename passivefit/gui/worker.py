@@ -6,6 +6,8 @@ arrive, only the newest is run (the others would be thrown away anyway).
 
 from __future__ import annotations
 
+import threading
+
 from PySide6 import QtCore
 
 
@@ -91,10 +93,11 @@ class _FolderSignals(QtCore.QObject):
 
 
 class _FolderJob(QtCore.QRunnable):
-    def __init__(self, paths, target: str, settings, workers, signals: _FolderSignals) -> None:
+    def __init__(self, paths, target: str, settings, workers, signals: _FolderSignals,
+                 stop: threading.Event) -> None:
         super().__init__()
         self.paths, self.target, self.settings = paths, target, settings
-        self.workers, self.signals = workers, signals
+        self.workers, self.signals, self.stop = workers, signals, stop
         self.setAutoDelete(True)
 
     def run(self) -> None:
@@ -102,7 +105,7 @@ class _FolderJob(QtCore.QRunnable):
 
         try:
             summary = run_batch(self.paths, self.target, self.settings, workers=self.workers,
-                                progress=self.signals.progress.emit)
+                                progress=self.signals.progress.emit, stop=self.stop.is_set)
         except Exception as exc:  # noqa: BLE001 - shown to the person, the window goes on
             self.signals.done.emit(None, str(exc).splitlines()[0] if str(exc)
                                    else type(exc).__name__)
@@ -133,15 +136,21 @@ class FolderRunner(QtCore.QObject):
         self._signals.progress.connect(self.progress)
         self._signals.done.connect(self._done)
         self.busy = False
+        self._stop = threading.Event()
 
     def start(self, paths, target: str, settings, workers: int | None = None) -> bool:
         """Start analysing `paths` into `target`; False when a folder is still running."""
         if self.busy:
             return False
         self.busy = True
+        self._stop = threading.Event()
         self.pool.start(_FolderJob([str(p) for p in paths], str(target), settings, workers,
-                                   self._signals))
+                                   self._signals, self._stop))
         return True
+
+    def stop(self) -> None:
+        """Stop after the file being stored (the files in progress are abandoned)."""
+        self._stop.set()
 
     def _done(self, summary, error: str) -> None:
         self.busy = False
