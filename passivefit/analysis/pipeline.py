@@ -180,6 +180,22 @@ def _design(cell: CellSummary, chosen, fs: float):
         return None
 
 
+def _noise_share(fit, avg: GroupAverage, fs: float) -> float:
+    """The baseline's noise sd over the fit's residual sd (at most 1): the part of the
+    fit's error that the noise explains (per sample; the fit's residuals are weighted to
+    per-sample variance)."""
+    from passivefit.core.qc import detrended
+
+    a, b = span(avg.windows_s["baseline"], fs, avg.v_V.size)
+    base = avg.v_V[a:b]
+    base = base[np.isfinite(base)]
+    full = fit.full   # core.expfit.ExpFit
+    residual_sd = float(np.sqrt(full.rss / max(full.n_points - full.n_params, 1)))
+    if base.size < 10 or not residual_sd > 0:
+        return 1.0
+    return min(1.0, float(np.std(detrended(base))) / residual_sd)
+
+
 def _metadata_float(recording: Recording, key: str) -> float | None:
     try:
         value = float(recording.metadata.get(key))
@@ -412,15 +428,18 @@ def _time_constants(fit, bs, avg: GroupAverage, boot: dict | None, fs: float,
                     ) -> tuple[dict, list[Flag]]:
     """τ0, τ1 (τ2) with CIs and the component amplitudes of the reference step.
 
-    τ0's CI is the larger of the bootstrap's and the fit's, the fit's widened for the
-    correlated noise (`noise_factor`, a variance ratio): the bootstrap over sweeps sees
-    what changes between sweeps, the fit what the noise allows, and from ten sweeps the
-    bootstrap's sd alone scatters by a quarter."""
+    τ0's CI is the fit's without a bootstrap; with one, the larger of the bootstrap's and
+    what the noise allows: the bootstrap over sweeps sees what changes between sweeps,
+    and from ten sweeps its sd alone scatters by a quarter; the floor is the fit's CI
+    with the residual sd replaced by the baseline's (a misfit is no measure of precision)
+    and widened for the correlated noise (`noise_factor`, a variance ratio)."""
     n = len(fit.taus)
     amps = onset_amplitudes(fit, avg)
-    tau0_ci = float(fit.tau_ci95[0]) * float(np.sqrt(max(noise_factor, 1.0)))
-    values: dict = {S.N_COMPONENTS: n, S.TAU0: fit.taus[0],
-                    S.TAU0_CI: max(halfwidth(boot, "tau0") or 0.0, tau0_ci),
+    tau0_ci = float(fit.tau_ci95[0])
+    if boot is not None:
+        floor = tau0_ci * _noise_share(fit, avg, fs) * float(np.sqrt(max(noise_factor, 1.0)))
+        tau0_ci = max(halfwidth(boot, "tau0") or 0.0, floor)
+    values: dict = {S.N_COMPONENTS: n, S.TAU0: fit.taus[0], S.TAU0_CI: tau0_ci,
                     S.C0: amps[0], S.REF_STEP: avg.amplitude_A}
     if n >= 2:
         values[S.C1] = amps[1]
