@@ -441,11 +441,14 @@ def test_analysing_a_folder_can_be_stopped(qtbot, make_window, recording_file, t
     assert not window.stop_folder_action.isEnabled()
     assert window.analyse_folder(folder, str(tmp_path / "cells.sqlite"), workers=1)
     assert window.stop_folder_action.isEnabled()
+    labels = []
+    window.folder_runner.progress.connect(lambda _e: labels.append(window.folder_label.text()))
     window.stop_folder_action.trigger()   # asked before the first file is stored
     assert window.folder_label.text().startswith("stopping")
     qtbot.waitUntil(lambda: not window.folder_runner.busy, timeout=300_000)
     assert window.statusBar().currentMessage().startswith(
         "folder stopped: 2 not analysed, 1 stored")
+    assert labels and all(text.startswith("stopping after the file") for text in labels)
     assert not window.stop_folder_action.isEnabled()
     assert not window.folder_progress.isVisible()
 

@@ -204,7 +204,9 @@ class OutputActions:
     def _folder_progress(self, event) -> None:
         self.folder_progress.setRange(0, max(event.total, 1))
         self.folder_progress.setValue(event.done)
-        self.folder_label.setText("folder: " + event.summary())
+        self.folder_label.setText(("stopping after the file being stored · "
+                                   if self.folder_runner.stopping else "folder: ")
+                                  + event.summary())
 
     def _folder_done(self, summary) -> None:
         self.folder_progress.hide()

@@ -152,6 +152,11 @@ class FolderRunner(QtCore.QObject):
         """Stop after the file being stored (the files in progress are abandoned)."""
         self._stop.set()
 
+    @property
+    def stopping(self) -> bool:
+        """A stop was asked and the folder's analysis has not ended yet."""
+        return self.busy and self._stop.is_set()
+
     def _done(self, summary, error: str) -> None:
         self.busy = False
         if error:
