@@ -445,7 +445,7 @@ def detect_events(
         raise ValueError(f"`threshold_z` must be a finite positive number, got {threshold_z!r}")
     r = np.array(residual_V, dtype=float)
     noise = _as_noise(noise, fs_hz, noise.shape if isinstance(noise, NoiseModel) else EventShape())
-    template = noise.shape.template(fs_hz, r.size / fs_hz)
+    template = None   # made when the first event is found
     events: list[Event] = []
     for _ in range(max_events):
         onset, amp, z = event_scan(r, fs_hz, noise, skip_s=skip_s)
@@ -456,6 +456,8 @@ def detect_events(
         if abs(z[i]) < threshold_z:
             break
         events.append(Event(float(onset[i]), float(amp[i]), float(z[i])))
+        if template is None:
+            template = noise.shape.template(fs_hz, r.size / fs_hz)
         j = int(round(onset[i] * fs_hz))
         r[j:] -= amp[i] * template[: r.size - j]
     return tuple(events)
