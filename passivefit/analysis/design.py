@@ -43,10 +43,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from passivefit.core.qc import detrended
+from passivefit.core.qc import Z95, detrended
 from passivefit.model import schema as S
 
-Z95 = 1.959963984540054            # two-sided 95 % normal quantile
 MAX_SWEEPS = 500                   # beyond this a value is "not resolvable" in practice
 #: Default targets: 95 % CI half-width relative to the value.
 TARGETS = {"tau0": 0.02, "tau1": 0.10, "L": 0.10, "rho": 0.30}
@@ -57,7 +56,6 @@ QUANTITY = {"tau0": S.TAU0, "tau1": S.TAU1, "L": S.L_BS, "rho": S.RHO, "r_in": S
 PULSE_S = 0.5e-3                   # the brief pulse of the "pulses instead of steps" change
 AR_ORDER = 64                      # autoregressive order of the noise whitening
 _LOG_STEP = 1e-4                   # central-difference step in the logarithms
-_NEGLIGIBLE = 40.0                 # an exponential past 40 time constants is left out (e^-40)
 
 
 # ---------------------------------------------------------------------------- generic
@@ -398,29 +396,13 @@ def _sweep_of(protocol: Protocol, edge_response) -> np.ndarray:
     return out
 
 
-def _filtered_sum(u: np.ndarray, rates: np.ndarray, amplitudes: np.ndarray,
-                  lowpass) -> np.ndarray:
-    """Σ a_m exp(−λ_m u) through the filter (core.lowpass; None: unfiltered) at the times
-    `u` > 0 after an edge (ascending). Each exponential is summed only where it is above
-    e^-40 of its amplitude, so fast modes cost a few samples each."""
-    out = np.zeros(u.size)
-    direct = amplitudes * (1.0 if lowpass is None else lowpass.gain(rates))
-    terms = list(zip(rates, direct, strict=True))
-    if lowpass is not None:
-        terms += zip(-lowpass.poles, amplitudes @ lowpass.pole_weights(rates), strict=True)
-    for rate, a in terms:
-        n = u.size if rate.real <= 0 else int(np.searchsorted(u, _NEGLIGIBLE / rate.real))
-        out[:n] += np.real(a * np.exp(-rate * u[:n]))
-    return out
-
-
 def _membrane_unit(protocol: Protocol):
     """(ln τ0, ln L, ln ρ) → the membrane's sweep response per unit R_in × current (its
     steady deflection 1): the ball-and-stick modes (core.cablefit.mode_table), the modes
     beyond the shortest sampled time lumped into one (their sum at the edge is exact)."""
     from passivefit.core.cable import b0_over_vinf
     from passivefit.core.cablefit import mode_table, modes_needed
-    from passivefit.core.lowpass import Lowpass
+    from passivefit.core.lowpass import Lowpass, filtered_exponentials
 
     lowpass = None if protocol.filter_hz is None else Lowpass(protocol.filter_hz)
     dt = 1.0 / protocol.sample_rate_hz
@@ -433,7 +415,8 @@ def _membrane_unit(protocol: Protocol):
         ratio[-1] = 1.0 / b0 - ratio[:-1].sum()   # the modes left out, at the next rate
         rates = np.concatenate(([0.0], rate / tau0))
         amplitudes = np.concatenate(([1.0], -b0 * ratio))
-        return _sweep_of(protocol, lambda u: _filtered_sum(u, rates, amplitudes, lowpass))
+        return _sweep_of(protocol,
+                         lambda u: filtered_exponentials(u, rates, amplitudes, lowpass))
 
     return unit
 
@@ -441,12 +424,12 @@ def _membrane_unit(protocol: Protocol):
 def _bridge_unit(protocol: Protocol) -> np.ndarray:
     """The residual bridge's sweep response per unit resistance × current: a jump through
     the electrode's first-order lag, filtered."""
-    from passivefit.core.lowpass import Lowpass
+    from passivefit.core.lowpass import Lowpass, filtered_exponentials
 
     lowpass = None if protocol.filter_hz is None else Lowpass(protocol.filter_hz)
     rates = np.array([0.0, 1.0 / protocol.electrode_tau_s])
-    return _sweep_of(protocol, lambda u: _filtered_sum(u, rates, np.array([1.0, -1.0]),
-                                                       lowpass))
+    return _sweep_of(protocol, lambda u: filtered_exponentials(u, rates, np.array([1.0, -1.0]),
+                                                               lowpass))
 
 
 def _sweep_jacobian(protocol: Protocol, theta: np.ndarray) -> np.ndarray:

@@ -48,7 +48,7 @@ from passivefit.analysis.sweep import (
 )
 from passivefit.analysis.uncertainty import CableContext, bootstrap, halfwidth
 from passivefit.analysis.windows import span
-from passivefit.core.qc import Flag
+from passivefit.core.qc import Flag, detrended
 from passivefit.io.recording import Recording
 from passivefit.model import schema as S
 from passivefit.model.results import CellResult, GroupAverage, RecordingResult, SweepFit
@@ -184,8 +184,6 @@ def _noise_share(fit, avg: GroupAverage, fs: float) -> float:
     """The baseline's noise sd over the fit's residual sd (at most 1): the part of the
     fit's error that the noise explains (per sample; the fit's residuals are weighted to
     per-sample variance)."""
-    from passivefit.core.qc import detrended
-
     a, b = span(avg.windows_s["baseline"], fs, avg.v_V.size)
     base = avg.v_V[a:b]
     base = base[np.isfinite(base)]

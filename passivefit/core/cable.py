@@ -18,6 +18,8 @@ import math
 
 import numpy as np
 
+from passivefit.core.qc import Z95
+
 __all__ = [
     "CableFitError",
     "ballstick_alphas",
@@ -42,7 +44,6 @@ __all__ = [
     "step_ratios",
 ]
 
-_Z95 = 1.959963984540054  # two-sided 95 % normal quantile
 
 
 class CableFitError(ValueError):
@@ -399,7 +400,7 @@ def estimate_ballstick_ci(
         step[i] = h
         jac[:, i] = _difference(f, x0, step, y0)
     var = np.einsum("ij,jk,ik->i", jac, cov, jac)
-    return float(_Z95 * math.sqrt(var[0])), float(_Z95 * math.sqrt(var[1]))
+    return float(Z95 * math.sqrt(var[0])), float(Z95 * math.sqrt(var[1]))
 
 
 def _difference(f, x0: np.ndarray, step: np.ndarray, y0: np.ndarray) -> np.ndarray:

@@ -23,7 +23,9 @@ from functools import cache
 
 import numpy as np
 
-__all__ = ["Lowpass"]
+from passivefit.core.qc import detrended
+
+__all__ = ["Lowpass", "filtered_exponentials"]
 
 
 #: The reverse Bessel polynomial of order 4, highest power first: H(s) = 105/θ4(s) has the
@@ -83,12 +85,7 @@ class Lowpass:
 
     def response(self, rates: np.ndarray, amplitudes: np.ndarray, t: np.ndarray) -> np.ndarray:
         """Filtered ``sum_m a_m exp(-lam_m t)`` (0 before the edge), at times ``t`` (s)."""
-        t = np.asarray(t, float)
-        rates, amplitudes = np.asarray(rates, float), np.asarray(amplitudes, float)
-        after = np.maximum(t, 0.0)[..., None]
-        direct = np.exp(-after * rates) @ (amplitudes * self.gain(rates))
-        ringing = np.real(np.exp(after * self.poles) @ (amplitudes @ self.pole_weights(rates)))
-        return np.where(t > 0, direct + ringing, 0.0)
+        return filtered_exponentials(t, rates, amplitudes, self)
 
     def noise_acf(self, lags_s: np.ndarray) -> np.ndarray:
         """Autocorrelation (1 at lag 0) of white noise after the filter, at lags >= 0 (s):
@@ -102,6 +99,33 @@ class Lowpass:
     def group_delay_s(self) -> float:
         """Low-frequency group delay, sum_k -1/p_k (s); 0.336/fc for this filter."""
         return float(np.real(np.sum(-1.0 / self.poles)))
+
+
+_NEGLIGIBLE = 40.0   # an exponential past 40 time constants (e^-40) is left out of a sum
+
+
+def filtered_exponentials(t: np.ndarray, rates: np.ndarray, amplitudes: np.ndarray,
+                          lowpass: Lowpass | None) -> np.ndarray:
+    """``sum_m a_m exp(-lam_m t)`` from an edge at t = 0 (0 up to it) through `lowpass`
+    (None: unfiltered), at times ``t`` (s, any order). Each exponential, the filter's own
+    included, is summed only where it is above e^-40 of its amplitude, so fast modes cost
+    only the samples just after the edge."""
+    t = np.asarray(t, float)
+    rates, amplitudes = np.asarray(rates, float), np.asarray(amplitudes, float)
+    after = np.where(t > 0, t, np.inf).ravel()   # inf: before the edge, where it is 0
+    order = None if np.all(after[1:] >= after[:-1]) else np.argsort(after, kind="stable")
+    u = after if order is None else after[order]   # ascending: each term a leading slice
+    terms = list(zip(rates, amplitudes * (1.0 if lowpass is None else lowpass.gain(rates)),
+                     strict=True))
+    if lowpass is not None:
+        terms += zip(-lowpass.poles, amplitudes @ lowpass.pole_weights(rates), strict=True)
+    total = np.zeros(u.size)
+    for rate, a in terms:
+        n = int(np.searchsorted(u, _NEGLIGIBLE / rate.real if rate.real > 0 else np.inf))
+        total[:n] += np.real(a * np.exp(-rate * u[:n]))
+    if order is not None:
+        total[order] = total.copy()
+    return total.reshape(t.shape)
 
 
 def corner_from_noise(segments: list[np.ndarray], sample_rate_hz: float) -> float | None:
@@ -152,10 +176,7 @@ def _welch(x: np.ndarray, n: int) -> np.ndarray:
     straight line and tapered by a periodic Hann window."""
     step = n - n // 2
     starts = np.arange(0, x.size - n + 1, step)
-    segments = x[starts[:, None] + np.arange(n)]
-    t = np.arange(n) - (n - 1) / 2
-    slope = segments @ t / (t @ t)
-    segments = segments - segments.mean(axis=1, keepdims=True) - slope[:, None] * t
+    segments = detrended(x[starts[:, None] + np.arange(n)])
     window = 0.5 - 0.5 * np.cos(2 * np.pi * np.arange(n) / n)
     power = np.mean(np.abs(np.fft.rfft(segments * window, axis=1)) ** 2, axis=0)
     power[1:(n + 1) // 2] *= 2   # one-sided: the negative frequencies folded in

@@ -102,10 +102,13 @@ def robust_sd(x: np.ndarray) -> float:
 
 
 def detrended(x: np.ndarray) -> np.ndarray:
-    """`x` less its least-squares straight line (over the sample index)."""
+    """`x` less its least-squares straight line over the sample index, along its last
+    axis (each row of a 2-d array on its own)."""
     x = np.asarray(x, dtype=float)
-    t = np.arange(x.size) - (x.size - 1) / 2   # centred: the slope and the mean apart
-    return x - x.mean() - (t @ x / (t @ t) if x.size > 1 else 0.0) * t
+    n = x.shape[-1]
+    t = np.arange(n) - (n - 1) / 2   # centred: the slope and the mean apart
+    slope = x @ t / (t @ t) if n > 1 else np.zeros(x.shape[:-1])
+    return x - x.mean(axis=-1, keepdims=True) - np.multiply.outer(slope, t)
 
 
 def correlated_noise_factor(x: np.ndarray, max_lag: int) -> float:
@@ -130,7 +133,8 @@ def correlated_noise_factor(x: np.ndarray, max_lag: int) -> float:
     return float(max(1.0, 1 + 2 * np.sum(taper * r)))
 
 
-_Z975 = 1.959963984540054   # the normal distribution's 97.5 % quantile
+#: The normal distribution's 97.5 % quantile: the factor of a two-sided 95 % interval.
+Z95 = 1.959963984540054
 
 
 @lru_cache(maxsize=512)
@@ -143,7 +147,7 @@ def t975(dof: int) -> float:
     quantile to 1/dof⁴ (its error is far below round-off there).
     """
     nu = max(int(dof), 1)
-    z = _Z975
+    z = Z95
     if nu > 1000:
         return (z + (z**3 + z) / (4 * nu) + (5 * z**5 + 16 * z**3 + 3 * z) / (96 * nu**2)
                 + (3 * z**7 + 19 * z**5 + 17 * z**3 - 15 * z) / (384 * nu**3)
