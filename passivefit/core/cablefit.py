@@ -312,7 +312,7 @@ class _Problem:
     _offsets: np.ndarray | None = field(default=None, repr=False)
     _key: tuple | None = field(default=None, repr=False)
     _solved: tuple = field(default=(), repr=False)
-    _ring_cache: dict = field(default_factory=dict, repr=False)
+    _cache: dict = field(default_factory=dict, repr=False)  # the filter's terms, column maps
 
     @property
     def lag(self) -> bool:
@@ -436,21 +436,21 @@ class _Problem:
 
     def _ring_edges(self, lp: Lowpass) -> np.ndarray:
         """Edge weights of the filter's own terms, per segment and pole (cached)."""
-        if self._ring_cache.get("edges_hz") != lp.corner_hz:
-            self._ring_cache["edges"] = _edge_weights(-lp.poles, self.kinds, self.durations)
-            self._ring_cache["edges_hz"] = lp.corner_hz
-        return self._ring_cache["edges"]
+        if self._cache.get("edges_hz") != lp.corner_hz:
+            self._cache["edges"] = _edge_weights(-lp.poles, self.kinds, self.durations)
+            self._cache["edges_hz"] = lp.corner_hz
+        return self._cache["edges"]
 
     def _ring_bases(self, lp: Lowpass) -> np.ndarray:
         """The filter's exp(p_k u) per point and pole, bins averaged (cached)."""
-        if self._ring_cache.get("bases_hz") != lp.corner_hz:
+        if self._cache.get("bases_hz") != lp.corner_hz:
             n, dt, n1 = self.count[:, None], self.dt[:, None], self.n_single
             z = dt * lp.poles
             ring = np.exp(self.u[:, None] * lp.poles)
             ring[n1:] *= np.expm1(n * z) / (n * np.expm1(z))
-            self._ring_cache["bases"] = ring
-            self._ring_cache["bases_hz"] = lp.corner_hz
-        return self._ring_cache["bases"]
+            self._cache["bases"] = ring
+            self._cache["bases_hz"] = lp.corner_hz
+        return self._cache["bases"]
 
     def _bases(self, theta: np.ndarray, rates: np.ndarray, derivative: bool = False):
         """exp(-lam u) per point and rate for single samples and bins (bins averaged
@@ -567,15 +567,15 @@ class _Problem:
         """The weighted derivatives of the theta-dependent design columns (scale, then
         bridge), each (n_points, n_theta), with one-hot maps (n_cols, n_points) from the
         points to their columns."""
-        if "maps" not in self._ring_cache:
+        if "maps" not in self._cache:
             rows = np.arange(self.u.size)
             scale = np.zeros((self.n_cols, self.u.size))
             scale[self.scale_col[self.seg], rows] = 1.0
             bridge = np.zeros((self.n_cols, self.u.size))
             has = self.bridge_col[self.seg] >= 0
             bridge[self.bridge_col[self.seg[has]], rows[has]] = 1.0
-            self._ring_cache["maps"] = (scale, bridge)
-        scale, bridge = self._ring_cache["maps"]
+            self._cache["maps"] = (scale, bridge)
+        scale, bridge = self._cache["maps"]
         sw = self.sw[:, None]
         return (d_shapes[0] * sw, scale), (d_shapes[1] * sw * bridge.sum(axis=0)[:, None], bridge)
 
@@ -1286,7 +1286,6 @@ def _summarize(
     prob: _Problem, theta: np.ndarray, message: str, success: bool, noise_factor: float,
     profile: bool,
 ) -> BallStickFit:
-
     prob.set_modes(theta)
     coef, resid = prob.solve(theta)
     rss = float(resid @ resid)
