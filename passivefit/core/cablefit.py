@@ -563,6 +563,12 @@ class _Problem:
     def residual(self, theta: np.ndarray) -> np.ndarray:
         return self.solve(theta)[1]
 
+    def cost_of(self, shapes) -> float:
+        """Sum of squared weighted residuals for the given model columns (not cached)."""
+        q, _ = np.linalg.qr(self._design(shapes))
+        resid = self.yw - q @ (q.T @ self.yw)
+        return float(resid @ resid)
+
     def _d_design(self, d_shapes):
         """The weighted derivatives of the theta-dependent design columns (scale, then
         bridge), each (n_points, n_theta), with one-hot maps (n_cols, n_points) from the
@@ -1065,9 +1071,10 @@ def _trust_region(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray,
 
 
 def _solve(prob: _Problem, theta0: np.ndarray, free: np.ndarray | None = None,
-           tol: float = 1e-12) -> _Solution:
+           tol: float = 1e-12, fallback: bool = True) -> _Solution:
     """Levenberg–Marquardt from ``theta0`` over the ``free`` parameters (default all),
-    enlarging the mode count until it suffices."""
+    enlarging the mode count until it suffices; with ``fallback``, the trust-region
+    solver where it does not converge or ends at a bound of tau0, L or rho."""
     lo, hi = prob.bounds()
     free = np.ones(theta0.size, bool) if free is None else free
     theta = np.clip(theta0, lo + 1e-9, hi - 1e-9)
@@ -1084,7 +1091,7 @@ def _solve(prob: _Problem, theta0: np.ndarray, free: np.ndarray | None = None,
         res = _levenberg_marquardt(fun, jac, theta[free], lo[free], hi[free], tol)
         cell = free & (np.arange(theta.size) < 3)  # tau0, L, rho
         at_bound = np.any(np.minimum(full(res.x) - lo, hi - full(res.x))[cell] < 1e-6)
-        if res.status <= 0 or at_bound:
+        if fallback and (res.status <= 0 or at_bound):
             # a crawl along a curved valley, or tau0, L or rho at a bound (where the cost
             # is flat, the trust-region solver stops short of it, as the fit always did)
             res = _trust_region(fun, jac, theta[free], lo[free], hi[free], tol)
@@ -1095,23 +1102,41 @@ def _solve(prob: _Problem, theta0: np.ndarray, free: np.ndarray | None = None,
     return res
 
 
-def _starts(prob: _Problem, theta0: np.ndarray):
+def _starts(prob: _Problem, theta0: np.ndarray, ranked: np.ndarray | None = None):
     """The given start, then the best points of a coarse (L, rho) grid at its tau0.
 
-    A generator: the grid (81 cheap residual evaluations) is searched only when the
-    fit from the given start failed.
+    A generator: the grid is searched (:func:`_grid_ranks`) only when the fit from the
+    given start failed, unless its ranking is ``ranked`` already.
     """
     yield theta0
-    grid = []
-    for L in np.geomspace(0.1, 4.0, 9):
-        for rho in np.geomspace(0.03, 300.0, 9):
-            point = theta0.copy()
-            point[1:3] = math.log(L), math.log(rho)
-            grid.append(point)
-    prob.set_modes(np.array([theta0[0], math.log(4.0), 0.0]), margin=1.0)
-    cost = [float(np.sum(prob.residual(g) ** 2)) for g in grid]
-    for j in np.argsort(cost)[:_GRID_STARTS]:
-        yield grid[j]
+    if ranked is None:
+        ranked = _grid_ranks([prob], [theta0])[0]
+    for j in ranked[:_GRID_STARTS]:
+        point = theta0.copy()
+        point[1:3] = _GRID[j]
+        yield point
+
+
+#: The coarse grid of (log L, log rho) for starts: 81 points
+_GRID = np.log([(L, rho) for L in np.geomspace(0.1, 4.0, 9)
+                for rho in np.geomspace(0.03, 300.0, 9)])
+
+
+def _grid_ranks(probs: Sequence[_Problem], theta0s: Sequence[np.ndarray]) -> list[np.ndarray]:
+    """The grid points ordered by their cost, for each problem at its ``theta0``'s tau0.
+
+    Problems of the same segments differ only in their linear columns (with or without
+    the bridge jump), so each point's model columns are computed once, by the first
+    problem, with the modes that point needs.
+    """
+    lead, costs = probs[0], np.empty((len(probs), len(_GRID)))
+    for i, cell in enumerate(_GRID):
+        point = theta0s[0].copy()
+        point[1:3] = cell
+        lead.set_modes(point, margin=1.0)
+        shapes = lead.shape(point)
+        costs[:, i] = [prob.cost_of(shapes) for prob in probs]
+    return [np.argsort(c, kind="stable") for c in costs]
 
 
 def _problem_with(res, lo: np.ndarray, hi: np.ndarray) -> str:
@@ -1181,7 +1206,12 @@ def fit_ballstick(
         init = _guess_from_exponentials(segments, prob.lowpass(prob.start(np.zeros(3))))
     init = _check_init(init)
     noise_factor = max(float(noise_factor), 1.0)
-    best, problem = _best_fit(prob, prob.start(init), thorough)
+    bare = _check(segments, corner_hz, estimate_corner, False) if prob.lag else None
+    ranked = [None, None]
+    if thorough:   # both models are fitted from the grid's best points as well
+        probs = [prob] if bare is None else [prob, bare]
+        ranked = _grid_ranks(probs, [p.start(init) for p in probs]) + [None]
+    best, problem = _best_fit(prob, prob.start(init), thorough, ranked[0])
     if not prob.lag:
         return _summarize(prob, best.x, problem or "converged", not problem, noise_factor,
                           profile and not problem)
@@ -1190,8 +1220,7 @@ def fit_ballstick(
     # (likelihood ratio, chi-square with 2 degrees of freedom at 95 %).
     with_jump = _summarize(prob, best.x, problem or "converged", not problem, noise_factor,
                            False)
-    bare = _check(segments, corner_hz, estimate_corner, False)
-    bare_best, bare_problem = _best_fit(bare, bare.start(init), thorough)
+    bare_best, bare_problem = _best_fit(bare, bare.start(init), thorough, ranked[1])
     sigma2 = noise_factor * with_jump.rss / max(with_jump.n_points - with_jump.n_params, 1)
     needed = 2 * bare_best.cost * bare.y_scale**2 - with_jump.rss > 5.991 * sigma2
     if needed or bare_problem and not problem:
@@ -1204,18 +1233,30 @@ def fit_ballstick(
                    lag_s=with_jump.lag_s, lag_se_s=with_jump.lag_se_s, bridge_needed=False)
 
 
-def _best_fit(prob: _Problem, theta0: np.ndarray, thorough: bool):
+def _best_fit(prob: _Problem, theta0: np.ndarray, thorough: bool,
+              ranked: np.ndarray | None = None):
     """The best fit from ``theta0`` and the grid starts (all of them when ``thorough``,
-    else only after a failure): (result, problem). Fits without a problem win."""
+    else only after a failure): (result, problem). Fits without a problem win.
+
+    When ``thorough``, a start whose search ends at a bound or does not converge is handed
+    to the trust-region solver only if its cost could still win (the solver ends short of
+    a bound, without a problem, where the cost is flat)."""
     lo, hi = prob.bounds()
-    tried = []
-    for start in _starts(prob, theta0):
-        res = _solve(prob, start)
+    tried, crawled = [], []
+    for start in _starts(prob, theta0, ranked):
+        res = _solve(prob, start, fallback=not thorough)
         problem = _problem_with(res, lo, hi)
-        tried.append((bool(problem), 2 * res.cost, res, problem))
+        (crawled if problem and thorough else tried).append(
+            (bool(problem), 2 * res.cost, res, problem, start))
         if not problem and not thorough:
             break
-    _, _, best, problem = min(tried, key=lambda item: item[:2])
+    clean = min((cost for bad, cost, *_ in tried if not bad), default=math.inf)
+    for _, cost, res, problem, start in crawled:
+        if cost <= clean * (1 + 1e-6):   # it could still win: as the trust region ends it
+            res = _solve(prob, start)
+            problem = _problem_with(res, lo, hi)
+        tried.append((bool(problem), 2 * res.cost, res, problem, start))
+    _, _, best, problem, _ = min(tried, key=lambda item: item[:2])
     return best, problem
 
 
