@@ -377,6 +377,41 @@ class _Problem:
         of log tau0, log L, log rho (and log lag when fitted), by the implicit derivative
         of the eigenvalue equation (:func:`_mode_slopes`) and the chain rule.
         """
+        key = (theta.tobytes(), self.n_modes)
+        if self._cache.get("amplitudes_key") != key:   # the residual's, then the Jacobian's
+            self._cache["amplitudes"] = self._amplitudes(theta)
+            self._cache["amplitudes_key"] = key
+        base, (x, L, rho, x_next, b0, bridge, lp, gain, weights, free, filt, pole_weights,
+               edge) = self._cache["amplitudes"]
+        if not derivative:
+            return base
+        rates = base[0]
+        # the same in each parameter (leading axis): rates and b0 move, the bridge's
+        # amplitudes are constants; through the filter's gain, the edge weights and the
+        # filter's pole weights, all functions of the rates
+        d_rates, d_b0 = _mode_slopes(x, L, rho, x_next, rates, b0)
+        if self.lag:
+            d_rates = np.vstack([d_rates, np.zeros(rates.size)])
+            d_rates[3, 1] = -rates[1]
+            d_b0 = np.vstack([d_b0, np.zeros(rates.size)])
+        d_gain = np.zeros_like(rates) if lp is None else np.real(
+            np.prod(lp.poles / (lp.poles + rates[:, None]), axis=-1)
+            * np.sum(-1.0 / (lp.poles + rates[:, None]), axis=-1))
+        d_filt = (d_gain * weights + gain * _edge_slopes(rates, self.kinds, self.durations)) \
+            * np.where(self.known_base[:, None], 1.0, free)
+        d_filt = d_rates[:, None, :] * d_filt  # (n_par, n_segments, n_rates)
+        d_direct_b0 = d_b0[:, None, :] * filt + b0 * d_filt
+        d_direct_bridge = bridge * d_filt
+        if lp is None:
+            d_ring_b0 = d_ring_bridge = np.zeros((d_rates.shape[0],) + base[3].shape, complex)
+        else:
+            d_pole_weights = -pole_weights / (lp.poles + rates[:, None]) * d_rates[:, :, None]
+            d_ring_b0 = edge * (d_b0 @ pole_weights + b0 @ d_pole_weights)[:, None, :]
+            d_ring_bridge = edge * (bridge @ d_pole_weights)[:, None, :]
+        return base, (d_rates, d_direct_b0, d_direct_bridge, d_ring_b0, d_ring_bridge)
+
+    def _amplitudes(self, theta: np.ndarray):
+        """:meth:`amplitudes` without derivatives, and what its derivatives need."""
         tau0, L, rho = np.exp(theta[:3])
         k = math.tanh(L) / (rho * L)
         warm = self._y_start is not None and self._y_start.size == self.n_modes
@@ -407,32 +442,9 @@ class _Problem:
             pole_weights = lp.pole_weights(rates)
             edge = self._ring_edges(lp)
             ring_b0, ring_bridge = edge * (b0 @ pole_weights), edge * (bridge @ pole_weights)
-        base = rates, direct_b0, direct_bridge, ring_b0, ring_bridge
-        if not derivative:
-            return base
-        # the same in each parameter (leading axis): rates and b0 move, the bridge's
-        # amplitudes are constants; through the filter's gain, the edge weights and the
-        # filter's pole weights, all functions of the rates
-        d_rates, d_b0 = _mode_slopes(x, L, rho, x_next, rates, b0)
-        if self.lag:
-            d_rates = np.vstack([d_rates, np.zeros(rates.size)])
-            d_rates[3, 1] = -rates[1]
-            d_b0 = np.vstack([d_b0, np.zeros(rates.size)])
-        d_gain = np.zeros_like(rates) if lp is None else np.real(
-            np.prod(lp.poles / (lp.poles + rates[:, None]), axis=-1)
-            * np.sum(-1.0 / (lp.poles + rates[:, None]), axis=-1))
-        d_filt = (d_gain * weights + gain * _edge_slopes(rates, self.kinds, self.durations)) \
-            * np.where(self.known_base[:, None], 1.0, free)
-        d_filt = d_rates[:, None, :] * d_filt  # (n_par, n_segments, n_rates)
-        d_direct_b0 = d_b0[:, None, :] * filt + b0 * d_filt
-        d_direct_bridge = bridge * d_filt
-        if lp is None:
-            d_ring_b0 = d_ring_bridge = np.zeros((d_rates.shape[0],) + ring_b0.shape, complex)
-        else:
-            d_pole_weights = -pole_weights / (lp.poles + rates[:, None]) * d_rates[:, :, None]
-            d_ring_b0 = edge * (d_b0 @ pole_weights + b0 @ d_pole_weights)[:, None, :]
-            d_ring_bridge = edge * (bridge @ d_pole_weights)[:, None, :]
-        return base, (d_rates, d_direct_b0, d_direct_bridge, d_ring_b0, d_ring_bridge)
+        return ((rates, direct_b0, direct_bridge, ring_b0, ring_bridge),
+                (x, L, rho, x_next, b0, bridge, lp, gain, weights, free, filt,
+                 pole_weights if lp is not None else None, edge if lp is not None else None))
 
     def _ring_edges(self, lp: Lowpass) -> np.ndarray:
         """Edge weights of the filter's own terms, per segment and pole (cached)."""
@@ -459,11 +471,16 @@ class _Problem:
         times their exp(-lam u))."""
         n1, m = self.n_single, 3 + self.n_bin_modes
         n, dt = self.count[:, None], self.dt[:, None]
-        e1 = np.exp(-self.u[:n1, None] * rates)
         x = dt * rates[:m]
+        key = (rates.tobytes(), m)
+        if self._cache.get("exp_key") != key:   # the residual's, then the Jacobian's
+            with np.errstate(invalid="ignore", divide="ignore"):
+                logb = np.where(x > 0, np.log(np.expm1(-n * x) / (n * np.expm1(-x))), 0.0)
+                self._cache["exp"] = (np.exp(-self.u[:n1, None] * rates),
+                                      np.exp(-self.u[n1:, None] * rates[:m] + logb))
+            self._cache["exp_key"] = key
+        e1, eb = self._cache["exp"]
         with np.errstate(invalid="ignore", divide="ignore"):
-            logb = np.where(x > 0, np.log(np.expm1(-n * x) / (n * np.expm1(-x))), 0.0)
-            eb = np.exp(-self.u[n1:, None] * rates[:m] + logb)
             if derivative:
                 eb_d = eb * np.where(x > 0, -self.u[n1:, None] + dt * (
                     _inv_expm1(n * x, n) - _inv_expm1(x, 1.0)), 0.0)
