@@ -161,11 +161,29 @@ class Event:
 def _tail_kernels(shape: EventShape, fs_hz: float, n_pre: int, n_post: int, n_min: int
                   ) -> tuple[np.ndarray, np.ndarray]:
     """Row m: the kernel of a window with m samples after the onset (n_min <= m < n_post),
-    zero-padded to the full window; and its norm."""
-    kernels, norms = np.zeros((n_post, n_pre + n_post)), np.zeros(n_post)
-    for m in range(n_min, n_post):
-        k = _kernel(shape, fs_hz, n_pre, m)
-        kernels[m, : k.size], norms[m] = k, np.linalg.norm(k)
+    zero-padded to the full window; and its norm. As :func:`_kernel`, for all m at once:
+    each window's background basis zero-padded to the full window, in blocks of windows
+    (numpy's QR works on stacks of matrices)."""
+    width = n_pre + n_post
+    kernels, norms = np.zeros((n_post, width)), np.zeros(n_post)
+    rows = np.arange(width)
+    template = shape.template(fs_hz, n_post / fs_hz)[:n_post]
+    for a in range(n_min, n_post, 64):
+        m = np.arange(a, min(a + 64, n_post))[:, None]
+        n = n_pre + m                                  # samples in each window
+        inside = rows < n
+        x = np.where(inside, -1.0 + 2.0 * rows / np.maximum(n - 1, 1), 0.0)
+        columns = [np.where(inside, x**k, 0.0) for k in range(shape.degree + 1)]
+        t = rows / fs_hz
+        for f in shape.hum_hz:
+            columns += [np.where(inside, np.sin(2 * np.pi * f * t), 0.0),
+                        np.where(inside, np.cos(2 * np.pi * f * t), 0.0)]
+        q, _ = np.linalg.qr(np.stack(columns, axis=-1))
+        e = np.where(inside & (rows >= n_pre),
+                     template[np.clip(rows - n_pre, 0, n_post - 1)], 0.0)
+        e_perp = e - np.einsum("wnc,wc->wn", q, np.einsum("wnc,wn->wc", q, e))
+        kernels[m[:, 0]] = e_perp / np.sum(e_perp**2, axis=1, keepdims=True)
+        norms[m[:, 0]] = np.linalg.norm(kernels[m[:, 0]], axis=1)
     return kernels, norms
 
 
