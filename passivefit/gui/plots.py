@@ -469,16 +469,17 @@ class VIView(QtWidgets.QWidget):
             line = raw * 1e6 * x * PA / MV
             title = f"bends · smallest steps {raw:.4g} MΩ"
         elif slope is not None:
+            raw = slope.slope_ohm / 1e6
             line = (slope.slope_ohm * x * PA + slope.intercept_V) / MV
-            title = f"slope {slope.slope_ohm / 1e6:.4g} MΩ · r² {slope.r2:.4f}"
+            title = f"slope {raw:.4g} MΩ · r² {slope.r2:.4f}"
         else:   # one amplitude: the line through the origin is ΔV/ΔI
-            r_in = float(np.sum(vi["dv_V"] * vi["current_A"]) / np.sum(vi["current_A"] ** 2))
-            line = r_in * x * PA / MV
-            title = f"one step · ΔV/ΔI {r_in / 1e6:.4g} MΩ"
+            raw = float(np.sum(vi["dv_V"] * vi["current_A"]) / np.sum(vi["current_A"] ** 2)) / 1e6
+            line = raw * 1e6 * x * PA / MV
+            title = f"one step · ΔV/ΔI {raw:.4g} MΩ"
         if values.get(S.BRIDGE_APPLIED.key) and values.get(S.R_IN.key) is not None:
             # the points are the raw deflections; the cell's R_in has the bridge taken out
-            title = f"raw {title.split(' · ')[-1 if 'bends' in title else 0]} · " \
-                    f"R_in {values[S.R_IN.key]:.4g} MΩ, bridge out"
+            # (short: the panel is narrow)
+            title = f"raw {raw:.4g} → R_in {values[S.R_IN.key]:.4g} MΩ"
         set_title(self.plot, title)
         self.plot.plot(x, line, pen=pg.mkPen(theme.TERRACOTTA, width=1.6))
         self.plot.getPlotItem().getViewBox().autoRange(padding=0.1)
