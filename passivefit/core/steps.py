@@ -15,6 +15,7 @@ returned as steps; `classify_stimulus` names what a sweep holds.
 
 from __future__ import annotations
 
+import hashlib
 from dataclasses import dataclass
 
 import numpy as np
@@ -365,6 +366,23 @@ def find_steps(current: np.ndarray, sample_rate_hz: float,
     list of Step
         Empty when the sweep holds no step.
     """
+    x = np.ascontiguousarray(current, dtype=np.float64)
+    key = (hashlib.blake2b(x, digest_size=16).digest(), x.size, float(sample_rate_hz),
+           float(min_amplitude_A))
+    if key not in _FOUND:   # the reader and the analysis both ask, for every sweep
+        if len(_FOUND) >= _FOUND_SIZE:
+            del _FOUND[next(iter(_FOUND))]
+        _FOUND[key] = tuple(_find_steps(x, float(sample_rate_hz), min_amplitude_A))
+    return list(_FOUND[key])
+
+
+#: Steps found per sweep, by the digest of its current (oldest dropped first)
+_FOUND: dict[tuple, tuple[Step, ...]] = {}
+_FOUND_SIZE = 1024
+
+
+def _find_steps(current: np.ndarray, sample_rate_hz: float,
+                min_amplitude_A: float) -> list[Step]:
     segs, threshold = _split(current, sample_rate_hz, min_amplitude_A)
     if len(segs) < 2 or not segs[0].flat:
         return []
