@@ -565,7 +565,11 @@ def _analyse_all(paths: list[Path], settings, workers: int, reports: str | None,
             for w in pool:
                 if w.ready and w.path is None and queue:
                     w.give(queue.pop(), settings, reports, limits.seconds)
-            yield from _collect(pool, limits)
+            done = list(_collect(pool, limits))
+            for w in pool:   # the next file before this one is stored: no worker waits
+                if w.ready and w.path is None and queue and w.process.is_alive():
+                    w.give(queue.pop(), settings, reports, limits.seconds)
+            yield from done
             for k, w in enumerate(pool):
                 if w.process.is_alive():
                     continue
