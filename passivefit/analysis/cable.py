@@ -80,23 +80,21 @@ def bridge_of(bs, avg: GroupAverage) -> tuple[float, float, bool] | None:
 
 
 def model_tau1_ci(bs) -> float:
-    """95 % CI half-width of the model τ1 = τ0/(1 + α1²), propagated from the standard
-    errors of τ0, L and ρ (1.96 se; correlations ignored)."""
+    """95 % CI half-width of the model τ1 = τ0/(1 + α1²), propagated from the covariance
+    of ln τ0, ln L and ln ρ (1.96 sd; docs/references.md §6, a derived value)."""
     from passivefit.core import cable
 
-    def tau1(tau0: float, L: float, rho: float) -> float:
-        return tau0 / (1 + cable.ballstick_alphas(L, rho, 1)[0] ** 2)
+    def ln_tau1(t: np.ndarray) -> float:
+        alpha = cable.ballstick_alphas(float(np.exp(t[1])), float(np.exp(t[2])), 1)[0]
+        return float(t[0] - np.log1p(alpha**2))
 
-    x = np.array([bs.tau0_s, bs.L, bs.rho])
-    ci = 1.96 * np.array([bs.tau0_se_s, bs.L_se, bs.rho_se])
-    base = tau1(*x)
-    parts = []
+    t = np.log([bs.tau0_s, bs.L, bs.rho])
+    grad = np.zeros(3)
     for k in range(3):
-        h = 1e-4 * x[k]
-        moved = x.copy()
-        moved[k] += h
-        parts.append((tau1(*moved) - base) / h * ci[k])
-    return float(np.sqrt(np.sum(np.square(parts))))
+        step = np.zeros(3)
+        step[k] = 1e-4
+        grad[k] = (ln_tau1(t + step) - ln_tau1(t - step)) / 2e-4
+    return float(1.96 * np.exp(ln_tau1(t)) * np.sqrt(max(grad @ bs.log_cov @ grad, 0.0)))
 
 
 def rho_cross_check(bs, v_inf: float) -> tuple[dict, list[Flag]]:

@@ -842,6 +842,9 @@ class BallStickFit:
     bridge_needed : bool
         Whether the data need the jump (likelihood ratio test). When they do not, the cell
         values come from the model without it, and ``bridge_V`` from the one with it.
+    log_cov : numpy.ndarray
+        Covariance of (ln tau0, ln L, ln rho), 3 x 3, scaled as the standard errors: for
+        values derived from more than one of them (tau1), whose errors are correlated.
     baseline_V : numpy.ndarray
         Per segment: the known level before a charging edge (nan where not given).
     v_inf_membrane_V : numpy.ndarray
@@ -904,6 +907,7 @@ class BallStickFit:
     success: bool
     message: str
     bridge_needed: bool = True
+    log_cov: np.ndarray = field(default_factory=lambda: np.full((3, 3), np.nan))
 
     def evaluate(self, segment_index: int, t: np.ndarray) -> np.ndarray:
         """Fitted model of one segment at times ``t`` (s from its edge), in V, filtered
@@ -1417,4 +1421,5 @@ def _summarize(
         n_modes=prob.n_modes,
         success=success,
         message=message,
+        log_cov=cov[:3, :3].copy(),
     )
