@@ -120,9 +120,9 @@ def filtered_exponentials(t: np.ndarray, rates: np.ndarray, amplitudes: np.ndarr
     if lowpass is not None:
         terms += zip(-lowpass.poles, amplitudes @ lowpass.pole_weights(rates), strict=True)
     total = np.zeros(u.size)
-    for rate, a in terms:
+    for rate, a in terms:   # (rate 0: a step, its constant after the edge)
         n = int(np.searchsorted(u, _NEGLIGIBLE / rate.real if rate.real > 0 else np.inf))
-        total[:n] += np.real(a * np.exp(-rate * u[:n]))
+        total[:n] += np.real(a) if rate == 0 else np.real(a * np.exp(-rate * u[:n]))
     if order is not None:
         total[order] = total.copy()
     return total.reshape(t.shape)
