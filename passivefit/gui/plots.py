@@ -326,14 +326,15 @@ class SemilogView(QtWidgets.QWidget):
             y = np.exp(line.intercept_log + line.slope * t) / MV
             colour = STAGE_COLOURS[stage % len(STAGE_COLOURS)]
             self.plot.plot(t / MS, y, pen=pg.mkPen(colour, width=2),
-                           name=f"peel τ{stage} {-1 / line.slope / MS:.3g} ms, start value")
+                           name=f"peel τ{stage} {-1 / line.slope / MS:.3g} ms")
         caption = result.cell.tau1_caption()
         if caption and len(peel.lines) > 1:  # the cell's one τ1, from the second line's start
             t = np.linspace(0.0, min(t_end, 2.5 * peel.lines[1].t_end), 100)
             tau1 = result.cell.values[S.TAU1.key] * MS
             self.plot.plot(t / MS, np.exp(peel.lines[1].intercept_log - t / tau1) / MV,
                            pen=pg.mkPen(theme.EDGE, width=2, style=QtCore.Qt.PenStyle.DashLine),
-                           name=caption)
+                           name=f"cell τ1 {tau1 / MS:.3g} ms")   # its source: the tooltip
+            self.plot.setToolTip(caption)
         lo = max(peel.noise_sd / MV * 0.5, hi * 1e-4)
         self.plot.setYRange(np.log10(lo), np.log10(hi * 1.6), padding=0)
         self.plot.setXRange(0, t_end / MS, padding=0.02)
@@ -419,13 +420,14 @@ class ScanView(QtWidgets.QWidget):
             plot.plot(x[ok], y[ok], pen=pg.mkPen(colour, width=1), symbol="o", symbolSize=5,
                       symbolPen=None, symbolBrush=pg.mkBrush(colour))
             value = result.cell.values.get(q.key)
-            if value is not None:
-                label = (result.cell.tau1_caption() if key == "tau1"
-                         else f"cell τ0 {value:.4g} ms")
+            if value is not None:   # short: the panel is narrow (the tooltip says more)
+                label = f"cell {value:.4g} ms"
+                plot.setToolTip(result.cell.tau1_caption() if key == "tau1"
+                                else f"cell τ0 {value:.4g} ms (exponential fit)")
                 plot.addItem(pg.InfiniteLine(angle=0, pos=value, label=label, labelOpts={
-                    "position": 0.02, "anchors": [(0, 1), (0, 1)], "color": theme.EDGE},
-                    pen=pg.mkPen(
-                    theme.EDGE, style=QtCore.Qt.PenStyle.DashLine)))
+                    "position": 0.98, "anchors": [(1, 1), (1, 1)], "color": theme.EDGE,
+                    "fill": pg.mkBrush(255, 255, 255, 200)},
+                    pen=pg.mkPen(theme.EDGE, style=QtCore.Qt.PenStyle.DashLine)))
             plot.getPlotItem().getViewBox().autoRange(padding=0.12)
             plot.setXRange(x[0], x[-1], padding=0.08)
 
