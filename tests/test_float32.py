@@ -10,6 +10,7 @@ from passivefit.analysis import Settings, analyze
 from passivefit.analysis.pool import SweepPool
 from passivefit.core.steps import Step
 from passivefit.model.recording import Recording, Sweep
+from passivefit.model.results import SweepFit
 from passivefit.simulate import BallStick, StepProtocol, simulate_recording
 
 
@@ -47,6 +48,13 @@ def test_float32_samples_give_the_float64_values_to_round_off():
     assert [s["accepted"] for s in half["sweeps"]] == [s["accepted"] for s in full["sweeps"]]
 
 
+class _AsRecorded:
+    """A sweep whose fit saw it as recorded: no drift taken out, no events cut out."""
+
+    trend, masked_s = (0.0, 0.0), ()
+    corrected = SweepFit.corrected
+
+
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
 @pytest.mark.parametrize("gaps", [False, True])
 def test_a_resample_as_weights_equals_the_resample_as_copies(dtype, gaps):
@@ -58,7 +66,8 @@ def test_a_resample_as_weights_equals_the_resample_as_copies(dtype, gaps):
         d[:, 5000:5010] = np.nan                   # cut out of every sweep: NaN in the result
     currents = rng.choice([-50e-12, -30e-12, 10e-12], n)
     step = Step(1000, 3000, -50e-12, 20_000.0, 0.0, 0, 0.0)
-    pool = SweepPool(step, tuple(range(n)), currents, d.astype(dtype), -0.07, gaps)
+    pool = SweepPool(step, tuple(range(n)), currents, (_AsRecorded(),) * n,
+                     tuple(d.astype(dtype)), np.zeros(n), -0.07, gaps)
     for pick in (None, rng.integers(0, n, n), np.array([1, 1, 1, 4, 4, 6, 0])):
         i = currents if pick is None else currents[pick]
         rows = d.astype(dtype).astype(np.float64)

@@ -31,15 +31,33 @@ START_TAU1 = 0.8
 
 @dataclass(frozen=True)
 class SweepPool:
-    """Accepted sweeps of one step timing, ready to be combined (and resampled)."""
+    """Accepted sweeps of one step timing, ready to be combined (and resampled).
+
+    The sweeps are the recording's own arrays: each is read as its fit saw it (drift
+    taken out, events cut out: `SweepFit.corrected`) and less its baseline only block
+    by block while combining, so the pool holds no copy of the data.
+    """
 
     step: Step                  # timing of the pool, with amplitude I_ref
     indices: tuple[int, ...]
     currents: np.ndarray        # A, per sweep
-    deflections: np.ndarray     # V, per sweep × sample, baseline removed (float32 for
-    #                             float32 recordings: 16-bit ADC data)
+    members: tuple[SweepFit, ...]
+    voltages: tuple[np.ndarray, ...]   # V, the recording's sweeps (float32 for 16-bit data)
+    bases: np.ndarray           # V, per sweep
     base: float                 # V, mean baseline
     gaps: bool = False          # some samples are cut out (NaN)
+
+    @property
+    def n_samples(self) -> int:
+        return self.voltages[0].size
+
+    def _deflections(self, a: int, b: int) -> np.ndarray:
+        """Every sweep's deflection (V, float64) over samples a:b, shape (n_sweeps, b - a)."""
+        fs = self.step.sample_rate_hz
+        out = np.empty((len(self.members), min(b, self.n_samples) - a))
+        for k, (f, v) in enumerate(zip(self.members, self.voltages, strict=True)):
+            out[k] = f.corrected(v[a:b], fs, a)
+        return out - self.bases[:, None]
 
     def combine(self, weights: np.ndarray | None = None) -> np.ndarray:
         """The combined response (V) of all sweeps, or with each sweep counted `weights`
@@ -53,11 +71,11 @@ class SweepPool:
         The sums run in float64, block by block.
         """
         w = self.currents if weights is None else self.currents * weights
-        n = self.deflections.shape[1]
+        n = self.n_samples
         num = np.empty(w.shape[:-1] + (n,))
         den = np.empty(w.shape[:-1] + (n,)) if self.gaps else None
         for a in range(0, n, _BLOCK):
-            d = self.deflections[:, a:a + _BLOCK].astype(np.float64, copy=False)
+            d = self._deflections(a, a + _BLOCK)
             if self.gaps:
                 seen = np.isfinite(d)
                 num[..., a:a + _BLOCK] = w @ np.where(seen, d, 0.0)
@@ -81,19 +99,17 @@ def sweep_pool(fits: list[SweepFit], voltages: dict[int, np.ndarray]) -> SweepPo
         return (f.step.onset, f.step.offset, voltages[f.index].size)
 
     common = Counter(timing(f) for f in used).most_common(1)[0][0]
-    members = [f for f in used if timing(f) == common]
+    members = tuple(f for f in used if timing(f) == common)
     currents = np.array([f.step.amplitude_A for f in members])
     bases = np.array([f.v_rest_V for f in members])
-    fs = members[0].step.sample_rate_hz
-    # float32 recordings (16-bit ADC data) are pooled as float32: half the memory
-    dtype = np.result_type(*(voltages[f.index].dtype for f in members), np.float32)
-    deflections = np.empty((len(members), common[2]), dtype=dtype)
-    for k, f in enumerate(members):   # row by row: no stacked float64 copy
-        deflections[k] = f.corrected(voltages[f.index], fs) - bases[k]
+    fs, n = members[0].step.sample_rate_hz, common[2]
+    gaps = (any(a * fs < n and b > 0 for f in members for a, b in f.masked_s)
+            or any(np.isnan(voltages[f.index]).any() for f in members))
     i_ref = currents.min() if np.any(currents < 0) else currents.max()
     return SweepPool(replace(members[0].step, amplitude_A=float(i_ref)),
-                     tuple(f.index for f in members), currents, deflections, float(bases.mean()),
-                     gaps=bool(np.isnan(deflections).any()))
+                     tuple(f.index for f in members), currents, members,
+                     tuple(voltages[f.index] for f in members), bases, float(bases.mean()),
+                     gaps=gaps)
 
 
 def average_of(pool: SweepPool, v: np.ndarray, fs: float, settings: Settings) -> GroupAverage:

@@ -41,7 +41,7 @@ _COMBINE_BUDGET = 4_000_000
 
 def _combined(pool: SweepPool, weights: np.ndarray):
     """The combined response of each row of `weights`, several per pass over the sweeps."""
-    per_pass = max(1, _COMBINE_BUDGET // pool.deflections.shape[1])
+    per_pass = max(1, _COMBINE_BUDGET // pool.n_samples)
     for a in range(0, len(weights), per_pass):
         yield from pool.combine(weights[a:a + per_pass])
 

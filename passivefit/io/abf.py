@@ -673,6 +673,10 @@ def read_abf(path: str | Path, channel: int | str | None = None) -> Recording:
         raise LoadError(
             path, f"damaged ABF data ({_reason(err)}); re-export the file from the rig"
         ) from None
+    finally:
+        # pyabf's reader is in a reference cycle with its stimulus objects, so it lives
+        # until the next garbage collection: its whole-file sample buffer goes now
+        abf.data = None
 
 
 def _stack_voltage_mV(recording: Recording, path: Path) -> np.ndarray:

@@ -33,14 +33,14 @@ class Segment:
         return slice(int(round(self.start_s * fs)), int(round(self.end_s * fs)) + 1)
 
 
-def mask(v: np.ndarray, intervals, fs: float) -> np.ndarray:
+def mask(v: np.ndarray, intervals, fs: float, start: int = 0) -> np.ndarray:
     """A copy of `v` with the samples inside the (start, end) times (s) set to NaN; `v`
-    itself when there are none."""
+    itself when there are none. `v` may be a stretch of a sweep from sample `start`."""
     if not intervals:
         return v
     out = np.array(v, dtype=float)
     for a, b in intervals:
-        out[max(0, int(a * fs)): max(0, int(np.ceil(b * fs)))] = np.nan
+        out[max(0, int(a * fs) - start): max(0, int(np.ceil(b * fs)) - start)] = np.nan
     return out
 
 
@@ -108,12 +108,13 @@ class SweepFit:
         slope, t_ref = self.trend
         return [(t, v + slope * (t - t_ref)) for t, v in fit_curves(self.fit, self.segments)]
 
-    def corrected(self, v: np.ndarray, fs: float) -> np.ndarray:
+    def corrected(self, v: np.ndarray, fs: float, start: int = 0) -> np.ndarray:
         """The sweep's voltage as the fit saw it: its subtracted drift taken out and its
-        spontaneous events cut out (NaN)."""
+        spontaneous events cut out (NaN). `v` may be a stretch of the sweep from sample
+        `start`."""
         slope, t_ref = self.trend
-        v = v - slope * (np.arange(v.size) / fs - t_ref) if slope else v
-        return mask(v, self.masked_s, fs)
+        v = v - slope * (np.arange(start, start + v.size) / fs - t_ref) if slope else v
+        return mask(v, self.masked_s, fs, start)
 
     def to_dict(self) -> dict:
         """The sweep's entry of the JSON `sweeps` list (display units, schema keys)."""
