@@ -292,16 +292,33 @@ class SemilogView(QtWidgets.QWidget):
         super().__init__(parent)
         self.plot = new_plot("Semilog", "time from the step edge (ms)", "|V − V∞| (mV)")
         self.plot.setLogMode(x=False, y=True)
-        self.legend = self.plot.getPlotItem().addLegend(
-            offset=(-8, 8), labelTextColor=theme.INK, labelTextSize="7pt",
-            brush=pg.mkBrush(255, 255, 255, 215))      # readable over the late points
+        # the lines' key under the plot, wrapped to the panel: a legend inside the plot
+        # is wider than a narrow panel and covers the points
+        self.key = QtWidgets.QLabel()
+        self.key.setObjectName("plotKey")
+        self.key.setWordWrap(True)
+        self.key.setStyleSheet("font-size: 8pt;")
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
+        layout.setSpacing(0)
         layout.addWidget(self.plot)
+        layout.addWidget(self.key)
+
+    def _show_key(self) -> None:
+        """The named lines, each with a square of its colour."""
+        entries = []
+        for item in self.plot.getPlotItem().listDataItems():
+            if item.name():
+                colour = item.opts["pen"].color().name()
+                name = item.name().replace(" ", "&nbsp;")   # wrapped between entries only
+                entries.append(f'<span style="color:{colour}">■</span>&nbsp;{name}')
+        self.key.setText(" &nbsp; ".join(entries))
+        self.key.setVisible(bool(entries))
 
     def show_result(self, result) -> None:
         self.plot.clear()
-        self.legend.clear()
+        self.key.clear()
+        self.key.hide()
         self.plot.setLogMode(x=False, y=True)
         peel = result.peel if result is not None else None
         if peel is None or not peel.residual_log:
@@ -326,15 +343,15 @@ class SemilogView(QtWidgets.QWidget):
             y = np.exp(line.intercept_log + line.slope * t) / MV
             colour = STAGE_COLOURS[stage % len(STAGE_COLOURS)]
             self.plot.plot(t / MS, y, pen=pg.mkPen(colour, width=2),
-                           name=f"peel τ{stage} {-1 / line.slope / MS:.3g} ms")
+                           name=f"peel τ{stage} {-1 / line.slope / MS:.3g} ms, start value")
         caption = result.cell.tau1_caption()
         if caption and len(peel.lines) > 1:  # the cell's one τ1, from the second line's start
             t = np.linspace(0.0, min(t_end, 2.5 * peel.lines[1].t_end), 100)
             tau1 = result.cell.values[S.TAU1.key] * MS
             self.plot.plot(t / MS, np.exp(peel.lines[1].intercept_log - t / tau1) / MV,
                            pen=pg.mkPen(theme.EDGE, width=2, style=QtCore.Qt.PenStyle.DashLine),
-                           name=f"cell τ1 {tau1 / MS:.3g} ms")   # its source: the tooltip
-            self.plot.setToolTip(caption)
+                           name=caption)
+        self._show_key()
         lo = max(peel.noise_sd / MV * 0.5, hi * 1e-4)
         self.plot.setYRange(np.log10(lo), np.log10(hi * 1.6), padding=0)
         self.plot.setXRange(0, t_end / MS, padding=0.02)
@@ -420,14 +437,16 @@ class ScanView(QtWidgets.QWidget):
             plot.plot(x[ok], y[ok], pen=pg.mkPen(colour, width=1), symbol="o", symbolSize=5,
                       symbolPen=None, symbolBrush=pg.mkBrush(colour))
             value = result.cell.values.get(q.key)
-            if value is not None:   # short: the panel is narrow (the tooltip says more)
-                label = f"cell {value:.4g} ms"
-                plot.setToolTip(result.cell.tau1_caption() if key == "tau1"
-                                else f"cell τ0 {value:.4g} ms (exponential fit)")
-                plot.addItem(pg.InfiniteLine(angle=0, pos=value, label=label, labelOpts={
-                    "position": 0.98, "anchors": [(1, 1), (1, 1)], "color": theme.EDGE,
-                    "fill": pg.mkBrush(255, 255, 255, 200)},
-                    pen=pg.mkPen(theme.EDGE, style=QtCore.Qt.PenStyle.DashLine)))
+            if value is not None:   # right-aligned in small type: the panel is narrow
+                label = (result.cell.tau1_caption() if key == "tau1"
+                         else f"cell τ0 {value:.4g} ms")
+                line = pg.InfiniteLine(angle=0, pos=value, label=label, labelOpts={
+                    "position": 0.98, "anchors": [(1, 1), (1, 1)], "color": theme.EDGE},
+                    pen=pg.mkPen(theme.EDGE, style=QtCore.Qt.PenStyle.DashLine))
+                font = line.label.textItem.font()
+                font.setPointSizeF(7.0)
+                line.label.setFont(font)
+                plot.addItem(line)
             plot.getPlotItem().getViewBox().autoRange(padding=0.12)
             plot.setXRange(x[0], x[-1], padding=0.08)
 
