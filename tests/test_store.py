@@ -388,3 +388,28 @@ def test_display_url_masks_only_the_password(tmp_path):
     assert display_url("postgresql://ann@db.example/cells") == "postgresql://ann@db.example/cells"
     plain = str(tmp_path / "cells.sqlite")
     assert display_url(plain) == plain
+
+
+def test_a_new_sqlite_file_locked_at_once_is_opened_when_the_lock_goes(tmp_path, monkeypatch):
+    """Two batches creating one SQLite file at once: the loser can be refused at once
+    ("database is locked") instead of waiting; opening tries again until the lock goes."""
+    import sqlite3
+
+    from sqlalchemy.exc import OperationalError
+
+    from passivefit.store import database as store
+
+    real, refusals = store.Database.prepare_schema, []
+
+    def locked_twice(self, *, create):
+        if len(refusals) < 2:
+            refusals.append(1)
+            raise OperationalError("PRAGMA journal_mode=WAL", {},
+                                   sqlite3.OperationalError("database is locked"))
+        return real(self, create=create)
+
+    monkeypatch.setattr(store.Database, "prepare_schema", locked_twice)
+    database = open_database(str(tmp_path / "new.db"))
+    assert len(refusals) == 2
+    assert database.analysed_hashes("any", "0") == set()
+    database.close()

@@ -178,6 +178,8 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         where = _part_of_sweep(int(np.argmax(v)), step)
         accepted, reason = False, (f"action potential {where} (peak {np.max(v) / MV:+.0f} mV "
                                    f"at {np.argmax(v) / fs * 1e3:.0f} ms)")
+        if where == "during the step":   # spikes, not a steady state: no R_in
+            dv = r_in = None
     elif fit_error:
         accepted, reason = False, fit_error
     elif drift is not None and abs(drift) > max(DRIFT_V, 0.25 * abs(dv or 0.0)):

@@ -163,7 +163,7 @@ def open_database(target: str, *, create: bool = True) -> Database:
     try:
         engine = _make_engine(url)
         database = Database(engine)
-        database.prepare_schema(create=create)
+        _prepare(database, create)
     except ModuleNotFoundError as exc:
         raise StoreError(
             f"`--db` {shown}: the database driver is not installed ({exc.name}); "
@@ -174,6 +174,24 @@ def open_database(target: str, *, create: bool = True) -> Database:
         reason = _without_password(reason, url)
         raise StoreError(f"`--db` {shown}: cannot open the database: {reason}") from None
     return database
+
+
+def _prepare(database: Database, create: bool) -> None:
+    """`prepare_schema`, tried again while SQLite says the file is locked: two writers
+    creating a new file at once can be refused at once (switching it to WAL), not only
+    after the busy timeout."""
+    import time
+
+    deadline = time.monotonic() + SQLITE_BUSY_TIMEOUT_MS / 1000
+    while True:
+        try:
+            return database.prepare_schema(create=create)
+        except OperationalError as exc:
+            if not (database.is_sqlite and "locked" in str(exc.orig)
+                    and time.monotonic() < deadline):
+                raise
+            database.engine.dispose()
+            time.sleep(0.2)
 
 
 def _make_engine(url: str) -> Engine:
