@@ -40,6 +40,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -444,6 +445,15 @@ def _sweep_jacobian(protocol: Protocol, theta: np.ndarray) -> np.ndarray:
     return np.column_stack([cell, *linear])
 
 
+@lru_cache(maxsize=4)
+def _cached_jacobian(protocol: Protocol, theta: tuple[float, ...]) -> np.ndarray:
+    """`_sweep_jacobian`, kept for the next bound of the same protocol and cell (the
+    advice's bound and the protocol changes' reference differ only in the noise model)."""
+    jac = _sweep_jacobian(protocol, np.array(theta))
+    jac.setflags(write=False)
+    return jac
+
+
 def _model_acf(protocol: Protocol) -> np.ndarray:
     from passivefit.core.lowpass import Lowpass
 
@@ -460,7 +470,7 @@ def cell_covariance(tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge
     `protocol` (each sweep's baseline estimated too); `acf` None: the filter's."""
     theta = np.array([math.log(tau0_s), math.log(L), math.log(rho), math.log(r_in_ohm),
                       bridge_ohm, 0.0])
-    jac = _sweep_jacobian(protocol, theta)
+    jac = _cached_jacobian(protocol, tuple(theta))
     fisher = fisher_information(jac, noise_sd_V, _model_acf(protocol) if acf is None else acf,
                                 protocol.keep())
     if not protocol.bridge_known:
