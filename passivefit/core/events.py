@@ -157,56 +157,51 @@ class Event:
 # --------------------------------------------------------------------------- internals
 
 
-@lru_cache(maxsize=64)
-def _tail_kernels(shape: EventShape, fs_hz: float, n_pre: int, n_post: int, n_min: int
-                  ) -> tuple[np.ndarray, np.ndarray]:
-    """Row m: the kernel of a window with m samples after the onset (n_min <= m < n_post),
-    zero-padded to the full window; and its norm. As :func:`_kernel`, for all m at once:
-    each window's background basis zero-padded to the full window, in blocks of windows
-    (numpy's QR works on stacks of matrices)."""
-    width = n_pre + n_post
-    kernels, norms = np.zeros((n_post, width)), np.zeros(n_post)
+def _window_kernels(shape: EventShape, fs_hz: float, n_pre: int, posts: np.ndarray
+                    ) -> np.ndarray:
+    """Row i: weights w over a window of `n_pre` samples before an onset and `posts[i]`
+    after it (zero-padded to the longest), so that w · r is the least-squares template
+    amplitude with the window's background (polynomial and mains hum) projected out.
+    The windows' background bases are zero-padded to one length and orthonormalised
+    together (numpy's QR works on stacks of matrices)."""
+    width = n_pre + int(np.max(posts))
     rows = np.arange(width)
-    template = shape.template(fs_hz, n_post / fs_hz)[:n_post]
-    for a in range(n_min, n_post, 64):
-        m = np.arange(a, min(a + 64, n_post))[:, None]
-        n = n_pre + m                                  # samples in each window
-        inside = rows < n
-        x = np.where(inside, -1.0 + 2.0 * rows / np.maximum(n - 1, 1), 0.0)
-        columns = [np.where(inside, x**k, 0.0) for k in range(shape.degree + 1)]
-        t = rows / fs_hz
-        for f in shape.hum_hz:
-            columns += [np.where(inside, np.sin(2 * np.pi * f * t), 0.0),
-                        np.where(inside, np.cos(2 * np.pi * f * t), 0.0)]
-        q, _ = np.linalg.qr(np.stack(columns, axis=-1))
-        e = np.where(inside & (rows >= n_pre),
-                     template[np.clip(rows - n_pre, 0, n_post - 1)], 0.0)
-        e_perp = e - np.einsum("wnc,wc->wn", q, np.einsum("wnc,wn->wc", q, e))
-        kernels[m[:, 0]] = e_perp / np.sum(e_perp**2, axis=1, keepdims=True)
-        norms[m[:, 0]] = np.linalg.norm(kernels[m[:, 0]], axis=1)
-    return kernels, norms
-
-
-def _basis(n: int, shape: EventShape, fs_hz: float) -> np.ndarray:
-    """Orthonormal background basis (columns) over n samples: polynomial and hum."""
-    x = np.linspace(-1.0, 1.0, n) if n > 1 else np.zeros(1)
-    columns = [np.vander(x, shape.degree + 1, increasing=True)]
-    t = np.arange(n) / fs_hz
+    n = n_pre + np.asarray(posts)[:, None]             # samples in each window
+    inside = rows < n
+    x = np.where(inside, -1.0 + 2.0 * rows / np.maximum(n - 1, 1), 0.0)
+    columns = [np.where(inside, x**k, 0.0) for k in range(shape.degree + 1)]
+    t = rows / fs_hz
     for f in shape.hum_hz:
-        columns.append(np.column_stack((np.sin(2 * np.pi * f * t), np.cos(2 * np.pi * f * t))))
-    q, _ = np.linalg.qr(np.hstack(columns))
-    return q
+        columns += [np.where(inside, np.sin(2 * np.pi * f * t), 0.0),
+                    np.where(inside, np.cos(2 * np.pi * f * t), 0.0)]
+    q, _ = np.linalg.qr(np.stack(columns, axis=-1))
+    template = shape.template(fs_hz, (width - n_pre) / fs_hz)
+    e = np.where(inside & (rows >= n_pre),
+                 template[np.clip(rows - n_pre, 0, template.size - 1)], 0.0)
+    e_perp = e - np.einsum("wnc,wc->wn", q, np.einsum("wnc,wn->wc", q, e))
+    return e_perp / np.sum(e_perp**2, axis=1, keepdims=True)
 
 
 @lru_cache(maxsize=4096)
 def _kernel(shape: EventShape, fs_hz: float, n_pre: int, n_post: int) -> np.ndarray:
     """Weights w over the window so that w . r is the least-squares template amplitude."""
-    e = np.concatenate((np.zeros(n_pre), shape.template(fs_hz, n_post / fs_hz)[:n_post]))
-    q = _basis(e.size, shape, fs_hz)
-    e_perp = e - q @ (q.T @ e)
-    kernel = e_perp / float(e_perp @ e_perp)
+    kernel = _window_kernels(shape, fs_hz, n_pre, np.array([n_post]))[0]
     kernel.setflags(write=False)
     return kernel
+
+
+@lru_cache(maxsize=64)
+def _tail_kernels(shape: EventShape, fs_hz: float, n_pre: int, n_post: int, n_min: int
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """Row m: the kernel of a window with m samples after the onset (n_min <= m < n_post),
+    zero-padded to the full window; and its norm. Made 64 windows at a time."""
+    kernels, norms = np.zeros((n_post, n_pre + n_post)), np.zeros(n_post)
+    for a in range(n_min, n_post, 64):
+        m = np.arange(a, min(a + 64, n_post))
+        block = _window_kernels(shape, fs_hz, n_pre, m)
+        kernels[m, :block.shape[1]] = block
+        norms[m] = np.linalg.norm(block, axis=1)
+    return kernels, norms
 
 
 def _remove_background(x: np.ndarray, shape: EventShape, fs_hz: float) -> np.ndarray:
