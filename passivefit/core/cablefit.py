@@ -438,13 +438,14 @@ class _Problem:
         direct_b0, direct_bridge = b0 * filt, bridge * filt
         if lp is None:
             ring_b0 = ring_bridge = np.zeros((len(self.kinds), 0), dtype=complex)
+            pole_weights = edge = None
         else:
             pole_weights = lp.pole_weights(rates)
             edge = self._ring_edges(lp)
             ring_b0, ring_bridge = edge * (b0 @ pole_weights), edge * (bridge @ pole_weights)
         return ((rates, direct_b0, direct_bridge, ring_b0, ring_bridge),
-                (x, L, rho, x_next, b0, bridge, lp, gain, weights, free, filt,
-                 pole_weights if lp is not None else None, edge if lp is not None else None))
+                (x, L, rho, x_next, b0, bridge, lp, gain, weights, free, filt, pole_weights,
+                 edge))
 
     def _ring_edges(self, lp: Lowpass) -> np.ndarray:
         """Edge weights of the filter's own terms, per segment and pole (cached)."""
@@ -571,19 +572,23 @@ class _Problem:
         """Linear coefficients and the weighted residual at ``theta`` (QR, cached)."""
         key = (theta.tobytes(), self.n_modes, self.n_bin_modes)
         if key != self._key:
-            q, r = np.linalg.qr(self.design(theta))
-            qty = q.T @ self.yw
-            self._solved = (np.linalg.lstsq(r, qty, rcond=None)[0], self.yw - q @ qty, q, r)
+            self._solved = self._project(self.design(theta))
             self._key = key
         return self._solved[:2]
+
+    def _project(self, a: np.ndarray) -> tuple:
+        """Least squares of the data on the weighted design `a`: (coefficients, residual,
+        q, r) with a = q r."""
+        q, r = np.linalg.qr(a)
+        qty = q.T @ self.yw
+        return np.linalg.lstsq(r, qty, rcond=None)[0], self.yw - q @ qty, q, r
 
     def residual(self, theta: np.ndarray) -> np.ndarray:
         return self.solve(theta)[1]
 
     def cost_of(self, shapes) -> float:
         """Sum of squared weighted residuals for the given model columns (not cached)."""
-        q, _ = np.linalg.qr(self._design(shapes))
-        resid = self.yw - q @ (q.T @ self.yw)
+        resid = self._project(self._design(shapes))[1]
         return float(resid @ resid)
 
     def _d_design(self, d_shapes):
@@ -1228,10 +1233,10 @@ def fit_ballstick(
     init = _check_init(init)
     noise_factor = max(float(noise_factor), 1.0)
     bare = _check(segments, corner_hz, estimate_corner, False) if prob.lag else None
-    ranked = [None, None]
-    if thorough:   # both models are fitted from the grid's best points as well
-        probs = [prob] if bare is None else [prob, bare]
-        ranked = _grid_ranks(probs, [p.start(init) for p in probs]) + [None]
+    probs = [prob] if bare is None else [prob, bare]
+    # when thorough, both models are fitted from the grid's best points as well
+    ranked = (_grid_ranks(probs, [p.start(init) for p in probs]) if thorough
+              else [None] * len(probs))
     best, problem = _best_fit(prob, prob.start(init), thorough, ranked[0])
     if not prob.lag:
         return _summarize(prob, best.x, problem or "converged", not problem, noise_factor,
