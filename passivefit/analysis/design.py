@@ -44,6 +44,7 @@ from functools import lru_cache
 
 import numpy as np
 
+from passivefit.core.lowpass import Lowpass, filtered_exponentials
 from passivefit.core.qc import Z95, detrended
 from passivefit.model import schema as S
 
@@ -252,10 +253,17 @@ class Protocol:
     electrode_tau_s: float = 50e-6
     bridge_known: bool = False
 
+    def times(self) -> np.ndarray:
+        """The sample times of the sweep analysed, in s."""
+        return np.arange(int(round(self.sweep_s * self.sample_rate_hz))) / self.sample_rate_hz
+
+    @property
+    def lowpass(self) -> Lowpass | None:
+        return None if self.filter_hz is None else Lowpass(self.filter_hz)
+
     def keep(self) -> np.ndarray:
-        n = int(round(self.sweep_s * self.sample_rate_hz))
-        t = np.arange(n) / self.sample_rate_hz
-        out = np.ones(n, dtype=bool)
+        t = self.times()
+        out = np.ones(t.size, dtype=bool)
         for edge in (self.onset_s, self.onset_s + self.duration_s):
             out &= ~((t >= edge) & (t < edge + self.fit_start_s))
         if self.kind == "pulse":
@@ -388,7 +396,7 @@ def _sweep_of(protocol: Protocol, edge_response) -> np.ndarray:
     """One sweep of `protocol` from the response to a unit step at an edge
     (`edge_response(u)`, u the times after the edge, ascending): the step's onset minus
     its end."""
-    t = np.arange(int(round(protocol.sweep_s * protocol.sample_rate_hz))) / protocol.sample_rate_hz
+    t = protocol.times()
     out = np.zeros(t.size)
     for edge, sign in ((protocol.onset_s, 1.0), (protocol.onset_s + protocol.duration_s, -1.0)):
         after = t > edge
@@ -403,9 +411,8 @@ def _membrane_unit(protocol: Protocol):
     beyond the shortest sampled time lumped into one (their sum at the edge is exact)."""
     from passivefit.core.cable import b0_over_vinf
     from passivefit.core.cablefit import mode_table, modes_needed
-    from passivefit.core.lowpass import Lowpass, filtered_exponentials
 
-    lowpass = None if protocol.filter_hz is None else Lowpass(protocol.filter_hz)
+    lowpass = protocol.lowpass
     dt = 1.0 / protocol.sample_rate_hz
 
     def unit(log_cell: np.ndarray) -> np.ndarray:
@@ -425,12 +432,9 @@ def _membrane_unit(protocol: Protocol):
 def _bridge_unit(protocol: Protocol) -> np.ndarray:
     """The residual bridge's sweep response per unit resistance × current: a jump through
     the electrode's first-order lag, filtered."""
-    from passivefit.core.lowpass import Lowpass, filtered_exponentials
-
-    lowpass = None if protocol.filter_hz is None else Lowpass(protocol.filter_hz)
     rates = np.array([0.0, 1.0 / protocol.electrode_tau_s])
     return _sweep_of(protocol, lambda u: filtered_exponentials(u, rates, np.array([1.0, -1.0]),
-                                                               lowpass))
+                                                               protocol.lowpass))
 
 
 def _sweep_jacobian(protocol: Protocol, theta: np.ndarray) -> np.ndarray:
@@ -455,12 +459,10 @@ def _cached_jacobian(protocol: Protocol, theta: tuple[float, ...]) -> np.ndarray
 
 
 def _model_acf(protocol: Protocol) -> np.ndarray:
-    from passivefit.core.lowpass import Lowpass
-
     lags = np.arange(AR_ORDER + 1) / protocol.sample_rate_hz
-    if protocol.filter_hz is None:
+    if protocol.lowpass is None:
         return (lags == 0).astype(float)
-    return Lowpass(protocol.filter_hz).noise_acf(lags)
+    return protocol.lowpass.noise_acf(lags)
 
 
 def cell_covariance(tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge_ohm: float,
