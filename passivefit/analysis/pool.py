@@ -56,8 +56,8 @@ class SweepPool:
         fs = self.step.sample_rate_hz
         out = np.empty((len(self.members), min(b, self.n_samples) - a))
         for k, (f, v) in enumerate(zip(self.members, self.voltages, strict=True)):
-            out[k] = f.corrected(v[a:b], fs, a)
-        return out - self.bases[:, None]
+            out[k] = f.corrected(v[a:b], fs, a) - self.bases[k]
+        return out
 
     def combine(self, weights: np.ndarray | None = None) -> np.ndarray:
         """The combined response (V) of all sweeps, or with each sweep counted `weights`
