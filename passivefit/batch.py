@@ -559,16 +559,18 @@ def _analyse_all(paths: list[Path], settings, workers: int, reports: str | None,
     queue = [str(p) for p in reversed(paths)]
     pool: list[_Worker] = []
     starts_failed = 0
+
+    def hand_out() -> None:
+        for w in pool:
+            if w.ready and w.path is None and queue and w.process.is_alive():
+                w.give(queue.pop(), settings, reports, limits.seconds)
+
     try:
         pool = [_Worker(context, limits, work) for _ in range(min(workers, len(queue)))]
         while queue or any(w.path for w in pool):
-            for w in pool:
-                if w.ready and w.path is None and queue:
-                    w.give(queue.pop(), settings, reports, limits.seconds)
+            hand_out()
             done = list(_collect(pool, limits))
-            for w in pool:   # the next file before this one is stored: no worker waits
-                if w.ready and w.path is None and queue and w.process.is_alive():
-                    w.give(queue.pop(), settings, reports, limits.seconds)
+            hand_out()   # the next files before these are stored: no worker waits
             yield from done
             for k, w in enumerate(pool):
                 if w.process.is_alive():
