@@ -37,15 +37,16 @@ def noise_factor(avg: GroupAverage, fs: float) -> float:
     return correlated_noise_factor(avg.v_V[a:b], int(2e-3 * fs))
 
 
-def fit_cable(avg: GroupAverage, fs: float, init, chain: Chain, profile: bool = False
-              ) -> tuple[object | None, Flag | None]:
+def fit_cable(avg: GroupAverage, fs: float, init, chain: Chain, profile: bool = False,
+              segments: tuple | None = None) -> tuple[object | None, Flag | None]:
     """Ball-and-stick fit of the combined response with the measurement chain
     (core.cablefit), searched thoroughly and with profile intervals when `profile`: (fit,
     None) when it succeeded; (fit, flag) when it converged with a
-    value at its bound (its bridge still counts); (None, flag) when it failed."""
+    value at its bound (its bridge still counts); (None, flag) when it failed.
+    `segments`: those of `avg` (fit_segments) when already made."""
     from passivefit.core import cablefit
 
-    fit_segs, records = fit_segments(avg.v_V, fs, avg.step, avg.windows_s)
+    fit_segs, records = segments or fit_segments(avg.v_V, fs, avg.step, avg.windows_s)
     segs = [cablefit.CableSegment(
         seg.t, seg.y, seg.weight, kind="charge" if rec.charging else "decay", group=0,
         duration_s=None if rec.charging else avg.step.duration_s, sample_interval_s=1 / fs,

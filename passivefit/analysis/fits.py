@@ -20,26 +20,37 @@ FIT_ERRORS = (ValueError, np.linalg.LinAlgError, RuntimeError)
 
 def fit_segments(v: np.ndarray, fs: float, step: Step, wins: dict):
     """Fit segments (t from their edge, y) and their drawing records."""
+    return fit_segments_rows(v[None], fs, step, wins)[0]
+
+
+def fit_segments_rows(rows: np.ndarray, fs: float, step: Step, wins: dict) -> list[tuple]:
+    """:func:`fit_segments` of each row of `rows` (responses on the same samples, shape
+    (k, n)), binned together where no row has a gap (a bootstrap's resamples)."""
     from passivefit.core.expfit import Segment as FitSegment
     from passivefit.core.expfit import decimate_tail
+    from passivefit.core.peel import geometric_bins
 
-
-    segs, records = [], []
-    edges = {"fit": step.onset_s, "fit_off": step.offset_s}
-    for name in ("fit", "fit_off"):
+    out: list[tuple[list, list]] = [([], []) for _ in rows]
+    for name, edge in (("fit", step.onset_s), ("fit_off", step.offset_s)):
         if name not in wins:
             continue
-        a, b = span(wins[name], fs, v.size)
+        a, b = span(wins[name], fs, rows.shape[1])
         if b - a < 20:
             continue
-        t, y = np.arange(a, b) / fs - edges[name], v[a:b]
+        t, y = np.arange(a, b) / fs - edge, rows[:, a:b]
         kept = np.isfinite(y)                   # events cut out (NaN) are not fitted
-        if np.count_nonzero(kept) < 20:
-            continue
-        segs.append(FitSegment(*decimate_tail(t[kept], y[kept], KEEP_FULL_S, BIN_FACTOR)))
-        records.append(Segment(edges[name], a / fs, (b - 1) / fs, len(records),
-                               charging=name == "fit"))
-    return segs, tuple(records)
+        if kept.all():
+            tb, yb, wb = geometric_bins(t, y, np.ones(t.size), KEEP_FULL_S, BIN_FACTOR)
+            binned = [(tb, row, wb) for row in yb]
+        else:
+            binned = [decimate_tail(t[k], row[k], KEEP_FULL_S, BIN_FACTOR)
+                      if np.count_nonzero(k) >= 20 else None for row, k in zip(y, kept)]
+        for (segs, records), bins in zip(out, binned, strict=True):
+            if bins is not None:
+                segs.append(FitSegment(*bins))
+                records.append(Segment(edge, a / fs, (b - 1) / fs, len(records),
+                                       charging=name == "fit"))
+    return [(segs, tuple(records)) for segs, records in out]
 
 
 @dataclass(frozen=True, eq=False)
@@ -157,13 +168,14 @@ def residual(v: np.ndarray, fit, seg: Segment, fs: float) -> tuple[np.ndarray, n
 
 
 def fit_average(g: GroupAverage, fs: float, components: str, tau_init=None,
-                choice: dict | None = None):
+                choice: dict | None = None, segments: tuple | None = None):
     """Fit the combined response's transients with shared time constants.
 
     Returns the fit and `g` with its segment records filled in; `choice` receives the
-    record of how many components were chosen and why ("auto").
+    record of how many components were chosen and why ("auto"). `segments`: those of
+    `g` (fit_segments) when already made.
     """
-    segs, records = fit_segments(g.v_V, fs, g.step, g.windows_s)
+    segs, records = segments or fit_segments(g.v_V, fs, g.step, g.windows_s)
     if not segs:
         raise ValueError("no fit window holds enough samples")
     fit = fit_exponentials(segs, components, tau_init, choice=choice)

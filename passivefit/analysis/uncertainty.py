@@ -8,7 +8,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from passivefit.analysis.cable import Chain, fit_cable
-from passivefit.analysis.fits import FIT_ERRORS, fit_average
+from passivefit.analysis.fits import FIT_ERRORS, fit_average, fit_segments_rows
 from passivefit.analysis.pool import SweepPool
 from passivefit.analysis.windows import span
 from passivefit.core import steady
@@ -39,11 +39,18 @@ def _baseline(v: np.ndarray, g: GroupAverage, fs: float) -> float:
 _COMBINE_BUDGET = 4_000_000
 
 
-def _combined(pool: SweepPool, weights: np.ndarray):
-    """The combined response of each row of `weights`, several per pass over the sweeps."""
+def _combined(pool: SweepPool, weights: np.ndarray, g: GroupAverage, fs: float,
+              cable: CableContext | None):
+    """Per row of `weights`: its combined response, the segments of its exponential fit
+    and those of its cable fit (None without `cable`). Several rows are combined per pass
+    over the sweeps, and their fit windows binned at once."""
     per_pass = max(1, _COMBINE_BUDGET // pool.n_samples)
     for a in range(0, len(weights), per_pass):
-        yield from pool.combine(weights[a:a + per_pass])
+        block = pool.combine(weights[a:a + per_pass])
+        segments = fit_segments_rows(block, fs, g.step, g.windows_s)
+        cable_segments = ([None] * len(block) if cable is None else fit_segments_rows(
+            block, fs, cable.average.step, cable.average.windows_s))
+        yield from zip(block, segments, cable_segments, strict=True)
 
 
 def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
@@ -60,10 +67,10 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
     counts = np.array([np.bincount(rng.integers(0, size, size), minlength=size)
                        for _ in range(n_boot)], dtype=float).reshape(n_boot, size)
     usable = np.array([c for c in counts if not np.all(pool.currents[c > 0] == 0)])
-    for v in _combined(pool, usable):
+    for v, segments, cable_segments in _combined(pool, usable, g, fs, cable):
         try:
             boot, _ = fit_average(replace(g, v_V=v), fs, str(fit.n_total),
-                                  tau_init=fit.all_taus)
+                                  tau_init=fit.all_taus, segments=segments)
         except FIT_ERRORS:
             continue
         if not boot.success or len(boot.taus) != n:
@@ -75,7 +82,7 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
             bs0 = cable.fit
             bs, problem = fit_cable(
                 replace(cable.average, v_V=v, v_base_V=_baseline(v, cable.average, fs)), fs,
-                (bs0.tau0_s, bs0.L, bs0.rho), cable.chain)
+                (bs0.tau0_s, bs0.L, bs0.rho), cable.chain, segments=cable_segments)
             bs = None if problem else bs
         out["tau1_model"].append(bs.taus_s[1] if bs else np.nan)
         out["L"].append(bs.L if bs else np.nan)

@@ -220,16 +220,25 @@ def _quadratic_form(acov: np.ndarray, kac: np.ndarray) -> float:
     return float(acov[0] * kac[0] + 2.0 * (acov[1:] @ kac[1:]))
 
 
-def _correlate_valid(x: np.ndarray, kernel: np.ndarray) -> np.ndarray:
-    """out[j] = sum_i kernel[i] * x[j + i] for every full overlap, by FFT (numpy's: the
-    scipy.signal import alone costs more than a whole scan)."""
-    n, k = x.size, kernel.size
+def _correlate_valid(x: np.ndarray, shape: EventShape, fs_hz: float, n_pre: int,
+                     n_post: int) -> np.ndarray:
+    """out[j] = sum_i w[i] * x[j + i] for every full overlap of the detector's full-window
+    kernel w (:func:`_kernel`), by FFT (numpy's: the scipy.signal import alone costs more
+    than a whole scan)."""
+    n, k = x.size, n_pre + n_post
     if n < k:
         return np.zeros(0)
     size = 1 << int(np.ceil(np.log2(n + k - 1)))
-    full = np.fft.irfft(np.fft.rfft(x, size) * np.fft.rfft(kernel[::-1], size), size)
-    return full[k - 1: n]
+    spectrum = _kernel_spectrum(shape, fs_hz, n_pre, n_post, size)
+    return np.fft.irfft(np.fft.rfft(x, size) * spectrum, size)[k - 1: n]
 
+
+@lru_cache(maxsize=32)
+def _kernel_spectrum(shape: EventShape, fs_hz: float, n_pre: int, n_post: int, size: int
+                     ) -> np.ndarray:
+    """rfft of the reversed full-window kernel, zero-padded to `size` (scans of one
+    recording repeat the same few sizes)."""
+    return np.fft.rfft(_kernel(shape, fs_hz, n_pre, n_post)[::-1], size)
 
 
 def _as_noise(noise: NoiseModel | float, fs_hz: float, shape: EventShape) -> NoiseModel:
@@ -296,7 +305,7 @@ def noise_model(
             raise ValueError("each baseline segment must be a 1-d array of finite voltages")
         if seg.size < kernel.size:
             continue
-        outputs.append(_correlate_valid(seg, kernel))
+        outputs.append(_correlate_valid(seg, shape, fs_hz, n_pre, n_post))
         hp = seg[width // 2 : seg.size - width + 1 + width // 2] - np.convolve(
             seg, np.ones(width) / width, mode="valid"
         )
@@ -371,7 +380,7 @@ def event_scan(
     amp = np.full(r.size, np.nan)
     sd = np.full(r.size, noise.detector_sd_V)
     if r.size >= full.size:
-        amp[n_pre : r.size - n_post + 1] = _correlate_valid(r, full)
+        amp[n_pre : r.size - n_post + 1] = _correlate_valid(r, shape, fs_hz, n_pre, n_post)
     # shortened windows at the end of the segment (m samples left after the onset)
     first, last = max(n_pre, r.size - n_post + 1), r.size - n_min   # onsets j, m = N - j
     if last >= first:
@@ -464,10 +473,13 @@ def detect_events(
         onset, amp, z = event_scan(r, fs_hz, noise, skip_s=skip_s)
         if z.size == 0:
             break
-        z = np.where(_onset_confirmed(r, fs_hz, onset, amp, noise.shape), z, 0.0)
-        i = int(np.argmax(np.abs(z)))
-        if abs(z[i]) < threshold_z:
+        strong = np.flatnonzero(np.abs(z) >= threshold_z)   # only these can be taken
+        if strong.size == 0:
             break
+        confirmed = strong[_onset_confirmed(r, fs_hz, onset[strong], amp[strong], noise.shape)]
+        if confirmed.size == 0:
+            break
+        i = int(confirmed[np.argmax(np.abs(z[confirmed]))])
         events.append(Event(float(onset[i]), float(amp[i]), float(z[i])))
         if template is None:
             template = noise.shape.template(fs_hz, r.size / fs_hz)

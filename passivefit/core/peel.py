@@ -172,7 +172,8 @@ def geometric_bins(
     Parameters
     ----------
     t, y, weight : numpy.ndarray
-        Validated samples (s, V, dimensionless); ``t`` strictly increasing.
+        Validated samples (s, V, dimensionless); ``t`` strictly increasing. ``y`` may
+        hold several responses on the same times (shape (k, n)): each row is binned.
     t_keep : float
         Samples up to this time (s) are returned unchanged.
     factor : float
@@ -196,10 +197,10 @@ def geometric_bins(
     starts = starts[(starts >= first) & (starts < t.size)]
     sw = np.add.reduceat(weight[first:], starts - first)
     tb = np.add.reduceat((weight * t)[first:], starts - first) / sw
-    yb = np.add.reduceat((weight * y)[first:], starts - first) / sw
+    yb = np.add.reduceat((weight * y)[..., first:], starts - first, axis=-1) / sw
     return (
         np.concatenate([t[:first], tb]),
-        np.concatenate([y[:first], yb]),
+        np.concatenate([y[..., :first], yb], axis=-1),
         np.concatenate([weight[:first], sw]),
     )
 
