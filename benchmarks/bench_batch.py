@@ -80,15 +80,16 @@ def run_batch(folder: Path, db: Path, workers: int, bootstrap: int) -> tuple[flo
 
 
 def serial_rate(paths: list[Path], bootstrap: int) -> float:
-    """Sweeps/s of load + analyze in this process, one file after another (one core)."""
-    from passivefit.analysis import Settings, analyze
-    from passivefit.io import load
+    """Sweeps/s of a batch worker's work (batch.analyse_file: load, analyze without the
+    rig's advice, the result as plain data) in this process, one file after another."""
+    from passivefit.analysis import Settings
+    from passivefit.batch import analyse_file
 
     settings = Settings(bootstrap=bootstrap)
-    analyze(load(paths[0]), settings)  # imports and caches out of the timing
+    analyse_file(str(paths[0]), settings)  # imports and caches out of the timing
     start, sweeps = time.perf_counter(), 0
     for path in paths:
-        sweeps += len(analyze(load(path), settings).sweeps)
+        sweeps += len(analyse_file(str(path), settings).result["sweeps"])
     return sweeps / (time.perf_counter() - start)
 
 
@@ -128,7 +129,7 @@ def main() -> int:
     (_, _, _, _, peak_n), (_, _, _, rate_4n, peak_4n) = results
     one_core = serial_rate(write_recordings(args.data / f"n{args.files}_s{args.sweeps}",
                                             args.files, args.sweeps), args.bootstrap)
-    print(f"load + analyze alone, one core, no batch: {one_core:.1f} sweeps/s -> with "
+    print(f"a worker's work alone, one core, no batch: {one_core:.1f} sweeps/s -> with "
           f"{args.workers} workers at most {args.workers * one_core:.0f} sweeps/s; the batch "
           f"reached {rate_4n / (args.workers * one_core):.0%} of that at 4N")
     growth = peak_4n / peak_n

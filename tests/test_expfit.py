@@ -334,20 +334,23 @@ def _oscillation_case():
     return segments, data["tau_init"]
 
 
+def _one_lm(prob, theta0, lo, hi):
+    """The solver on one problem (it takes problems stacked on a leading axis)."""
+    from passivefit.core.expfit import _levenberg_marquardt, _Projected
+
+    return _levenberg_marquardt(_Projected.stack([prob]), theta0[None], np.array([lo]),
+                                np.array([hi]))[0]
+
+
 def test_gain_ratio_damping_converges_where_the_fixed_cut_oscillated():
-    from passivefit.core.expfit import (
-        _check_segments,
-        _levenberg_marquardt,
-        _Projected,
-        _theta_bounds,
-    )
+    from passivefit.core.expfit import _check_segments, _Projected, _theta_bounds
 
     segments, tau_init = _oscillation_case()
     checked = _check_segments(segments, 2)
     prob = _Projected(checked, 2)
     lo, hi = _theta_bounds(prob, checked, (1e-5, 10.0))
     theta0 = np.log(np.sort(tau_init)[::-1] / prob.scale)
-    sol = _levenberg_marquardt(prob, theta0, lo, hi)
+    sol = _one_lm(prob, theta0, lo, hi)
     assert sol.status == 1, sol.message
     # the fixed 10x cut used all 100 iterations here; the gain-ratio rule needed 21
     assert sol.iterations <= 40
@@ -355,19 +358,13 @@ def test_gain_ratio_damping_converges_where_the_fixed_cut_oscillated():
     assert fit.success, fit.message
     # it stops at the minimum: restarted from there, the solver moves the log taus by
     # less than 2 % of their standard errors
-    again = _levenberg_marquardt(prob, sol.x, lo, hi)
+    again = _one_lm(prob, sol.x, lo, hi)
     assert np.all(np.abs(again.x - sol.x) < 0.02 * fit.tau_se / fit.taus)
     assert again.cost <= sol.cost
 
 
 def test_gain_ratio_damping_needs_few_iterations_on_noisy_sweeps():
-    from passivefit.core.expfit import (
-        _check_segments,
-        _levenberg_marquardt,
-        _peel_init,
-        _Projected,
-        _theta_bounds,
-    )
+    from passivefit.core.expfit import _check_segments, _peel_init, _Projected, _theta_bounds
 
     rng = np.random.default_rng(14)
     counts = []
@@ -377,7 +374,7 @@ def test_gain_ratio_damping_needs_few_iterations_on_noisy_sweeps():
         prob = _Projected(checked, 2)
         lo, hi = _theta_bounds(prob, checked, (1e-5, 10.0))
         theta0 = np.log(np.sort(_peel_init(checked, 2))[::-1] / prob.scale)
-        sol = _levenberg_marquardt(prob, theta0, lo, hi)
+        sol = _one_lm(prob, theta0, lo, hi)
         assert sol.status == 1, sol.message
         counts.append(sol.iterations)
     assert max(counts) < 100 and np.median(counts) <= 15, counts

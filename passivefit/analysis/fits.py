@@ -44,7 +44,8 @@ def fit_segments_rows(rows: np.ndarray, fs: float, step: Step, wins: dict) -> li
             binned = [(tb, row, wb) for row in yb]
         else:
             binned = [decimate_tail(t[k], row[k], KEEP_FULL_S, BIN_FACTOR)
-                      if np.count_nonzero(k) >= 20 else None for row, k in zip(y, kept)]
+                      if np.count_nonzero(k) >= 20 else None
+                      for row, k in zip(y, kept, strict=True)]
         for (segs, records), bins in zip(out, binned, strict=True):
             if bins is not None:
                 segs.append(FitSegment(*bins))
@@ -144,6 +145,18 @@ def fit_exponentials(segs, components: str, tau_init=None, max_components: int =
             choice.update(record)
         return fit
     return expfit.fit_exponentials(segs, int(components), tau_init=tau_init)
+
+
+def refit_many(segments: list[tuple], step: Step, fit: TransientFit
+               ) -> list[TransientFit | None]:
+    """`fit` refitted (its components, from its time constants) to each of `segments`
+    (from fit_segments_rows), all at once; None where a refit fails."""
+    from passivefit.core import expfit
+
+    results = expfit.fit_exponentials_many([segs for segs, _ in segments], fit.n_total,
+                                           fit.all_taus)
+    return [None if isinstance(r, Exception) else label_components(r, step, rec[0].charging)
+            for r, (_, rec) in zip(results, segments, strict=True)]
 
 
 def response_amplitudes(fit, segment: int, kind: str) -> tuple[float, ...]:

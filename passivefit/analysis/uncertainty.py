@@ -8,7 +8,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from passivefit.analysis.cable import Chain, fit_cable
-from passivefit.analysis.fits import FIT_ERRORS, fit_average, fit_segments_rows
+from passivefit.analysis.fits import fit_segments_rows, refit_many
 from passivefit.analysis.pool import SweepPool
 from passivefit.analysis.windows import span
 from passivefit.core import steady
@@ -41,16 +41,16 @@ _COMBINE_BUDGET = 4_000_000
 
 def _combined(pool: SweepPool, weights: np.ndarray, g: GroupAverage, fs: float,
               cable: CableContext | None):
-    """Per row of `weights`: its combined response, the segments of its exponential fit
-    and those of its cable fit (None without `cable`). Several rows are combined per pass
-    over the sweeps, and their fit windows binned at once."""
+    """Blocks of rows of `weights`, combined in one pass over the sweeps: per row its
+    combined response, the segments of its exponential fit and those of its cable fit
+    (None without `cable`), the fit windows of a block binned at once."""
     per_pass = max(1, _COMBINE_BUDGET // pool.n_samples)
     for a in range(0, len(weights), per_pass):
         block = pool.combine(weights[a:a + per_pass])
         segments = fit_segments_rows(block, fs, g.step, g.windows_s)
         cable_segments = ([None] * len(block) if cable is None else fit_segments_rows(
             block, fs, cable.average.step, cable.average.windows_s))
-        yield from zip(block, segments, cable_segments, strict=True)
+        yield block, segments, cable_segments
 
 
 def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
@@ -67,26 +67,23 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
     counts = np.array([np.bincount(rng.integers(0, size, size), minlength=size)
                        for _ in range(n_boot)], dtype=float).reshape(n_boot, size)
     usable = np.array([c for c in counts if not np.all(pool.currents[c > 0] == 0)])
-    for v, segments, cable_segments in _combined(pool, usable, g, fs, cable):
-        try:
-            boot, _ = fit_average(replace(g, v_V=v), fs, str(fit.n_total),
-                                  tau_init=fit.all_taus, segments=segments)
-        except FIT_ERRORS:
-            continue
-        if not boot.success or len(boot.taus) != n:
-            continue
-        out["tau0"].append(boot.taus[0])
-        out["tau1"].append(boot.taus[1] if n > 1 else np.nan)
-        bs = None
-        if cable is not None and len(out["tau0"]) <= CABLE_BOOTSTRAP:
-            bs0 = cable.fit
-            bs, problem = fit_cable(
-                replace(cable.average, v_V=v, v_base_V=_baseline(v, cable.average, fs)), fs,
-                (bs0.tau0_s, bs0.L, bs0.rho), cable.chain, segments=cable_segments)
-            bs = None if problem else bs
-        out["tau1_model"].append(bs.taus_s[1] if bs else np.nan)
-        out["L"].append(bs.L if bs else np.nan)
-        out["rho"].append(bs.rho if bs else np.nan)
+    for block, segments, cable_segments in _combined(pool, usable, g, fs, cable):
+        refits = refit_many(segments, g.step, fit)
+        for v, boot, cable_segs in zip(block, refits, cable_segments, strict=True):
+            if boot is None or not boot.success or len(boot.taus) != n:
+                continue
+            out["tau0"].append(boot.taus[0])
+            out["tau1"].append(boot.taus[1] if n > 1 else np.nan)
+            bs = None
+            if cable is not None and len(out["tau0"]) <= CABLE_BOOTSTRAP:
+                bs0 = cable.fit
+                bs, problem = fit_cable(
+                    replace(cable.average, v_V=v, v_base_V=_baseline(v, cable.average, fs)),
+                    fs, (bs0.tau0_s, bs0.L, bs0.rho), cable.chain, segments=cable_segs)
+                bs = None if problem else bs
+            out["tau1_model"].append(bs.taus_s[1] if bs else np.nan)
+            out["L"].append(bs.L if bs else np.nan)
+            out["rho"].append(bs.rho if bs else np.nan)
     return {k: np.asarray(v, dtype=float) for k, v in out.items()}
 
 

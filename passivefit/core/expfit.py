@@ -178,7 +178,9 @@ class _Projected:
     """Variable-projection residual and Jacobian over padded, batched segments.
 
     Time is scaled by ``scale`` (the record length) and the nonlinear parameters
-    are ``theta_i = log(tau_i / scale)``.
+    are ``theta_i = log(tau_i / scale)``. :meth:`stack` puts several problems of the
+    same number of components on a leading axis (theta then has shape (P, k)), so that
+    one call evaluates them all.
     """
 
     def __init__(self, checked: list[tuple], n_components: int) -> None:
@@ -205,11 +207,31 @@ class _Projected:
         self.n_params = n_components * (n_seg + 1) + int(self.has_offset.sum())
         self._cache_key: bytes | None = None
 
+    @classmethod
+    def stack(cls, problems: Sequence[_Projected]) -> _Projected:
+        """The problems on a leading axis, padded with zero-weight segments and rows."""
+        out = cls.__new__(cls)
+        out.k = problems[0].k
+        shape = (len(problems), max(p.u.shape[0] for p in problems),
+                 max(p.u.shape[1] for p in problems))
+        for name in ("u", "sw", "yw", "has_offset", "fixed"):
+            like = getattr(problems[0], name)
+            array = np.zeros(shape[:like.ndim + 1], dtype=like.dtype)
+            for i, p in enumerate(problems):
+                part = getattr(p, name)
+                array[(i, *(slice(0, n) for n in part.shape))] = part
+            setattr(out, name, array)
+        out.scale = np.array([p.scale for p in problems])
+        out.n_points = np.array([p.n_points for p in problems])
+        out.n_params = np.array([p.n_params for p in problems])
+        out._cache_key = None
+        return out
+
     def basis(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Weighted design matrices (S, N, k+1) and exponentials (S, N, k)."""
-        rate = np.exp(-theta)
+        """Weighted design matrices (..., S, N, k+1) and exponentials (..., S, N, k)."""
+        rate = np.exp(-theta)[..., None, None, :]
         e = np.exp(np.maximum(-self.u[..., None] * rate, -_MAX_EXP_ARG))
-        const = (self.sw * self.has_offset[:, None])[..., None]
+        const = (self.sw * self.has_offset[..., None])[..., None]
         phi = np.concatenate([e * self.sw[..., None], const], axis=-1)
         return phi, e
 
@@ -221,35 +243,37 @@ class _Projected:
         # Orthonormal basis of each design matrix from its column-scaled Gram
         # matrix (much faster than an SVD of a tall, thin matrix; columns whose
         # singular value falls below 1e-7 of the largest are dropped).
-        gram = np.swapaxes(phi, 1, 2) @ phi
-        norms = np.sqrt(np.diagonal(gram, axis1=1, axis2=2))
+        gram = np.swapaxes(phi, -1, -2) @ phi
+        norms = np.sqrt(np.diagonal(gram, axis1=-2, axis2=-1))
         norms = np.where(norms > 0, norms, 1.0)
-        lam, vec = np.linalg.eigh(gram / (norms[:, :, None] * norms[:, None, :]))
-        keep = lam > lam[:, -1:] * _RANK_TOL**2
+        lam, vec = np.linalg.eigh(gram / (norms[..., :, None] * norms[..., None, :]))
+        keep = lam > lam[..., -1:] * _RANK_TOL**2
         inv_sqrt = np.where(keep, 1.0 / np.sqrt(np.where(keep, lam, 1.0)), 0.0)
-        q = (phi / norms[:, None, :]) @ (vec * inv_sqrt[:, None, :])
-        proj = np.swapaxes(q, 1, 2) @ self.yw[..., None]  # (S, p, 1)
+        q = (phi / norms[..., None, :]) @ (vec * inv_sqrt[..., None, :])
+        proj = np.swapaxes(q, -1, -2) @ self.yw[..., None]  # (..., S, p, 1)
         self.q, self.e = q, e
         # (Phi^+)^T = q @ m
-        self.m = inv_sqrt[:, :, None] * np.swapaxes(vec, 1, 2) / norms[:, None, :]
-        self.coef = (np.swapaxes(self.m, 1, 2) @ proj)[..., 0]
+        self.m = inv_sqrt[..., :, None] * np.swapaxes(vec, -1, -2) / norms[..., None, :]
+        self.coef = (np.swapaxes(self.m, -1, -2) @ proj)[..., 0]
         self.resid = self.yw - (q @ proj)[..., 0]
         self._cache_key = key
 
     def residual(self, theta: np.ndarray) -> np.ndarray:
+        """Weighted residual, shape (S*N,), or (P, S*N) for stacked problems."""
         self._solve(theta)
-        return self.resid.ravel()
+        return self.resid.reshape(self.resid.shape[:-2] + (-1,))
 
     def jacobian(self, theta: np.ndarray) -> np.ndarray:
-        """Golub–Pereyra Jacobian of the projected residual, shape (S*N, k)."""
+        """Golub–Pereyra Jacobian of the projected residual, shape ([P,] S*N, k)."""
         self._solve(theta)
         k = self.k
-        d = (self.sw * self.u)[..., None] * np.exp(-theta) * self.e  # d(phi_i)/d(theta_i)
-        dc = d * self.coef[:, None, :k]
-        a = dc - self.q @ (np.swapaxes(self.q, 1, 2) @ dc)
-        g = np.einsum("snk,sn->sk", d, self.resid)
-        b = (self.q @ self.m[:, :, :k]) * g[:, None, :]
-        return -(a + b).reshape(-1, k)
+        # d(phi_i)/d(theta_i)
+        d = (self.sw * self.u)[..., None] * np.exp(-theta)[..., None, None, :] * self.e
+        dc = d * self.coef[..., None, :k]
+        a = dc - self.q @ (np.swapaxes(self.q, -1, -2) @ dc)
+        g = np.einsum("...snk,...sn->...sk", d, self.resid)
+        b = (self.q @ self.m[..., :, :k]) * g[..., None, :]
+        return -(a + b).reshape(self.resid.shape[:-2] + (-1, k))
 
     def full_jacobian(self, theta: np.ndarray) -> np.ndarray:
         """Jacobian of the weighted model in (theta, coefficients of every segment)."""
@@ -314,9 +338,12 @@ class _Solution:
 
 
 def _levenberg_marquardt(
-    prob: _Projected, theta0: np.ndarray, lo: float, hi: float, max_iter: int = 100
-) -> _Solution:
-    """Marquardt-scaled Levenberg–Marquardt on the projected residual, box by clipping.
+    prob: _Projected, theta0: np.ndarray, lo: np.ndarray, hi: np.ndarray, max_iter: int = 100
+) -> list[_Solution]:
+    """Marquardt-scaled Levenberg–Marquardt on the projected residual, box by clipping,
+    for P stacked problems at once (``prob`` from :meth:`_Projected.stack`, ``theta0``
+    of shape (P, k), bounds of shape (P,)): each keeps its own damping and stops on its
+    own; all are evaluated together. Returns one solution per problem.
 
     With only the log taus as unknowns (1–3 of them) the normal equations are
     tiny, so this loop costs little beyond one residual and Jacobian per step;
@@ -332,44 +359,84 @@ def _levenberg_marquardt(
     after every accepted step instead made the iterates oscillate between an
     undamped overshoot and a heavily damped step.
     """
+    lo, hi = lo[:, None], hi[:, None]
     theta = np.clip(theta0, lo + 1e-3 * (hi - lo), hi - 1e-3 * (hi - lo))
     r = prob.residual(theta)
-    cost = float(r @ r)
-    lam, nu = 1e-3, 2.0
+    cost = np.einsum("pm,pm->p", r, r)
+    n_prob = theta.shape[0]
+    lam, nu = np.full(n_prob, 1e-3), np.full(n_prob, 2.0)
+    dof = np.maximum(prob.n_points - prob.n_params, 1)
+    out: list[_Solution | None] = [None] * n_prob
+    active = np.ones(n_prob, dtype=bool)
+
+    def finish(which: np.ndarray, status: int, message: str, iterations: int) -> None:
+        for i in np.flatnonzero(which):
+            out[i] = _Solution(theta[i], 0.5 * float(cost[i]), status, message, iterations)
+        active[which] = False
+
     for it in range(max_iter):
         jac = prob.jacobian(theta)
-        grad = jac.T @ r
-        hess = jac.T @ jac
-        damp = np.diag(np.maximum(np.diag(hess), 1e-300))
-        while True:
-            step = np.linalg.solve(hess + lam * damp, -grad)
-            trial = np.clip(theta + step, lo, hi)
-            r_trial = prob.residual(trial)
-            cost_trial = float(r_trial @ r_trial)
-            if cost_trial <= cost:
-                break
-            lam *= nu
-            nu *= 2.0
-            if lam > 1e10:
-                return _Solution(theta, 0.5 * cost, 1, "no further decrease of the cost", it)
+        grad = np.einsum("pmk,pm->pk", jac, r)
+        hess = np.swapaxes(jac, 1, 2) @ jac
+        damp = np.maximum(np.diagonal(hess, axis1=1, axis2=2), 1e-300)
+        trial, cost_trial = theta.copy(), cost.copy()
+        searching = active.copy()
+        while searching.any():
+            try_theta = theta.copy()
+            step = _solve_each(hess[searching] + lam[searching, None, None]
+                               * (damp[searching, :, None] * np.eye(theta.shape[1])),
+                               -grad[searching])
+            try_theta[searching] = np.clip(theta[searching] + step, lo[searching],
+                                           hi[searching])
+            r_try = prob.residual(try_theta)
+            cost_try = np.einsum("pm,pm->p", r_try, r_try)
+            better = searching & (cost_try <= cost)
+            trial[better], cost_trial[better] = try_theta[better], cost_try[better]
+            worse = searching & ~better
+            lam[worse] *= nu[worse]
+            nu[worse] *= 2.0
+            finish(worse & (lam > 1e10), 1, "no further decrease of the cost", it)
+            searching = worse & active
         moved = trial - theta
         decrease = cost - cost_trial
         # decrease of the linearised cost |r + J h|^2 for the step taken (after clipping)
-        predicted = -float(moved @ (2.0 * grad + hess @ moved))
-        rho = decrease / predicted if predicted > 0 else 0.0
-        lam = min(max(lam * max(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3), 1e-12), 1e10)
-        nu = 2.0
-        theta, r, cost = trial, r_trial, cost_trial
-        moved = np.abs(moved)
+        predicted = -np.einsum("pk,pk->p", moved, 2.0 * grad + np.einsum("pkl,pl->pk", hess,
+                                                                          moved))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            rho = np.where(predicted > 0, decrease / predicted, 0.0)
+        scaled = lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3)
+        lam = np.where(active, np.clip(scaled, 1e-12, 1e10), lam)
+        nu[active] = 2.0
+        theta = np.where(active[:, None], trial, theta)
+        cost = np.where(active, cost_trial, cost)
+        r = prob.residual(theta)
         # negligible against the statistical error of theta, or against rounding
-        try:
-            var_scale = np.abs(np.diag(np.linalg.inv(hess)))
-        except np.linalg.LinAlgError:
-            var_scale = np.zeros(theta.size)
-        se = np.sqrt(cost / max(prob.n_points - prob.n_params, 1) * var_scale)
-        if np.all(moved < np.maximum(_XTOL, _SE_FRACTION * se)) or decrease <= _FTOL * cost:
-            return _Solution(theta, 0.5 * cost, 1, "converged", it + 1)
-    return _Solution(theta, 0.5 * cost, 0, f"no convergence in {max_iter} iterations", max_iter)
+        se = np.sqrt(cost[:, None] / dof[:, None] * _inverse_diagonal(hess))
+        small = np.all(np.abs(moved) < np.maximum(_XTOL, _SE_FRACTION * se), axis=1)
+        finish(active & (small | (decrease <= _FTOL * cost)), 1, "converged", it + 1)
+        if not active.any():
+            break
+    finish(active, 0, f"no convergence in {max_iter} iterations", max_iter)
+    return out
+
+
+def _solve_each(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """x with a[i] x[i] = b[i]; a singular system raises (numpy.linalg.LinAlgError)."""
+    return np.linalg.solve(a, b[..., None])[..., 0]
+
+
+def _inverse_diagonal(hess: np.ndarray) -> np.ndarray:
+    """|diag(inv(h))| of each matrix; zeros for a singular one."""
+    try:
+        return np.abs(np.diagonal(np.linalg.inv(hess), axis1=1, axis2=2))
+    except np.linalg.LinAlgError:
+        out = np.zeros(hess.shape[:2])
+        for i, h in enumerate(hess):
+            try:
+                out[i] = np.abs(np.diag(np.linalg.inv(h)))
+            except np.linalg.LinAlgError:
+                continue
+        return out
 
 
 def _problems(theta: np.ndarray, lo: float, hi: float, status: int) -> str:
@@ -427,14 +494,62 @@ def fit_exponentials(
     starts = [] if tau0 is None else [np.log(np.sort(tau0)[::-1] / prob.scale)]
     starts += _spread_starts(lo, hi, n_components, _SPREAD_STARTS)
     tried = []
+    stacked, bounds = _Projected.stack([prob]), (np.array([lo]), np.array([hi]))
     for theta0 in starts:
-        res = _levenberg_marquardt(prob, theta0, lo, hi)
+        res = _levenberg_marquardt(stacked, theta0[None], *bounds)[0]
         problem = _problems(res.x, lo, hi, res.status)
         tried.append((bool(problem), res.cost, res, problem))
         if not problem:
             break
     _, _, best, best_problem = min(tried, key=lambda item: item[:2])
     return _summarize(prob, best.x, best_problem or best.message, not best_problem)
+
+
+def fit_exponentials_many(
+    problems: Sequence[Sequence[Segment]],
+    n_components: int,
+    tau_init: Sequence[float],
+    tau_bounds: tuple[float, float] = (1e-5, 10.0),
+) -> list[ExpFit | ValueError]:
+    """:func:`fit_exponentials` of each problem from the same ``tau_init``, the searches
+    run together (e.g. the resamples of a bootstrap).
+
+    Returns, per problem, what ``fit_exponentials(segments, n_components, tau_init,
+    tau_bounds)`` returns, or the ValueError it raises (numpy's LinAlgError is one). A
+    problem whose search from ``tau_init`` ends in trouble is fitted again alone, which
+    also tries the other starts.
+    """
+    tau0 = np.asarray(tau_init, dtype=float).ravel()
+    if tau0.size != n_components or np.any(~np.isfinite(tau0)) or np.any(tau0 <= 0):
+        raise ValueError(
+            f"`tau_init` must hold {n_components} positive values (s), got {tau_init!r}"
+        )
+    out: list[ExpFit | ValueError | None] = [None] * len(problems)
+    ready = []
+    for i, segments in enumerate(problems):
+        try:
+            checked = _check_segments(segments, n_components)
+            prob = _Projected(checked, n_components)
+            ready.append((i, prob, *_theta_bounds(prob, checked, tau_bounds)))
+        except ValueError as exc:
+            out[i] = exc
+    if ready:
+        stacked = _Projected.stack([prob for _, prob, _, _ in ready])
+        lo, hi = (np.array([r[k] for r in ready]) for k in (2, 3))
+        theta0 = np.log(np.sort(tau0)[::-1] / stacked.scale[:, None])
+        try:
+            solutions = _levenberg_marquardt(stacked, theta0, lo, hi)
+        except np.linalg.LinAlgError:   # a singular step in one of them: each alone
+            solutions = [None] * len(ready)
+        for (i, prob, lo_i, hi_i), sol in zip(ready, solutions, strict=True):
+            try:
+                if sol is not None and not _problems(sol.x, lo_i, hi_i, sol.status):
+                    out[i] = _summarize(prob, sol.x, sol.message, True)
+                else:
+                    out[i] = fit_exponentials(problems[i], n_components, tau_init, tau_bounds)
+            except ValueError as exc:
+                out[i] = exc
+    return out
 
 
 def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool) -> ExpFit:
