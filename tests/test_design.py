@@ -6,6 +6,7 @@ values)."""
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -76,6 +77,35 @@ def test_sweep_jacobian_is_the_models_derivative(kind):
                                 electrode_tau_s=80e-6)
     model = design._forward(protocol)(theta) - theta[5]
     np.testing.assert_allclose(model, simulated, atol=1e-3 * np.max(np.abs(simulated)))
+
+
+CELLS = [(0.01, 0.3, 0.5), (0.02, 1.0, 3.0), (0.04, 2.0, 20.0), (0.015, 0.6, 10.0)]
+
+
+@pytest.mark.parametrize("kind", ["step", "pulse"])
+@pytest.mark.parametrize("filter_hz", [None, 2_000.0])
+@pytest.mark.parametrize("cell", CELLS)
+def test_analytic_membrane_jacobian_matches_central_differences(cell, filter_hz, kind):
+    # the derivatives in ln τ0, ln L, ln ρ through the modes and the filter's partial
+    # fractions (docs/references.md §11) against central differences of the same unit
+    duration = 0.2 if kind == "step" else 0.5e-3
+    protocol = design.Protocol(kind, 0.05, duration, 100e-12, 0.3, 10_000.0, filter_hz)
+    log_cell = np.log(cell)
+    unit = design._membrane_unit(protocol)
+    numeric = jacobian(unit, log_cell, [1e-4] * 3)
+    analytic = design._membrane_slopes(protocol, log_cell)
+    for j in range(3):
+        norm = np.linalg.norm(numeric[:, j])
+        assert norm > 1e-3 * np.linalg.norm(unit(log_cell))   # the column carries the cell
+        assert np.linalg.norm(analytic[:, j] - numeric[:, j]) < 1e-5 * norm, j
+    # the last column, the derivative in ln R_in, is the unit itself
+    np.testing.assert_allclose(analytic[:, 3], unit(log_cell), rtol=0, atol=1e-12)
+    if filter_hz is not None:
+        # the filter's terms matter far beyond the tolerance: a wrong one would show
+        bare = design._membrane_slopes(replace(protocol, filter_hz=None), log_cell)
+        for j in range(3):
+            assert np.linalg.norm(bare[:, j] - analytic[:, j]) > 1e-3 * np.linalg.norm(
+                analytic[:, j])
 
 
 def test_long_record_gives_the_asymptotic_precision():

@@ -11,9 +11,12 @@ the bound ∇gᵀ F⁻¹ ∇g. Here
   residual bridge through the electrode lag, the 4-pole Bessel filter applied exactly,
   at the fitted cell;
 - θ = (ln τ0, ln L, ln ρ, ln R_in, R_bridge) plus, as a nuisance, each sweep's baseline
-  level; J is analytic in ln R_in, R_bridge and the baseline (s is linear in them) and
-  taken by central differences in ln τ0, ln L and ln ρ (in the logarithms: the bound of
-  a relative error comes out directly);
+  level (in the logarithms: the bound of a relative error comes out directly); J is
+  analytic: s is linear in R_in, R_bridge and the baseline, and its derivatives in ln τ0,
+  ln L and ln ρ follow from those of the modes' rates and amplitudes (implicit
+  differentiation of the eigenvalue equation, core.cablefit.mode_table) through the
+  filtered exponentials (core.lowpass.filtered_exponential_slopes; docs/references.md
+  §10, §11);
 - the noise is Gaussian and stationary with the standard deviation measured from the
   baselines. Filtered noise is correlated: it is whitened by an autoregressive model
   fitted to its autocorrelation (the measured one, or else that of white noise through
@@ -44,7 +47,7 @@ from functools import lru_cache
 
 import numpy as np
 
-from passivefit.core.lowpass import Lowpass, filtered_exponentials
+from passivefit.core.lowpass import Lowpass, filtered_exponential_slopes, filtered_exponentials
 from passivefit.core.qc import Z95, detrended
 from passivefit.model import schema as S
 
@@ -392,41 +395,71 @@ def _forward(protocol: Protocol):
     return model
 
 
-def _sweep_of(protocol: Protocol, edge_response) -> np.ndarray:
+def _sweep_of(protocol: Protocol, edge_response, columns: tuple[int, ...] = ()) -> np.ndarray:
     """One sweep of `protocol` from the response to a unit step at an edge
-    (`edge_response(u)`, u the times after the edge, ascending): the step's onset minus
-    its end."""
+    (`edge_response(u)`, u the times after the edge, ascending; `columns` more axes after
+    the time's): the step's onset minus its end."""
     t = protocol.times()
-    out = np.zeros(t.size)
+    out = np.zeros((t.size, *columns))
     for edge, sign in ((protocol.onset_s, 1.0), (protocol.onset_s + protocol.duration_s, -1.0)):
-        after = t > edge
-        if after.any():
-            out[after] += sign * edge_response(t[after] - edge)
+        after = int(np.searchsorted(t, edge, side="right"))   # the first sample after it
+        if after < t.size:
+            out[after:] += sign * edge_response(t[after:] - edge)
     return out
 
 
-def _membrane_unit(protocol: Protocol):
-    """(ln τ0, ln L, ln ρ) → the membrane's sweep response per unit R_in × current (its
-    steady deflection 1): the ball-and-stick modes (core.cablefit.mode_table), the modes
-    beyond the shortest sampled time lumped into one (their sum at the edge is exact)."""
+def _membrane_modes(protocol: Protocol, log_cell: np.ndarray, derivative: bool = False):
+    """The rates (1/s) and amplitudes of the membrane's response to a unit step per unit
+    R_in × current (its steady deflection 1): the step, the ball-and-stick modes
+    (core.cablefit.mode_table), the modes beyond the shortest sampled time lumped into one
+    at the next mode's rate (their sum at the edge is exact).
+
+    With `derivative`, also their derivatives in (ln τ0, ln L, ln ρ), shape (3, n_rates)
+    each: the table's by implicit differentiation of the eigenvalue equation; the lumped
+    amplitude's from the others (all the modes' amplitudes sum to −1)."""
     from passivefit.core.cable import b0_over_vinf
     from passivefit.core.cablefit import mode_table, modes_needed
 
-    lowpass = protocol.lowpass
-    dt = 1.0 / protocol.sample_rate_hz
+    tau0, L, rho = np.exp(log_cell)
+    n = modes_needed(L, tau0, 1.0 / protocol.sample_rate_hz)
+    rate, ratio, *slopes = mode_table(L, rho, n + 1, derivative)
+    b0 = b0_over_vinf(L, rho)
+    ratio[-1] = 1.0 / b0 - ratio[:-1].sum()   # the modes left out, at the next rate
+    rates = np.concatenate(([0.0], rate / tau0))
+    amplitudes = np.concatenate(([1.0], -b0 * ratio))
+    if not derivative:
+        return rates, amplitudes
+    d_rate, d_ratio, d_inv = slopes[0]
+    d_rates = np.zeros((3, rates.size))
+    d_rates[0, 1:] = -rates[1:]
+    d_rates[1:, 1:] = d_rate / tau0
+    d_amplitudes = np.zeros((3, rates.size))   # −b0·ratio with 1/b0 = V_inf/B0
+    d_amplitudes[1:, 1:-1] = -b0 * (d_ratio[:, :-1] - b0 * ratio[:-1] * d_inv[:, None])
+    d_amplitudes[1:, -1] = -d_amplitudes[1:, 1:-1].sum(axis=1)
+    return rates, amplitudes, d_rates, d_amplitudes
 
+
+def _membrane_unit(protocol: Protocol):
+    """(ln τ0, ln L, ln ρ) → the membrane's sweep response per unit R_in × current
+    (`_membrane_modes`, filtered)."""
     def unit(log_cell: np.ndarray) -> np.ndarray:
-        tau0, L, rho = np.exp(log_cell)
-        n = modes_needed(L, tau0, dt)
-        rate, ratio = mode_table(L, rho, n + 1)
-        b0 = b0_over_vinf(L, rho)
-        ratio[-1] = 1.0 / b0 - ratio[:-1].sum()   # the modes left out, at the next rate
-        rates = np.concatenate(([0.0], rate / tau0))
-        amplitudes = np.concatenate(([1.0], -b0 * ratio))
-        return _sweep_of(protocol,
-                         lambda u: filtered_exponentials(u, rates, amplitudes, lowpass))
+        rates, amplitudes = _membrane_modes(protocol, log_cell)
+        return _sweep_of(protocol, lambda u: filtered_exponentials(u, rates, amplitudes,
+                                                                   protocol.lowpass))
 
     return unit
+
+
+def _membrane_slopes(protocol: Protocol, log_cell: np.ndarray) -> np.ndarray:
+    """∂/∂(ln τ0, ln L, ln ρ, ln R_in) of R_in × the membrane unit (`_membrane_unit`), per
+    unit R_in × current, shape (n_samples, 4): analytic (the rates' and amplitudes'
+    derivatives through core.lowpass.filtered_exponential_slopes). The last column, the
+    unit itself, is the derivative with every amplitude moving in proportion."""
+    rates, amplitudes, d_rates, d_amplitudes = _membrane_modes(protocol, log_cell, True)
+    d_rates = np.vstack([d_rates, np.zeros(rates.size)])
+    d_amplitudes = np.vstack([d_amplitudes, amplitudes])
+    return _sweep_of(protocol, lambda u: filtered_exponential_slopes(
+        u, rates, amplitudes, d_rates, d_amplitudes, protocol.lowpass), (4,))
 
 
 def _bridge_unit(protocol: Protocol) -> np.ndarray:
@@ -438,15 +471,13 @@ def _bridge_unit(protocol: Protocol) -> np.ndarray:
 
 
 def _sweep_jacobian(protocol: Protocol, theta: np.ndarray) -> np.ndarray:
-    """∂s/∂θ of one sweep, θ = (ln τ0, ln L, ln ρ, ln R_in, R_bridge, baseline): analytic
-    in the last three (s is linear in R_in, R_bridge and the baseline), central
-    differences in the cell's logarithms."""
-    membrane = _membrane_unit(protocol)
+    """∂s/∂θ of one sweep, θ = (ln τ0, ln L, ln ρ, ln R_in, R_bridge, baseline), analytic:
+    the membrane's through its modes (`_membrane_slopes`), and s is linear in R_in,
+    R_bridge and the baseline."""
     scale = protocol.amplitude_A * math.exp(theta[3])
-    cell = scale * jacobian(membrane, theta[:3], [_LOG_STEP] * 3)
-    linear = [scale * membrane(theta[:3]), protocol.amplitude_A * _bridge_unit(protocol),
-              np.ones(cell.shape[0])]
-    return np.column_stack([cell, *linear])
+    membrane = scale * _membrane_slopes(protocol, theta[:3])
+    bridge = protocol.amplitude_A * _bridge_unit(protocol)
+    return np.column_stack([membrane, bridge, np.ones(bridge.size)])
 
 
 @lru_cache(maxsize=4)

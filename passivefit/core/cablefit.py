@@ -156,7 +156,7 @@ def _roots(k: float, n: int, y_start: np.ndarray | None = None) -> np.ndarray:
     return c + y
 
 
-def mode_table(L: float, rho: float, n_modes: int) -> tuple[np.ndarray, np.ndarray]:
+def mode_table(L: float, rho: float, n_modes: int, derivative: bool = False):
     """Rates and charging amplitude ratios of the first ``n_modes`` + 1 modes.
 
     Parameters
@@ -167,6 +167,8 @@ def mode_table(L: float, rho: float, n_modes: int) -> tuple[np.ndarray, np.ndarr
         Dendritic-to-somatic conductance ratio (``inf`` for a bare cylinder).
     n_modes : int
         Number of equalizing modes (mode 0 is added).
+    derivative : bool
+        Also return the derivatives of both in log L and log rho.
 
     Returns
     -------
@@ -174,10 +176,19 @@ def mode_table(L: float, rho: float, n_modes: int) -> tuple[np.ndarray, np.ndarr
         tau0/tau_n = 1 + alpha_n^2, n = 0..n_modes (first entry 1).
     b_ratio : numpy.ndarray
         B_n/B_0 of the step charging curve (first entry 1; docs/references.md §3).
+    slopes : tuple of numpy.ndarray
+        With ``derivative`` only: d rate_ratio and d b_ratio, shape (2, n_modes + 1) (first
+        column 0), and d(V_inf/B0), shape (2,), in log L (first row) and log rho, by
+        implicit differentiation of the eigenvalue equation (:func:`_table_slopes`).
     """
     s = math.tanh(L) / rho  # G_S/G_inf (0 for a bare cylinder)
-    alphas = _roots(s / L, int(n_modes)) / L
-    return _table(alphas, L, rho)
+    x = _roots(s / L, int(n_modes))
+    rate, ratio = _table(x / L, L, rho)
+    if not derivative:
+        return rate, ratio
+    d_rate, d_ratio, d_inv = _table_slopes(x, L, rho)
+    first = np.zeros((2, 1))
+    return rate, ratio, (np.hstack([first, d_rate]), np.hstack([first, d_ratio]), d_inv)
 
 
 def _table(alphas: np.ndarray, L: float, rho: float) -> tuple[np.ndarray, np.ndarray]:
@@ -219,17 +230,17 @@ def _edge_slopes(rates: np.ndarray, kinds: Sequence[str], durations: np.ndarray)
     return out
 
 
-def _mode_slopes(x: np.ndarray, L: float, rho: float, x_next: float, rates: np.ndarray,
-                 b0: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Derivatives of the rates and of the step amplitudes of :meth:`_Problem.amplitudes`
-    in log tau0, log L and log rho, shape (3, n_rates) each.
+def _table_slopes(x: np.ndarray, L: float, rho: float
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Derivatives in log L and log rho (leading axis) of the rate ratios 1 + alpha_n^2
+    and the step amplitude ratios B_n/B_0 of the equalizing modes with roots x_n = alpha_n L
+    (shape (2, n) each), and of V_inf/B0 = 1/b0_over_vinf (shape (2,)).
 
     The roots x_n of f(x, k) = sin x + k x cos x = 0, k = tanh(L)/(rho L), move with k as
     dx/dk = -f_k/f_x = -x cos x / ((1 + k) cos x - k x sin x) (implicit differentiation);
     alpha_n = x_n/L, tau0/tau_n = 1 + alpha_n^2 and the amplitudes (docs/references.md §3)
     follow by the chain rule.
     """
-    tau0 = 1.0 / rates[2]
     t = math.tanh(L)
     s = t / rho  # G_S/G_inf
     k = s / L
@@ -255,6 +266,16 @@ def _mode_slopes(x: np.ndarray, L: float, rho: float, x_next: float, rates: np.n
     # 1/(B0/V_inf) = (s + L)/(s + tanh L) (cable.b0_over_vinf)
     dt = (1.0 - t * t) * dL
     d_inv = ((ds + dL) * (s + t) - (s + L) * (ds + dt)) / (s + t) ** 2
+    return d_rate, d_ratio, d_inv
+
+
+def _mode_slopes(x: np.ndarray, L: float, rho: float, x_next: float, rates: np.ndarray,
+                 b0: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Derivatives of the rates and of the step amplitudes of :meth:`_Problem.amplitudes`
+    in log tau0, log L and log rho, shape (3, n_rates) each (:func:`_table_slopes`; the
+    tail mode's amplitude keeps the sum V_inf/B0, its rate is fixed at x_next/L)."""
+    tau0 = 1.0 / rates[2]
+    d_rate, d_ratio, d_inv = _table_slopes(x, L, rho)
     d_tail = d_inv - d_ratio.sum(axis=1)
     d_next = np.array([-2.0 * (x_next / L) ** 2, 0.0])
     # per rate: step, lag, mode 0, modes 1..n, the tail mode

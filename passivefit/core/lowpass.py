@@ -25,7 +25,7 @@ import numpy as np
 
 from passivefit.core.qc import detrended
 
-__all__ = ["Lowpass", "filtered_exponentials"]
+__all__ = ["Lowpass", "filtered_exponential_slopes", "filtered_exponentials"]
 
 
 #: The reverse Bessel polynomial of order 4, highest power first: H(s) = 105/θ4(s) has the
@@ -102,6 +102,7 @@ class Lowpass:
 
 
 _NEGLIGIBLE = 40.0   # an exponential past 40 time constants (e^-40) is left out of a sum
+_SHORT = 512   # exponentials kept for at most this many samples are summed as one product
 
 
 def filtered_exponentials(t: np.ndarray, rates: np.ndarray, amplitudes: np.ndarray,
@@ -112,20 +113,93 @@ def filtered_exponentials(t: np.ndarray, rates: np.ndarray, amplitudes: np.ndarr
     only the samples just after the edge."""
     t = np.asarray(t, float)
     rates, amplitudes = np.asarray(rates, float), np.asarray(amplitudes, float)
-    after = np.where(t > 0, t, np.inf).ravel()   # inf: before the edge, where it is 0
-    order = None if np.all(after[1:] >= after[:-1]) else np.argsort(after, kind="stable")
-    u = after if order is None else after[order]   # ascending: each term a leading slice
+    u, order = _after_edge(t)
     terms = list(zip(rates, amplitudes * (1.0 if lowpass is None else lowpass.gain(rates)),
                      strict=True))
     if lowpass is not None:
         terms += zip(-lowpass.poles, amplitudes @ lowpass.pole_weights(rates), strict=True)
     total = np.zeros(u.size)
-    for rate, a in terms:   # (rate 0: a step, its constant after the edge)
-        n = int(np.searchsorted(u, _NEGLIGIBLE / rate.real if rate.real > 0 else np.inf))
+    kept = _kept(u, np.array([rate for rate, _ in terms]))
+    for (rate, a), n in zip(terms, kept, strict=True):   # (rate 0: a step, its constant)
         total[:n] += np.real(a) if rate == 0 else np.real(a * np.exp(-rate * u[:n]))
+    return _in_time_order(total, order).reshape(t.shape)
+
+
+def filtered_exponential_slopes(t: np.ndarray, rates: np.ndarray, amplitudes: np.ndarray,
+                                d_rates: np.ndarray, d_amplitudes: np.ndarray,
+                                lowpass: Lowpass | None) -> np.ndarray:
+    """Derivatives of :func:`filtered_exponentials` (the same `t`, `rates`, `amplitudes`
+    and `lowpass`) in P parameters, given those of the rates and amplitudes, `d_rates`
+    and `d_amplitudes` of shape (P, n_rates). Returns shape ``t.shape + (P,)``.
+
+    With F(u; lam) = H(-lam) e^(-lam u) + sum_k c_k/(p_k + lam) e^(p_k u) the filtered unit
+    exponential, the derivative is sum_m [da_m F(u; lam_m) + a_m dlam_m dF/dlam(u; lam_m)],
+    dF/dlam = (H'(-lam) - u H(-lam)) e^(-lam u) - sum_k c_k/(p_k + lam)^2 e^(p_k u), with
+    H'(-lam) = -H(-lam) sum_k 1/(p_k + lam) (docs/references.md §11). Each exponential is
+    summed where :func:`filtered_exponentials` sums it.
+    """
+    t = np.asarray(t, float)
+    rates, amplitudes = np.asarray(rates, float), np.asarray(amplitudes, float)
+    d_rates, d_amplitudes = np.asarray(d_rates, float), np.asarray(d_amplitudes, float)
+    u, order = _after_edge(t)
+    moved = amplitudes * d_rates   # a_m dlam_m, (P, n_rates)
+    if lowpass is None:
+        gain, d_gain = np.ones(rates.size), np.zeros(rates.size)
+    else:
+        gain = lowpass.gain(rates)
+        d_gain = -gain * np.real(np.sum(1.0 / (lowpass.poles + rates[:, None]), axis=-1))
+    # per rate: the factors on e^(-lam u) and on u e^(-lam u), shape (n_rates, P)
+    flat = (d_amplitudes * gain + moved * d_gain).T
+    sloped = (-moved * gain).T
+    total = np.zeros((d_rates.shape[0], u.size))   # parameters first: rows contiguous
+    kept = _kept(u, rates)
+    short = kept <= _SHORT
+    for rate, n, a, b in zip(rates[~short], kept[~short], flat[~short], sloped[~short],
+                             strict=True):
+        e = np.exp(-rate * u[:n]) if rate != 0 else 1.0   # (rate 0: a step)
+        total[:, :n] += a[:, None] * e
+        if np.any(b):   # the rate moves
+            total[:, :n] += b[:, None] * (e * u[:n])
+    if np.any(short):   # the fast ones at once, each up to its own end
+        n = int(np.max(kept[short]))
+        e = np.exp(-np.outer(rates[short], u[:n]))
+        e[np.arange(n) >= kept[short, None]] = 0.0
+        total[:, :n] += flat[short].T @ e + sloped[short].T @ (e * u[:n])
+    if lowpass is not None:
+        weights = lowpass.pole_weights(rates)   # c_k/(p_k + lam_m), (n_rates, 4)
+        rings = d_amplitudes @ weights - moved @ (weights / (lowpass.poles + rates[:, None]))
+        for k, (pole, n) in enumerate(zip(lowpass.poles, _kept(u, -lowpass.poles),
+                                          strict=True)):
+            total[:, :n] += np.real(rings[:, k, None] * np.exp(pole * u[:n]))
+    return np.moveaxis(_in_time_order(total, order), -1, 0).reshape(
+        t.shape + (d_rates.shape[0],))
+
+
+def _after_edge(t: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
+    """The times after the edge in ascending order (inf where before it, where the sums
+    are 0), so that each exponential's samples are a leading slice; and the order that
+    sorted them (None: already in order)."""
+    after = np.where(t > 0, t, np.inf).ravel()
+    order = None if np.all(after[1:] >= after[:-1]) else np.argsort(after, kind="stable")
+    return (after if order is None else after[order]), order
+
+
+def _kept(u: np.ndarray, rates: np.ndarray) -> np.ndarray:
+    """Per rate, the leading samples of ascending `u` where exp(-rate u) is above e^-40
+    (all the samples after the edge for a rate 0)."""
+    rates = np.asarray(rates)
+    limit = np.full(rates.shape, np.inf)
+    decays = rates.real > 0
+    limit[decays] = _NEGLIGIBLE / rates.real[decays]
+    return np.searchsorted(u, limit)
+
+
+def _in_time_order(total: np.ndarray, order: np.ndarray | None) -> np.ndarray:
+    """`total` (along the sorted times of :func:`_after_edge`, its last axis) back in the
+    order of t."""
     if order is not None:
-        total[order] = total.copy()
-    return total.reshape(t.shape)
+        total[..., order] = total.copy()
+    return total
 
 
 def corner_from_noise(segments: list[np.ndarray], sample_rate_hz: float) -> float | None:
