@@ -42,6 +42,7 @@ from passivefit.analysis.selection import (
 from passivefit.analysis.start import start_values
 from passivefit.analysis.sweep import (
     analyze_sweep,
+    analyze_sweeps,
     apply_decisions,
     reject_outliers,
     with_bridge_removed,
@@ -103,8 +104,8 @@ def _fitted_sweeps(chosen, voltages: dict[int, np.ndarray], fs: float, effective
                    tau_init) -> list[SweepFit]:
     """Every sweep fitted with `effective` settings from the start values `tau_init`, its
     spontaneous events cut out."""
-    fits = [analyze_sweep(voltages[s.index], st, s.index, fs, effective, tau_init)
-            for s, st in chosen]
+    fits = analyze_sweeps([(voltages[s.index], st, s.index) for s, st in chosen], fs,
+                          effective, tau_init)
     return cut_out_events(fits, voltages, fs, lambda f, cut: analyze_sweep(
         voltages[f.index], f.step, f.index, fs, effective, tau_init, masked_s=cut))
 

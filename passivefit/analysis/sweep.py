@@ -71,27 +71,49 @@ def baseline_only(v: np.ndarray, step: Step | None, index: int, fs: float,
     return SweepFit(index, np.max(v) < SPIKE_V, None, step, v_rest_V=steady.robust_level(v[b0:b1]))
 
 
-def _fit_sweep(v: np.ndarray, fs: float, step: Step, wins: dict, settings: Settings,
-               tau_init: tuple[float, ...] | None):
-    """(fit, segment records, None) or (None, (), the reason the fit failed)."""
-    try:
-        segs, records = fit_segments(v, fs, step, wins)
-        if not segs:
-            raise ValueError("the fit window holds too few samples")
-        if tau_init is not None and settings.components == "auto":
-            n = min(len(tau_init), 2)
-            fit = fit_exponentials(segs, str(n), tau_init=tau_init[:n])
-            if not fit.success and n == 2:  # a small step may not show τ1: one exponential
-                fit = fit_exponentials(segs, "1", tau_init=tau_init[:1])
-        elif settings.components == "auto":  # single sweeps rarely resolve a third
-            fit = fit_exponentials(segs, "auto", max_components=2)
-        else:
-            fit = _fewer_if_needed(segs, int(settings.components), tau_init)
-        if not fit.success:
-            raise ValueError(fit.message)
-    except FIT_ERRORS as exc:
-        return None, (), f"fit failed: {exc}"
-    return label_components(fit, step, records[0].charging), records, None
+def _fit_sweeps(parts: list[tuple[np.ndarray, Step, dict]], fs: float, settings: Settings,
+                tau_init: tuple[float, ...] | None) -> list[tuple]:
+    """For each (voltage, step, windows) of `parts`: (fit, segment records, None), or
+    (None, (), the reason the fit failed). With start values and automatic components
+    (the usual case) the sweeps' first fits are searched together."""
+    from passivefit.core.expfit import fit_exponentials_many
+
+    segments = []
+    for v, step, wins in parts:
+        try:
+            segments.append(fit_segments(v, fs, step, wins))
+        except FIT_ERRORS as exc:
+            segments.append(exc)
+    together = tau_init is not None and settings.components == "auto"
+    if together:   # single sweeps rarely resolve a third component
+        n = min(len(tau_init), 2)
+        firsts = fit_exponentials_many(
+            [s[0] if isinstance(s, tuple) else [] for s in segments], n, tau_init[:n])
+    out = []
+    for k, ((_, step, _), found) in enumerate(zip(parts, segments, strict=True)):
+        try:
+            if isinstance(found, Exception):
+                raise found
+            segs, records = found
+            if not segs:
+                raise ValueError("the fit window holds too few samples")
+            if together:
+                fit = firsts[k]
+                if isinstance(fit, Exception):
+                    raise fit
+                if not fit.success and n == 2:  # a small step may not show τ1: one exponential
+                    fit = fit_exponentials(segs, "1", tau_init=tau_init[:1])
+            elif settings.components == "auto":
+                fit = fit_exponentials(segs, "auto", max_components=2)
+            else:
+                fit = _fewer_if_needed(segs, int(settings.components), tau_init)
+            if not fit.success:
+                raise ValueError(fit.message)
+        except FIT_ERRORS as exc:
+            out.append((None, (), f"fit failed: {exc}"))
+            continue
+        out.append((label_components(fit, step, records[0].charging), records, None))
+    return out
 
 
 def _fewer_if_needed(segs, n: int, tau_init: tuple[float, ...] | None):
@@ -124,9 +146,29 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
     that the fit and steady windows do not change (baseline level, drift, noise, the
     artefact's end, sag), so a refit with another fit window redoes only the fit.
     """
+    return analyze_sweeps([(v, step, index)], fs, settings, tau_init, masked_s, cache)[0]
+
+
+def analyze_sweeps(sweeps: list[tuple[np.ndarray, Step | None, int]], fs: float,
+                   settings: Settings, tau_init: tuple[float, ...] | None = None,
+                   masked_s: tuple[tuple[float, float], ...] = (),
+                   cache: dict | None = None) -> list[SweepFit]:
+    """:func:`analyze_sweep` of each (voltage, step, index) of `sweeps`, their fits
+    searched together (`masked_s` and `cache` only with one sweep)."""
+    begun = [_begin(v, step, index, fs, settings, masked_s, cache) for v, step, index in sweeps]
+    ready = [b for b in begun if not isinstance(b, SweepFit)]
+    fitted = iter(_fit_sweeps([(b[1][1], b[0][1], b[2]) for b in ready], fs, settings,
+                              tau_init))
+    return [b if isinstance(b, SweepFit) else _end(*b, *next(fitted), fs, settings)
+            for b in begun]
+
+
+def _begin(v: np.ndarray, step: Step | None, index: int, fs: float, settings: Settings,
+           masked_s: tuple[tuple[float, float], ...], cache: dict | None):
+    """A sweep up to its fit: ((v, step, index, masked_s), what _prepare gives, the
+    windows), or its SweepFit when it cannot be fitted."""
     if step is None:
         return SweepFit(index, False, "no step in this sweep", None)
-    flags: list[Flag] = []
     w = settings.windows_for(index)
     guess = resolve_windows(step, v.size, fs, w, MIN_FIT_START_S)
     b0, b1 = span(guess["baseline"], fs, v.size)
@@ -140,9 +182,15 @@ def analyze_sweep(v: np.ndarray, step: Step | None, index: int, fs: float,
         if cache is not None:
             cache.clear()            # one baseline at a time: a drag moves one window
             cache[key] = prep
-    v, seen, v_base, drift, trend, noise, fit_start, sag_values = prep
-    wins = resolve_windows(step, v.size, fs, w, fit_start)
-    fit, records, fit_error = _fit_sweep(seen, fs, step, wins, settings, tau_init)
+    return (v, step, index, masked_s), prep, resolve_windows(step, v.size, fs, w, prep[6])
+
+
+def _end(sweep: tuple, prep: tuple, wins: dict, fit, records, fit_error: str | None,
+         fs: float, settings: Settings) -> SweepFit:
+    """The sweep's levels, tests and record, from its fit (analyze_sweep)."""
+    v, step, index, masked_s = sweep
+    v, seen, v_base, drift, trend, noise, _, sag_values = prep
+    flags: list[Flag] = []
 
     v_ss = dv = r_in = bridge = sag = rmse = r_peak = rebound = None
     amps: tuple[float, ...] = ()
