@@ -388,7 +388,8 @@ def event_scan(
         rows = slice(r.size - first, r.size - last - 1 if r.size - last > 0 else None, -1)
         windows = np.lib.stride_tricks.sliding_window_view(
             np.concatenate((r, np.zeros(n_post))), n_pre + n_post)[first - n_pre:last - n_pre + 1]
-        amp[first:last + 1] = np.einsum("ij,ij->i", kernels[rows], windows)
+        # row-wise dot products, as a stack of (1 x n) @ (n x 1) products (BLAS)
+        amp[first:last + 1] = np.matmul(kernels[rows][:, None, :], windows[:, :, None])[:, 0, 0]
         sd[first:last + 1] = noise.detector_sd_V * norms[rows] / full_norm
     valid = np.isfinite(amp)
     onset = (np.flatnonzero(valid) + start) / fs_hz
