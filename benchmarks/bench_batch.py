@@ -14,12 +14,16 @@ Linux only (reads /proc). Prints one line per folder size and a verdict.
 from __future__ import annotations
 
 import argparse
+import os
 import re
 import subprocess
 import sys
 import tempfile
 import time
 from pathlib import Path
+
+for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_name, "1")   # the one-core rate on one core, as each worker runs
 
 TARGET_SWEEPS_PER_S = 200.0
 
@@ -127,8 +131,9 @@ def main() -> int:
               f"parent+workers {peak_kib / 1024:6.0f} MiB  (data written in {prepared:.0f} s)")
 
     (_, _, _, _, peak_n), (_, _, _, rate_4n, peak_4n) = results
-    one_core = serial_rate(write_recordings(args.data / f"n{args.files}_s{args.sweeps}",
-                                            args.files, args.sweeps), args.bootstrap)
+    # on the same files as the 4N batch: the cells differ, and so does their cost
+    one_core = serial_rate(write_recordings(args.data / f"n{4 * args.files}_s{args.sweeps}",
+                                            4 * args.files, args.sweeps), args.bootstrap)
     print(f"a worker's work alone, one core, no batch: {one_core:.1f} sweeps/s -> with "
           f"{args.workers} workers at most {args.workers * one_core:.0f} sweeps/s; the batch "
           f"reached {rate_4n / (args.workers * one_core):.0%} of that at 4N")

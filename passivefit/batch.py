@@ -542,6 +542,8 @@ def _run_files(files: list[Path], settings, database, metadata: dict[Path, dict]
 
 
 _DIED = "the analysis process died (out of memory or a crash)"
+#: Thread counts of the linear-algebra libraries numpy may use, one per worker.
+_BLAS_THREADS = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
 
 def _analyse_all(paths: list[Path], settings, workers: int, reports: str | None,
@@ -553,9 +555,12 @@ def _analyse_all(paths: list[Path], settings, workers: int, reports: str | None,
     die with this process (`_worker_main`). `work(path, settings, reports)` replaces
     `analyse_file` (a module-level function; tests use it).
     """
+    import os
     from multiprocessing import get_context
 
     context = get_context("spawn")  # not fork: no inherited database connections
+    for name in _BLAS_THREADS:   # one process per core: BLAS threads would only contend
+        os.environ.setdefault(name, "1")   # (read by each worker as it imports numpy)
     queue = [str(p) for p in reversed(paths)]
     pool: list[_Worker] = []
     starts_failed = 0
