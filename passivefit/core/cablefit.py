@@ -52,6 +52,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
+from functools import cached_property
 
 import numpy as np
 
@@ -335,8 +336,9 @@ class _Problem:
     _solved: tuple = field(default=(), repr=False)
     _cache: dict = field(default_factory=dict, repr=False)  # the filter's terms, column maps
 
-    @property
+    @cached_property
     def lag(self) -> bool:
+        """Whether a bridge jump (with the electrode's lag) is fitted."""
         return bool(np.any(self.bridge_col >= 0))
 
     @property
@@ -375,6 +377,10 @@ class _Problem:
     def lowpass(self, theta: np.ndarray) -> Lowpass | None:
         if self.estimate_corner:
             return Lowpass(math.exp(theta[-1]))
+        return self._known_lowpass
+
+    @cached_property
+    def _known_lowpass(self) -> Lowpass | None:
         return None if self.corner_hz is None else Lowpass(self.corner_hz)
 
     def modes_for(self, theta: np.ndarray, margin: float = 1.0) -> tuple[int, int]:

@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from functools import cache
+from functools import cache, cached_property
 
 import numpy as np
 
@@ -64,12 +64,12 @@ class Lowpass:
             raise ValueError(f"the filter corner must be a positive frequency in Hz, "
                              f"got {self.corner_hz!r}")
 
-    @property
+    @cached_property
     def poles(self) -> np.ndarray:
         """Poles (1/s, complex): the unit poles scaled by the corner in rad/s."""
         return _unit_bessel()[0] * (2 * np.pi * self.corner_hz)
 
-    @property
+    @cached_property
     def residues(self) -> np.ndarray:
         """Residues of H at its poles (1/s, complex)."""
         return _unit_bessel()[1] * (2 * np.pi * self.corner_hz)
