@@ -32,6 +32,8 @@ from passivefit.model.settings import Settings
 MV = 1e-3
 DRIFT_V = 1e-3       # baseline change over a sweep beyond which the sweep is rejected
 TAIL_S = 0.2         # the last tenth of a tail at least this long is back at baseline
+#: Samples of the sweeps fitted together (analyze_sweeps): 64 MB of the float64 copies.
+_TOGETHER_SAMPLES = 4_000_000
 
 
 def baseline_drift(v: np.ndarray, step: Step, fs: float, v_base: float,
@@ -154,13 +156,19 @@ def analyze_sweeps(sweeps: list[tuple[np.ndarray, Step | None, int]], fs: float,
                    masked_s: tuple[tuple[float, float], ...] = (),
                    cache: dict | None = None) -> list[SweepFit]:
     """:func:`analyze_sweep` of each (voltage, step, index) of `sweeps`, their fits
-    searched together (`masked_s` and `cache` only with one sweep)."""
-    begun = [_begin(v, step, index, fs, settings, masked_s, cache) for v, step, index in sweeps]
-    ready = [b for b in begun if not isinstance(b, SweepFit)]
-    fitted = iter(_fit_sweeps([(b[1][1], b[0][1], b[2]) for b in ready], fs, settings,
-                              tau_init))
-    return [b if isinstance(b, SweepFit) else _end(*b, *next(fitted), fs, settings)
-            for b in begun]
+    searched together, as many sweeps at a time as _TOGETHER_SAMPLES allows (each holds
+    copies of its voltage until it is done); `masked_s` and `cache` only with one sweep."""
+    out: list[SweepFit] = []
+    per_pass = max(1, _TOGETHER_SAMPLES // max(v.size for v, _, _ in sweeps)) if sweeps else 1
+    for a in range(0, len(sweeps), per_pass):
+        begun = [_begin(v, step, index, fs, settings, masked_s, cache)
+                 for v, step, index in sweeps[a:a + per_pass]]
+        ready = [b for b in begun if not isinstance(b, SweepFit)]
+        fitted = iter(_fit_sweeps([(b[1][1], b[0][1], b[2]) for b in ready], fs, settings,
+                                  tau_init))
+        out += [b if isinstance(b, SweepFit) else _end(*b, *next(fitted), fs, settings)
+                for b in begun]
+    return out
 
 
 def _begin(v: np.ndarray, step: Step | None, index: int, fs: float, settings: Settings,
