@@ -51,7 +51,7 @@ def _write(nwb, path):
 
 
 def _ramp(k):
-    return np.linspace(0, 1, N) + k
+    return np.linspace(0, 1, N) + k - 65  # mV: near a resting potential
 
 
 def _pairs_file(path):

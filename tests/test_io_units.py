@@ -54,6 +54,22 @@ def test_mv_values_under_a_v_header_in_a_tsv(tmp_path):
         load(wrong)
 
 
+def test_v_values_under_a_mv_header_are_refused(tmp_path):
+    path = save(charging_recording(n_sweeps=2, n_samples=1200), tmp_path / "cell.csv")
+    lines = path.read_text().splitlines()
+    at = next(i for i, line in enumerate(lines) if line.startswith("time_ms"))
+    volt_cols = [i for i, name in enumerate(lines[at].split(",")) if name.endswith("_mV")]
+    rows = [",".join(f"{float(x) * 1e-3:.9g}" if i in volt_cols else x
+                     for i, x in enumerate(row.split(","))) for row in lines[at + 1:]]
+    path.write_text("\n".join(lines[:at + 1] + rows) + "\n")  # V numbers labelled mV
+    with pytest.raises(LoadError) as caught:
+        load(path)
+    message = str(caught.value)
+    assert re.search(r"never leave ±0\.0\d+ mV of 0 mV: this is not a membrane potential",
+                     message), message
+    assert "\n" not in message
+
+
 def test_pa_values_labelled_na_are_refused(tmp_path):
     path = _relabelled(tmp_path, "_pA", "_nA")  # -40 pA read as -40 nA ... -60 nA: fine
     load(path)

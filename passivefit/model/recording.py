@@ -20,6 +20,10 @@ from passivefit.model.protocol import Protocol
 REST_LIMITS_V = (-0.25, 0.1)
 # no injected current in current clamp comes near this (common practice, no source)
 MAX_CURRENT_A = 100e-9
+# A membrane potential that never leaves ±2 mV of 0 mV in any sweep is not one: an
+# unconnected channel, a copy of the command, or V values labelled mV (common
+# practice, no source).
+NEAR_ZERO_V = 2e-3
 
 
 @dataclass(frozen=True)
@@ -205,9 +209,18 @@ class Recording:
 
         Voltages whose median is outside `REST_LIMITS_V`, or a current beyond
         `MAX_CURRENT_A`, mean a unit mistake in the file (mV values labelled V, pA
-        values labelled nA or A). Voltages near 0 V are let through: an unconnected
-        input chosen on purpose reads so, as does a sweep table of V values labelled mV.
+        values labelled nA or A). Voltages that stay within `NEAR_ZERO_V` of 0 V in every
+        sweep are an unconnected or command channel, or V values labelled mV.
         """
+        largest_v = max(float(np.max(np.abs(s.voltage))) for s in self.sweeps)
+        if largest_v < NEAR_ZERO_V:
+            raise LoadError(
+                self.path,
+                f"the voltages never leave ±{largest_v * 1e3:.3g} mV of 0 mV: this is not a "
+                f"membrane potential (an unconnected or command channel, or V values "
+                f"labelled mV); choose the membrane-potential channel or correct the "
+                f"voltage unit in the file",
+            )
         rest = float(np.median([np.median(s.voltage) for s in self.sweeps]))
         low, high = REST_LIMITS_V
         if not low <= rest <= high:
