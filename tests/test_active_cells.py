@@ -88,9 +88,12 @@ def test_a_sagging_cell():
 
 
 @pytest.mark.slow
-def test_firing_sweeps_are_left_out_with_their_reason():
+@pytest.mark.parametrize("peak_mV", [30, -20])
+def test_firing_sweeps_are_left_out_with_their_reason(peak_mV):
+    """Spikes peaking at -20 mV (a small spike, or a large offset of the potential) are
+    found by their upstroke, as those overshooting 0 mV are by their peak."""
     steps = StepProtocol(0.1, 0.5, (-50e-12, 300e-12))
-    rec, truth = simulate(protocol=steps, n_sweeps=6, spiking=Spiking())
+    rec, truth = simulate(protocol=steps, n_sweeps=6, spiking=Spiking(peak_V=peak_mV * 1e-3))
     result = analyze(rec, Settings(bootstrap=0))
     for s in result.sweeps:
         fired = bool(truth["spike_times_ms"][s.index])

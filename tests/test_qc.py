@@ -1,10 +1,12 @@
-"""Student's t quantile (core.qc.t975), computed without scipy on the analysis path."""
+"""Student's t quantile and the F survival function (core.qc, computed without scipy on
+the analysis path); the action-potential detector (core.qc.first_spike)."""
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
 
-from passivefit.core.qc import f_survival, t975
+from passivefit.core.qc import f_survival, first_spike, t975
 
 
 @pytest.mark.parametrize("dof", [*range(1, 60), 99, 100, 1000, 1001, 5000, 10**6])
@@ -34,3 +36,40 @@ def test_f_survival_is_scipys(d1, d2):
     for f in (0.05, 0.8, 1.0, 3.0, 9.0, 60.0):
         assert f_survival(d1, d2, f) == pytest.approx(float(fdtrc(d1, d2, f)), rel=1e-8)
     assert f_survival(d1, d2, 0.0) == 1.0
+
+
+FS = 20_000.0
+
+
+def _passive_step(jump_V: float, noise_V: float = 0.0, seed: int = 0) -> np.ndarray:
+    """-70 mV, a +20 mV step response (τ 20 ms) from 100 ms with an instantaneous jump of
+    `jump_V` (an unbalanced bridge) at both edges, 1 s at 20 kHz."""
+    t = np.arange(int(FS)) / FS
+    on, off = (t >= 0.1) & (t < 0.6), t >= 0.6
+    v = np.full(t.size, -0.070)
+    v[on] += 0.020 * (1 - np.exp(-(t[on] - 0.1) / 0.02)) + jump_V
+    v[off] += 0.020 * (1 - np.exp(-0.5 / 0.02)) * np.exp(-(t[off] - 0.6) / 0.02)
+    return v + np.random.default_rng(seed).normal(0, noise_V, t.size)
+
+
+def _edges_quiet() -> list[tuple[int, int]]:
+    return [(2000, 2020), (12000, 12020)]   # 1 ms after each edge
+
+
+def test_first_spike_is_none_for_passive_charging_noise_and_an_unbalanced_bridge():
+    # common practice, no source: passive charging rises at ΔV/τ (1 V/s here), white noise
+    # of 1 mV sd does not climb 20 mV, and the bridge's jump sits at the step's edges
+    assert first_spike(_passive_step(0.0, noise_V=1e-3), FS, _edges_quiet()) is None
+    assert first_spike(_passive_step(0.025), FS, _edges_quiet()) is None
+    assert first_spike(_passive_step(0.025), FS) is not None   # the jump, were the edge unknown
+
+
+def test_first_spike_finds_a_spike_that_peaks_below_minus_10_mV():
+    v = _passive_step(0.0, noise_V=0.2e-3)
+    t = np.arange(v.size) / FS
+    bump = np.exp(-0.5 * ((t - 0.3003) / 0.3e-3) ** 2)   # rises 30 mV in under 1 ms
+    v_low = v + 0.030 * bump                             # peaks near -20 mV
+    assert abs(first_spike(v_low, FS, _edges_quiet()) - 6006) <= 2
+    v_high = v + 0.080 * bump                            # overshoots: found by its peak
+    assert abs(first_spike(v_high, FS, _edges_quiet()) - 6006) <= 2
+    assert first_spike(v + 0.005 * bump, FS, _edges_quiet()) is None   # a 5 mV bump: no

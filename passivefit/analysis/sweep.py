@@ -17,13 +17,12 @@ from passivefit.analysis.fits import (
 )
 from passivefit.analysis.windows import (
     MIN_FIT_START_S,
-    SPIKE_V,
     fit_start_after_artefact,
     resolve_windows,
     span,
 )
 from passivefit.core import steady
-from passivefit.core.qc import Flag
+from passivefit.core.qc import Flag, first_spike
 from passivefit.core.steps import Step
 from passivefit.model import schema as S
 from passivefit.model.results import SweepFit, mask
@@ -32,6 +31,7 @@ from passivefit.model.settings import Settings
 MV = 1e-3
 DRIFT_V = 1e-3       # baseline change over a sweep beyond which the sweep is rejected
 TAIL_S = 0.2         # the last tenth of a tail at least this long is back at baseline
+QUIET_S = 1e-3       # after a step edge, no upstroke is taken for an action potential
 #: Samples of the sweeps fitted together (analyze_sweeps): 64 MB of the float64 copies.
 _TOGETHER_SAMPLES = 4_000_000
 
@@ -70,7 +70,19 @@ def baseline_only(v: np.ndarray, step: Step | None, index: int, fs: float,
     b0, b1 = span(wins["baseline"], fs, v.size)
     if b1 - b0 < 10:
         return SweepFit(index, False, "no baseline before the step", step)
-    return SweepFit(index, np.max(v) < SPIKE_V, None, step, v_rest_V=steady.robust_level(v[b0:b1]))
+    return SweepFit(index, spike_in(v, step, fs) is None, None, step,
+                    v_rest_V=steady.robust_level(v[b0:b1]))
+
+
+def spike_in(v: np.ndarray, step: Step, fs: float) -> int | None:
+    """The sample of the sweep's first action potential's peak, or None
+    (core.qc.first_spike): upstrokes are looked for in the step's region only, and not in
+    the millisecond after an edge (the electrode's jump) nor during a pulse."""
+    settle = round(QUIET_S * fs)
+    end = v.size if step.region_end is None else step.region_end
+    edges = ([(step.onset, step.offset + settle)] if step.kind == "pulse"
+             else [(step.onset, step.onset + settle), (step.offset, step.offset + settle)])
+    return first_spike(v, fs, [(0, step.baseline_start), *edges, (end, v.size)])
 
 
 def _fit_sweeps(parts: list[tuple[np.ndarray, Step, dict]], fs: float, settings: Settings,
@@ -230,10 +242,11 @@ def _end(sweep: tuple, prep: tuple, wins: dict, fit, records, fit_error: str | N
         done = "subtracted as a straight line" if settings.correct_drift else "not corrected"
         flags.append(S.SWEEP_DRIFT.make(drift / MV, done=done))
     accepted, reason = True, None
-    if np.max(v) >= SPIKE_V:
-        where = _part_of_sweep(int(np.argmax(v)), step)
-        accepted, reason = False, (f"action potential {where} (peak {np.max(v) / MV:+.0f} mV "
-                                   f"at {np.argmax(v) / fs * 1e3:.0f} ms)")
+    spike = spike_in(v, step, fs)
+    if spike is not None:
+        where = _part_of_sweep(spike, step)
+        accepted, reason = False, (f"action potential {where} (peak {v[spike] / MV:+.0f} mV "
+                                   f"at {spike / fs * 1e3:.0f} ms)")
         if where == "during the step":   # spikes, not a steady state: no R_in
             dv = r_in = None
     elif fit_error:

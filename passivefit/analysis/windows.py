@@ -16,7 +16,6 @@ from passivefit.io.recording import LoadError, Recording
 from passivefit.model.settings import Settings, Windows
 
 MS = 1e-3
-SPIKE_V = -0.010          # a sweep reaching this potential fired an action potential
 GUARD_S = 0.5e-3         # keep windows this far from step edges
 MIN_FIT_START_S = 0.3e-3  # earliest automatic fit start after an edge
 
