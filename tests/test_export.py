@@ -346,3 +346,13 @@ def test_xlsx_text_that_looks_like_a_formula_stays_text(tmp_path, results):
         assert cells["source_path"].value == text and cells["source_path"].data_type == "s"
         assert cells["v_rest_mV"].data_type == "n"
     assert not any(c.data_type == "f" for line in sheet.iter_rows() for c in line)
+
+
+def test_wide_intervals_are_written_without_an_exponent():
+    """Two significant digits, as a reader writes them: '± 240', not '± 2.4e+02'."""
+    from passivefit.model.schema import L_BS, L_CI_HIGH, L_CI_LOW, R_IN, R_IN_CI, uncertainty_text
+
+    cell = {R_IN.key: 278.4, R_IN_CI.key: 245.0, L_BS.key: 1.1, L_CI_LOW.key: 0.0123,
+            L_CI_HIGH.key: 1530.0}
+    assert uncertainty_text(cell, R_IN) == " ± 240"
+    assert uncertainty_text(cell, L_BS) == " (0.012–1500)"

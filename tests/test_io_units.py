@@ -95,3 +95,17 @@ def test_real_files_and_samples_pass_the_unit_check(path):
         assert "unit" not in str(err), str(err)
         return
     assert -0.12 < np.median([np.median(s.voltage) for s in recording.sweeps]) < 0.02
+
+
+def test_a_current_too_small_to_be_a_step_names_its_size(tmp_path):
+    """-40 pA read as -0.04 pA (a unit mistake): the one-line refusal says how small the
+    current is instead of calling it flat (common practice, no source: a current-clamp
+    step is tens to hundreds of pA)."""
+    from passivefit.analysis import analyze
+
+    recording = charging_recording(n_sweeps=2, n_samples=1200)
+    for sweep in recording.sweeps:
+        sweep.current = sweep.current * 1e-3
+    with pytest.raises(LoadError, match=r"the current is flat, changing by at most 0.06 pA: "
+                                        r"is its unit right\?"):
+        analyze(load(save(recording, tmp_path / "tiny.nwb")))

@@ -103,6 +103,26 @@ def test_an_early_step_keeps_its_sign_and_the_drift_is_reported(results):
 
 
 @pytest.mark.slow
+def test_a_described_step_is_read_to_the_end_of_its_tail(results):
+    """18711001 without its current, the first step described by hand: the spikes of the
+    undescribed second step (823–1323 ms) do not reject the sweeps, as they do not when the
+    recorded current shows that step."""
+    from dataclasses import replace
+
+    from passivefit.model.recording import StepSpec
+    from passivefit.model.settings import Settings
+
+    rec = load(DATA_DIR / "18711001.abf")
+    rec.sweeps = [replace(s, current=None) for s in rec.sweeps]
+    rec.current_source = ""
+    described = analyze(rec, Settings(step=StepSpec(0.0234, 0.3, -100e-12, 0.0)))
+    assert all(f.accepted for f in described.sweeps)
+    recorded = results["18711001"].to_dict()["cell"]
+    assert described.to_dict()["cell"][S.R_IN.key] == pytest.approx(recorded[S.R_IN.key],
+                                                                    rel=0.02)
+
+
+@pytest.mark.slow
 def test_events_are_cut_out_where_they_are(results):
     """File_axon_5: real synaptic events on every sweep; the hyperpolarizing sweeps are
     used with their events cut out, the firing ones are left out."""

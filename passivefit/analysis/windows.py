@@ -18,6 +18,15 @@ from passivefit.model.settings import Settings, Windows
 MS = 1e-3
 GUARD_S = 0.5e-3         # keep windows this far from step edges
 MIN_FIT_START_S = 0.3e-3  # earliest automatic fit start after an edge
+TAIL_AFTER_S = 0.1       # the decay after a step is read for its duration and this long
+
+
+def tail_end(step: Step, n_samples: int) -> int:
+    """The sample where the response to a step ends: its decay read for the step's
+    duration plus TAIL_AFTER_S (for a pulse, the end of the sweep)."""
+    if step.kind != "step":
+        return n_samples
+    return min(n_samples, 2 * step.offset - step.onset + round(TAIL_AFTER_S * step.sample_rate_hz))
 
 
 def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
@@ -26,7 +35,9 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
     Every step and pulse of each sweep is found (core.steps.find_steps); all sweeps
     take the step at the protocol's common position that leaves the holding level after
     a flat baseline (core.steps.common_steps), and each is read up to the sweep's next
-    step (`Step.region_end`), so a second step or a train after it is not taken in.
+    step (`Step.region_end`), so a second step or a train after it is not taken in. A
+    step the user describes is read to the end of its tail (`tail_end`): what follows
+    in the sweep is not described, so not known to be quiet.
     """
     fs = recording.sample_rate_hz
     if settings.step is not None:
@@ -38,11 +49,16 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
                         "waveform; give `--step ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]`")
     per_sweep = [find_steps(s.current, fs) for s in rec.sweeps]
     steps = [None if st is None else replace(st, region_end=min(
-        (later.onset for later in found if later.onset >= st.offset), default=None))
-        for st, found in zip(common_steps(per_sweep), per_sweep, strict=True)]
+        (later.onset for later in found if later.onset >= st.offset),
+        default=tail_end(st, s.n_samples) if settings.step is not None else None))
+        for st, found, s in zip(common_steps(per_sweep), per_sweep, rec.sweeps, strict=True)]
     if all(s is None for s in steps):
+        largest = max(float(np.ptp(s.current)) for s in rec.sweeps)
+        flat = "flat" if largest == 0 else (f"flat, changing by at most {largest * 1e12:.2g} pA: "
+                                            "is its unit right?")
+        words = {"ramp": "a ramp", "waveform": "a waveform", "none": flat}
         kinds = {classify_stimulus(s.current, fs) for s in rec.sweeps} - {"step", "pulse"}
-        what = f" (the current is a {'/'.join(sorted(kinds))})" if kinds else ""
+        what = f" (the current is {' or '.join(words[k] for k in sorted(kinds))})" if kinds else ""
         raise LoadError(recording.path, f"no current step from rest found in any sweep{what}; "
                         "give `--step ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]` if the "
                         "waveform is wrong")
@@ -86,7 +102,7 @@ def resolve_windows(step: Step, n_samples: int, fs: float, w: Windows,
         fit = absolute(w.fit_ms) if w.fit_ms else (on + fit_start_s, fit_end)
         out["fit"] = fit
         if w.decay is not False:
-            tail = min(end, off + duration + 0.1)
+            tail = tail_end(step, n_samples) / fs
             out["fit_off"] = (off + (fit[0] - on), tail)
     else:
         fit = absolute(w.fit_ms) if w.fit_ms else (off + fit_start_s, end)

@@ -166,6 +166,12 @@ INTERVALS = {L_BS.key: (L_CI_LOW, L_CI_HIGH), RHO.key: (RHO_CI_LOW, RHO_CI_HIGH)
 
 
 
+def _two_digits(x: float) -> str:
+    """`x` to two significant digits, without an exponent where it is not needed: 240,
+    not 2.4e+02."""
+    return f"{float(f'{x:.2g}'):g}"
+
+
 def uncertainty_text(cell: Mapping, q: Quantity) -> str:
     """How sure a value of `cell` (display units) is, for tables and cards: " (2.5–11)"
     for a skewed interval, " ± 0.29" from the CI half-width, "" without either."""
@@ -174,12 +180,12 @@ def uncertainty_text(cell: Mapping, q: Quantity) -> str:
     ends = [cell.get(e.key) for e in INTERVALS.get(q.key, ())]
     if len(ends) == 2 and None not in ends:
         low, high = ends
-        return f" ({low:.2g}–{high:.2g})"
+        return f" ({_two_digits(low)}–{_two_digits(high)})"
     ci = cell.get(q.ci) if q.ci else None
     if isinstance(ci, list | tuple) and len(ci) == 2 and None not in ci:   # (low, high)
-        return f" ({ci[0]:.2g}–{ci[1]:.2g})"
+        return f" ({_two_digits(ci[0])}–{_two_digits(ci[1])})"
     if isinstance(ci, int | float):
-        return f" ± {ci:.2g}"
+        return f" ± {_two_digits(ci)}"
     return ""
 
 
