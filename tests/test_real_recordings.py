@@ -123,6 +123,28 @@ def test_a_described_step_is_read_to_the_end_of_its_tail(results):
 
 
 @pytest.mark.slow
+def test_a_sweep_that_ends_inside_its_step_keeps_its_measured_level():
+    """171116sh_0018 cut 300 ms into its 500 ms step: the sagging cell's charging fit ends
+    before the sag, so R_in is the level measured at the end of the data (the median of
+    its last 60 ms against that of the 100 ms before the step; independent estimate,
+    common practice, no source), not the fit's asymptote extrapolated past the data
+    (253 MΩ, not 177)."""
+    import numpy as np
+
+    rec = load(DATA_DIR / "171116sh_0018.abf")
+    fs, end = rec.sample_rate_hz, int(0.44685 * rec.sample_rate_hz)
+    for s in rec.sweeps:
+        s.voltage, s.current = s.voltage[:end], s.current[:end]
+    fit = analyze(rec).sweeps[3]                     # -25 pA
+    v = rec.sweeps[3].voltage
+    onset = int(0.14685 * fs)
+    measured = (np.median(v[end - int(0.06 * fs):]) - np.median(v[onset - int(0.1 * fs):onset])
+                ) / -25e-12
+    assert fit.accepted and fit.r_in_ohm == pytest.approx(measured, rel=0.05)
+    assert "steady.not_reached" in {f.code for f in fit.flags}
+
+
+@pytest.mark.slow
 def test_events_are_cut_out_where_they_are(results):
     """File_axon_5: real synaptic events on every sweep; the hyperpolarizing sweeps are
     used with their events cut out, the firing ones are left out."""

@@ -59,6 +59,12 @@ SWEEP_WIDTHS = tuple(zip(S.SWEEP_TABLE, (5, 7, 9, 7, 6, 6, 7), strict=True))
 DIGITS = {S.TAU1: 3, S.RMSE: 2}
 
 
+#: Sweep flags named in the table's status column, in a few words.
+SWEEP_NOTES = {S.SWEEP_EVENT.code: "spontaneous event cut out",
+               S.STEADY_NOT_REACHED.code: "still settling at the step's end",
+               S.SWEEP_DRIFT.code: "baseline drifts"}
+
+
 def _heading(q: S.Quantity) -> str:
     return "sweep" if q is S.INDEX else f"{q.label} {q.unit}".strip()
 
@@ -78,8 +84,9 @@ def format_table(data: dict) -> str:
     lines += ["", "  " + "  ".join(f"{_heading(q):>{w}}" for q, w in SWEEP_WIDTHS) + "  status"]
     for s in data["sweeps"]:
         status = "ok" if s[S.ACCEPTED.key] else f"rejected: {s[S.REJECT_REASON.key]}"
-        if S.SWEEP_EVENT.code in {f["code"] for f in s[S.FLAGS_KEY]}:
-            status += " (spontaneous event cut out)"
+        notes = [note for code, note in SWEEP_NOTES.items()
+                 if code in {f["code"] for f in s[S.FLAGS_KEY]}]
+        status += f" ({'; '.join(notes)})" if notes else ""
         cells = [f"{_fmt(s[q.key], DIGITS.get(q, 4)):>{w}}" for q, w in SWEEP_WIDTHS]
         lines.append("  " + "  ".join(cells) + f"  {status}")
     if data["flags"]:

@@ -306,8 +306,11 @@ def _flag(code: str, severity: str, template: str, **reasons: str) -> FlagSpec:
 # sweep level
 STEADY_NOT_REACHED = _flag(
     "steady.not_reached", "warning",
-    "the voltage is still changing in the steady-state window; the fitted asymptote is used "
-    "(fraction of the deflection left)")
+    "the voltage is still changing in the steady-state window; {reason} (fraction of the "
+    "deflection left)",
+    asymptote="the fitted asymptote is used",
+    measured="the fit ends before that window (before a sag), so it cannot tell how far the "
+             "voltage has yet to go: the level measured there is used")
 SWEEP_DRIFT = _flag(
     "sweep.drift", "warning",
     "the baseline at the end of the sweep differs from the one before the step ({done}) (mV)")
@@ -478,7 +481,8 @@ def flags_markdown() -> str:
 
     rows = ["| code | severity | what it says |", "|---|---|---|"]
     for spec in FLAGS.values():
-        words = " / ".join(spec.reasons.values()) if spec.reasons else spec.template
+        words = (" / ".join(spec.template.replace("{reason}", r) for r in spec.reasons.values())
+                 if spec.reasons else spec.template)
         words = re.sub(r"\{x[^}]*\}", "x", words)          # the value tested
         words = re.sub(r"\{[^}]*\}", "…", words).replace("|", "\\|")
         rows.append(f"| `{spec.code}` | {spec.severity} | {words} |")
