@@ -516,22 +516,29 @@ class _Problem:
         ring = np.zeros((self.u.size, 0), dtype=complex) if lp is None else self._ring_bases(lp)
         return e1, eb, ring, (eb_d if derivative else None)
 
+    @cached_property
+    def _runs(self) -> list[tuple[int, int, int]]:
+        """(first, end, segment) of each run of points of one segment, the single samples
+        and the bins apart."""
+        cuts = np.union1d([0, self.n_single, self.u.size], np.flatnonzero(np.diff(self.seg)) + 1)
+        return [(int(a), int(b), int(self.seg[a])) for a, b in zip(cuts[:-1], cuts[1:])
+                if b > a]
+
     def _sum(self, e1, eb, ring, direct: np.ndarray, rings: np.ndarray | None) -> np.ndarray:
         """Per point, the sum over the rates of its bases times its segment's amplitudes,
         for K sets of amplitudes at once: ``direct`` (K, n_segments, n_rates) on
         exp(-lam u) and ``rings`` (K, n_segments, n_poles) on the filter's terms (None:
         none). Returns shape (n_points, K)."""
         n1, m = self.n_single, eb.shape[1]
-        k, n_seg, n_rates = direct.shape
-        flat = direct.reshape(k * n_seg, n_rates)
-        out = np.empty((self.u.size, k))
-        rows = np.arange(self.u.size)
-        out[:n1] = (e1 @ flat.T).reshape(n1, k, n_seg)[rows[:n1], :, self.seg[:n1]]
-        out[n1:] = (eb @ flat[:, :m].T).reshape(-1, k, n_seg)[rows[n1:] - n1, :,
-                                                             self.seg[n1:]]
-        if rings is not None and ring.shape[1]:
-            rr = np.real(ring @ rings.reshape(k * n_seg, -1).T).reshape(-1, k, n_seg)
-            out += rr[rows, :, self.seg]
+        out = np.empty((self.u.size, direct.shape[0]))
+        with_rings = rings is not None and ring.shape[1]
+        for a, b, s in self._runs:
+            if a < n1:
+                out[a:b] = e1[a:b] @ direct[:, s].T
+            else:
+                out[a:b] = eb[a - n1:b - n1] @ direct[:, s, :m].T
+            if with_rings:
+                out[a:b] += np.real(ring[a:b] @ rings[:, s].T)
         return out
 
     def shape(self, theta: np.ndarray, derivative: bool = False):
