@@ -515,24 +515,34 @@ class _Problem:
         exactly), the filter's exp(p_k u) per point (bins averaged) and, with
         ``derivative``, d/d lam of the bins' exp(-lam u) (for single samples it is -u
         times their exp(-lam u))."""
-        n1, m = self.n_single, 3 + self.n_bin_modes
-        n, dt = self.count[:, None], self.dt[:, None]
-        x = dt * rates[:m]
+        m = 3 + self.n_bin_modes
+        minus_u1, minus_ub, n, dt = self._columns
         key = (rates.tobytes(), m)
         if self._cache.get("exp_key") != key:   # the residual's, then the Jacobian's
-            with np.errstate(invalid="ignore", divide="ignore"):
-                logb = np.where(x > 0, np.log(np.expm1(-n * x) / (n * np.expm1(-x))), 0.0)
-                self._cache["exp"] = (np.exp(-self.u[:n1, None] * rates),
-                                      np.exp(-self.u[n1:, None] * rates[:m] + logb))
+            # a bin's mean of exp(-lam t) over t = u + i dt, i < n, is exp(-lam u) times
+            # (1 - exp(-n x))/(n (1 - exp(-x))), x = lam dt; 1 for the step (lam = 0)
+            eb = np.exp(minus_ub * rates[:m])
+            x = dt * rates[1:m]
+            eb[:, 1:] *= np.expm1(-n * x) / (n * np.expm1(-x))
+            self._cache["exp"] = (np.exp(minus_u1 * rates), eb)
             self._cache["exp_key"] = key
         e1, eb = self._cache["exp"]
-        with np.errstate(invalid="ignore", divide="ignore"):
-            if derivative:
-                eb_d = eb * np.where(x > 0, -self.u[n1:, None] + dt * (
-                    _inv_expm1(n * x, n) - _inv_expm1(x, 1.0)), 0.0)
+        eb_d = None
+        if derivative:   # (0 for the step, whose rate does not move)
+            x = dt * rates[1:m]
+            eb_d = np.zeros_like(eb)
+            eb_d[:, 1:] = eb[:, 1:] * (minus_ub + dt * (_inv_expm1(n * x, n)
+                                                        - _inv_expm1(x, 1.0)))
         lp = self.lowpass(theta)
         ring = np.zeros((self.u.size, 0), dtype=complex) if lp is None else self._ring_bases(lp)
-        return e1, eb, ring, (eb_d if derivative else None)
+        return e1, eb, ring, eb_d
+
+    @cached_property
+    def _columns(self) -> tuple[np.ndarray, ...]:
+        """-u of the single samples and of the bins, the bins' sample counts and sampling
+        intervals, each as a column."""
+        n1 = self.n_single
+        return -self.u[:n1, None], -self.u[n1:, None], self.count[:, None], self.dt[:, None]
 
     @cached_property
     def _runs(self) -> list[tuple[int, int, int]]:
