@@ -222,11 +222,6 @@ def modes_needed(L: float, tau0: float, t_min: float) -> int:
     return int(min(max(math.ceil(L * alpha / math.pi + 0.5), 1), _MAX_MODES))
 
 
-def _inv_expm1(x: np.ndarray, scale) -> np.ndarray:
-    """scale/(exp(x) - 1) for x > 0, without overflow."""
-    return scale * np.exp(-x) / -np.expm1(-x)
-
-
 def _edge_weights(rates: np.ndarray, kinds: Sequence[str], durations: np.ndarray) -> np.ndarray:
     """Per segment and rate: 1 for a charging edge; exp(-lam*D) - 1 for a decay after a
     step or pulse of duration D (superposition of its two edges; -1, and 0 for lam = 0,
@@ -521,18 +516,19 @@ class _Problem:
         if self._cache.get("exp_key") != key:   # the residual's, then the Jacobian's
             # a bin's mean of exp(-lam t) over t = u + i dt, i < n, is exp(-lam u) times
             # (1 - exp(-n x))/(n (1 - exp(-x))), x = lam dt; 1 for the step (lam = 0)
-            eb = np.exp(minus_ub * rates[:m])
             x = dt * rates[1:m]
-            eb[:, 1:] *= np.expm1(-n * x) / (n * np.expm1(-x))
-            self._cache["exp"] = (np.exp(minus_u1 * rates), eb)
+            em_n, em_1 = np.expm1(-n * x), np.expm1(-x)
+            eb = np.exp(minus_ub * rates[:m])
+            eb[:, 1:] *= em_n / (n * em_1)
+            self._cache["exp"] = (np.exp(minus_u1 * rates), eb, em_n, em_1)
             self._cache["exp_key"] = key
-        e1, eb = self._cache["exp"]
+        e1, eb, em_n, em_1 = self._cache["exp"]
         eb_d = None
         if derivative:   # (0 for the step, whose rate does not move)
-            x = dt * rates[1:m]
+            # d/dx log((1 - e^-nx)/(1 - e^-x)) = n/(e^nx - 1) - 1/(e^x - 1), e^-x = 1 + em_1
             eb_d = np.zeros_like(eb)
-            eb_d[:, 1:] = eb[:, 1:] * (minus_ub + dt * (_inv_expm1(n * x, n)
-                                                        - _inv_expm1(x, 1.0)))
+            eb_d[:, 1:] = eb[:, 1:] * (minus_ub + dt * (
+                n * (1.0 + em_n) / -em_n - (1.0 + em_1) / -em_1))
         lp = self.lowpass(theta)
         ring = np.zeros((self.u.size, 0), dtype=complex) if lp is None else self._ring_bases(lp)
         return e1, eb, ring, eb_d
