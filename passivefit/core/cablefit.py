@@ -421,8 +421,8 @@ class _Problem:
         if self._cache.get("amplitudes_key") != key:   # the residual's, then the Jacobian's
             self._cache["amplitudes"] = self._amplitudes(theta)
             self._cache["amplitudes_key"] = key
-        base, (x, L, rho, x_next, b0, bridge, lp, gain, weights, free, filt, pole_weights,
-               edge) = self._cache["amplitudes"]
+        base, (x, L, rho, x_next, b0, bridge, lp, gain, weights, filt, pole_weights,
+               inverse, edge) = self._cache["amplitudes"]
         if not derivative:
             return base
         rates = base[0]
@@ -434,57 +434,70 @@ class _Problem:
             d_rates = np.vstack([d_rates, np.zeros(rates.size)])
             d_rates[3, 1] = -rates[1]
             d_b0 = np.vstack([d_b0, np.zeros(rates.size)])
-        d_gain = np.zeros_like(rates) if lp is None else np.real(
-            np.prod(lp.poles / (lp.poles + rates[:, None]), axis=-1)
-            * np.sum(-1.0 / (lp.poles + rates[:, None]), axis=-1))
-        d_filt = (d_gain * weights + gain * _edge_slopes(rates, self.kinds, self.durations)) \
-            * np.where(self.known_base[:, None], 1.0, free)
+        # H'(-lam) = -H(-lam) sum_k 1/(p_k + lam) (lowpass.filtered_exponential_slopes)
+        d_gain = 0.0 if lp is None else -gain * np.real(inverse.sum(axis=1))
+        d_filt = d_gain * weights + gain * _edge_slopes(rates, self.kinds, self.durations)
+        d_filt[~self.known_base, 0] = 0.0
         d_filt = d_rates[:, None, :] * d_filt  # (n_par, n_segments, n_rates)
         d_direct_b0 = d_b0[:, None, :] * filt + b0 * d_filt
         d_direct_bridge = bridge * d_filt
         if lp is None:
             d_ring_b0 = d_ring_bridge = np.zeros((d_rates.shape[0],) + base[3].shape, complex)
         else:
-            d_pole_weights = -pole_weights / (lp.poles + rates[:, None]) * d_rates[:, :, None]
+            d_pole_weights = -pole_weights * inverse * d_rates[:, :, None]
             d_ring_b0 = edge * (d_b0 @ pole_weights + b0 @ d_pole_weights)[:, None, :]
             d_ring_bridge = edge * (bridge @ d_pole_weights)[:, None, :]
         return base, (d_rates, d_direct_b0, d_direct_bridge, d_ring_b0, d_ring_bridge)
 
     def _amplitudes(self, theta: np.ndarray):
         """:meth:`amplitudes` without derivatives, and what its derivatives need."""
-        tau0, L, rho = np.exp(theta[:3])
-        k = math.tanh(L) / (rho * L)
-        warm = self._y_start is not None and self._y_start.size == self.n_modes
-        self._y_start = _root_offsets(k, self.n_modes, self._y_start if warm else None)
-        x = _centres(self.n_modes) + self._y_start
-        rate, ratio = _table(x / L, L, rho)
+        tau0, L, rho = math.exp(theta[0]), math.exp(theta[1]), math.exp(theta[2])
+        n = self.n_modes
+        tanh_L = math.tanh(L)
+        s = tanh_L / rho  # G_S/G_inf
+        warm = self._y_start is not None and self._y_start.size == n
+        self._y_start = _root_offsets(s / L, n, self._y_start if warm else None)
+        x = _centres(n) + self._y_start
+        alpha2 = (x / L) ** 2
+        # step amplitude ratios: the pulse ratios 2(L + s)/(L + s + L alpha^2 s^2) over
+        # 1 + alpha^2 (cable.pulse_ratios_from_alphas), and V_inf/B0 = (s + L)/(s + tanh L)
+        ratio = 2.0 * (L + s) / (L + s + L * alpha2 * s * s) / (1.0 + alpha2)
+        v_inf = (s + L) / (s + tanh_L)
         # the modes beyond the truncation, at the first rate left out: they matter only
         # through the filter's ringing (their own exponentials are < e^-30 at every sample)
-        tail = 1.0 / cable.b0_over_vinf(L, rho) - ratio.sum()
-        x_next = (self.n_modes + 0.5) * math.pi + 0.5 * math.pi
-        lag = math.exp(theta[3]) if self.lag else 1.0
-        rates = np.concatenate(([0.0, 1.0 / lag], rate, [1.0 + (x_next / L) ** 2])) / tau0
-        rates[:2] *= tau0
-        b0 = np.concatenate(([1.0 / cable.b0_over_vinf(L, rho), 0.0], -ratio, [-tail]))
-        bridge = np.zeros_like(b0)
-        bridge[:2] = (1.0, -1.0) if self.lag else 0.0
+        x_next = (n + 0.5) * math.pi + 0.5 * math.pi
+        rates = np.empty(n + 4)   # the step, the lag, mode 0, modes 1..n, the tail
+        rates[0] = 0.0
+        rates[1] = math.exp(-theta[3]) if self.lag else 1.0
+        rates[2] = 1.0 / tau0
+        rates[3:-1] = (1.0 + alpha2) / tau0
+        rates[-1] = (1.0 + (x_next / L) ** 2) / tau0
+        b0 = np.empty(n + 4)
+        b0[:3] = v_inf, 0.0, -1.0
+        b0[3:-1] = -ratio
+        b0[-1] = -(v_inf - 1.0 - ratio.sum())
+        bridge = np.zeros(n + 4)
+        if self.lag:
+            bridge[:2] = 1.0, -1.0
         lp = self.lowpass(theta)
-        gain = np.ones_like(rates) if lp is None else lp.gain(rates)
+        if lp is None:
+            gain, inverse = 1.0, None
+        else:
+            inverse = 1.0 / (lp.poles + rates[:, None])   # 1/(p_k + lam), (n_rates, 4)
+            gain = np.real(np.prod(lp.poles * inverse, axis=1))
         weights = _edge_weights(rates, self.kinds, self.durations)
-        # a step from a free offset: the offset carries the step's own constant
-        free = np.ones(rates.size)
-        free[0] = 0.0
-        filt = gain * weights * np.where(self.known_base[:, None], 1.0, free)
+        filt = gain * weights
+        filt[~self.known_base, 0] = 0.0   # a step from a free offset: the offset carries it
         direct_b0, direct_bridge = b0 * filt, bridge * filt
         if lp is None:
             ring_b0 = ring_bridge = np.zeros((len(self.kinds), 0), dtype=complex)
             pole_weights = edge = None
         else:
-            pole_weights = lp.pole_weights(rates)
+            pole_weights = lp.residues * inverse   # c_k/(p_k + lam) (Lowpass.pole_weights)
             edge = self._ring_edges(lp)
             ring_b0, ring_bridge = edge * (b0 @ pole_weights), edge * (bridge @ pole_weights)
         return ((rates, direct_b0, direct_bridge, ring_b0, ring_bridge),
-                (x, L, rho, x_next, b0, bridge, lp, gain, weights, free, filt, pole_weights,
+                (x, L, rho, x_next, b0, bridge, lp, gain, weights, filt, pole_weights, inverse,
                  edge))
 
     def _ring_edges(self, lp: Lowpass) -> np.ndarray:
