@@ -410,12 +410,13 @@ class _Problem:
 
     def amplitudes(self, theta: np.ndarray, derivative: bool = False):
         """The rates (1/s) and, per segment, the amplitudes of the scale's and the bridge's
-        columns: on exp(-lam u) (filter gain and edge weight included) and on the filter's
-        exp(p_k u) terms. Returns (rates, direct_b0, direct_bridge, ring_b0, ring_bridge).
+        columns, shape (2, n_segments, 2 n_poles + n_rates): on the real and imaginary parts
+        of the filter's exp(p_k u) terms (real(a exp(p u)) = re(a) re(exp(p u)) - im(a)
+        im(exp(p u))), then on exp(-lam u) (filter gain and edge weight included).
 
-        With ``derivative``, also a list with the same five arrays differentiated in each
-        of log tau0, log L, log rho (and log lag when fitted), by the implicit derivative
-        of the eigenvalue equation (:func:`_mode_slopes`) and the chain rule.
+        With ``derivative``, also the derivatives of both in each of log tau0, log L,
+        log rho (and log lag when fitted) on a leading axis, by the implicit derivative of
+        the eigenvalue equation (:func:`_mode_slopes`) and the chain rule.
         """
         key = (theta.tobytes(), self.n_modes)
         if self._cache.get("amplitudes_key") != key:   # the residual's, then the Jacobian's
@@ -439,15 +440,13 @@ class _Problem:
         d_filt = d_gain * weights + gain * _edge_slopes(rates, self.kinds, self.durations)
         d_filt[~self.known_base, 0] = 0.0
         d_filt = d_rates[:, None, :] * d_filt  # (n_par, n_segments, n_rates)
-        d_direct_b0 = d_b0[:, None, :] * filt + b0 * d_filt
-        d_direct_bridge = bridge * d_filt
+        d_direct = np.stack([d_b0[:, None, :] * filt + b0 * d_filt, bridge * d_filt], axis=1)
         if lp is None:
-            d_ring_b0 = d_ring_bridge = np.zeros((d_rates.shape[0],) + base[3].shape, complex)
-        else:
-            d_pole_weights = -pole_weights * inverse * d_rates[:, :, None]
-            d_ring_b0 = edge * (d_b0 @ pole_weights + b0 @ d_pole_weights)[:, None, :]
-            d_ring_bridge = edge * (bridge @ d_pole_weights)[:, None, :]
-        return base, (d_rates, d_direct_b0, d_direct_bridge, d_ring_b0, d_ring_bridge)
+            return base, (d_rates, d_direct)
+        d_pole_weights = -pole_weights * inverse * d_rates[:, :, None]
+        d_ring = edge * np.stack([d_b0 @ pole_weights + b0 @ d_pole_weights,
+                                  bridge @ d_pole_weights], axis=1)[:, :, None, :]
+        return base, (d_rates, np.concatenate([d_ring.real, -d_ring.imag, d_direct], axis=3))
 
     def _amplitudes(self, theta: np.ndarray):
         """:meth:`amplitudes` without derivatives, and what its derivatives need."""
@@ -488,15 +487,14 @@ class _Problem:
         weights = _edge_weights(rates, self.kinds, self.durations)
         filt = gain * weights
         filt[~self.known_base, 0] = 0.0   # a step from a free offset: the offset carries it
-        direct_b0, direct_bridge = b0 * filt, bridge * filt
-        if lp is None:
-            ring_b0 = ring_bridge = np.zeros((len(self.kinds), 0), dtype=complex)
-            pole_weights = edge = None
-        else:
+        amps = np.stack([b0 * filt, bridge * filt])
+        pole_weights = edge = None
+        if lp is not None:
             pole_weights = lp.residues * inverse   # c_k/(p_k + lam) (Lowpass.pole_weights)
             edge = self._ring_edges(lp)
-            ring_b0, ring_bridge = edge * (b0 @ pole_weights), edge * (bridge @ pole_weights)
-        return ((rates, direct_b0, direct_bridge, ring_b0, ring_bridge),
+            ring = edge * (np.stack([b0, bridge]) @ pole_weights)[:, None, :]
+            amps = np.concatenate([ring.real, -ring.imag, amps], axis=2)
+        return ((rates, amps),
                 (x, L, rho, x_next, b0, bridge, lp, gain, weights, filt, pole_weights, inverse,
                  edge))
 
@@ -507,44 +505,55 @@ class _Problem:
             self._cache["edges_hz"] = lp.corner_hz
         return self._cache["edges"]
 
-    def _ring_bases(self, lp: Lowpass) -> np.ndarray:
-        """The filter's exp(p_k u) per point and pole, bins averaged (cached)."""
+    def _ring_bases(self, lp: Lowpass | None) -> np.ndarray:
+        """The real and imaginary parts of the filter's exp(p_k u) per point, bins averaged,
+        shape (n_points, 2 n_poles) (cached; no columns when unfiltered)."""
+        if lp is None:
+            return np.zeros((self.u.size, 0))
         if self._cache.get("bases_hz") != lp.corner_hz:
             n, dt, n1 = self.count[:, None], self.dt[:, None], self.n_single
             z = dt * lp.poles
             ring = np.exp(self.u[:, None] * lp.poles)
             ring[n1:] *= np.expm1(n * z) / (n * np.expm1(z))
-            self._cache["bases"] = ring
+            self._cache["bases"] = np.hstack([ring.real, ring.imag])
             self._cache["bases_hz"] = lp.corner_hz
         return self._cache["bases"]
 
     def _bases(self, theta: np.ndarray, rates: np.ndarray, derivative: bool = False):
-        """exp(-lam u) per point and rate for single samples and bins (bins averaged
-        exactly), the filter's exp(p_k u) per point (bins averaged) and, with
-        ``derivative``, d/d lam of the bins' exp(-lam u) (for single samples it is -u
-        times their exp(-lam u))."""
+        """The bases of :meth:`amplitudes`' columns per point: the filter's terms
+        (:meth:`_ring_bases`), then exp(-lam u) per rate, for the single samples and for
+        the bins (averaged exactly; the modes they need), and, with ``derivative``, d/d
+        lam of the bins' exp(-lam u) (for single samples it is -u times their
+        exp(-lam u))."""
         m = 3 + self.n_bin_modes
         minus_u1, minus_ub, n, dt = self._columns
-        key = (rates.tobytes(), m)
+        lp = self.lowpass(theta)
+        key = (rates.tobytes(), m, None if lp is None else lp.corner_hz)
         if self._cache.get("exp_key") != key:   # the residual's, then the Jacobian's
+            ring, n1 = self._ring_bases(lp), self.n_single
+            q = ring.shape[1]
+            single = np.empty((n1, q + rates.size))
+            single[:, :q] = ring[:n1]
+            np.exp(minus_u1 * rates, out=single[:, q:])
             # a bin's mean of exp(-lam t) over t = u + i dt, i < n, is exp(-lam u) times
             # (1 - exp(-n x))/(n (1 - exp(-x))), x = lam dt; 1 for the step (lam = 0)
             x = dt * rates[1:m]
             em_n, em_1 = np.expm1(-n * x), np.expm1(-x)
-            eb = np.exp(minus_ub * rates[:m])
+            bins = np.empty((self.u.size - n1, q + m))
+            bins[:, :q] = ring[n1:]
+            eb = bins[:, q:]
+            np.exp(minus_ub * rates[:m], out=eb)
             eb[:, 1:] *= em_n / (n * em_1)
-            self._cache["exp"] = (np.exp(minus_u1 * rates), eb, em_n, em_1)
+            self._cache["exp"] = (single, bins, eb, em_n, em_1)
             self._cache["exp_key"] = key
-        e1, eb, em_n, em_1 = self._cache["exp"]
+        single, bins, eb, em_n, em_1 = self._cache["exp"]
         eb_d = None
         if derivative:   # (0 for the step, whose rate does not move)
             # d/dx log((1 - e^-nx)/(1 - e^-x)) = n/(e^nx - 1) - 1/(e^x - 1), e^-x = 1 + em_1
             eb_d = np.zeros_like(eb)
             eb_d[:, 1:] = eb[:, 1:] * (minus_ub + dt * (
                 n * (1.0 + em_n) / -em_n - (1.0 + em_1) / -em_1))
-        lp = self.lowpass(theta)
-        ring = np.zeros((self.u.size, 0), dtype=complex) if lp is None else self._ring_bases(lp)
-        return e1, eb, ring, eb_d
+        return single, bins, eb_d
 
     @cached_property
     def _columns(self) -> tuple[np.ndarray, ...]:
@@ -561,21 +570,17 @@ class _Problem:
         return [(int(a), int(b), int(self.seg[a])) for a, b in zip(cuts[:-1], cuts[1:])
                 if b > a]
 
-    def _sum(self, e1, eb, ring, direct: np.ndarray, rings: np.ndarray | None) -> np.ndarray:
-        """Per point, the sum over the rates of its bases times its segment's amplitudes,
-        for K sets of amplitudes at once: ``direct`` (K, n_segments, n_rates) on
-        exp(-lam u) and ``rings`` (K, n_segments, n_poles) on the filter's terms (None:
-        none). Returns shape (n_points, K)."""
-        n1, m = self.n_single, eb.shape[1]
-        out = np.empty((self.u.size, direct.shape[0]))
-        with_rings = rings is not None and ring.shape[1]
+    def _sum(self, single: np.ndarray, bins: np.ndarray, amps: np.ndarray) -> np.ndarray:
+        """Per point, its bases (``single`` or ``bins``, per column) times its segment's
+        amplitudes, summed, for K sets of amplitudes ``amps`` (K, n_segments, >= columns)
+        at once. Returns shape (n_points, K)."""
+        n1 = self.n_single
+        out = np.empty((self.u.size, amps.shape[0]))
         for a, b, s in self._runs:
             if a < n1:
-                out[a:b] = e1[a:b] @ direct[:, s].T
+                out[a:b] = single[a:b] @ amps[:, s, :single.shape[1]].T
             else:
-                out[a:b] = eb[a - n1:b - n1] @ direct[:, s, :m].T
-            if with_rings:
-                out[a:b] += np.real(ring[a:b] @ rings[:, s].T)
+                out[a:b] = bins[a - n1:b - n1] @ amps[:, s, :bins.shape[1]].T
         return out
 
     def shape(self, theta: np.ndarray, derivative: bool = False):
@@ -588,26 +593,20 @@ class _Problem:
         """
         base = self.amplitudes(theta, derivative)
         if derivative:
-            base, slopes = base
-        rates = base[0]
-        e1, eb, ring, eb_d = self._bases(theta, rates, derivative)
-        direct, rings = np.stack(base[1:3]), np.stack(base[3:5])
+            base, (d_rates, d_amps) = base
+        rates, amps = base
+        single, bins, eb_d = self._bases(theta, rates, derivative)
         if not derivative:
-            value = self._sum(e1, eb, ring, direct, rings)
+            value = self._sum(single, bins, amps)
             return value[:, 0], value[:, 1]
         n_num = theta.size - self.estimate_corner  # differentiated through the amplitudes
-        d_rates, d_b0, d_br, r_b0, r_br = slopes
-        n_seg, n_rates = direct.shape[1:]
+        n_seg, q = amps.shape[1], amps.shape[2] - rates.size
         # K = 2 + 2 n_num amplitude sets: (b0, bridge), then (d b0, d bridge) per parameter
-        plain = self._sum(e1, eb, ring,
-                          np.concatenate([direct, np.stack([d_b0, d_br], axis=1).reshape(
-                              2 * d_b0.shape[0], n_seg, n_rates)]),
-                          np.concatenate([rings, np.stack([r_b0, r_br], axis=1).reshape(
-                              2 * r_b0.shape[0], n_seg, rings.shape[2])]))
+        plain = self._sum(single, bins, np.concatenate(
+            [amps, d_amps.reshape(2 * n_num, n_seg, -1)]))
         # through the rates: d exp(-lam u)/d lam is -u exp(-lam u) for single samples
-        through = self._sum(e1, eb_d, ring,
-                            (direct[None] * d_rates[:, None, None, :]).reshape(
-                                -1, n_seg, n_rates), None)
+        through = self._sum(single[:, q:], eb_d, (amps[None, :, :, q:] * d_rates[
+            :, None, None, :]).reshape(2 * n_num, n_seg, -1))
         n1 = self.n_single
         through[:n1] *= -self.u[:n1, None]
         value = (plain[:, 0], plain[:, 1])
