@@ -649,9 +649,9 @@ class _Problem:
     def _project(self, a: np.ndarray) -> tuple:
         """Least squares of the data on the weighted design `a`: (coefficients, residual,
         q, r) with a = q r."""
-        q, r = np.linalg.qr(a)
+        q, r = _qr(a)
         qty = q.T @ self.yw
-        return np.linalg.lstsq(r, qty, rcond=None)[0], self.yw - q @ qty, q, r
+        return _solve_r(r, qty), self.yw - q @ qty, q, r
 
     def residual(self, theta: np.ndarray) -> np.ndarray:
         return self.solve(theta)[1]
@@ -692,7 +692,7 @@ class _Problem:
             first += d_col * (coef @ to_col)[:, None]
             g += to_col @ (d_col * resid[:, None])
         first -= q @ (q.T @ first)
-        return -(first + q @ np.linalg.lstsq(r.T, g, rcond=None)[0])
+        return -(first + q @ _solve_r(r, g, transpose=True))
 
     def full_jacobian(self, theta: np.ndarray) -> np.ndarray:
         """Jacobian of the weighted model in (theta, linear coefficients)."""
@@ -703,6 +703,43 @@ class _Problem:
             d_model += d_col * (coef @ to_col)[:, None]
         return np.column_stack([d_model, self._design(shapes)])
 
+
+
+@cache
+def _lapack():
+    """LAPACK's QR and triangular routines for float64 (lazy: loading a file needs no
+    scipy)."""
+    from scipy.linalg import get_lapack_funcs
+
+    return get_lapack_funcs(("geqrf", "orgqr", "trtrs", "trcon"), (np.zeros(1),))
+
+
+def _qr(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Reduced QR of a tall matrix, computed as numpy.linalg.qr does (LAPACK geqrf, then
+    orgqr) without its overhead: q and r, of which only the upper triangle is set."""
+    geqrf, orgqr, _, _ = _lapack()
+    qr, tau, _, info = geqrf(a)
+    if info:
+        raise np.linalg.LinAlgError(f"QR failed (LAPACK geqrf info {info})")
+    r = qr[:a.shape[1]].copy()
+    q, _, info = orgqr(qr, tau)
+    if info:
+        raise np.linalg.LinAlgError(f"QR failed (LAPACK orgqr info {info})")
+    return q, r
+
+
+def _solve_r(r: np.ndarray, b: np.ndarray, transpose: bool = False) -> np.ndarray:
+    """x with r x = b (r^T x = b with ``transpose``) for the upper triangle r of
+    :func:`_qr`: by substitution when r is well conditioned (reciprocal condition
+    number above 1e-10), else as the least-squares solution of numpy.linalg.lstsq."""
+    _, _, trtrs, trcon = _lapack()
+    rcond, info = trcon(r, norm="1")
+    if info == 0 and rcond > 1e-10:
+        x, info = trtrs(r, b, trans=int(transpose))
+        if info == 0:
+            return x
+    r = np.triu(r)
+    return np.linalg.lstsq(r.T if transpose else r, b, rcond=None)[0]
 
 
 def _check(segments: Sequence[CableSegment], corner_hz: float | None,
