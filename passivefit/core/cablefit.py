@@ -661,10 +661,21 @@ class _Problem:
         resid = self._project(self._design(shapes))[1]
         return float(resid @ resid)
 
+    def costs_of(self, shapes, n_cols: Sequence[int]) -> list[float]:
+        """:meth:`cost_of` of the designs made of the first ``n`` columns of this one, for
+        each n in ``n_cols``, from one QR (the first n columns of q span the first n of
+        the design)."""
+        q, _ = _qr(self._design(shapes))
+        costs = []
+        for n in n_cols:
+            resid = self.yw - q[:, :n] @ (q[:, :n].T @ self.yw)
+            costs.append(float(resid @ resid))
+        return costs
+
     def _d_design(self, d_shapes):
         """The weighted derivatives of the theta-dependent design columns (scale, then
-        bridge), each (n_points, n_theta), with one-hot maps (n_cols, n_points) from the
-        points to their columns."""
+        bridge when fitted), each (n_points, n_theta), with one-hot maps (n_cols,
+        n_points) from the points to their columns."""
         if "maps" not in self._cache:
             rows = np.arange(self.u.size)
             scale = np.zeros((self.n_cols, self.u.size))
@@ -675,7 +686,10 @@ class _Problem:
             self._cache["maps"] = (scale, bridge)
         scale, bridge = self._cache["maps"]
         sw = self.sw[:, None]
-        return (d_shapes[0] * sw, scale), (d_shapes[1] * sw * bridge.sum(axis=0)[:, None], bridge)
+        if not self.lag:
+            return [(d_shapes[0] * sw, scale)]
+        return [(d_shapes[0] * sw, scale), (d_shapes[1] * sw * bridge.sum(axis=0)[:, None],
+                                            bridge)]
 
     def jacobian(self, theta: np.ndarray) -> np.ndarray:
         """Golub–Pereyra Jacobian of the projected residual, shape (n_points, n_theta).
@@ -1263,12 +1277,18 @@ def _grid_ranks(probs: Sequence[_Problem], theta0s: Sequence[np.ndarray]) -> lis
     problem, with the modes that point needs.
     """
     lead, costs = probs[0], np.empty((len(probs), len(_GRID)))
+    shared = None   # whether every design is the first columns of the lead's
     for i, cell in enumerate(_GRID):
         point = theta0s[0].copy()
         point[1:3] = cell
         lead.set_modes(point, margin=1.0)
         shapes = lead.shape(point)
-        costs[:, i] = [prob.cost_of(shapes) for prob in probs]
+        if shared is None:
+            a = lead._design(shapes)
+            shared = all(np.array_equal(p.yw, lead.yw) and p.n_cols <= lead.n_cols
+                         and np.array_equal(p._design(shapes), a[:, :p.n_cols]) for p in probs)
+        costs[:, i] = (lead.costs_of(shapes, [p.n_cols for p in probs]) if shared
+                       else [prob.cost_of(shapes) for prob in probs])
     return [np.argsort(c, kind="stable") for c in costs]
 
 
