@@ -358,15 +358,15 @@ class _Problem:
     def n_theta(self) -> int:
         return 3 + self.lag + self.estimate_corner
 
-    @property
+    @cached_property
     def n_single(self) -> int:
         return self.u.size - self.count.size
 
-    @property
+    @cached_property
     def t_min(self) -> float:
         return float(self.u[0] if self.n_single else np.min(self.u))
 
-    @property
+    @cached_property
     def t_min_bins(self) -> float:
         return float(np.min(self.u[self.n_single :])) if self.count.size else math.inf
 
