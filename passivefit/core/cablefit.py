@@ -589,8 +589,19 @@ class _Problem:
         With ``derivative``, also their derivatives in theta, shape (n_points, n_theta):
         for the cable's parameters and the lag analytically (the per-rate amplitudes by
         :meth:`amplitudes`, the sums over the points in closed form); the filter corner,
-        when estimated, by central differences of the whole.
+        when estimated, by central differences of the whole. The last result with
+        derivatives is kept (the search's last Jacobian is the summary's).
         """
+        if derivative:
+            key = (theta.tobytes(), self.n_modes, self.n_bin_modes)
+            if self._cache.get("slopes_key") != key:
+                self._cache["slopes"] = self._compute_shape(theta, derivative=True)
+                self._cache["slopes_key"] = key
+            return self._cache["slopes"]
+        return self._compute_shape(theta, derivative=False)
+
+    def _compute_shape(self, theta: np.ndarray, derivative: bool):
+        """:meth:`shape`, computed."""
         base = self.amplitudes(theta, derivative)
         if derivative:
             base, (d_rates, d_amps) = base
