@@ -567,8 +567,8 @@ class _Problem:
         """(first, end, segment) of each run of points of one segment, the single samples
         and the bins apart."""
         cuts = np.union1d([0, self.n_single, self.u.size], np.flatnonzero(np.diff(self.seg)) + 1)
-        return [(int(a), int(b), int(self.seg[a])) for a, b in zip(cuts[:-1], cuts[1:])
-                if b > a]
+        return [(int(a), int(b), int(self.seg[a]))
+                for a, b in zip(cuts[:-1], cuts[1:], strict=True) if b > a]
 
     def _sum(self, single: np.ndarray, bins: np.ndarray, amps: np.ndarray) -> np.ndarray:
         """Per point, its bases (``single`` or ``bins``, per column) times its segment's
