@@ -246,6 +246,28 @@ def test_measurement_chain_is_recovered_exactly():
     assert abs(unfiltered.rho / 5.0 - 1) > 0.02 or abs(unfiltered.L - 1.0) > 0.01
 
 
+@pytest.mark.parametrize("kwargs", [{}, {"corner_hz": 5_000.0}, {"estimate_corner": True}])
+def test_jacobian_is_the_projected_residuals_derivative(kwargs):
+    # the closed-form Golub–Pereyra Jacobian (rates and amplitudes by implicit
+    # differentiation, the bins' exact means, the filter's gain and terms, the bridge's lag)
+    # against central differences of the residual, away from the optimum, modes held fixed
+    segs = step_segments(noiseless_step(1.0, 5.0), 0.1e-3, group=0, baseline=-0.070)
+    prob = cablefit._check(segs, kwargs.get("corner_hz"), kwargs.get("estimate_corner", False),
+                           True)
+    theta = prob.start(np.log([0.02, 0.8, 3.0])) + 0.1
+    prob.set_modes(theta)
+    analytic = prob.jacobian(theta)
+    numeric = np.empty_like(analytic)
+    for j in range(theta.size):
+        step = np.zeros(theta.size)
+        step[j] = 1e-5
+        numeric[:, j] = (prob.residual(theta + step) - prob.residual(theta - step)) / 2e-5
+    assert analytic.shape == (prob.u.size, 4 + kwargs.get("estimate_corner", False))
+    scale = np.max(np.abs(numeric), axis=0)
+    assert np.all(scale > 0)
+    np.testing.assert_array_less(np.max(np.abs(analytic - numeric), axis=0), 1e-6 * scale)
+
+
 def test_profile_interval_is_asymmetric_where_the_likelihood_is():
     # rho's likelihood is skewed (large rho barely changes the response): with noise its
     # profile interval reaches further up than down, and it holds the truth

@@ -52,7 +52,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
-from functools import cached_property
+from functools import cache, cached_property
 
 import numpy as np
 
@@ -144,17 +144,35 @@ def _roots(k: float, n: int, y_start: np.ndarray | None = None) -> np.ndarray:
 
     With x = (n - 1/2)*pi + y the equation is y = arctan(1/(k*x)); Newton's method on
     G(y) = y - arctan(1/(k*(c + y))), whose slope lies in [1, 1 + 1/pi], converges from
-    any start in [0, pi/2], vectorised over all modes.
+    any start in [0, pi/2], vectorised over all modes (:func:`_root_offsets`).
     """
+    return _centres(n) + _root_offsets(k, n, y_start)
+
+
+@cache
+def _centres(n: int) -> np.ndarray:
+    """(n - 1/2)pi for n = 1..n (read only)."""
     c = (np.arange(1, n + 1) - 0.5) * math.pi
-    y = np.arctan2(1.0, k * (c + 0.25 * math.pi)) if y_start is None else y_start.copy()
+    c.flags.writeable = False
+    return c
+
+
+def _root_offsets(k: float, n: int, y_start: np.ndarray | None = None) -> np.ndarray:
+    """The y_n = x_n - (n - 1/2)pi of :func:`_roots`, in [0, pi/2].
+
+    Newton's error after a step is at most max|G''|/(2 min G') < 0.14 times the square
+    of the step (|G''| = 2k^2 u/(1 + u^2)^2 with u = k x >= k pi/2 stays below 0.27), so a
+    step below 1e-8 leaves an error below 1e-16: the iteration stops there.
+    """
+    c = _centres(n)
+    y = np.arctan2(1.0, k * (c + 0.25 * math.pi)) if y_start is None else y_start
     for _ in range(_NEWTON_STEPS):
         u = k * (c + y)
         step = (y - np.arctan2(1.0, u)) / (1.0 + k / (1.0 + u * u))
-        y = np.clip(y - step, 0.0, 0.5 * math.pi)
-        if np.max(np.abs(step)) < 1e-15:
+        y = np.minimum(np.maximum(y - step, 0.0), 0.5 * math.pi)
+        if np.abs(step).max() < 1e-8:
             break
-    return c + y
+    return y
 
 
 def mode_table(L: float, rho: float, n_modes: int, derivative: bool = False):
@@ -202,11 +220,6 @@ def modes_needed(L: float, tau0: float, t_min: float) -> int:
     """Equalizing modes with t_min/tau_n < _TRUNCATION (alpha_n >= (n - 1/2)pi/L)."""
     alpha = math.sqrt(max(_TRUNCATION * tau0 / t_min - 1.0, 0.0))
     return int(min(max(math.ceil(L * alpha / math.pi + 0.5), 1), _MAX_MODES))
-
-
-def _inv_expm1(x: np.ndarray, scale) -> np.ndarray:
-    """scale/(exp(x) - 1) for x > 0, without overflow."""
-    return scale * np.exp(-x) / -np.expm1(-x)
 
 
 def _edge_weights(rates: np.ndarray, kinds: Sequence[str], durations: np.ndarray) -> np.ndarray:
@@ -345,15 +358,15 @@ class _Problem:
     def n_theta(self) -> int:
         return 3 + self.lag + self.estimate_corner
 
-    @property
+    @cached_property
     def n_single(self) -> int:
         return self.u.size - self.count.size
 
-    @property
+    @cached_property
     def t_min(self) -> float:
         return float(self.u[0] if self.n_single else np.min(self.u))
 
-    @property
+    @cached_property
     def t_min_bins(self) -> float:
         return float(np.min(self.u[self.n_single :])) if self.count.size else math.inf
 
@@ -397,19 +410,20 @@ class _Problem:
 
     def amplitudes(self, theta: np.ndarray, derivative: bool = False):
         """The rates (1/s) and, per segment, the amplitudes of the scale's and the bridge's
-        columns: on exp(-lam u) (filter gain and edge weight included) and on the filter's
-        exp(p_k u) terms. Returns (rates, direct_b0, direct_bridge, ring_b0, ring_bridge).
+        columns, shape (2, n_segments, 2 n_poles + n_rates): on the real and imaginary parts
+        of the filter's exp(p_k u) terms (real(a exp(p u)) = re(a) re(exp(p u)) - im(a)
+        im(exp(p u))), then on exp(-lam u) (filter gain and edge weight included).
 
-        With ``derivative``, also a list with the same five arrays differentiated in each
-        of log tau0, log L, log rho (and log lag when fitted), by the implicit derivative
-        of the eigenvalue equation (:func:`_mode_slopes`) and the chain rule.
+        With ``derivative``, also the derivatives of both in each of log tau0, log L,
+        log rho (and log lag when fitted) on a leading axis, by the implicit derivative of
+        the eigenvalue equation (:func:`_mode_slopes`) and the chain rule.
         """
         key = (theta.tobytes(), self.n_modes)
         if self._cache.get("amplitudes_key") != key:   # the residual's, then the Jacobian's
             self._cache["amplitudes"] = self._amplitudes(theta)
             self._cache["amplitudes_key"] = key
-        base, (x, L, rho, x_next, b0, bridge, lp, gain, weights, free, filt, pole_weights,
-               edge) = self._cache["amplitudes"]
+        base, (x, L, rho, x_next, b0, bridge, lp, gain, weights, filt, pole_weights,
+               inverse, edge) = self._cache["amplitudes"]
         if not derivative:
             return base
         rates = base[0]
@@ -421,57 +435,67 @@ class _Problem:
             d_rates = np.vstack([d_rates, np.zeros(rates.size)])
             d_rates[3, 1] = -rates[1]
             d_b0 = np.vstack([d_b0, np.zeros(rates.size)])
-        d_gain = np.zeros_like(rates) if lp is None else np.real(
-            np.prod(lp.poles / (lp.poles + rates[:, None]), axis=-1)
-            * np.sum(-1.0 / (lp.poles + rates[:, None]), axis=-1))
-        d_filt = (d_gain * weights + gain * _edge_slopes(rates, self.kinds, self.durations)) \
-            * np.where(self.known_base[:, None], 1.0, free)
+        # H'(-lam) = -H(-lam) sum_k 1/(p_k + lam) (lowpass.filtered_exponential_slopes)
+        d_gain = 0.0 if lp is None else -gain * np.real(inverse.sum(axis=1))
+        d_filt = d_gain * weights + gain * _edge_slopes(rates, self.kinds, self.durations)
+        d_filt[~self.known_base, 0] = 0.0
         d_filt = d_rates[:, None, :] * d_filt  # (n_par, n_segments, n_rates)
-        d_direct_b0 = d_b0[:, None, :] * filt + b0 * d_filt
-        d_direct_bridge = bridge * d_filt
+        d_direct = np.stack([d_b0[:, None, :] * filt + b0 * d_filt, bridge * d_filt], axis=1)
         if lp is None:
-            d_ring_b0 = d_ring_bridge = np.zeros((d_rates.shape[0],) + base[3].shape, complex)
-        else:
-            d_pole_weights = -pole_weights / (lp.poles + rates[:, None]) * d_rates[:, :, None]
-            d_ring_b0 = edge * (d_b0 @ pole_weights + b0 @ d_pole_weights)[:, None, :]
-            d_ring_bridge = edge * (bridge @ d_pole_weights)[:, None, :]
-        return base, (d_rates, d_direct_b0, d_direct_bridge, d_ring_b0, d_ring_bridge)
+            return base, (d_rates, d_direct)
+        d_pole_weights = -pole_weights * inverse * d_rates[:, :, None]
+        d_ring = edge * np.stack([d_b0 @ pole_weights + b0 @ d_pole_weights,
+                                  bridge @ d_pole_weights], axis=1)[:, :, None, :]
+        return base, (d_rates, np.concatenate([d_ring.real, -d_ring.imag, d_direct], axis=3))
 
     def _amplitudes(self, theta: np.ndarray):
         """:meth:`amplitudes` without derivatives, and what its derivatives need."""
-        tau0, L, rho = np.exp(theta[:3])
-        k = math.tanh(L) / (rho * L)
-        warm = self._y_start is not None and self._y_start.size == self.n_modes
-        x = _roots(k, self.n_modes, self._y_start if warm else None)
-        self._y_start = x - (np.arange(1, self.n_modes + 1) - 0.5) * math.pi
-        rate, ratio = _table(x / L, L, rho)
+        tau0, L, rho = math.exp(theta[0]), math.exp(theta[1]), math.exp(theta[2])
+        n = self.n_modes
+        tanh_L = math.tanh(L)
+        s = tanh_L / rho  # G_S/G_inf
+        warm = self._y_start is not None and self._y_start.size == n
+        self._y_start = _root_offsets(s / L, n, self._y_start if warm else None)
+        x = _centres(n) + self._y_start
+        alpha2 = (x / L) ** 2
+        # step amplitude ratios: the pulse ratios 2(L + s)/(L + s + L alpha^2 s^2) over
+        # 1 + alpha^2 (cable.pulse_ratios_from_alphas), and V_inf/B0 = (s + L)/(s + tanh L)
+        ratio = 2.0 * (L + s) / (L + s + L * alpha2 * s * s) / (1.0 + alpha2)
+        v_inf = (s + L) / (s + tanh_L)
         # the modes beyond the truncation, at the first rate left out: they matter only
         # through the filter's ringing (their own exponentials are < e^-30 at every sample)
-        tail = 1.0 / cable.b0_over_vinf(L, rho) - ratio.sum()
-        x_next = (self.n_modes + 0.5) * math.pi + 0.5 * math.pi
-        lag = math.exp(theta[3]) if self.lag else 1.0
-        rates = np.concatenate(([0.0, 1.0 / lag], rate, [1.0 + (x_next / L) ** 2])) / tau0
-        rates[:2] *= tau0
-        b0 = np.concatenate(([1.0 / cable.b0_over_vinf(L, rho), 0.0], -ratio, [-tail]))
-        bridge = np.zeros_like(b0)
-        bridge[:2] = (1.0, -1.0) if self.lag else 0.0
+        x_next = (n + 0.5) * math.pi + 0.5 * math.pi
+        rates = np.empty(n + 4)   # the step, the lag, mode 0, modes 1..n, the tail
+        rates[0] = 0.0
+        rates[1] = math.exp(-theta[3]) if self.lag else 1.0
+        rates[2] = 1.0 / tau0
+        rates[3:-1] = (1.0 + alpha2) / tau0
+        rates[-1] = (1.0 + (x_next / L) ** 2) / tau0
+        b0 = np.empty(n + 4)
+        b0[:3] = v_inf, 0.0, -1.0
+        b0[3:-1] = -ratio
+        b0[-1] = -(v_inf - 1.0 - ratio.sum())
+        bridge = np.zeros(n + 4)
+        if self.lag:
+            bridge[:2] = 1.0, -1.0
         lp = self.lowpass(theta)
-        gain = np.ones_like(rates) if lp is None else lp.gain(rates)
-        weights = _edge_weights(rates, self.kinds, self.durations)
-        # a step from a free offset: the offset carries the step's own constant
-        free = np.ones(rates.size)
-        free[0] = 0.0
-        filt = gain * weights * np.where(self.known_base[:, None], 1.0, free)
-        direct_b0, direct_bridge = b0 * filt, bridge * filt
         if lp is None:
-            ring_b0 = ring_bridge = np.zeros((len(self.kinds), 0), dtype=complex)
-            pole_weights = edge = None
+            gain, inverse = 1.0, None
         else:
-            pole_weights = lp.pole_weights(rates)
+            inverse = 1.0 / (lp.poles + rates[:, None])   # 1/(p_k + lam), (n_rates, 4)
+            gain = np.real(np.prod(lp.poles * inverse, axis=1))
+        weights = _edge_weights(rates, self.kinds, self.durations)
+        filt = gain * weights
+        filt[~self.known_base, 0] = 0.0   # a step from a free offset: the offset carries it
+        amps = np.stack([b0 * filt, bridge * filt])
+        pole_weights = edge = None
+        if lp is not None:
+            pole_weights = lp.residues * inverse   # c_k/(p_k + lam) (Lowpass.pole_weights)
             edge = self._ring_edges(lp)
-            ring_b0, ring_bridge = edge * (b0 @ pole_weights), edge * (bridge @ pole_weights)
-        return ((rates, direct_b0, direct_bridge, ring_b0, ring_bridge),
-                (x, L, rho, x_next, b0, bridge, lp, gain, weights, free, filt, pole_weights,
+            ring = edge * (np.stack([b0, bridge]) @ pole_weights)[:, None, :]
+            amps = np.concatenate([ring.real, -ring.imag, amps], axis=2)
+        return ((rates, amps),
+                (x, L, rho, x_next, b0, bridge, lp, gain, weights, filt, pole_weights, inverse,
                  edge))
 
     def _ring_edges(self, lp: Lowpass) -> np.ndarray:
@@ -481,57 +505,82 @@ class _Problem:
             self._cache["edges_hz"] = lp.corner_hz
         return self._cache["edges"]
 
-    def _ring_bases(self, lp: Lowpass) -> np.ndarray:
-        """The filter's exp(p_k u) per point and pole, bins averaged (cached)."""
+    def _ring_bases(self, lp: Lowpass | None) -> np.ndarray:
+        """The real and imaginary parts of the filter's exp(p_k u) per point, bins averaged,
+        shape (n_points, 2 n_poles) (cached; no columns when unfiltered)."""
+        if lp is None:
+            return np.zeros((self.u.size, 0))
         if self._cache.get("bases_hz") != lp.corner_hz:
             n, dt, n1 = self.count[:, None], self.dt[:, None], self.n_single
             z = dt * lp.poles
             ring = np.exp(self.u[:, None] * lp.poles)
             ring[n1:] *= np.expm1(n * z) / (n * np.expm1(z))
-            self._cache["bases"] = ring
+            self._cache["bases"] = np.hstack([ring.real, ring.imag])
             self._cache["bases_hz"] = lp.corner_hz
         return self._cache["bases"]
 
     def _bases(self, theta: np.ndarray, rates: np.ndarray, derivative: bool = False):
-        """exp(-lam u) per point and rate for single samples and bins (bins averaged
-        exactly), the filter's exp(p_k u) per point (bins averaged) and, with
-        ``derivative``, d/d lam of the bins' exp(-lam u) (for single samples it is -u
-        times their exp(-lam u))."""
-        n1, m = self.n_single, 3 + self.n_bin_modes
-        n, dt = self.count[:, None], self.dt[:, None]
-        x = dt * rates[:m]
-        key = (rates.tobytes(), m)
-        if self._cache.get("exp_key") != key:   # the residual's, then the Jacobian's
-            with np.errstate(invalid="ignore", divide="ignore"):
-                logb = np.where(x > 0, np.log(np.expm1(-n * x) / (n * np.expm1(-x))), 0.0)
-                self._cache["exp"] = (np.exp(-self.u[:n1, None] * rates),
-                                      np.exp(-self.u[n1:, None] * rates[:m] + logb))
-            self._cache["exp_key"] = key
-        e1, eb = self._cache["exp"]
-        with np.errstate(invalid="ignore", divide="ignore"):
-            if derivative:
-                eb_d = eb * np.where(x > 0, -self.u[n1:, None] + dt * (
-                    _inv_expm1(n * x, n) - _inv_expm1(x, 1.0)), 0.0)
+        """The bases of :meth:`amplitudes`' columns per point: the filter's terms
+        (:meth:`_ring_bases`), then exp(-lam u) per rate, for the single samples and for
+        the bins (averaged exactly; the modes they need), and, with ``derivative``, d/d
+        lam of the bins' exp(-lam u) (for single samples it is -u times their
+        exp(-lam u))."""
+        m = 3 + self.n_bin_modes
+        minus_u1, minus_ub, n, dt = self._columns
         lp = self.lowpass(theta)
-        ring = np.zeros((self.u.size, 0), dtype=complex) if lp is None else self._ring_bases(lp)
-        return e1, eb, ring, (eb_d if derivative else None)
+        key = (rates.tobytes(), m, None if lp is None else lp.corner_hz)
+        if self._cache.get("exp_key") != key:   # the residual's, then the Jacobian's
+            ring, n1 = self._ring_bases(lp), self.n_single
+            q = ring.shape[1]
+            single = np.empty((n1, q + rates.size))
+            single[:, :q] = ring[:n1]
+            np.exp(minus_u1 * rates, out=single[:, q:])
+            # a bin's mean of exp(-lam t) over t = u + i dt, i < n, is exp(-lam u) times
+            # (1 - exp(-n x))/(n (1 - exp(-x))), x = lam dt; 1 for the step (lam = 0)
+            x = dt * rates[1:m]
+            em_n, em_1 = np.expm1(-n * x), np.expm1(-x)
+            bins = np.empty((self.u.size - n1, q + m))
+            bins[:, :q] = ring[n1:]
+            eb = bins[:, q:]
+            np.exp(minus_ub * rates[:m], out=eb)
+            eb[:, 1:] *= em_n / (n * em_1)
+            self._cache["exp"] = (single, bins, eb, em_n, em_1)
+            self._cache["exp_key"] = key
+        single, bins, eb, em_n, em_1 = self._cache["exp"]
+        eb_d = None
+        if derivative:   # (0 for the step, whose rate does not move)
+            # d/dx log((1 - e^-nx)/(1 - e^-x)) = n/(e^nx - 1) - 1/(e^x - 1), e^-x = 1 + em_1
+            eb_d = np.zeros_like(eb)
+            eb_d[:, 1:] = eb[:, 1:] * (minus_ub + dt * (
+                n * (1.0 + em_n) / -em_n - (1.0 + em_1) / -em_1))
+        return single, bins, eb_d
 
-    def _sum(self, e1, eb, ring, direct: np.ndarray, rings: np.ndarray | None) -> np.ndarray:
-        """Per point, the sum over the rates of its bases times its segment's amplitudes,
-        for K sets of amplitudes at once: ``direct`` (K, n_segments, n_rates) on
-        exp(-lam u) and ``rings`` (K, n_segments, n_poles) on the filter's terms (None:
-        none). Returns shape (n_points, K)."""
-        n1, m = self.n_single, eb.shape[1]
-        k, n_seg, n_rates = direct.shape
-        flat = direct.reshape(k * n_seg, n_rates)
-        out = np.empty((self.u.size, k))
-        rows = np.arange(self.u.size)
-        out[:n1] = (e1 @ flat.T).reshape(n1, k, n_seg)[rows[:n1], :, self.seg[:n1]]
-        out[n1:] = (eb @ flat[:, :m].T).reshape(-1, k, n_seg)[rows[n1:] - n1, :,
-                                                             self.seg[n1:]]
-        if rings is not None and ring.shape[1]:
-            rr = np.real(ring @ rings.reshape(k * n_seg, -1).T).reshape(-1, k, n_seg)
-            out += rr[rows, :, self.seg]
+    @cached_property
+    def _columns(self) -> tuple[np.ndarray, ...]:
+        """-u of the single samples and of the bins, the bins' sample counts and sampling
+        intervals, each as a column."""
+        n1 = self.n_single
+        return -self.u[:n1, None], -self.u[n1:, None], self.count[:, None], self.dt[:, None]
+
+    @cached_property
+    def _runs(self) -> list[tuple[int, int, int]]:
+        """(first, end, segment) of each run of points of one segment, the single samples
+        and the bins apart."""
+        cuts = np.union1d([0, self.n_single, self.u.size], np.flatnonzero(np.diff(self.seg)) + 1)
+        return [(int(a), int(b), int(self.seg[a]))
+                for a, b in zip(cuts[:-1], cuts[1:], strict=True) if b > a]
+
+    def _sum(self, single: np.ndarray, bins: np.ndarray, amps: np.ndarray) -> np.ndarray:
+        """Per point, its bases (``single`` or ``bins``, per column) times its segment's
+        amplitudes, summed, for K sets of amplitudes ``amps`` (K, n_segments, >= columns)
+        at once. Returns shape (n_points, K)."""
+        n1 = self.n_single
+        out = np.empty((self.u.size, amps.shape[0]))
+        for a, b, s in self._runs:
+            if a < n1:
+                out[a:b] = single[a:b] @ amps[:, s, :single.shape[1]].T
+            else:
+                out[a:b] = bins[a - n1:b - n1] @ amps[:, s, :bins.shape[1]].T
         return out
 
     def shape(self, theta: np.ndarray, derivative: bool = False):
@@ -540,30 +589,35 @@ class _Problem:
         With ``derivative``, also their derivatives in theta, shape (n_points, n_theta):
         for the cable's parameters and the lag analytically (the per-rate amplitudes by
         :meth:`amplitudes`, the sums over the points in closed form); the filter corner,
-        when estimated, by central differences of the whole.
+        when estimated, by central differences of the whole. The last result with
+        derivatives is kept (the search's last Jacobian is the summary's).
         """
+        if derivative:
+            key = (theta.tobytes(), self.n_modes, self.n_bin_modes)
+            if self._cache.get("slopes_key") != key:
+                self._cache["slopes"] = self._compute_shape(theta, derivative=True)
+                self._cache["slopes_key"] = key
+            return self._cache["slopes"]
+        return self._compute_shape(theta, derivative=False)
+
+    def _compute_shape(self, theta: np.ndarray, derivative: bool):
+        """:meth:`shape`, computed."""
         base = self.amplitudes(theta, derivative)
         if derivative:
-            base, slopes = base
-        rates = base[0]
-        e1, eb, ring, eb_d = self._bases(theta, rates, derivative)
-        direct, rings = np.stack(base[1:3]), np.stack(base[3:5])
+            base, (d_rates, d_amps) = base
+        rates, amps = base
+        single, bins, eb_d = self._bases(theta, rates, derivative)
         if not derivative:
-            value = self._sum(e1, eb, ring, direct, rings)
+            value = self._sum(single, bins, amps)
             return value[:, 0], value[:, 1]
         n_num = theta.size - self.estimate_corner  # differentiated through the amplitudes
-        d_rates, d_b0, d_br, r_b0, r_br = slopes
-        n_seg, n_rates = direct.shape[1:]
+        n_seg, q = amps.shape[1], amps.shape[2] - rates.size
         # K = 2 + 2 n_num amplitude sets: (b0, bridge), then (d b0, d bridge) per parameter
-        plain = self._sum(e1, eb, ring,
-                          np.concatenate([direct, np.stack([d_b0, d_br], axis=1).reshape(
-                              2 * d_b0.shape[0], n_seg, n_rates)]),
-                          np.concatenate([rings, np.stack([r_b0, r_br], axis=1).reshape(
-                              2 * r_b0.shape[0], n_seg, rings.shape[2])]))
+        plain = self._sum(single, bins, np.concatenate(
+            [amps, d_amps.reshape(2 * n_num, n_seg, -1)]))
         # through the rates: d exp(-lam u)/d lam is -u exp(-lam u) for single samples
-        through = self._sum(e1, eb_d, ring,
-                            (direct[None] * d_rates[:, None, None, :]).reshape(
-                                -1, n_seg, n_rates), None)
+        through = self._sum(single[:, q:], eb_d, (amps[None, :, :, q:] * d_rates[
+            :, None, None, :]).reshape(2 * n_num, n_seg, -1))
         n1 = self.n_single
         through[:n1] *= -self.u[:n1, None]
         value = (plain[:, 0], plain[:, 1])
@@ -606,9 +660,9 @@ class _Problem:
     def _project(self, a: np.ndarray) -> tuple:
         """Least squares of the data on the weighted design `a`: (coefficients, residual,
         q, r) with a = q r."""
-        q, r = np.linalg.qr(a)
+        q, r = _qr(a)
         qty = q.T @ self.yw
-        return np.linalg.lstsq(r, qty, rcond=None)[0], self.yw - q @ qty, q, r
+        return _solve_r(r, qty), self.yw - q @ qty, q, r
 
     def residual(self, theta: np.ndarray) -> np.ndarray:
         return self.solve(theta)[1]
@@ -618,10 +672,21 @@ class _Problem:
         resid = self._project(self._design(shapes))[1]
         return float(resid @ resid)
 
+    def costs_of(self, shapes, n_cols: Sequence[int]) -> list[float]:
+        """:meth:`cost_of` of the designs made of the first ``n`` columns of this one, for
+        each n in ``n_cols``, from one QR (the first n columns of q span the first n of
+        the design)."""
+        q, _ = _qr(self._design(shapes))
+        costs = []
+        for n in n_cols:
+            resid = self.yw - q[:, :n] @ (q[:, :n].T @ self.yw)
+            costs.append(float(resid @ resid))
+        return costs
+
     def _d_design(self, d_shapes):
         """The weighted derivatives of the theta-dependent design columns (scale, then
-        bridge), each (n_points, n_theta), with one-hot maps (n_cols, n_points) from the
-        points to their columns."""
+        bridge when fitted), each (n_points, n_theta), with one-hot maps (n_cols,
+        n_points) from the points to their columns."""
         if "maps" not in self._cache:
             rows = np.arange(self.u.size)
             scale = np.zeros((self.n_cols, self.u.size))
@@ -632,7 +697,10 @@ class _Problem:
             self._cache["maps"] = (scale, bridge)
         scale, bridge = self._cache["maps"]
         sw = self.sw[:, None]
-        return (d_shapes[0] * sw, scale), (d_shapes[1] * sw * bridge.sum(axis=0)[:, None], bridge)
+        if not self.lag:
+            return [(d_shapes[0] * sw, scale)]
+        return [(d_shapes[0] * sw, scale), (d_shapes[1] * sw * bridge.sum(axis=0)[:, None],
+                                            bridge)]
 
     def jacobian(self, theta: np.ndarray) -> np.ndarray:
         """Golub–Pereyra Jacobian of the projected residual, shape (n_points, n_theta).
@@ -649,7 +717,7 @@ class _Problem:
             first += d_col * (coef @ to_col)[:, None]
             g += to_col @ (d_col * resid[:, None])
         first -= q @ (q.T @ first)
-        return -(first + q @ np.linalg.lstsq(r.T, g, rcond=None)[0])
+        return -(first + q @ _solve_r(r, g, transpose=True))
 
     def full_jacobian(self, theta: np.ndarray) -> np.ndarray:
         """Jacobian of the weighted model in (theta, linear coefficients)."""
@@ -660,6 +728,43 @@ class _Problem:
             d_model += d_col * (coef @ to_col)[:, None]
         return np.column_stack([d_model, self._design(shapes)])
 
+
+
+@cache
+def _lapack():
+    """LAPACK's QR and triangular routines for float64 (lazy: loading a file needs no
+    scipy)."""
+    from scipy.linalg import get_lapack_funcs
+
+    return get_lapack_funcs(("geqrf", "orgqr", "trtrs", "trcon"), (np.zeros(1),))
+
+
+def _qr(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Reduced QR of a tall matrix, computed as numpy.linalg.qr does (LAPACK geqrf, then
+    orgqr) without its overhead: q and r, of which only the upper triangle is set."""
+    geqrf, orgqr, _, _ = _lapack()
+    qr, tau, _, info = geqrf(a)
+    if info:
+        raise np.linalg.LinAlgError(f"QR failed (LAPACK geqrf info {info})")
+    r = qr[:a.shape[1]].copy()
+    q, _, info = orgqr(qr, tau)
+    if info:
+        raise np.linalg.LinAlgError(f"QR failed (LAPACK orgqr info {info})")
+    return q, r
+
+
+def _solve_r(r: np.ndarray, b: np.ndarray, transpose: bool = False) -> np.ndarray:
+    """x with r x = b (r^T x = b with ``transpose``) for the upper triangle r of
+    :func:`_qr`: by substitution when r is well conditioned (reciprocal condition
+    number above 1e-10), else as the least-squares solution of numpy.linalg.lstsq."""
+    _, _, trtrs, trcon = _lapack()
+    rcond, info = trcon(r, norm="1")
+    if info == 0 and rcond > 1e-10:
+        x, info = trtrs(r, b, trans=int(transpose))
+        if info == 0:
+            return x
+    r = np.triu(r)
+    return np.linalg.lstsq(r.T if transpose else r, b, rcond=None)[0]
 
 
 def _check(segments: Sequence[CableSegment], corner_hz: float | None,
@@ -1183,12 +1288,18 @@ def _grid_ranks(probs: Sequence[_Problem], theta0s: Sequence[np.ndarray]) -> lis
     problem, with the modes that point needs.
     """
     lead, costs = probs[0], np.empty((len(probs), len(_GRID)))
+    shared = None   # whether every design is the first columns of the lead's
     for i, cell in enumerate(_GRID):
         point = theta0s[0].copy()
         point[1:3] = cell
         lead.set_modes(point, margin=1.0)
         shapes = lead.shape(point)
-        costs[:, i] = [prob.cost_of(shapes) for prob in probs]
+        if shared is None:
+            a = lead._design(shapes)
+            shared = all(np.array_equal(p.yw, lead.yw) and p.n_cols <= lead.n_cols
+                         and np.array_equal(p._design(shapes), a[:, :p.n_cols]) for p in probs)
+        costs[:, i] = (lead.costs_of(shapes, [p.n_cols for p in probs]) if shared
+                       else [prob.cost_of(shapes) for prob in probs])
     return [np.argsort(c, kind="stable") for c in costs]
 
 
