@@ -145,6 +145,21 @@ def test_a_sweep_that_ends_inside_its_step_keeps_its_measured_level():
 
 
 @pytest.mark.slow
+def test_a_bridge_the_data_cannot_determine_is_not_reported():
+    """File_axon_5's first two sweeps: the jump at the step edge is not determined (its CI
+    from the chain fit reaches tens of GΩ), so it is neither reported nor folded into R_in's
+    interval, which stays that of the two sweeps (t with one degree of freedom)."""
+    from passivefit.model.settings import Settings
+
+    result = analyze(load(DATA_DIR / "File_axon_5.abf"), Settings(sweeps=(0, 1)))
+    cell = result.to_dict()["cell"]
+    assert cell.get(S.BRIDGE.key) is None and cell.get(S.BRIDGE_CI.key) is None
+    assert cell[S.R_IN_CI.key] < 0.5 * cell[S.R_IN.key]
+    uncertain = [f for f in result.flags if f.code == "cell.bridge_uncertain"]
+    assert uncertain and "do not determine" in uncertain[0].message
+
+
+@pytest.mark.slow
 def test_events_are_cut_out_where_they_are(results):
     """File_axon_5: real synaptic events on every sweep; the hyperpolarizing sweeps are
     used with their events cut out, the firing ones are left out."""

@@ -397,11 +397,15 @@ def _bridge_correction(fits: list[SweepFit], bridge: tuple[float, float, bool] |
     if bridge is None:
         return values, [], fits
     jump, ci, needed = bridge
+    if raw is not None and not (np.isfinite(ci) and ci < abs(raw)):
+        # the fit cannot tell the jump from the membrane's charging: nothing to report
+        return values, [S.CELL_BRIDGE_UNCERTAIN.make(jump / MOHM, reason="undetermined")], fits
     values[S.BRIDGE], values[S.BRIDGE_CI] = jump, ci
     if raw is not None:
         values[S.R_IN_CORRECTED] = raw - jump
     if not (needed and np.isfinite(ci) and abs(jump) > ci):
-        flags = ([S.CELL_BRIDGE_UNCERTAIN.make(jump / MOHM)] if abs(jump) > 5 * MOHM
+        flags = ([S.CELL_BRIDGE_UNCERTAIN.make(jump / MOHM, reason="includes_zero")]
+                 if abs(jump) > 5 * MOHM
                  else [])
         if measured.get(S.R_IN_CI) is not None:
             # the raw R_in holds whatever bridge the data cannot rule out: up to |jump| + CI

@@ -334,9 +334,12 @@ CELL_BRIDGE = _flag(
     "cell.bridge", "info",
     "an instantaneous jump at the step edge shows a bridge imbalance; it is {what} R_in (MΩ)")
 CELL_BRIDGE_UNCERTAIN = _flag(
-    "cell.bridge_uncertain", "warning",
-    "the jump at the step edge cannot be told apart from zero (its 95 % CI includes it); R_in "
-    "is not corrected for it (MΩ)")
+    "cell.bridge_uncertain", "warning", "{reason}",
+    includes_zero="the jump at the step edge cannot be told apart from zero (its 95 % CI "
+                  "includes it); R_in is not corrected for it (MΩ)",
+    undetermined="these data do not determine the jump at the step edge (its 95 % CI is "
+                 "wider than R_in), so it is not reported: R_in is not corrected for it and "
+                 "may hold a bridge error (fitted jump, MΩ)")
 CELL_FILTER_ESTIMATED = _flag(
     "cell.filter_estimated", "info",
     "the file does not state the amplifier's low-pass corner; it was {how} (Hz)")
