@@ -160,6 +160,22 @@ def test_a_bridge_the_data_cannot_determine_is_not_reported():
 
 
 @pytest.mark.slow
+def test_depolarizing_steps_alone_are_flagged_and_the_smallest_kept():
+    """File_axon_5 without its hyperpolarizing sweeps: the larger depolarizing steps, whose
+    R_in falls (active conductances), are left out against the smallest, and the cell is
+    flagged; R_in stays within the reference's ±15 % (tests/real_reference.py)."""
+    from passivefit.model.settings import Settings
+
+    result = analyze(load(DATA_DIR / "File_axon_5.abf"), Settings(sweeps=(3, 4, 5, 6, 7, 8)))
+    codes = {f.code for f in result.flags}
+    assert {"cell.depolarizing_only", "cell.active_sweeps"} <= codes
+    assert [f.index for f in result.sweeps if f.accepted] == [3]
+    ref = file_summary("File_axon_5").r_in_MOhm
+    r_in = result.to_dict()["cell"][S.R_IN.key]
+    assert 0.85 * ref.low <= r_in <= 1.15 * ref.high
+
+
+@pytest.mark.slow
 def test_events_are_cut_out_where_they_are(results):
     """File_axon_5: real synaptic events on every sweep; the hyperpolarizing sweeps are
     used with their events cut out, the firing ones are left out."""

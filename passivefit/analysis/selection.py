@@ -43,14 +43,18 @@ def leave_out_active(fits: list[SweepFit]) -> tuple[list[SweepFit], list[Flag]]:
     Depolarization brings a neuron towards its firing threshold and switches on
     (or off) voltage-gated conductances; a physiologist takes passive values from the
     hyperpolarizing steps when the two directions disagree. The reference is R_in of the
-    accepted hyperpolarizing sweeps of the smallest step.
+    accepted hyperpolarizing sweeps of the smallest step; without any, that of the
+    smallest depolarizing step, the nearest to rest (and the cell is flagged).
     """
-    hyper = [f for f in fits if f.accepted and f.r_in_ohm is not None
-             and f.step.amplitude_A < 0]
-    if not hyper:
+    measured = [f for f in fits if f.accepted and f.r_in_ohm is not None]
+    hyper = [f for f in measured if f.step.amplitude_A < 0]
+    depolarizing_only = not hyper and any(f.step.kind == "step" for f in measured)
+    if not (hyper or depolarizing_only):
         return fits, []
-    smallest = max(f.step.amplitude_A for f in hyper)
-    ref = float(np.median([f.r_in_ohm for f in hyper if f.step.amplitude_A == smallest]))
+    smallest = (max if hyper else min)(f.step.amplitude_A for f in hyper or measured)
+    ref = float(np.median([f.r_in_ohm for f in hyper or measured
+                           if f.step.amplitude_A == smallest]))
+    source = "the hyperpolarizing steps" if hyper else "the smallest depolarizing step"
     out, n = [], 0
     for f in fits:
         if (f.accepted and f.r_in_ohm is not None and f.step.amplitude_A > 0
@@ -58,9 +62,12 @@ def leave_out_active(fits: list[SweepFit]) -> tuple[list[SweepFit], list[Flag]]:
             n += 1
             f = replace(f, accepted=False, reject_reason=(
                 f"responds actively: R_in {f.r_in_ohm / MOHM:.0f} MΩ against "
-                f"{ref / MOHM:.0f} MΩ from the hyperpolarizing steps"))
+                f"{ref / MOHM:.0f} MΩ from {source}"))
         out.append(f)
-    return out, ([S.CELL_ACTIVE_SWEEPS.make(n, n=n)] if n else [])
+    flags = [S.CELL_ACTIVE_SWEEPS.make(n, n=n)] if n else []
+    if depolarizing_only:
+        flags.append(S.CELL_DEPOLARIZING_ONLY.make(smallest * 1e12))
+    return out, flags
 
 
 def hyperpolarizing_only(fits: list[SweepFit]) -> list[SweepFit]:

@@ -464,9 +464,14 @@ CABLE_AT_BOUND = _flag(
     "data, so it is not reported")
 CELL_ACTIVE_SWEEPS = _flag(
     "cell.active_sweeps", "info",
-    "{n} depolarizing sweep(s) respond unlike the hyperpolarizing ones (active "
-    "conductances): the passive values come from the sweeps that respond passively "
-    "(number left out)")
+    "{n} depolarizing sweep(s) respond unlike the smallest hyperpolarizing step (or, "
+    "without one, the smallest depolarizing step): active conductances; the passive values "
+    "come from the sweeps that respond passively (number left out)")
+CELL_DEPOLARIZING_ONLY = _flag(
+    "cell.depolarizing_only", "warning",
+    "every step is depolarizing: it moves the cell towards threshold, where voltage-gated "
+    "conductances open, so even the smallest step may not respond passively; hyperpolarizing "
+    "steps give the passive values (smallest step, pA)")
 CELL_UNSTABLE = _flag(
     "cell.unstable", "warning",
     "R_in changes by {x:+.0f} % and V_rest by {dv:+.1f} mV over the recording; the cell "
