@@ -46,7 +46,7 @@ class Sag:
         steady_V / peak_V (1 = no sag, smaller with more sag); None without a peak in
         the step's direction.
     noise_V : float
-        Robust sd of the smoothed baseline, in V.
+        Robust sd of the smoothed baseline and step end (each about its median), in V.
     has_sag : bool
         Whether the peak lies beyond the steady state by more than SAG_NOISE_FACTOR
         noise_V.
@@ -173,8 +173,11 @@ def measure_sag(
     refined = _refine_peak(sign * (v[on:off] - baseline_V), centre, half)
     if refined is not None and centre >= half:  # a peak clear of the onset's fast rise
         peak, peak_time = sign * refined[0], refined[1] / fs_hz
-    base_smooth = _smooth(v[:on], width) if on >= 2 * width else np.zeros(0)
-    noise = robust_sd(base_smooth - np.median(base_smooth)) if base_smooth.size else 0.0
+    # the smoothed trace's noise over both flat stretches, the baseline and the step's
+    # end: a short baseline alone (a few smoothing widths) hides its slow noise
+    flat = [_smooth(x, width) for x in (v[:on], v[off - n_steady:off]) if x.size >= 2 * width]
+    deviations = np.concatenate([x - np.median(x) for x in flat] or [np.zeros(0)])
+    noise = robust_sd(deviations) if deviations.size else 0.0
     ratio = steady / peak if sign * peak > 0 else None
     has_sag = sign * (peak - steady) > SAG_NOISE_FACTOR * noise
 
