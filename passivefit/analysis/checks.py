@@ -9,8 +9,9 @@ from dataclasses import replace
 import numpy as np
 
 from passivefit.analysis.fits import FIT_ERRORS, fit_average, residual
+from passivefit.analysis.hum import Hum
 from passivefit.core import steady
-from passivefit.core.qc import Flag, runs_test_z, t975
+from passivefit.core.qc import Flag, mains_hum, runs_test_z, t975
 from passivefit.model import schema as S
 from passivefit.model.results import GroupAverage, SweepFit
 
@@ -108,26 +109,26 @@ def sag(used: list[SweepFit]) -> tuple[dict, list[Flag]]:
     return values, [S.CELL_SAG.make(ratio)] if ratio < 0.95 else []
 
 
-#: Hum is reported when its amplitude is this many times its white-noise floor and at
-#: least HUM_MIN_V (common practice, no source).
-HUM_FLOOR_FACTOR, HUM_MIN_V = 4.0, 20e-6
-
-
-def hum(used: list[SweepFit], voltages: dict[int, np.ndarray], fs: float
-        ) -> tuple[dict, list[Flag]]:
-    """50 or 60 Hz mains hum in the sweeps' baselines (core.qc.mains_hum)."""
+def hum(used: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
+        removed: Hum | None = None) -> tuple[dict, list[Flag]]:
+    """50 or 60 Hz mains hum in the sweeps' baselines (analysis.hum): as `removed` before
+    the fits, else as seen in the accepted sweeps."""
     from passivefit.analysis.windows import span
-    from passivefit.core.qc import mains_hum
 
-    segments = []
-    for f in used:
-        v = f.corrected(voltages[f.index], fs)
-        a, b = span(f.windows_s["baseline"], fs, v.size)
-        segments.append(np.array(v[a:b], dtype=np.float64))  # not a view: frees the sweep
-    freq, amp, floor = mains_hum(segments, fs)
-    if floor == 0.0 or amp < max(HUM_FLOOR_FACTOR * floor, HUM_MIN_V):
+    if removed is not None and removed.removed:
+        found, reason = removed, "removed"
+    else:
+        segments = []
+        for f in used:
+            v = f.corrected(voltages[f.index], fs)
+            a, b = span(f.windows_s["baseline"], fs, v.size)
+            segments.append(np.array(v[a:b], dtype=np.float64))  # not a view: frees the sweep
+        found, reason = Hum(*mains_hum(segments, fs)), "seen"
+    if not found.seen:
         return {}, []
-    return {S.HUM: amp}, [S.CELL_HUM.make(amp / MV, hz=f"{freq:.0f} Hz",
+    amp, digits = found.amplitude_V, 2 if found.removed else 0   # refined when removed
+    return {S.HUM: amp}, [S.CELL_HUM.make(amp / MV, reason=reason,
+                                          hz=f"{found.freq_hz:.{digits}f} Hz",
                                           amplitude=f"{amp / MV * 1e3:.0f} µV")]
 
 

@@ -32,6 +32,7 @@ from passivefit.analysis.cable import (
 )
 from passivefit.analysis.events import cut_out_events
 from passivefit.analysis.fits import FIT_ERRORS, fit_average, fit_start_scan, onset_amplitudes
+from passivefit.analysis.hum import Hum
 from passivefit.analysis.pool import average_of, first_look, sweep_pool
 from passivefit.analysis.selection import (
     check_sign,
@@ -87,7 +88,8 @@ def analyze(recording: Recording, settings: Settings | None = None, *,
     fits, stability, unstable = stable_stretch(fits, settings.all_sweeps)
     fits = apply_decisions(fits, effective)
     cell = summarize_cell(fits, voltages, fs, effective, replace(base, fit_start_ms=None),
-                          _chain(recording, settings, chosen), sagging=sag_end is not None)
+                          _chain(recording, settings, chosen), sagging=sag_end is not None,
+                          hum=start.hum)
     cell.values.update(stability)
     cell.flags[:0] = [*recording.flags, *active, *unstable]
     advice = _design(cell, chosen, recording.sample_rate_hz) if advise else None
@@ -223,13 +225,15 @@ class CellSummary:
 
 def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
                    settings: Settings, automatic: Settings | None = None,
-                   chain: Chain | None = None, sagging: bool = False) -> CellSummary:
+                   chain: Chain | None = None, sagging: bool = False,
+                   hum: Hum | None = None) -> CellSummary:
     """Cell-level values from the accepted sweeps.
 
     `settings` hold the fit start used for the exponential fits. The model of the whole
     measurement chain (cell, bridge with its lag, filter) is fitted from the `automatic`
     start, after the artefact, whatever start the person chose: the bridge, and so R_in,
-    do not depend on it. A `sagging` cell gets no cable model.
+    do not depend on it. A `sagging` cell gets no cable model. `hum`: the mains hum
+    taken out of `voltages` before, if any.
     """
     used = [f for f in fits if f.accepted]
     out = CellSummary(tuple(fits), {S.N_SWEEPS_USED: len(used)},
@@ -296,7 +300,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     values, flags = checks.sag(used)
     out.values.update(values)
     out.flags.extend(flags)
-    values, flags = checks.hum(used, voltages, fs)
+    values, flags = checks.hum(used, voltages, fs, hum)
     out.values.update(values)
     out.flags.extend(flags)
     if fit is None:
@@ -307,7 +311,8 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     out.flags.extend(flags)
     tau1 = values.get(S.TAU1)
     out.flags.extend(checks.sweep_spread(used, fit))
-    out.flags.extend(checks.residual_structure(fit, avg, fs, hum=S.HUM in out.values))
+    out.flags.extend(checks.residual_structure(
+        fit, avg, fs, hum=S.HUM in out.values and not (hum and hum.removed)))
     out.flags.extend(checks.onset_offset(avg, fs, fit))
     out.scan = fit_start_scan(avg, fs, fit)
     if tau1 is not None:

@@ -64,7 +64,7 @@ def leave_out_active(fits: list[SweepFit]) -> tuple[list[SweepFit], list[Flag]]:
                 f"responds actively: R_in {f.r_in_ohm / MOHM:.0f} MΩ against "
                 f"{ref / MOHM:.0f} MΩ from {source}"))
         out.append(f)
-    flags = [S.CELL_ACTIVE_SWEEPS.make(n, n=n)] if n else []
+    flags = [S.CELL_ACTIVE_SWEEPS.make(n, n=n, reference=source)] if n else []
     if depolarizing_only:
         flags.append(S.CELL_DEPOLARIZING_ONLY.make(smallest * 1e12))
     return out, flags

@@ -13,6 +13,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+from passivefit.analysis.hum import Hum, without_hum
 from passivefit.analysis.pool import first_look, sag_window
 from passivefit.analysis.selection import hyperpolarizing_only
 from passivefit.analysis.sweep import baseline_only
@@ -47,6 +48,8 @@ class StartValues:
         Their baselines measured (only the hyperpolarizing ones in a sagging cell).
     base : Settings
         `settings` with the fit window before a sag.
+    hum : Hum or None
+        The mains hum of the baselines, taken out of `voltages` when `hum.removed`.
     """
 
     settings: Settings
@@ -58,6 +61,7 @@ class StartValues:
     chosen: list = field(default_factory=list)
     screened: list = field(default_factory=list)
     base: Settings | None = None
+    hum: Hum | None = None
 
     def effective_for(self, settings: Settings) -> Settings:
         """`settings` (e.g. with a window moved) as the analysis would fit sweeps with them,
@@ -88,6 +92,10 @@ def start_values(recording: Recording, settings: Settings) -> StartValues:
     # each sweep is read up to its next step (the step's region)
     voltages = {s.index: s.voltage[:st.region_end] if st is not None else s.voltage
                 for s, st in chosen}
+    hum = None
+    if settings.remove_hum:
+        voltages, hum = without_hum(voltages, {s.index: st for s, st in chosen if st is not None},
+                                    fs)
     screened = [baseline_only(voltages[s.index], st, s.index, fs, settings) for s, st in chosen]
     sag_end = sag_window(screened, voltages, fs) if settings.windows.fit_ms is None else None
     base = settings
@@ -99,4 +107,4 @@ def start_values(recording: Recording, settings: Settings) -> StartValues:
     start, tau_init = first_look(screened, voltages, fs, base)
     effective = base if start is None else replace(base, fit_start_ms=start / MS)
     return StartValues(settings, effective, tau_init, start, sag_end, voltages, chosen,
-                       screened, base)
+                       screened, base, hum)

@@ -46,6 +46,9 @@ def add_settings_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--all-sweeps", action="store_true",
                    help="take the cell values from all accepted sweeps even when R_in drifts "
                         "(default: from the longest stable stretch)")
+    p.add_argument("--keep-hum", action="store_true",
+                   help="leave 50/60 Hz mains hum in the sweeps (default: fitted in each "
+                        "sweep's flat stretches and taken out before the fits)")
     p.add_argument("--channel", metavar="NAME_OR_INDEX",
                    help="the membrane-potential channel, when the file has several")
     p.add_argument("--bootstrap", type=int, default=40, metavar="N",
@@ -79,7 +82,8 @@ def settings_from(args: argparse.Namespace):
                         components=args.components, filter_hz=args.filter_hz,
                         area_um2=args.area_um2, bootstrap=args.bootstrap,
                         correct_bridge=not args.no_bridge_correction,
-                        all_sweeps=args.all_sweeps, channel=args.channel)
+                        all_sweeps=args.all_sweeps, channel=args.channel,
+                        remove_hum=not args.keep_hum)
     except ValueError as exc:  # name the option, not the setting
         raise UsageError(str(exc).replace("`filter_hz`", "`--filter-hz`")
                          .replace("`area_um2`", "`--area-um2`")) from None

@@ -73,23 +73,27 @@ def mains_hum(segments, fs: float, freqs_hz=(50.0, 60.0)) -> tuple[float, float,
     and a cosine at each frequency by least squares; the amplitudes are averaged over
     segments (their phases differ from sweep to sweep). For white noise of sd σ the
     amplitude from n samples averages σ·√(π/n) (Rayleigh), the floor returned, in the
-    units of the segments. The frequency with the larger amplitude is returned.
+    units of the segments. The frequency with the larger amplitude is returned. Segments
+    of one length share their least-squares solve.
     """
+    by_length: dict[int, list[np.ndarray]] = {}
+    for y in segments:
+        y = np.asarray(y, dtype=float)
+        y = y[np.isfinite(y)]
+        if y.size >= 0.04 * fs:   # at least two mains periods
+            by_length.setdefault(y.size, []).append(y)
     best = (freqs_hz[0], 0.0, 0.0)
     for f in freqs_hz:
         amps, floors = [], []
-        for y in segments:
-            y = np.asarray(y, dtype=float)
-            y = y[np.isfinite(y)]
-            if y.size < 0.04 * fs:   # less than two mains periods
-                continue
-            t = np.arange(y.size) / fs
+        for size, ys in by_length.items():
+            t = np.arange(size) / fs
             basis = np.column_stack([np.sin(2 * np.pi * f * t), np.cos(2 * np.pi * f * t),
                                      np.ones_like(t), t - t.mean()])
-            coef, *_ = np.linalg.lstsq(basis, y, rcond=None)
-            rest = y - basis @ coef
-            amps.append(float(np.hypot(coef[0], coef[1])))
-            floors.append(float(np.std(rest) * np.sqrt(np.pi / y.size)))
+            block = np.column_stack(ys)
+            coef, *_ = np.linalg.lstsq(basis, block, rcond=None)
+            rest = block - basis @ coef
+            amps += list(np.hypot(coef[0], coef[1]))
+            floors += list(np.std(rest, axis=0) * np.sqrt(np.pi / size))
         if amps and np.mean(amps) > best[1]:
             best = (f, float(np.mean(amps)), float(np.mean(floors)))
     return best

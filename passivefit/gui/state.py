@@ -573,6 +573,8 @@ class ReviewState:
         v = self._voltage[index]
         if step is not None:
             v = v[:step.region_end]
+        if start is not None:            # as the analysis read it (its hum taken out)
+            v = start.voltages.get(index, v)
         if start is None:
             fit = analyze_sweep(v, step, index, self.fs, asked,
                                 cache=self._prep.setdefault(index, {}))

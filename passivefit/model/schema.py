@@ -377,9 +377,12 @@ FIT_RESIDUAL_STRUCTURE = _flag(
     hum="the residuals keep their sign too long, as the mains hum in the recording makes "
         "them do (runs-test z)")
 CELL_HUM = _flag(
-    "cell.hum", "info",
-    "mains hum of {amplitude} at {hz} in the baselines; it averages out over sweeps of "
-    "random phase but shows in single sweeps and their residuals (amplitude, mV)")
+    "cell.hum", "info", "{reason}",
+    removed="mains hum of {amplitude} at {hz}, fitted in each sweep's flat stretches "
+            "(baseline, end of the step, end of the tail), was taken out before the fits "
+            "(amplitude, mV)",
+    seen="mains hum of {amplitude} at {hz} in the baselines; it averages out over sweeps of "
+         "random phase but shows in single sweeps and their residuals (amplitude, mV)")
 CABLE_FIT_FAILED = _flag(
     "cable.fit_failed", "warning", "{reason}",
     failed="the ball-and-stick fit failed: {problem}",
@@ -464,9 +467,8 @@ CABLE_AT_BOUND = _flag(
     "data, so it is not reported")
 CELL_ACTIVE_SWEEPS = _flag(
     "cell.active_sweeps", "info",
-    "{n} depolarizing sweep(s) respond unlike the smallest hyperpolarizing step (or, "
-    "without one, the smallest depolarizing step): active conductances; the passive values "
-    "come from the sweeps that respond passively (number left out)")
+    "{n} depolarizing sweep(s) respond unlike {reference} (active conductances): the "
+    "passive values come from the sweeps that respond passively (number left out)")
 CELL_DEPOLARIZING_ONLY = _flag(
     "cell.depolarizing_only", "warning",
     "every step is depolarizing: it moves the cell towards threshold, where voltage-gated "

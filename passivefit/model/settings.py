@@ -75,6 +75,9 @@ class Settings:
     correct_drift : bool
         Subtract a sweep's linear baseline drift (baseline before the step to the end of
         a long tail) before fitting.
+    remove_hum : bool
+        Take 50/60 Hz mains hum, when the baselines show it, out of every sweep before
+        fitting (analysis.hum).
     all_sweeps : bool
         Take the cell values from all accepted sweeps even when R_in drifts over the
         recording (default: from its longest stable stretch).
@@ -95,6 +98,7 @@ class Settings:
     filter_hz: float | None = None
     area_um2: float | None = None
     correct_drift: bool = True
+    remove_hum: bool = True
     all_sweeps: bool = False
     channel: str | None = None
 
