@@ -481,14 +481,17 @@ def test_the_settings_panel_changes_the_analysis_and_is_saved(qtbot, open_window
     panel.area.setValue(20000.0)
     panel.filter.setValue(3000.0)
     panel.bridge.setChecked(False)
+    panel.hum.setChecked(False)
     s = window.state.settings
-    assert (s.components, s.bootstrap, s.area_um2, s.filter_hz, s.correct_bridge) == \
-        ("1", 5, 20000.0, 3000.0, False)
+    assert (s.components, s.bootstrap, s.area_um2, s.filter_hz, s.correct_bridge,
+            s.remove_hum) == ("1", 5, 20000.0, 3000.0, False, False)
     saved = json.loads(Path(window.state.review_file).read_text())["settings"]
     assert (saved["components"], saved["bootstrap"], saved["area_um2"]) == ("1", 5, 20000.0)
     wait_idle(qtbot, window)
     cell = window.state.result.cell.to_dict()
     assert cell["n_components"] == 1 and cell.get("cm_uF_per_cm2") is not None
+    window.undo()
+    assert window.state.settings.remove_hum and panel.hum.isChecked()
     window.undo()
     assert window.state.settings.correct_bridge and panel.bridge.isChecked()
     window.close()

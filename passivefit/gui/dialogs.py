@@ -185,6 +185,9 @@ class SettingsPanel(QtWidgets.QWidget):
                                       "fit start after each step edge")
         self.bridge = QtWidgets.QCheckBox("take a resolved bridge jump out of R_in")
         self.bridge.toggled.connect(lambda on: self._emit(correct_bridge=bool(on)))
+        self.hum = QtWidgets.QCheckBox("take 50/60 Hz mains hum out of the sweeps")
+        self.hum.setToolTip("fitted in each sweep's flat stretches when the baselines show it")
+        self.hum.toggled.connect(lambda on: self._emit(remove_hum=bool(on)))
         self.filter.valueChanged.connect(lambda x: self._emit(filter_hz=x or None))
         self.area.valueChanged.connect(lambda x: self._emit(area_um2=x or None))
         self.fit_start.valueChanged.connect(lambda x: self._emit(fit_start_ms=x or None))
@@ -194,6 +197,7 @@ class SettingsPanel(QtWidgets.QWidget):
         form.addRow("bootstrap", self.bootstrap)
         form.addRow("fit start", self.fit_start)
         form.addRow("bridge", self.bridge)
+        form.addRow("hum", self.hum)
         note = QtWidgets.QLabel("Saved with the review; the cell is re-analysed at once.")
         note.setObjectName("unit")
         note.setWordWrap(True)
@@ -225,5 +229,6 @@ class SettingsPanel(QtWidgets.QWidget):
             self.bootstrap.setValue(settings.bootstrap)
             self.fit_start.setValue(settings.fit_start_ms or 0.0)
             self.bridge.setChecked(settings.correct_bridge)
+            self.hum.setChecked(settings.remove_hum)
         finally:
             self._quiet = False

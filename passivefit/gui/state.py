@@ -741,7 +741,7 @@ class ReviewState:
 
     def set_options(self, **options) -> None:
         """Change analysis options (``components``, ``filter_hz``, ``area_um2``,
-        ``bootstrap``, ``correct_bridge``, ``fit_start_ms``) and re-analyse.
+        ``bootstrap``, ``correct_bridge``, ``remove_hum``, ``fit_start_ms``) and re-analyse.
 
         Raises ValueError for a value Settings refuses; nothing changes then.
         """
