@@ -145,6 +145,20 @@ def test_a_step_whose_sign_disagrees_with_the_response_is_refused():
         analyze(rec, Settings(step=StepSpec(0.1, 0.5, 100e-12), bootstrap=0))
 
 
+def test_a_forgotten_increment_is_named():
+    """Steps of -100, +100, -100 … pA described as -100 pA each: half the sweeps move
+    against the current described, which the refusal puts down to the increment."""
+    from passivefit.model.recording import StepSpec
+
+    rec, _ = simulate(protocol=StepProtocol(0.1, 0.5, (-100e-12, 100e-12)), n_sweeps=4)
+    for sweep in rec.sweeps:
+        sweep.current = None
+    rec.current_source = ""
+    with pytest.raises(LoadError, match=r"moves against the current in 2 of 4 sweeps: the "
+                                        r"step's amplitude changes from sweep to sweep"):
+        analyze(rec, Settings(step=StepSpec(0.1, 0.5, -100e-12), bootstrap=0))
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("hum_mV", [0.0, 0.1])
 def test_mains_hum_is_named_and_measured(hum_mV):

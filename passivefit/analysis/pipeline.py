@@ -80,7 +80,7 @@ def analyze(recording: Recording, settings: Settings | None = None, *,
                                replace(automatic, fit_start_ms=auto_start / MS), auto_init)
         fits = [_with_cut_of(f, auto, voltages[f.index], fs, effective, tau_init)
                 for f, auto in zip(fits, found, strict=True)]
-    check_sign(fits, recording.path)
+    fits = check_sign(fits, recording.path)
     fits, active = leave_out_active(reject_outliers(fits))
     if sag_end is not None:
         fits = hyperpolarizing_only(fits)

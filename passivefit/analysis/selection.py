@@ -27,14 +27,28 @@ UNSTABLE_R_IN = 0.2
 STABLE_BAND = 0.1
 
 
-def check_sign(fits: list[SweepFit], path: str) -> None:
-    """Raise LoadError when most sweeps respond against their step (a sign error in
-    `--step` or an inverted current monitor), so no nonsense is fitted."""
-    r = [f.r_in_ohm for f in fits if f.r_in_ohm is not None]
-    if len(r) >= 1 and np.median(r) < 0:
-        raise LoadError(path, f"the voltage moves against the current in {sum(x < 0 for x in r)} "
-                        f"of {len(r)} sweeps (R_in {np.median(r) / MOHM:.0f} MΩ): the step's "
-                        "sign is wrong; check the sign in `--step` or the current channel")
+#: Sweeps that move against their current, as a share of those measured, beyond which
+#: the step as described is wrong rather than a sweep or two odd (common practice, no
+#: source).
+AGAINST_SHARE = 0.25
+
+
+def check_sign(fits: list[SweepFit], path: str) -> list[SweepFit]:
+    """The fits, a sweep whose voltage moves against its current rejected; LoadError
+    when many do (a sign error in `--step`, a forgotten increment, an inverted current
+    monitor), so no nonsense is fitted."""
+    r = np.array([f.r_in_ohm for f in fits if f.r_in_ohm is not None])
+    against = int(np.sum(r < 0))
+    if against and against >= max(2, AGAINST_SHARE * r.size) or r.size and np.median(r) < 0:
+        # all wrong: the sign; some right and some wrong: the amplitude changes too
+        what = ("the step's sign is wrong" if against == r.size else
+                "the step's amplitude changes from sweep to sweep (INCREMENT_PA in "
+                "`--step`) or its sign is wrong")
+        raise LoadError(path, f"the voltage moves against the current in {against} "
+                        f"of {r.size} sweeps: {what}; check `--step` or the current channel")
+    return [f if f.r_in_ohm is None or f.r_in_ohm >= 0 or not f.accepted else replace(
+        f, accepted=False, reject_reason=f"the voltage moves against the current (R_in "
+                                         f"{f.r_in_ohm / MOHM:.0f} MΩ)") for f in fits]
 
 
 def leave_out_active(fits: list[SweepFit]) -> tuple[list[SweepFit], list[Flag]]:
