@@ -227,6 +227,15 @@ class _Projected:
         out._cache_key = None
         return out
 
+    def take(self, rows: np.ndarray) -> _Projected:
+        """The stacked problems ``rows`` (indices on the leading axis) alone."""
+        out = type(self).__new__(type(self))
+        out.k = self.k
+        for name in ("u", "sw", "yw", "has_offset", "fixed", "scale", "n_points", "n_params"):
+            setattr(out, name, getattr(self, name)[rows])
+        out._cache_key = None
+        return out
+
     def basis(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Weighted design matrices (..., S, N, k+1) and exponentials (..., S, N, k)."""
         rate = np.exp(-theta)[..., None, None, :]
@@ -368,6 +377,7 @@ def _levenberg_marquardt(
     dof = np.maximum(prob.n_points - prob.n_params, 1)
     out: list[_Solution | None] = [None] * n_prob
     active = np.ones(n_prob, dtype=bool)
+    rows, sub = np.arange(n_prob), prob   # the problems still searching, alone
 
     def finish(which: np.ndarray, status: int, message: str, iterations: int) -> None:
         for i in np.flatnonzero(which):
@@ -375,47 +385,56 @@ def _levenberg_marquardt(
         active[which] = False
 
     for it in range(max_iter):
-        jac = prob.jacobian(theta)
-        grad = np.einsum("pmk,pm->pk", jac, r)
+        # every array below is of the active problems only (rows of the stack)
+        th, res, lo_a, hi_a = theta[rows], r[rows], lo[rows], hi[rows]
+        jac = sub.jacobian(th)
+        grad = np.einsum("pmk,pm->pk", jac, res)
         hess = np.swapaxes(jac, 1, 2) @ jac
         damp = np.maximum(np.diagonal(hess, axis1=1, axis2=2), 1e-300)
-        trial, cost_trial = theta.copy(), cost.copy()
-        searching = active.copy()
+        trial, cost_trial = th.copy(), cost[rows]
+        searching = np.ones(rows.size, dtype=bool)
         while searching.any():
-            try_theta = theta.copy()
-            step = _solve_each(hess[searching] + lam[searching, None, None]
-                               * (damp[searching, :, None] * np.eye(theta.shape[1])),
+            try_theta = th.copy()
+            step = _solve_each(hess[searching] + lam[rows[searching], None, None]
+                               * (damp[searching, :, None] * np.eye(th.shape[1])),
                                -grad[searching])
-            try_theta[searching] = np.clip(theta[searching] + step, lo[searching],
-                                           hi[searching])
-            r_try = prob.residual(try_theta)
+            try_theta[searching] = np.clip(th[searching] + step, lo_a[searching],
+                                           hi_a[searching])
+            r_try = sub.residual(try_theta)
             cost_try = np.einsum("pm,pm->p", r_try, r_try)
-            better = searching & (cost_try <= cost)
+            better = searching & (cost_try <= cost[rows])
             trial[better], cost_trial[better] = try_theta[better], cost_try[better]
-            worse = searching & ~better
+            worse = np.zeros(n_prob, dtype=bool)
+            worse[rows[searching & ~better]] = True
             lam[worse] *= nu[worse]
             nu[worse] *= 2.0
             finish(worse & (lam > 1e10), 1, "no further decrease of the cost", it)
-            searching = worse & active
-        moved = trial - theta
-        decrease = cost - cost_trial
+            searching = (worse & active)[rows]
+        moved = trial - th
+        decrease = cost[rows] - cost_trial
         # decrease of the linearised cost |r + J h|^2 for the step taken (after clipping)
         predicted = -np.einsum("pk,pk->p", moved, 2.0 * grad + np.einsum("pkl,pl->pk", hess,
                                                                           moved))
         with np.errstate(divide="ignore", invalid="ignore"):
             rho = np.where(predicted > 0, decrease / predicted, 0.0)
-        scaled = lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3)
-        lam = np.where(active, np.clip(scaled, 1e-12, 1e10), lam)
-        nu[active] = 2.0
-        theta = np.where(active[:, None], trial, theta)
-        cost = np.where(active, cost_trial, cost)
-        r = prob.residual(theta)
+        scaled = lam[rows] * np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3)
+        still = active[rows]
+        lam[rows] = np.where(still, np.clip(scaled, 1e-12, 1e10), lam[rows])
+        nu[rows[still]] = 2.0
+        theta[rows] = np.where(still[:, None], trial, th)
+        cost[rows] = np.where(still, cost_trial, cost[rows])
         # negligible against the statistical error of theta, or against rounding
-        se = np.sqrt(cost[:, None] / dof[:, None] * _inverse_diagonal(hess))
+        se = np.sqrt(cost[rows, None] / dof[rows, None] * _inverse_diagonal(hess))
         small = np.all(np.abs(moved) < np.maximum(_XTOL, _SE_FRACTION * se), axis=1)
-        finish(active & (small | (decrease <= _FTOL * cost)), 1, "converged", it + 1)
+        done = np.zeros(n_prob, dtype=bool)
+        done[rows[small | (decrease <= _FTOL * cost[rows])]] = True
+        finish(active & done, 1, "converged", it + 1)
         if not active.any():
             break
+        if not active[rows].all():
+            rows = np.flatnonzero(active)
+            sub = prob.take(rows)
+        r[rows] = sub.residual(theta[rows])
     finish(active, 0, f"no convergence in {max_iter} iterations", max_iter)
     return out
 
