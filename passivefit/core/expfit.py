@@ -123,8 +123,12 @@ class ExpFit:
     def evaluate(self, segment_index: int, t: np.ndarray) -> np.ndarray:
         """Model of one segment at times ``t`` (s from its edge); returns V."""
         t = np.asarray(t, dtype=float)
-        arg = np.minimum(-t[..., None] / self.taus, _MAX_EXP_ARG)
-        return self.offsets[segment_index] + np.exp(arg) @ self.amplitudes[segment_index]
+        e = np.divide(t[..., None], -self.taus)   # -t / tau, in place from here on
+        np.minimum(e, _MAX_EXP_ARG, out=e)
+        np.exp(e, out=e)
+        out = e @ self.amplitudes[segment_index]
+        out += self.offsets[segment_index]
+        return out
 
     def to_dict(self) -> dict:
         """Plain-JSON summary; keys carry their SI unit."""
