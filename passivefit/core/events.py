@@ -206,14 +206,15 @@ def _tail_kernels(shape: EventShape, fs_hz: float, n_pre: int, n_post: int, n_mi
 
 
 def _remove_background(x: np.ndarray, shape: EventShape, fs_hz: float) -> np.ndarray:
-    """`x` less its least-squares straight line and mains hum (shape.hum_hz)."""
-    t = np.arange(x.size) / fs_hz
+    """`x` less its least-squares straight line and mains hum (shape.hum_hz), along its
+    last axis (each row of a 2-d `x` on its own)."""
+    t = np.arange(x.shape[-1]) / fs_hz
     columns = [np.ones_like(t), t - t.mean()]
     for f in shape.hum_hz:
         columns += [np.sin(2 * np.pi * f * t), np.cos(2 * np.pi * f * t)]
     design = np.column_stack(columns)
-    coef, *_ = np.linalg.lstsq(design, x, rcond=None)
-    return x - design @ coef
+    coef, *_ = np.linalg.lstsq(design, x.T, rcond=None)
+    return x - (design @ coef).T
 
 
 def _quadratic_form(acov: np.ndarray, kac: np.ndarray) -> float:
@@ -318,22 +319,27 @@ def noise_model(
     outputs, highpassed, segment_sd = [], [], []
     acov, n_acov = np.zeros(max_lag + 1), 0
     kac = np.correlate(kernel, kernel, mode="full")[kernel.size - 1 : kernel.size + max_lag]
+    by_size: dict[int, list[np.ndarray]] = {}   # segments of one length are done together
     for seg in segments:
         seg = np.asarray(seg, dtype=float)
         if seg.ndim != 1 or not np.all(np.isfinite(seg)):
             raise ValueError("each baseline segment must be a 1-d array of finite voltages")
-        if seg.size < kernel.size:
-            continue
-        outputs.append(_correlate_valid(seg, shape, fs_hz, n_pre, n_post))
-        hp = seg[width // 2 : seg.size - width + 1 + width // 2] - np.convolve(
-            seg, np.ones(width) / width, mode="valid"
-        )
-        highpassed.append(hp)
-        x = _remove_background(seg, shape, fs_hz)
-        seg_acov = np.array([float(x[: x.size - lag] @ x[lag:]) for lag in range(max_lag + 1)])
-        acov += seg_acov
-        n_acov += x.size
-        segment_sd.append(math.sqrt(max(_quadratic_form(seg_acov / x.size, kac), 0.0)))
+        if seg.size >= kernel.size:
+            by_size.setdefault(seg.size, []).append(seg)
+    for size, group in by_size.items():
+        rows = np.stack(group)
+        outputs += list(_correlate_valid(rows, shape, fs_hz, n_pre, n_post))
+        for seg in group:
+            highpassed.append(seg[width // 2 : size - width + 1 + width // 2] - np.convolve(
+                seg, np.ones(width) / width, mode="valid"))
+        x = _remove_background(rows, shape, fs_hz)
+        # the autocovariance of each row, lag by lag
+        group_acov = np.stack([np.einsum("ij,ij->i", x[:, : size - lag], x[:, lag:])
+                               for lag in range(max_lag + 1)], axis=1)
+        for seg_acov in group_acov:
+            acov += seg_acov
+            n_acov += size
+            segment_sd.append(math.sqrt(max(_quadratic_form(seg_acov / size, kac), 0.0)))
     n_out = sum(o.size for o in outputs)
     if n_out < 100:
         raise ValueError(
