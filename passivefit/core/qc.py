@@ -75,22 +75,24 @@ def mains_hum(segments, fs: float, freqs_hz=(50.0, 60.0)) -> tuple[float, float,
     amplitude from n samples averages σ·√(π/n) (Rayleigh), the floor returned, in the
     units of the segments. The frequency with the larger amplitude is returned.
     """
+    kept = [y[np.isfinite(y)] for y in (np.asarray(y, dtype=float) for y in segments)]
+    kept = [y for y in kept if y.size >= 0.04 * fs]   # at least two mains periods
+    by_size: dict[int, list[int]] = {}   # segments of one length are fitted together
+    for k, y in enumerate(kept):
+        by_size.setdefault(y.size, []).append(k)
     best = (freqs_hz[0], 0.0, 0.0)
     for f in freqs_hz:
-        amps, floors = [], []
-        for y in segments:
-            y = np.asarray(y, dtype=float)
-            y = y[np.isfinite(y)]
-            if y.size < 0.04 * fs:   # less than two mains periods
-                continue
-            t = np.arange(y.size) / fs
+        amps, floors = np.zeros(len(kept)), np.zeros(len(kept))
+        for n, members in by_size.items():
+            t = np.arange(n) / fs
             basis = np.column_stack([np.sin(2 * np.pi * f * t), np.cos(2 * np.pi * f * t),
                                      np.ones_like(t), t - t.mean()])
+            y = np.stack([kept[k] for k in members], axis=1)
             coef, *_ = np.linalg.lstsq(basis, y, rcond=None)
             rest = y - basis @ coef
-            amps.append(float(np.hypot(coef[0], coef[1])))
-            floors.append(float(np.std(rest) * np.sqrt(np.pi / y.size)))
-        if amps and np.mean(amps) > best[1]:
+            amps[members] = np.hypot(coef[0], coef[1])
+            floors[members] = np.std(rest, axis=0) * np.sqrt(np.pi / n)
+        if kept and np.mean(amps) > best[1]:
             best = (f, float(np.mean(amps)), float(np.mean(floors)))
     return best
 
