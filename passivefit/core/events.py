@@ -426,12 +426,14 @@ def _scan_rows(rows: np.ndarray, fs_hz: float, noise: NoiseModel, skip_s: float
         amp[:, first:last + 1] = np.matmul(kernels[tail][:, None, :],
                                            windows[..., None])[..., 0, 0]
         sd[first:last + 1] = noise.detector_sd_V * norms[tail] / full_norm
-    out = []
-    for a in amp:
-        valid = np.isfinite(a)
-        onset = (np.flatnonzero(valid) + start) / fs_hz
-        out.append((onset, a[valid], a[valid] / sd[valid]))
-    return out
+    valid = np.isfinite(amp)
+    if not (valid == valid[0]).all():   # NaN in some residuals: each row apart
+        return [((np.flatnonzero(ok) + start) / fs_hz, a[ok], a[ok] / sd[ok])
+                for a, ok in zip(amp, valid, strict=True)]
+    cols = np.flatnonzero(valid[0])   # the same onsets in every row
+    onset, amp = (cols + start) / fs_hz, amp[:, cols]
+    z = amp / sd[cols]
+    return [(onset, a, row_z) for a, row_z in zip(amp, z, strict=True)]
 
 
 def _onset_confirmed(
