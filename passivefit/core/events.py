@@ -419,9 +419,9 @@ def _scan_rows(rows: np.ndarray, fs_hz: float, noise: NoiseModel, skip_s: float
     if last >= first:
         kernels, norms = _tail_kernels(shape, fs_hz, n_pre, n_post, n_min)
         tail = slice(n - first, n - last - 1 if n - last > 0 else None, -1)
+        end = np.concatenate((r[:, first - n_pre:], np.zeros((r.shape[0], n_post))), axis=1)
         windows = np.lib.stride_tricks.sliding_window_view(
-            np.concatenate((r, np.zeros((r.shape[0], n_post))), axis=1), n_pre + n_post,
-            axis=1)[:, first - n_pre:last - n_pre + 1]
+            end, n_pre + n_post, axis=1)[:, :last - first + 1]
         # row-wise dot products, as a stack of (1 x n) @ (n x 1) products (BLAS)
         amp[:, first:last + 1] = np.matmul(kernels[tail][:, None, :],
                                            windows[..., None])[..., 0, 0]
