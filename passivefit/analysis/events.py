@@ -97,7 +97,10 @@ def _unfitted(f: SweepFit, fs: float, n: int) -> list[tuple[int, int]]:
 
 def _finite_runs(r: np.ndarray) -> list[slice]:
     """The stretches of `r` without NaN."""
-    edges = np.flatnonzero(np.diff(np.concatenate(([0], np.isfinite(r).view(np.int8), [0]))))
+    finite = np.isfinite(r)
+    if finite.all():   # the usual case: nothing cut out
+        return [slice(0, r.size)] if r.size else []
+    edges = np.flatnonzero(np.diff(np.concatenate(([0], finite.view(np.int8), [0]))))
     return [slice(a, b) for a, b in zip(edges[0::2], edges[1::2], strict=True)]
 
 
