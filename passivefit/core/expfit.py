@@ -289,17 +289,19 @@ class _Projected:
         return -(a + b).reshape(self.resid.shape[:-2] + (-1, k))
 
     def full_jacobian(self, theta: np.ndarray) -> np.ndarray:
-        """Jacobian of the weighted model in (theta, coefficients of every segment)."""
+        """Jacobian of the weighted model in (theta, coefficients of every segment), shape
+        ([P,] S*N, k + S*(k+1)) for theta of shape ([P,] k)."""
         self._solve(theta)
-        k, n_seg = self.k, self.u.shape[0]
+        k, n_seg = self.k, self.u.shape[-2]
         phi, e = self.basis(theta)
-        d = (self.sw * self.u)[..., None] * np.exp(-theta) * e * self.coef[:, None, :k]
-        n_c = phi.shape[2]
-        jac = np.zeros((n_seg, phi.shape[1], k + n_seg * n_c))
+        d = ((self.sw * self.u)[..., None] * np.exp(-theta)[..., None, None, :] * e
+             * self.coef[..., :, None, :k])
+        n_c = phi.shape[-1]
+        jac = np.zeros(phi.shape[:-1] + (k + n_seg * n_c,))
         jac[..., :k] = d
         for s in range(n_seg):
-            jac[s, :, k + s * n_c : k + (s + 1) * n_c] = phi[s]
-        return jac.reshape(-1, jac.shape[2])
+            jac[..., s, :, k + s * n_c : k + (s + 1) * n_c] = phi[..., s, :, :]
+        return jac.reshape(jac.shape[:-3] + (-1, jac.shape[-1]))
 
 
 # ------------------------------------------------------------------- fitting
@@ -564,28 +566,64 @@ def fit_exponentials_many(
             solutions = _levenberg_marquardt(stacked, theta0, lo, hi)
         except np.linalg.LinAlgError:   # a singular step in one of them: each alone
             solutions = [None] * len(ready)
-        for (i, prob, lo_i, hi_i), sol in zip(ready, solutions, strict=True):
-            try:
-                if sol is not None and not _problems(sol.x, lo_i, hi_i, sol.status):
-                    out[i] = _summarize(prob, sol.x, sol.message, True)
-                else:
+        good = [(i, prob, sol) for (i, prob, lo_i, hi_i), sol in zip(ready, solutions, strict=True)
+                if sol is not None and not _problems(sol.x, lo_i, hi_i, sol.status)]
+        for i, fit in zip([i for i, _, _ in good], _summarize_many(
+                [(prob, sol.x, sol.message) for _, prob, sol in good]), strict=True):
+            out[i] = fit
+        for i, _, _, _ in ready:
+            if out[i] is None:
+                try:
                     out[i] = fit_exponentials(problems[i], n_components, tau_init, tau_bounds)
-            except ValueError as exc:
-                out[i] = exc
+                except ValueError as exc:
+                    out[i] = exc
     return out
 
 
-def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool) -> ExpFit:
+def _summarize_many(items: list[tuple[_Projected, np.ndarray, str]]
+                    ) -> list[ExpFit | ValueError]:
+    """:func:`_summarize` (a success) of each (problem, theta, message), or the ValueError
+    it raises; problems of one shape solved together (stacked: the same values)."""
+    groups: dict[tuple, list[int]] = {}
+    for j, (prob, _, _) in enumerate(items):
+        groups.setdefault((prob.u.shape, prob.has_offset.tobytes()), []).append(j)
+    out: list = [None] * len(items)
+    for members in groups.values():
+        solved = [None] * len(members)
+        if len(members) > 1:
+            try:
+                stacked = _Projected.stack([items[j][0] for j in members])
+                thetas = np.array([items[j][1] for j in members])
+                thetas = np.take_along_axis(thetas, np.argsort(thetas, axis=1)[:, ::-1], axis=1)
+                resid = stacked.residual(thetas)
+                jac = stacked.full_jacobian(thetas)
+                solved = list(zip(thetas, resid, jac, stacked.coef, strict=True))
+            except (ValueError, np.linalg.LinAlgError):
+                pass   # each on its own, to keep its own error
+        for j, pre in zip(members, solved, strict=True):
+            prob, theta, message = items[j]
+            try:
+                out[j] = _summarize(prob, theta, message, True, pre)
+            except ValueError as exc:
+                out[j] = exc
+    return out
 
+
+def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool,
+               solved: tuple | None = None) -> ExpFit:
+    """The ExpFit of `prob` at `theta`; `solved`: (sorted theta, residual, full Jacobian,
+    coefficients) computed already (:func:`_summarize_many`)."""
     k = prob.k
-    order = np.argsort(theta)[::-1]
-    theta = theta[order]
-    resid = prob.residual(theta)
+    if solved is None:
+        theta = theta[np.argsort(theta)[::-1]]
+        resid = prob.residual(theta)
+        jac, coef = prob.full_jacobian(theta), prob.coef
+    else:
+        theta, resid, jac, coef = solved
     rss = float(resid @ resid)
     n, p = prob.n_points, prob.n_params
     dof = max(n - p, 1)
     sigma2 = rss / dof
-    jac = prob.full_jacobian(theta)
     n_c = k + 1
     free = np.ones(jac.shape[1], dtype=bool)  # drop fixed-offset columns (all zero)
     for s in np.flatnonzero(~prob.has_offset):
@@ -597,12 +635,12 @@ def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool)
     taus = np.exp(theta) * prob.scale
     tau_se = taus * np.sqrt(var[:k])
     coef_se = np.sqrt(var[k:]).reshape(-1, n_c)
-    offsets = np.where(prob.has_offset, prob.coef[:, k], prob.fixed)
+    offsets = np.where(prob.has_offset, coef[:, k], prob.fixed)
     rss_safe = max(rss, np.finfo(float).tiny)
     loglik_term = n * math.log(rss_safe / n)
     return ExpFit(
         taus=taus,
-        amplitudes=prob.coef[:, :k].copy(),
+        amplitudes=coef[:, :k].copy(),
         offsets=offsets,
         tau_se=tau_se,
         tau_ci95=tau_se * t975(dof),
