@@ -243,7 +243,9 @@ class _Projected:
     def basis(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Weighted design matrices (..., S, N, k+1) and exponentials (..., S, N, k)."""
         rate = np.exp(-theta)[..., None, None, :]
-        e = np.exp(np.maximum(-self.u[..., None] * rate, -_MAX_EXP_ARG))
+        e = self.u[..., None] * -rate   # -u rate, in place from here on
+        np.maximum(e, -_MAX_EXP_ARG, out=e)
+        np.exp(e, out=e)
         const = (self.sw * self.has_offset[..., None])[..., None]
         phi = np.concatenate([e * self.sw[..., None], const], axis=-1)
         return phi, e
