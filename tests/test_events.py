@@ -165,3 +165,21 @@ def test_segment_edges_and_bad_input():
         ev.detect_events(np.zeros(3000), FS, -1.0)
     with pytest.raises(ValueError, match="`decay_s` must be longer"):
         ev.EventShape(rise_s=2e-3, decay_s=1e-3)
+
+
+def test_many_residuals_scanned_together_find_what_each_finds_alone():
+    # residuals of two lengths, with and without events (one with two, so the greedy
+    # search goes on past the joint first scan), and one too short to scan
+    rng = np.random.default_rng(21)
+    template = ev.EventShape().template(FS, 1.0)
+    res = []
+    for k in range(7):
+        r = 0.2e-3 * rng.normal(size=6000 if k % 2 else 9000)
+        for j in ((1500, 4200) if k == 3 else (2000,) if k % 3 == 0 else ()):
+            r[j:] += 1.2e-3 * template[: r.size - j]
+        res.append(r)
+    res.append(np.zeros(100))
+    model = ev.noise_model(0.2e-3 * rng.normal(size=8000), FS)
+    alone = [ev.detect_events(r, FS, model) for r in res]
+    assert ev.detect_events_many(res, FS, model) == alone
+    assert [len(found) for found in alone] == [1, 0, 0, 2, 0, 0, 1, 0]

@@ -378,3 +378,36 @@ def test_gain_ratio_damping_needs_few_iterations_on_noisy_sweeps():
         assert sol.status == 1, sol.message
         counts.append(sol.iterations)
     assert max(counts) < 100 and np.median(counts) <= 15, counts
+
+
+def test_summaries_of_stacked_problems_equal_their_own():
+    # the summaries of many fitted problems (fit_exponentials_many) are computed stacked
+    # where the problems have one shape: every field must equal the problem's own summary
+    # exactly; a problem of another shape, and one with a fixed offset, go alone
+    import dataclasses
+
+    from passivefit.core import expfit
+
+    rng = np.random.default_rng(4)
+    problems = []
+    for k in range(6):
+        short = dict(on_s=0.2, off_s=0.2) if k == 5 else {}
+        (t1, y1), (t2, y2) = step_pair((0.02, 0.002), (0.01, 0.002), rng, 1e-4, **short)
+        segs = [Segment(*decimate_tail(t1, y1, 5e-3)), Segment(*decimate_tail(t2, y2, 5e-3))]
+        if k == 4:
+            segs[1] = Segment(segs[1].t, segs[1].y, segs[1].weight, offset=-0.070)
+        problems.append(segs)
+    items = []
+    for segs in problems:
+        prob = expfit._Projected(expfit._check_segments(segs, 2), 2)
+        items.append((prob, np.log(np.array([0.002, 0.02]) / prob.scale), "converged"))
+    stacked = expfit._summarize_many(items)
+    kinds = [(item[0].u.shape, item[0].has_offset.tobytes()) for item in items]
+    assert len(set(kinds)) == 3 and kinds.count(kinds[0]) == 4   # one stack of 4
+    for (prob, theta, message), fit in zip(items, stacked, strict=True):
+        alone = expfit._summarize(prob, theta, message, True)
+        for f in dataclasses.fields(ExpFit):
+            a, b = getattr(alone, f.name), getattr(fit, f.name)
+            same = np.array_equal(a, b, equal_nan=True) if isinstance(a, np.ndarray) else a == b
+            assert same, f.name
+        assert fit.taus[0] > fit.taus[1]   # sorted slowest first, as fitted

@@ -112,15 +112,19 @@ def noise_autocorrelation(baselines: Sequence[np.ndarray], lags: int = AR_ORDER
         Largest lag, in samples.
     """
     total, acov, count = 0.0, np.zeros(lags + 1), 0
+    by_size: dict[int, list[np.ndarray]] = {}   # stretches of one length done together
     for x in baselines:
         x = np.asarray(x, dtype=float)
-        if x.size <= 2 * lags + 2:
-            continue
-        x = detrended(x)
-        for k in range(lags + 1):
-            acov[k] += float(np.dot(x[: x.size - k], x[k:]))
-        total += float(np.dot(x, x))
-        count += x.size
+        if x.size > 2 * lags + 2:
+            by_size.setdefault(x.size, []).append(x)
+    for n, group in by_size.items():
+        x = detrended(np.stack(group))   # each row about its own line
+        products = np.stack([np.einsum("ij,ij->i", x[:, : n - k], x[:, k:])
+                             for k in range(lags + 1)], axis=1)
+        for row in products:
+            acov += row
+            total += float(row[0])
+            count += n
     if count == 0 or total <= 0:
         raise ValueError(f"no baseline stretch longer than {2 * lags + 2} samples to measure "
                          "the noise from")
@@ -185,10 +189,8 @@ def fisher_information(jac: np.ndarray, sigma: float, acf: Sequence[float] | Non
 
 def _fir(b: np.ndarray, x: np.ndarray) -> np.ndarray:
     """`x` filtered along its first axis by the FIR filter `b` (zero history)."""
-    out = b[0] * x
-    for k in range(1, min(b.size, x.shape[0])):
-        out[k:] += b[k] * x[:-k]
-    return out
+    n = x.shape[0]
+    return np.column_stack([np.convolve(column, b)[:n] for column in x.T])
 
 
 def covariance(fisher: np.ndarray) -> np.ndarray:

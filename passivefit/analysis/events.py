@@ -55,19 +55,30 @@ def find_events(f: SweepFit, v: np.ndarray, fs: float, noise) -> list[tuple[floa
     of sweep `f`'s fit and in the rest of its step up to the steady state, when the fit
     ends early (raw voltage about its level: the detector's local background takes up the
     slow sag); cut-out samples count as no event."""
+    return find_events_many([f], [v], fs, noise)[0]
+
+
+def find_events_many(fits: list[SweepFit], voltages: list[np.ndarray], fs: float, noise
+                     ) -> list[list[tuple[float, float, float]]]:
+    """:func:`find_events` of each sweep of `fits` (voltages alike), the stretches of all
+    of them scanned together (core.events.detect_events_many)."""
     from passivefit.core import events
 
-    seen = f.corrected(v, fs)
-    parts = [residual(seen, f.fit, seg, fs) for seg in f.segments]
-    for a, b in _unfitted(f, fs, v.size):
-        part = seen[a:b]
-        parts.append((np.arange(a, b) / fs, part - np.nanmedian(part)))
-    found = []
-    for t, r in parts:
-        for run in _finite_runs(r):   # scanned apart: a cut-out stretch is no edge
-            found += [(float(t[run.start] + e.time_s), e.amplitude_V, e.z)
-                      for e in events.detect_events(r[run], fs, noise)]
-    return sorted(found)
+    runs, owners = [], []   # every stretch scanned, and (sweep, its start time in s)
+    for k, (f, v) in enumerate(zip(fits, voltages, strict=True)):
+        seen = f.corrected(v, fs)
+        parts = [residual(seen, f.fit, seg, fs) for seg in f.segments]
+        for a, b in _unfitted(f, fs, v.size):
+            part = seen[a:b]
+            parts.append((np.arange(a, b) / fs, part - np.nanmedian(part)))
+        for t, r in parts:
+            for run in _finite_runs(r):   # scanned apart: a cut-out stretch is no edge
+                runs.append(r[run])
+                owners.append((k, float(t[run.start])))
+    found: list[list] = [[] for _ in fits]
+    for (k, t0), got in zip(owners, events.detect_events_many(runs, fs, noise), strict=True):
+        found[k] += [(float(t0 + e.time_s), e.amplitude_V, e.z) for e in got]
+    return [sorted(x) for x in found]
 
 
 def _unfitted(f: SweepFit, fs: float, n: int) -> list[tuple[int, int]]:
@@ -86,7 +97,10 @@ def _unfitted(f: SweepFit, fs: float, n: int) -> list[tuple[int, int]]:
 
 def _finite_runs(r: np.ndarray) -> list[slice]:
     """The stretches of `r` without NaN."""
-    edges = np.flatnonzero(np.diff(np.concatenate(([0], np.isfinite(r).view(np.int8), [0]))))
+    finite = np.isfinite(r)
+    if finite.all():   # the usual case: nothing cut out
+        return [slice(0, r.size)] if r.size else []
+    edges = np.flatnonzero(np.diff(np.concatenate(([0], finite.view(np.int8), [0]))))
     return [slice(a, b) for a, b in zip(edges[0::2], edges[1::2], strict=True)]
 
 
@@ -97,13 +111,15 @@ def cut_out_events(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     noise = noise_model(fits, voltages, fs)
     if noise is None:
         return fits
+    scanned = [f for f in fits if f.accepted and f.fit is not None]
+    first = iter(find_events_many(scanned, [voltages[f.index] for f in scanned], fs, noise))
     out = []
     for f in fits:
         if not f.accepted or f.fit is None:
             out.append(f)
             continue
         v = voltages[f.index]
-        found = find_events(f, v, fs, noise)
+        found = next(first)
         if not found:
             out.append(f)
             continue

@@ -11,6 +11,7 @@ from passivefit.analysis.fits import (
     FIT_ERRORS,
     fit_exponentials,
     fit_segments,
+    fit_segments_rows,
     label_components,
     residual,
     response_amplitudes,
@@ -92,12 +93,7 @@ def _fit_sweeps(parts: list[tuple[np.ndarray, Step, dict]], fs: float, settings:
     (the usual case) the sweeps' first fits are searched together."""
     from passivefit.core.expfit import fit_exponentials_many
 
-    segments = []
-    for v, step, wins in parts:
-        try:
-            segments.append(fit_segments(v, fs, step, wins))
-        except FIT_ERRORS as exc:
-            segments.append(exc)
+    segments = _segments_of(parts, fs)
     together = tau_init is not None and settings.components == "auto"
     if together:   # single sweeps rarely resolve a third component
         n = min(len(tau_init), 2)
@@ -127,6 +123,33 @@ def _fit_sweeps(parts: list[tuple[np.ndarray, Step, dict]], fs: float, settings:
             out.append((None, (), f"fit failed: {exc}"))
             continue
         out.append((label_components(fit, step, records[0].charging), records, None))
+    return out
+
+
+def _segments_of(parts: list[tuple[np.ndarray, Step, dict]], fs: float) -> list:
+    """fit_segments of each (voltage, step, windows) of `parts`, or the error it raises;
+    sweeps of one length, step and windows (the usual case) binned together."""
+    groups: dict[tuple, list[int]] = {}
+    for k, (v, step, wins) in enumerate(parts):
+        groups.setdefault((v.size, step, tuple(sorted(wins.items()))), []).append(k)
+    out: list = [None] * len(parts)
+    for members in groups.values():
+        if len(members) > 1:
+            _, step, wins = parts[members[0]]
+            try:
+                rows = np.stack([parts[k][0] for k in members])
+                for k, found in zip(members, fit_segments_rows(rows, fs, step, wins),
+                                    strict=True):
+                    out[k] = found
+                continue
+            except FIT_ERRORS:
+                pass   # each on its own below, to keep its own error
+        for k in members:
+            v, step, wins = parts[k]
+            try:
+                out[k] = fit_segments(v, fs, step, wins)
+            except FIT_ERRORS as exc:
+                out[k] = exc
     return out
 
 

@@ -112,7 +112,7 @@ def resolve_windows(step: Step, n_samples: int, fs: float, w: Windows,
 
 def sample_index(t_s: float, fs: float, n: int) -> int:
     """The sample at time `t_s` (s), clipped to 0…n."""
-    return int(np.clip(round(t_s * fs), 0, n))
+    return int(min(max(round(t_s * fs), 0), n))   # not np.clip: 20 µs on a scalar
 
 
 def span(window: tuple[float, float], fs: float, n: int) -> tuple[int, int]:

@@ -730,41 +730,26 @@ class _Problem:
 
 
 
-@cache
-def _lapack():
-    """LAPACK's QR and triangular routines for float64 (lazy: loading a file needs no
-    scipy)."""
-    from scipy.linalg import get_lapack_funcs
-
-    return get_lapack_funcs(("geqrf", "orgqr", "trtrs", "trcon"), (np.zeros(1),))
-
-
 def _qr(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Reduced QR of a tall matrix, computed as numpy.linalg.qr does (LAPACK geqrf, then
-    orgqr) without its overhead: q and r, of which only the upper triangle is set."""
-    geqrf, orgqr, _, _ = _lapack()
-    qr, tau, _, info = geqrf(a)
-    if info:
-        raise np.linalg.LinAlgError(f"QR failed (LAPACK geqrf info {info})")
-    r = qr[:a.shape[1]].copy()
-    q, _, info = orgqr(qr, tau)
-    if info:
-        raise np.linalg.LinAlgError(f"QR failed (LAPACK orgqr info {info})")
-    return q, r
+    """Reduced QR of a tall matrix (numpy.linalg.qr: LAPACK geqrf, then orgqr): q and r.
+
+    numpy's and not scipy's: importing scipy.linalg costs more CPU than a whole fit."""
+    return np.linalg.qr(a)
 
 
 def _solve_r(r: np.ndarray, b: np.ndarray, transpose: bool = False) -> np.ndarray:
     """x with r x = b (r^T x = b with ``transpose``) for the upper triangle r of
-    :func:`_qr`: by substitution when r is well conditioned (reciprocal condition
-    number above 1e-10), else as the least-squares solution of numpy.linalg.lstsq."""
-    _, _, trtrs, trcon = _lapack()
-    rcond, info = trcon(r, norm="1")
-    if info == 0 and rcond > 1e-10:
-        x, info = trtrs(r, b, trans=int(transpose))
-        if info == 0:
-            return x
-    r = np.triu(r)
-    return np.linalg.lstsq(r.T if transpose else r, b, rcond=None)[0]
+    :func:`_qr`: by numpy.linalg.solve when r is well conditioned (reciprocal condition
+    number in the 1-norm above 1e-10), else as the least-squares solution of
+    numpy.linalg.lstsq."""
+    m = r.T if transpose else r
+    if np.all(np.diag(r) != 0):
+        with np.errstate(over="ignore"):
+            inverse = np.linalg.inv(r)
+        rcond = 1.0 / (np.abs(r).sum(axis=0).max() * np.abs(inverse).sum(axis=0).max())
+        if rcond > 1e-10:
+            return np.linalg.solve(m, b)
+    return np.linalg.lstsq(m, b, rcond=None)[0]
 
 
 def _check(segments: Sequence[CableSegment], corner_hz: float | None,

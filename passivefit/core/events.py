@@ -37,6 +37,7 @@ __all__ = [
     "EventShape",
     "NoiseModel",
     "detect_events",
+    "detect_events_many",
     "event_scan",
     "largest_event_z",
     "noise_model",
@@ -205,14 +206,15 @@ def _tail_kernels(shape: EventShape, fs_hz: float, n_pre: int, n_post: int, n_mi
 
 
 def _remove_background(x: np.ndarray, shape: EventShape, fs_hz: float) -> np.ndarray:
-    """`x` less its least-squares straight line and mains hum (shape.hum_hz)."""
-    t = np.arange(x.size) / fs_hz
+    """`x` less its least-squares straight line and mains hum (shape.hum_hz), along its
+    last axis (each row of a 2-d `x` on its own)."""
+    t = np.arange(x.shape[-1]) / fs_hz
     columns = [np.ones_like(t), t - t.mean()]
     for f in shape.hum_hz:
         columns += [np.sin(2 * np.pi * f * t), np.cos(2 * np.pi * f * t)]
     design = np.column_stack(columns)
-    coef, *_ = np.linalg.lstsq(design, x, rcond=None)
-    return x - design @ coef
+    coef, *_ = np.linalg.lstsq(design, x.T, rcond=None)
+    return x - (design @ coef).T
 
 
 def _quadratic_form(acov: np.ndarray, kac: np.ndarray) -> float:
@@ -223,14 +225,32 @@ def _quadratic_form(acov: np.ndarray, kac: np.ndarray) -> float:
 def _correlate_valid(x: np.ndarray, shape: EventShape, fs_hz: float, n_pre: int,
                      n_post: int) -> np.ndarray:
     """out[j] = sum_i w[i] * x[j + i] for every full overlap of the detector's full-window
-    kernel w (:func:`_kernel`), by FFT (numpy's: the scipy.signal import alone costs more
-    than a whole scan)."""
-    n, k = x.size, n_pre + n_post
+    kernel w (:func:`_kernel`), along the last axis of `x` (each row of a 2-d `x` alike),
+    by FFT (numpy's: the scipy.signal import alone costs more than a whole scan)."""
+    n, k = x.shape[-1], n_pre + n_post
     if n < k:
-        return np.zeros(0)
-    size = 1 << int(np.ceil(np.log2(n + k - 1)))
+        return np.zeros(x.shape[:-1] + (0,))
+    size = _fft_size(n + k - 1)
     spectrum = _kernel_spectrum(shape, fs_hz, n_pre, n_post, size)
-    return np.fft.irfft(np.fft.rfft(x, size) * spectrum, size)[k - 1: n]
+    return np.fft.irfft(np.fft.rfft(x, size) * spectrum, size)[..., k - 1: n]
+
+
+@lru_cache(maxsize=256)
+def _fft_size(n: int) -> int:
+    """The least 2^a 3^b 5^c >= n: numpy's FFT is fast on any such length, and one near
+    n costs up to half of the next power of 2."""
+    best = 1 << (n - 1).bit_length()
+    p5 = 1
+    while p5 < best:
+        p35 = p5
+        while p35 < best:
+            p = p35
+            while p < n:
+                p *= 2
+            best = min(best, p)
+            p35 *= 3
+        p5 *= 5
+    return best
 
 
 @lru_cache(maxsize=32)
@@ -299,22 +319,27 @@ def noise_model(
     outputs, highpassed, segment_sd = [], [], []
     acov, n_acov = np.zeros(max_lag + 1), 0
     kac = np.correlate(kernel, kernel, mode="full")[kernel.size - 1 : kernel.size + max_lag]
+    by_size: dict[int, list[np.ndarray]] = {}   # segments of one length are done together
     for seg in segments:
         seg = np.asarray(seg, dtype=float)
         if seg.ndim != 1 or not np.all(np.isfinite(seg)):
             raise ValueError("each baseline segment must be a 1-d array of finite voltages")
-        if seg.size < kernel.size:
-            continue
-        outputs.append(_correlate_valid(seg, shape, fs_hz, n_pre, n_post))
-        hp = seg[width // 2 : seg.size - width + 1 + width // 2] - np.convolve(
-            seg, np.ones(width) / width, mode="valid"
-        )
-        highpassed.append(hp)
-        x = _remove_background(seg, shape, fs_hz)
-        seg_acov = np.array([float(x[: x.size - lag] @ x[lag:]) for lag in range(max_lag + 1)])
-        acov += seg_acov
-        n_acov += x.size
-        segment_sd.append(math.sqrt(max(_quadratic_form(seg_acov / x.size, kac), 0.0)))
+        if seg.size >= kernel.size:
+            by_size.setdefault(seg.size, []).append(seg)
+    for size, group in by_size.items():
+        rows = np.stack(group)
+        outputs += list(_correlate_valid(rows, shape, fs_hz, n_pre, n_post))
+        for seg in group:
+            highpassed.append(seg[width // 2 : size - width + 1 + width // 2] - np.convolve(
+                seg, np.ones(width) / width, mode="valid"))
+        x = _remove_background(rows, shape, fs_hz)
+        # the autocovariance of each row, lag by lag
+        group_acov = np.stack([np.einsum("ij,ij->i", x[:, : size - lag], x[:, lag:])
+                               for lag in range(max_lag + 1)], axis=1)
+        for seg_acov in group_acov:
+            acov += seg_acov
+            n_acov += size
+            segment_sd.append(math.sqrt(max(_quadratic_form(seg_acov / size, kac), 0.0)))
     n_out = sum(o.size for o in outputs)
     if n_out < 100:
         raise ValueError(
@@ -368,32 +393,47 @@ def event_scan(
     if residual_V.ndim != 1:
         raise ValueError("`residual_V` must be a 1-d array")
     noise = _as_noise(noise, fs_hz, noise.shape if isinstance(noise, NoiseModel) else EventShape())
+    return _scan_rows(residual_V[None], fs_hz, noise, skip_s)[0]
+
+
+def _scan_rows(rows: np.ndarray, fs_hz: float, noise: NoiseModel, skip_s: float
+               ) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """:func:`event_scan` of each row of `rows` (residuals of one length, shape (m, N)),
+    made together: one FFT and one product over the stack."""
     shape = noise.shape
     n_pre, n_post, n_min = shape.samples(fs_hz)
     start = max(0, int(round(skip_s * fs_hz)))
-    r = residual_V[start:]
+    r = rows[:, start:]
+    n = r.shape[1]
     empty = np.zeros(0)
-    if r.size < n_pre + n_min:
-        return empty, empty, empty
+    if n < n_pre + n_min:
+        return [(empty, empty, empty)] * rows.shape[0]
     full = _kernel(shape, fs_hz, n_pre, n_post)
     full_norm = float(np.linalg.norm(full))
-    amp = np.full(r.size, np.nan)
-    sd = np.full(r.size, noise.detector_sd_V)
-    if r.size >= full.size:
-        amp[n_pre : r.size - n_post + 1] = _correlate_valid(r, shape, fs_hz, n_pre, n_post)
+    amp = np.full(r.shape, np.nan)
+    sd = np.full(n, noise.detector_sd_V)
+    if n >= full.size:
+        amp[:, n_pre : n - n_post + 1] = _correlate_valid(r, shape, fs_hz, n_pre, n_post)
     # shortened windows at the end of the segment (m samples left after the onset)
-    first, last = max(n_pre, r.size - n_post + 1), r.size - n_min   # onsets j, m = N - j
+    first, last = max(n_pre, n - n_post + 1), n - n_min   # onsets j, m = N - j
     if last >= first:
         kernels, norms = _tail_kernels(shape, fs_hz, n_pre, n_post, n_min)
-        rows = slice(r.size - first, r.size - last - 1 if r.size - last > 0 else None, -1)
+        tail = slice(n - first, n - last - 1 if n - last > 0 else None, -1)
+        end = np.concatenate((r[:, first - n_pre:], np.zeros((r.shape[0], n_post))), axis=1)
         windows = np.lib.stride_tricks.sliding_window_view(
-            np.concatenate((r, np.zeros(n_post))), n_pre + n_post)[first - n_pre:last - n_pre + 1]
+            end, n_pre + n_post, axis=1)[:, :last - first + 1]
         # row-wise dot products, as a stack of (1 x n) @ (n x 1) products (BLAS)
-        amp[first:last + 1] = np.matmul(kernels[rows][:, None, :], windows[:, :, None])[:, 0, 0]
-        sd[first:last + 1] = noise.detector_sd_V * norms[rows] / full_norm
+        amp[:, first:last + 1] = np.matmul(kernels[tail][:, None, :],
+                                           windows[..., None])[..., 0, 0]
+        sd[first:last + 1] = noise.detector_sd_V * norms[tail] / full_norm
     valid = np.isfinite(amp)
-    onset = (np.flatnonzero(valid) + start) / fs_hz
-    return onset, amp[valid], amp[valid] / sd[valid]
+    if not (valid == valid[0]).all():   # NaN in some residuals: each row apart
+        return [((np.flatnonzero(ok) + start) / fs_hz, a[ok], a[ok] / sd[ok])
+                for a, ok in zip(amp, valid, strict=True)]
+    cols = np.flatnonzero(valid[0])   # the same onsets in every row
+    onset, amp = (cols + start) / fs_hz, amp[:, cols]
+    z = amp / sd[cols]
+    return [(onset, a, row_z) for a, row_z in zip(amp, z, strict=True)]
 
 
 def _onset_confirmed(
@@ -464,14 +504,51 @@ def detect_events(
         In the order found (largest |z| first); times from the first sample of
         `residual_V`.
     """
+    return detect_events_many([residual_V], fs_hz, noise, threshold_z=threshold_z,
+                              skip_s=skip_s, max_events=max_events)[0]
+
+
+def detect_events_many(
+    residuals_V: Sequence[np.ndarray],
+    fs_hz: float,
+    noise: NoiseModel | float,
+    *,
+    threshold_z: float = EVENT_Z,
+    skip_s: float = 1e-3,
+    max_events: int = 50,
+) -> list[tuple[Event, ...]]:
+    """:func:`detect_events` of each residual, the first scans of residuals of one length
+    made together (e.g. the same stretch of every sweep).
+
+    Parameters are those of :func:`detect_events`, `residuals_V` a sequence of 1-d
+    residuals; returns what it returns for each, in order.
+    """
     if not (math.isfinite(threshold_z) and threshold_z > 0):
         raise ValueError(f"`threshold_z` must be a finite positive number, got {threshold_z!r}")
-    r = np.array(residual_V, dtype=float)
     noise = _as_noise(noise, fs_hz, noise.shape if isinstance(noise, NoiseModel) else EventShape())
+    rows = [np.array(r, dtype=float) for r in residuals_V]
+    if any(r.ndim != 1 for r in rows):
+        raise ValueError("`residual_V` must be a 1-d array")
+    by_size: dict[int, list[int]] = {}
+    for i, r in enumerate(rows):
+        by_size.setdefault(r.size, []).append(i)
+    first: list = [None] * len(rows)
+    for members in by_size.values():
+        scans = _scan_rows(np.stack([rows[i] for i in members]), fs_hz, noise, skip_s)
+        for i, scan in zip(members, scans, strict=True):
+            first[i] = scan
+    return [_greedy(r, fs_hz, noise, threshold_z, skip_s, max_events, scan)
+            for r, scan in zip(rows, first, strict=True)]
+
+
+def _greedy(r: np.ndarray, fs_hz: float, noise: NoiseModel, threshold_z: float,
+            skip_s: float, max_events: int, scan: tuple) -> tuple[Event, ...]:
+    """The greedy search of :func:`detect_events` in `r` (changed in place), from its
+    first `scan` (:func:`event_scan`)."""
     template = None   # made when the first event is found
     events: list[Event] = []
     for _ in range(max_events):
-        onset, amp, z = event_scan(r, fs_hz, noise, skip_s=skip_s)
+        onset, amp, z = scan
         if z.size == 0:
             break
         strong = np.flatnonzero(np.abs(z) >= threshold_z)   # only these can be taken
@@ -486,4 +563,5 @@ def detect_events(
             template = noise.shape.template(fs_hz, r.size / fs_hz)
         j = int(round(onset[i] * fs_hz))
         r[j:] -= amp[i] * template[: r.size - j]
+        scan = _scan_rows(r[None], fs_hz, noise, skip_s)[0]
     return tuple(events)

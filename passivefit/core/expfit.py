@@ -123,8 +123,12 @@ class ExpFit:
     def evaluate(self, segment_index: int, t: np.ndarray) -> np.ndarray:
         """Model of one segment at times ``t`` (s from its edge); returns V."""
         t = np.asarray(t, dtype=float)
-        arg = np.minimum(-t[..., None] / self.taus, _MAX_EXP_ARG)
-        return self.offsets[segment_index] + np.exp(arg) @ self.amplitudes[segment_index]
+        e = np.divide(t[..., None], -self.taus)   # -t / tau, in place from here on
+        np.minimum(e, _MAX_EXP_ARG, out=e)
+        np.exp(e, out=e)
+        out = e @ self.amplitudes[segment_index]
+        out += self.offsets[segment_index]
+        return out
 
     def to_dict(self) -> dict:
         """Plain-JSON summary; keys carry their SI unit."""
@@ -227,10 +231,21 @@ class _Projected:
         out._cache_key = None
         return out
 
+    def take(self, rows: np.ndarray) -> _Projected:
+        """The stacked problems ``rows`` (indices on the leading axis) alone."""
+        out = type(self).__new__(type(self))
+        out.k = self.k
+        for name in ("u", "sw", "yw", "has_offset", "fixed", "scale", "n_points", "n_params"):
+            setattr(out, name, getattr(self, name)[rows])
+        out._cache_key = None
+        return out
+
     def basis(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Weighted design matrices (..., S, N, k+1) and exponentials (..., S, N, k)."""
         rate = np.exp(-theta)[..., None, None, :]
-        e = np.exp(np.maximum(-self.u[..., None] * rate, -_MAX_EXP_ARG))
+        e = self.u[..., None] * -rate   # -u rate, in place from here on
+        np.maximum(e, -_MAX_EXP_ARG, out=e)
+        np.exp(e, out=e)
         const = (self.sw * self.has_offset[..., None])[..., None]
         phi = np.concatenate([e * self.sw[..., None], const], axis=-1)
         return phi, e
@@ -276,17 +291,19 @@ class _Projected:
         return -(a + b).reshape(self.resid.shape[:-2] + (-1, k))
 
     def full_jacobian(self, theta: np.ndarray) -> np.ndarray:
-        """Jacobian of the weighted model in (theta, coefficients of every segment)."""
+        """Jacobian of the weighted model in (theta, coefficients of every segment), shape
+        ([P,] S*N, k + S*(k+1)) for theta of shape ([P,] k)."""
         self._solve(theta)
-        k, n_seg = self.k, self.u.shape[0]
+        k, n_seg = self.k, self.u.shape[-2]
         phi, e = self.basis(theta)
-        d = (self.sw * self.u)[..., None] * np.exp(-theta) * e * self.coef[:, None, :k]
-        n_c = phi.shape[2]
-        jac = np.zeros((n_seg, phi.shape[1], k + n_seg * n_c))
+        d = ((self.sw * self.u)[..., None] * np.exp(-theta)[..., None, None, :] * e
+             * self.coef[..., :, None, :k])
+        n_c = phi.shape[-1]
+        jac = np.zeros(phi.shape[:-1] + (k + n_seg * n_c,))
         jac[..., :k] = d
         for s in range(n_seg):
-            jac[s, :, k + s * n_c : k + (s + 1) * n_c] = phi[s]
-        return jac.reshape(-1, jac.shape[2])
+            jac[..., s, :, k + s * n_c : k + (s + 1) * n_c] = phi[..., s, :, :]
+        return jac.reshape(jac.shape[:-3] + (-1, jac.shape[-1]))
 
 
 # ------------------------------------------------------------------- fitting
@@ -368,6 +385,7 @@ def _levenberg_marquardt(
     dof = np.maximum(prob.n_points - prob.n_params, 1)
     out: list[_Solution | None] = [None] * n_prob
     active = np.ones(n_prob, dtype=bool)
+    rows, sub = np.arange(n_prob), prob   # the problems still searching, alone
 
     def finish(which: np.ndarray, status: int, message: str, iterations: int) -> None:
         for i in np.flatnonzero(which):
@@ -375,47 +393,56 @@ def _levenberg_marquardt(
         active[which] = False
 
     for it in range(max_iter):
-        jac = prob.jacobian(theta)
-        grad = np.einsum("pmk,pm->pk", jac, r)
+        # every array below is of the active problems only (rows of the stack)
+        th, res, lo_a, hi_a = theta[rows], r[rows], lo[rows], hi[rows]
+        jac = sub.jacobian(th)
+        grad = np.einsum("pmk,pm->pk", jac, res)
         hess = np.swapaxes(jac, 1, 2) @ jac
         damp = np.maximum(np.diagonal(hess, axis1=1, axis2=2), 1e-300)
-        trial, cost_trial = theta.copy(), cost.copy()
-        searching = active.copy()
+        trial, cost_trial = th.copy(), cost[rows]
+        searching = np.ones(rows.size, dtype=bool)
         while searching.any():
-            try_theta = theta.copy()
-            step = _solve_each(hess[searching] + lam[searching, None, None]
-                               * (damp[searching, :, None] * np.eye(theta.shape[1])),
+            try_theta = th.copy()
+            step = _solve_each(hess[searching] + lam[rows[searching], None, None]
+                               * (damp[searching, :, None] * np.eye(th.shape[1])),
                                -grad[searching])
-            try_theta[searching] = np.clip(theta[searching] + step, lo[searching],
-                                           hi[searching])
-            r_try = prob.residual(try_theta)
+            try_theta[searching] = np.clip(th[searching] + step, lo_a[searching],
+                                           hi_a[searching])
+            r_try = sub.residual(try_theta)
             cost_try = np.einsum("pm,pm->p", r_try, r_try)
-            better = searching & (cost_try <= cost)
+            better = searching & (cost_try <= cost[rows])
             trial[better], cost_trial[better] = try_theta[better], cost_try[better]
-            worse = searching & ~better
+            worse = np.zeros(n_prob, dtype=bool)
+            worse[rows[searching & ~better]] = True
             lam[worse] *= nu[worse]
             nu[worse] *= 2.0
             finish(worse & (lam > 1e10), 1, "no further decrease of the cost", it)
-            searching = worse & active
-        moved = trial - theta
-        decrease = cost - cost_trial
+            searching = (worse & active)[rows]
+        moved = trial - th
+        decrease = cost[rows] - cost_trial
         # decrease of the linearised cost |r + J h|^2 for the step taken (after clipping)
         predicted = -np.einsum("pk,pk->p", moved, 2.0 * grad + np.einsum("pkl,pl->pk", hess,
                                                                           moved))
         with np.errstate(divide="ignore", invalid="ignore"):
             rho = np.where(predicted > 0, decrease / predicted, 0.0)
-        scaled = lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3)
-        lam = np.where(active, np.clip(scaled, 1e-12, 1e10), lam)
-        nu[active] = 2.0
-        theta = np.where(active[:, None], trial, theta)
-        cost = np.where(active, cost_trial, cost)
-        r = prob.residual(theta)
+        scaled = lam[rows] * np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3)
+        still = active[rows]
+        lam[rows] = np.where(still, np.clip(scaled, 1e-12, 1e10), lam[rows])
+        nu[rows[still]] = 2.0
+        theta[rows] = np.where(still[:, None], trial, th)
+        cost[rows] = np.where(still, cost_trial, cost[rows])
         # negligible against the statistical error of theta, or against rounding
-        se = np.sqrt(cost[:, None] / dof[:, None] * _inverse_diagonal(hess))
+        se = np.sqrt(cost[rows, None] / dof[rows, None] * _inverse_diagonal(hess))
         small = np.all(np.abs(moved) < np.maximum(_XTOL, _SE_FRACTION * se), axis=1)
-        finish(active & (small | (decrease <= _FTOL * cost)), 1, "converged", it + 1)
+        done = np.zeros(n_prob, dtype=bool)
+        done[rows[small | (decrease <= _FTOL * cost[rows])]] = True
+        finish(active & done, 1, "converged", it + 1)
         if not active.any():
             break
+        if not active[rows].all():
+            rows = np.flatnonzero(active)
+            sub = prob.take(rows)
+        r[rows] = sub.residual(theta[rows])
     finish(active, 0, f"no convergence in {max_iter} iterations", max_iter)
     return out
 
@@ -541,28 +568,64 @@ def fit_exponentials_many(
             solutions = _levenberg_marquardt(stacked, theta0, lo, hi)
         except np.linalg.LinAlgError:   # a singular step in one of them: each alone
             solutions = [None] * len(ready)
-        for (i, prob, lo_i, hi_i), sol in zip(ready, solutions, strict=True):
-            try:
-                if sol is not None and not _problems(sol.x, lo_i, hi_i, sol.status):
-                    out[i] = _summarize(prob, sol.x, sol.message, True)
-                else:
+        good = [(i, prob, sol) for (i, prob, lo_i, hi_i), sol in zip(ready, solutions, strict=True)
+                if sol is not None and not _problems(sol.x, lo_i, hi_i, sol.status)]
+        for i, fit in zip([i for i, _, _ in good], _summarize_many(
+                [(prob, sol.x, sol.message) for _, prob, sol in good]), strict=True):
+            out[i] = fit
+        for i, _, _, _ in ready:
+            if out[i] is None:
+                try:
                     out[i] = fit_exponentials(problems[i], n_components, tau_init, tau_bounds)
-            except ValueError as exc:
-                out[i] = exc
+                except ValueError as exc:
+                    out[i] = exc
     return out
 
 
-def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool) -> ExpFit:
+def _summarize_many(items: list[tuple[_Projected, np.ndarray, str]]
+                    ) -> list[ExpFit | ValueError]:
+    """:func:`_summarize` (a success) of each (problem, theta, message), or the ValueError
+    it raises; problems of one shape solved together (stacked: the same values)."""
+    groups: dict[tuple, list[int]] = {}
+    for j, (prob, _, _) in enumerate(items):
+        groups.setdefault((prob.u.shape, prob.has_offset.tobytes()), []).append(j)
+    out: list = [None] * len(items)
+    for members in groups.values():
+        solved = [None] * len(members)
+        if len(members) > 1:
+            try:
+                stacked = _Projected.stack([items[j][0] for j in members])
+                thetas = np.array([items[j][1] for j in members])
+                thetas = np.take_along_axis(thetas, np.argsort(thetas, axis=1)[:, ::-1], axis=1)
+                resid = stacked.residual(thetas)
+                jac = stacked.full_jacobian(thetas)
+                solved = list(zip(thetas, resid, jac, stacked.coef, strict=True))
+            except (ValueError, np.linalg.LinAlgError):
+                pass   # each on its own, to keep its own error
+        for j, pre in zip(members, solved, strict=True):
+            prob, theta, message = items[j]
+            try:
+                out[j] = _summarize(prob, theta, message, True, pre)
+            except ValueError as exc:
+                out[j] = exc
+    return out
 
+
+def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool,
+               solved: tuple | None = None) -> ExpFit:
+    """The ExpFit of `prob` at `theta`; `solved`: (sorted theta, residual, full Jacobian,
+    coefficients) computed already (:func:`_summarize_many`)."""
     k = prob.k
-    order = np.argsort(theta)[::-1]
-    theta = theta[order]
-    resid = prob.residual(theta)
+    if solved is None:
+        theta = theta[np.argsort(theta)[::-1]]
+        resid = prob.residual(theta)
+        jac, coef = prob.full_jacobian(theta), prob.coef
+    else:
+        theta, resid, jac, coef = solved
     rss = float(resid @ resid)
     n, p = prob.n_points, prob.n_params
     dof = max(n - p, 1)
     sigma2 = rss / dof
-    jac = prob.full_jacobian(theta)
     n_c = k + 1
     free = np.ones(jac.shape[1], dtype=bool)  # drop fixed-offset columns (all zero)
     for s in np.flatnonzero(~prob.has_offset):
@@ -574,12 +637,12 @@ def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool)
     taus = np.exp(theta) * prob.scale
     tau_se = taus * np.sqrt(var[:k])
     coef_se = np.sqrt(var[k:]).reshape(-1, n_c)
-    offsets = np.where(prob.has_offset, prob.coef[:, k], prob.fixed)
+    offsets = np.where(prob.has_offset, coef[:, k], prob.fixed)
     rss_safe = max(rss, np.finfo(float).tiny)
     loglik_term = n * math.log(rss_safe / n)
     return ExpFit(
         taus=taus,
-        amplitudes=prob.coef[:, :k].copy(),
+        amplitudes=coef[:, :k].copy(),
         offsets=offsets,
         tau_se=tau_se,
         tau_ci95=tau_se * t975(dof),
