@@ -58,10 +58,25 @@ def find_events(f: SweepFit, v: np.ndarray, fs: float, noise) -> list[tuple[floa
     return find_events_many([f], [v], fs, noise)[0]
 
 
+#: Samples of the sweeps whose stretches are scanned together: the scan holds several
+#: float64 arrays of each (16 MB per array at most).
+_TOGETHER_SAMPLES = 2_000_000
+
+
 def find_events_many(fits: list[SweepFit], voltages: list[np.ndarray], fs: float, noise
                      ) -> list[list[tuple[float, float, float]]]:
-    """:func:`find_events` of each sweep of `fits` (voltages alike), the stretches of all
-    of them scanned together (core.events.detect_events_many)."""
+    """:func:`find_events` of each sweep of `fits` (voltages alike), the stretches of as
+    many of them as _TOGETHER_SAMPLES allows scanned together
+    (core.events.detect_events_many)."""
+    per_pass = max(1, _TOGETHER_SAMPLES // max((v.size for v in voltages), default=1))
+    return [found for a in range(0, len(fits), per_pass)
+            for found in _find_together(fits[a:a + per_pass], voltages[a:a + per_pass], fs,
+                                        noise)]
+
+
+def _find_together(fits: list[SweepFit], voltages: list[np.ndarray], fs: float, noise
+                   ) -> list[list[tuple[float, float, float]]]:
+    """:func:`find_events_many` of sweeps scanned together."""
     from passivefit.core import events
 
     runs, owners = [], []   # every stretch scanned, and (sweep, its start time in s)
