@@ -79,6 +79,19 @@ def test_a_test_pulse_before_a_train_is_chosen_and_the_train_listed():
     assert classify_stimulus(current, FS) == "step"
 
 
+def test_a_long_step_is_chosen_over_a_brief_test_pulse_before_it():
+    """A 10 ms bridge-check pulse at 20 ms, then the 1 s step the protocol is about
+    (as many acquisition protocols do; common practice, no source): a 10 ms step cannot
+    show a steady state, so the long step is analysed; a sweep whose long step is 0 pA
+    gets none rather than its test pulse."""
+    sweeps = [_levels(40_000, (0.02, 0.01, -50 * PA), (0.3, 1.0, amp * PA))
+              for amp in (-90, -50, 0, 50)]
+    assert find_step(sweeps[0], FS).onset_s == pytest.approx(0.3)
+    chosen = common_steps([find_steps(c, FS) for c in sweeps])
+    assert [None if s is None else (round(s.onset_s, 3), round(s.amplitude_A / PA))
+            for s in chosen] == [(0.3, -90), (0.3, -50), None, (0.3, 50)]
+
+
 def test_a_noisy_recorded_current_with_offset_and_capacitive_spikes():
     rng = np.random.default_rng(7)
     current = 79 * PA + _levels(60_000, (0.25, 0.25, -49 * PA))

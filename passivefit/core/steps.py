@@ -28,6 +28,9 @@ MIN_DURATION_S = 0.2e-3
 MIN_AMPLITUDE_A = 0.5e-12
 #: Baseline at the pre-step level that `find_step` wants before the step it returns.
 MIN_BASELINE_S = 5e-3
+#: A step this long can show a steady state (several τ0 of 10–60 ms, docs/references.md
+#: §7); a shorter one before it (a 10–20 ms test pulse) is not the one analysed.
+SETTLED_STEP_S = 50e-3
 #: An edge is this many noise standard deviations of the edge detector (common
 #: practice for robust change detection, no source).
 EDGE_NOISE_SD = 8.0
@@ -408,14 +411,25 @@ def analysable(step: Step, min_baseline_s: float = MIN_BASELINE_S) -> bool:
     return step.from_rest and step.baseline_s >= min_baseline_s
 
 
+def _first_analysable(steps: list[Step], min_baseline_s: float = MIN_BASELINE_S
+                      ) -> Step | None:
+    """The first analysable step of at least SETTLED_STEP_S, else the first analysable
+    one of any length (a brief pulse, a short step)."""
+    usable = [s for s in steps if analysable(s, min_baseline_s)]
+    return next((s for s in usable if s.duration_s >= SETTLED_STEP_S), None) or next(
+        iter(usable), None)
+
+
 def find_step(current: np.ndarray, sample_rate_hz: float,
               min_amplitude_A: float = MIN_AMPLITUDE_A) -> Step | None:
     """The step of a sweep that a physiologist would analyse.
 
     The rule: of all steps and pulses (`find_steps`), the first that leaves the
     holding level (not another step's level) after at least `MIN_BASELINE_S` of flat
-    baseline. A test pulse before a train is therefore chosen over the train, and the
-    first of two consecutive steps over the second.
+    baseline and lasts at least `SETTLED_STEP_S`; without one that long, the first of
+    any length. A test pulse before a train is therefore chosen over the train, the
+    first of two consecutive steps over the second, and a long step over a brief test
+    pulse before it.
 
     Parameters
     ----------
@@ -431,15 +445,14 @@ def find_step(current: np.ndarray, sample_rate_hz: float,
     Step or None
         None when the sweep holds no such step.
     """
-    return next((s for s in find_steps(current, sample_rate_hz, min_amplitude_A)
-                 if analysable(s)), None)
+    return _first_analysable(find_steps(current, sample_rate_hz, min_amplitude_A))
 
 
 def common_steps(per_sweep: list[list[Step]],
                  min_baseline_s: float = MIN_BASELINE_S) -> list[Step | None]:
     """One step per sweep, all at the protocol's analysed position.
 
-    Each sweep's first analysable step (`find_step`'s rule) votes for its onset; the
+    Each sweep's analysable step (`find_step`'s rule) votes for its onset; the
     onset with most votes wins, and every sweep gets its analysable step starting
     there (within 1 ms), or None. A sweep whose variable step is 0 pA then gives None
     instead of the next step in its sweep.
@@ -456,8 +469,7 @@ def common_steps(per_sweep: list[list[Step]],
     list of (Step or None)
         One entry per sweep.
     """
-    firsts = [next((s for s in steps if analysable(s, min_baseline_s)), None)
-              for steps in per_sweep]
+    firsts = [_first_analysable(steps, min_baseline_s) for steps in per_sweep]
     onsets = np.asarray([s.onset_s for s in firsts if s is not None])
     if onsets.size == 0:
         return [None] * len(per_sweep)
