@@ -198,7 +198,7 @@ class TraceView(QtWidgets.QWidget):
         """The sweep on screen: bold trace, step edges, windows, fit and residuals."""
         index = state.current
         v = state.voltage(index)
-        self._v = v
+        self._v = state.analysed_voltage(index)   # what the fit saw, for the residuals
         self._bold.setData(np.arange(v.size) / state.fs / MS, v / MV)
         step = state.steps.get(index)
         for line, edge in zip(self._edges, (step.onset, step.offset) if step else (), strict=False):

@@ -467,6 +467,13 @@ class ReviewState:
         """Voltage of sweep `index`, in V."""
         return self._voltage[index]
 
+    def analysed_voltage(self, index: int):
+        """Voltage of sweep `index` as the analysis fitted it (its mains hum taken out),
+        in V; the recorded one before the analysis."""
+        start = self._start
+        return self._voltage[index] if start is None else start.voltages.get(
+            index, self._voltage[index])
+
     def sweep_fit(self, index: int | None = None) -> SweepFit | None:
         """The newest fit of a sweep: a live refit if there is one, else the analysis's."""
         index = self.current if index is None else index
@@ -570,11 +577,9 @@ class ReviewState:
         asked = settings or self.settings
         step = self.steps[index]
         start = self._start
-        v = self._voltage[index]
+        v = self.analysed_voltage(index)
         if step is not None:
             v = v[:step.region_end]
-        if start is not None:            # as the analysis read it (its hum taken out)
-            v = start.voltages.get(index, v)
         if start is None:
             fit = analyze_sweep(v, step, index, self.fs, asked,
                                 cache=self._prep.setdefault(index, {}))
