@@ -24,6 +24,25 @@ def recording_file(tmp_path_factory) -> Path:
     return save(recording, tmp_path_factory.mktemp("rec") / "LOL-2026-12-01-c9.csv")
 
 
+@pytest.fixture(autouse=True)
+def _qt_garbage_freed_in_the_gui_thread():
+    """After a test that used Qt, its closed windows are deleted and their Python
+    garbage collected here, in the GUI thread: left for later, a collection triggered in
+    the next test's analysis thread would free Qt objects there and can deadlock."""
+    yield
+    import sys
+
+    if "PySide6" in sys.modules:
+        import gc
+
+        from PySide6 import QtCore, QtWidgets
+
+        app = QtWidgets.QApplication.instance()
+        if app is not None:
+            app.sendPostedEvents(None, QtCore.QEvent.Type.DeferredDelete)
+        gc.collect()
+
+
 @pytest.fixture
 def make_window(qtbot, tmp_path):
     """A ReviewWindow (not yet open on anything) with a private settings store."""

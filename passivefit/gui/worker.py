@@ -6,9 +6,17 @@ arrive, only the newest is run (the others would be thrown away anyway).
 
 from __future__ import annotations
 
+import gc
 import threading
 
 from PySide6 import QtCore
+
+
+def _collect_here() -> None:
+    """Free the garbage now, in the GUI thread. Qt objects left in reference cycles (a
+    closed window's widgets) must be freed in the thread that owns them: a collection
+    that a worker's allocations trigger would free them there, and Qt can deadlock."""
+    gc.collect()
 
 
 class _Signals(QtCore.QObject):
@@ -67,6 +75,7 @@ class AnalysisRunner(QtCore.QObject):
     def _start(self, owner, settings) -> None:
         self._running = True
         self.busy_changed.emit(True)
+        _collect_here()
         self.pool.start(_Job(owner, settings, self._signals))
 
     def _done(self, owner, _settings, result, error: str) -> None:
@@ -144,6 +153,7 @@ class FolderRunner(QtCore.QObject):
             return False
         self.busy = True
         self._stop = threading.Event()
+        _collect_here()
         self.pool.start(_FolderJob([str(p) for p in paths], str(target), settings, workers,
                                    self._signals, self._stop))
         return True
