@@ -532,13 +532,12 @@ def detect_events_many(
     by_size: dict[int, list[int]] = {}
     for i, r in enumerate(rows):
         by_size.setdefault(r.size, []).append(i)
-    first: list = [None] * len(rows)
-    for members in by_size.values():
+    out: list = [None] * len(rows)
+    for members in by_size.values():   # each group searched as soon as it is scanned
         scans = _scan_rows(np.stack([rows[i] for i in members]), fs_hz, noise, skip_s)
         for i, scan in zip(members, scans, strict=True):
-            first[i] = scan
-    return [_greedy(r, fs_hz, noise, threshold_z, skip_s, max_events, scan)
-            for r, scan in zip(rows, first, strict=True)]
+            out[i] = _greedy(rows[i], fs_hz, noise, threshold_z, skip_s, max_events, scan)
+    return out
 
 
 def _greedy(r: np.ndarray, fs_hz: float, noise: NoiseModel, threshold_z: float,
