@@ -110,13 +110,14 @@ def sag(used: list[SweepFit]) -> tuple[dict, list[Flag]]:
 
 
 def hum(used: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,
-        removed: Hum | None = None) -> tuple[dict, list[Flag]]:
-    """50 or 60 Hz mains hum in the sweeps' baselines (analysis.hum): as `removed` before
-    the fits, else as seen in the accepted sweeps."""
+        found_first: Hum | None = None) -> tuple[dict, list[Flag]]:
+    """50 or 60 Hz mains hum in the sweeps' baselines (analysis.hum): as `found_first`
+    (analysis.hum.without_hum) when that took it out before the fits, else as seen in the
+    accepted sweeps."""
     from passivefit.analysis.windows import span
 
-    if removed is not None and removed.removed:
-        found, reason = removed, "removed"
+    if found_first is not None and found_first.removed:
+        found, reason = found_first, "removed"
     else:
         segments = []
         for f in used:

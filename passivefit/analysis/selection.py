@@ -39,7 +39,7 @@ def check_sign(fits: list[SweepFit], path: str) -> list[SweepFit]:
     monitor), so no nonsense is fitted."""
     r = np.array([f.r_in_ohm for f in fits if f.r_in_ohm is not None])
     against = int(np.sum(r < 0))
-    if against and against >= max(2, AGAINST_SHARE * r.size) or r.size and np.median(r) < 0:
+    if against and (against >= max(2, AGAINST_SHARE * r.size) or np.median(r) < 0):
         # all wrong: the sign; some right and some wrong: the amplitude changes too
         what = ("the step's sign is wrong" if against == r.size else
                 "the step's amplitude changes from sweep to sweep (INCREMENT_PA in "

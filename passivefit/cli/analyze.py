@@ -84,8 +84,8 @@ def format_table(data: dict) -> str:
     lines += ["", "  " + "  ".join(f"{_heading(q):>{w}}" for q, w in SWEEP_WIDTHS) + "  status"]
     for s in data["sweeps"]:
         status = "ok" if s[S.ACCEPTED.key] else f"rejected: {s[S.REJECT_REASON.key]}"
-        notes = [note for code, note in SWEEP_NOTES.items()
-                 if code in {f["code"] for f in s[S.FLAGS_KEY]}]
+        codes = {f["code"] for f in s[S.FLAGS_KEY]}
+        notes = [note for code, note in SWEEP_NOTES.items() if code in codes]
         status += f" ({'; '.join(notes)})" if notes else ""
         cells = [f"{_fmt(s[q.key], DIGITS.get(q, 4)):>{w}}" for q, w in SWEEP_WIDTHS]
         lines.append("  " + "  ".join(cells) + f"  {status}")

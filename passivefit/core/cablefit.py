@@ -660,7 +660,7 @@ class _Problem:
     def _project(self, a: np.ndarray) -> tuple:
         """Least squares of the data on the weighted design `a`: (coefficients, residual,
         q, r) with a = q r."""
-        q, r = _qr(a)
+        q, r = np.linalg.qr(a)   # numpy's: importing scipy.linalg costs more than a fit
         qty = q.T @ self.yw
         return _solve_r(r, qty), self.yw - q @ qty, q, r
 
@@ -676,7 +676,7 @@ class _Problem:
         """:meth:`cost_of` of the designs made of the first ``n`` columns of this one, for
         each n in ``n_cols``, from one QR (the first n columns of q span the first n of
         the design)."""
-        q, _ = _qr(self._design(shapes))
+        q, _ = np.linalg.qr(self._design(shapes))
         costs = []
         for n in n_cols:
             resid = self.yw - q[:, :n] @ (q[:, :n].T @ self.yw)
@@ -730,18 +730,10 @@ class _Problem:
 
 
 
-def _qr(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Reduced QR of a tall matrix (numpy.linalg.qr: LAPACK geqrf, then orgqr): q and r.
-
-    numpy's and not scipy's: importing scipy.linalg costs more CPU than a whole fit."""
-    return np.linalg.qr(a)
-
-
 def _solve_r(r: np.ndarray, b: np.ndarray, transpose: bool = False) -> np.ndarray:
-    """x with r x = b (r^T x = b with ``transpose``) for the upper triangle r of
-    :func:`_qr`: by numpy.linalg.solve when r is well conditioned (reciprocal condition
-    number in the 1-norm above 1e-10), else as the least-squares solution of
-    numpy.linalg.lstsq."""
+    """x with r x = b (r^T x = b with ``transpose``) for the upper triangle r of a QR: by
+    numpy.linalg.solve when r is well conditioned (reciprocal condition number in the
+    1-norm above 1e-10), else as the least-squares solution of numpy.linalg.lstsq."""
     m = r.T if transpose else r
     if np.all(np.diag(r) != 0):
         with np.errstate(over="ignore"):

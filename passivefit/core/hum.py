@@ -21,7 +21,7 @@ import numpy as np
 HARMONICS = 3
 
 
-def _columns(n: int, fs: float, stretches: Sequence[tuple[int, int]], freq: float,
+def _columns(fs: float, stretches: Sequence[tuple[int, int]], freq: float,
              ) -> tuple[np.ndarray, np.ndarray]:
     """The samples of the stretches and their design: sine and cosine of each harmonic
     (sweep time), then a level and a slope per stretch."""
@@ -39,7 +39,7 @@ def fit_hum(v: np.ndarray, fs: float, stretches: Sequence[tuple[int, int]], freq
             ) -> tuple[np.ndarray, float]:
     """The hum's sine and cosine amplitudes (2·HARMONICS, V) in the flat `stretches` of
     `v`, and the residual sum of squares of the fit (V²)."""
-    rows, design = _columns(v.size, fs, stretches, freq)
+    rows, design = _columns(fs, stretches, freq)
     coef, *_ = np.linalg.lstsq(design, np.asarray(v[rows], dtype=float), rcond=None)
     rest = v[rows] - design @ coef
     return coef[:2 * HARMONICS], float(rest @ rest)
