@@ -23,6 +23,8 @@ MAX_SEMILOG_POINTS = 500
 # stacking of the windows (higher on top): the steady-state window lies inside the fit
 # window, so it must be above it to take the mouse there; the fit keeps its free start
 REGION_Z = {"fit_off": -13, "fit": -12, "baseline": -10, "steady": -9}
+#: Heights of the window labels, as fractions of the view (staggered so none overlap)
+LABEL_HEIGHT = {"baseline": 0.97, "fit": 0.90, "steady": 0.83, "fit_off": 0.97}
 
 
 def new_plot(title: str = "", x_label: str = "", y_label: str = "", *,
@@ -144,10 +146,10 @@ class TraceView(QtWidgets.QWidget):
         region.setZValue(REGION_Z[name])
         for line in region.lines:
             line.setHoverPen(pg.mkPen(theme.REGION_LINE[name], width=3))
-        # the steady-state label sits lower: its window is narrow and the decay fit's
-        # label may start right after it
+        # labels at staggered heights: the onset fit's window starts right after the
+        # baseline's, the decay fit's right after the narrow steady-state window
         pg.InfLineLabel(region.lines[0], text=theme.REGION_LABEL[name],
-                        position=0.90 if name == "steady" else 0.97,
+                        position=LABEL_HEIGHT[name],
                         anchors=[(0, 0), (0, 0)], color=theme.REGION_LINE[name])
         if movable:
             region.sigRegionChanged.connect(partial(self._on_region, name, False))
