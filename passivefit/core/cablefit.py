@@ -1130,6 +1130,10 @@ class _Solution:
     nfev: int = 0
 
 
+#: Changes of the cost (in units of the residual variance) too small to matter
+_NEGLIGIBLE_CHI2 = 1e-6
+
+
 def _levenberg_marquardt(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray,
                          tol: float, max_nfev: int = 200) -> _Solution:
     """Levenberg–Marquardt for the few nonlinear parameters, inside the box [lo, hi].
@@ -1149,7 +1153,11 @@ def _levenberg_marquardt(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarra
     x = np.clip(x0, lo, hi)
     r = fun(x)
     cost, nfev, lam, nu = float(r @ r), 1, 1e-3, 2.0
+    dof = max(r.size - x.size, 1)
     while nfev < max_nfev:
+        # a change of the cost below this is negligible against the noise: the step that
+        # gives it moves no parameter by more than sqrt(_NEGLIGIBLE_CHI2) of its sd
+        negligible = max(tol, _NEGLIGIBLE_CHI2 / dof) * cost
         j = jac(x)
         grad = j.T @ r
         held = ((x <= lo) & (grad > 0)) | ((x >= hi) & (grad < 0))
@@ -1158,7 +1166,7 @@ def _levenberg_marquardt(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarra
         scale[scale == 0] = 1.0
         u, sv, vt = np.linalg.svd(j[:, move] / scale, full_matrices=False)
         ur = u.T @ r
-        if float(np.sum(ur**2)) <= tol * cost:  # the Gauss-Newton step gains nothing
+        if float(np.sum(ur**2)) <= negligible:  # the Gauss-Newton step gains nothing
             return _Solution(x, 0.5 * cost, 1, "the predicted decrease is below the tolerance",
                              nfev)
         while True:
@@ -1185,7 +1193,7 @@ def _levenberg_marquardt(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarra
         nu = 2.0
         decrease = cost - cost_trial
         x, r, cost = trial, r_trial, cost_trial
-        if decrease <= tol * cost:
+        if decrease <= negligible:
             return _Solution(x, 0.5 * cost, 2, "the decrease of the cost is below the "
                              "tolerance", nfev)
         if np.linalg.norm(moved) <= tol * (tol + np.linalg.norm(x)):
