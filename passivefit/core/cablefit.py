@@ -1148,7 +1148,8 @@ def _levenberg_marquardt(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarra
     It stops when the linear model predicts a decrease below ``tol`` times the cost, an
     accepted step decreases the cost by less than that, or a step moves x by less than
     ``tol (tol + |x|)`` — the criteria of :func:`scipy.optimize.least_squares` with
-    ``ftol = xtol = tol``.
+    ``ftol = xtol = tol`` — where a decrease counts as too small also when it is below
+    ``_NEGLIGIBLE_CHI2`` times the residual variance (far below any parameter's error).
     """
     x = np.clip(x0, lo, hi)
     r = fun(x)
