@@ -252,3 +252,17 @@ def test_tau1_interval_is_not_narrower_than_the_cramer_rao_bound(seed):
     0.7 of the right width, and narrower than the bound here (efficiency 1.24 and 1.17)."""
     efficiency = _fast_small(seed).design.bound("tau1").efficiency
     assert efficiency is not None and 0.5 < efficiency < 1.0
+
+
+def test_a_current_read_in_the_wrong_unit_is_flagged():
+    # a 110 MΩ cell whose current was read 1000-fold too large (pA taken as nA): R_in of
+    # 0.11 MΩ and C of 200 nF are outside what neurons show (from memory: ~1 MΩ
+    # motoneurons to a few GΩ granule cells). 1000-fold too small is refused on loading:
+    # its steps are too small to be steps ("is its unit right?").
+    rec, _ = simulate(n_sweeps=4)
+    wrong = type(rec)(**{**rec.__dict__, "sweeps": tuple(
+        type(s)(**{**s.__dict__, "current": s.current * 1e3}) for s in rec.sweeps)})
+    flags = {f["code"]: f for f in analyze(wrong, Settings(bootstrap=0)).to_dict()["flags"]}
+    assert "check the current's unit" in flags["cell.scale_suspect"]["message"]
+    right = analyze(rec, Settings(bootstrap=0)).to_dict()["flags"]
+    assert "cell.scale_suspect" not in {f["code"] for f in right}

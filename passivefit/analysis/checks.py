@@ -190,3 +190,21 @@ def scan_drift(scan: dict) -> list[Flag]:
         if abs(drift) > 0.1:
             return [S.FIT_TAU1_DRIFT.make(drift)]
     return []
+
+
+#: What whole neurons show, with margin (from memory: R_in from ~1 MΩ in the largest
+#: motoneurons to a few GΩ in small granule cells; capacitance from a few pF to a few
+#: nF). A current read in the wrong unit (nA as pA, or pA as nA) moves both 1000-fold.
+R_IN_RANGE_OHM = (1e5, 5e10)
+C_RANGE_F = (5e-13, 1e-7)
+
+
+def scale(values: dict) -> list[Flag]:
+    """A flag when R_in or C = τ0/R_in is outside what any neuron shows: most likely the
+    current (or the voltage) was read with the wrong unit or amplifier gain."""
+    r_in, c = values.get(S.R_IN), values.get(S.C_TAU)
+    if r_in is not None and r_in > 0 and not R_IN_RANGE_OHM[0] <= r_in <= R_IN_RANGE_OHM[1]:
+        return [S.CELL_SCALE_SUSPECT.make(r_in / 1e6, reason="r_in")]
+    if c is not None and c > 0 and not C_RANGE_F[0] <= c <= C_RANGE_F[1]:
+        return [S.CELL_SCALE_SUSPECT.make(c / 1e-12, reason="capacitance")]
+    return []

@@ -323,6 +323,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
                                  _L_cyl_samples(boot, bs is not None), passive=not sagging)
     out.values.update(values)
     out.flags.extend(flags)
+    out.flags.extend(checks.scale(out.values))
     if settings.area_um2 and out.values.get(S.C_TOTAL):
         from passivefit.core import cable
 

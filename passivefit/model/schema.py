@@ -474,6 +474,12 @@ CELL_DEPOLARIZING_ONLY = _flag(
     "every step is depolarizing: it moves the cell towards threshold, where voltage-gated "
     "conductances open, so even the smallest step may not respond passively; hyperpolarizing "
     "steps give the passive values (smallest step, pA)")
+CELL_SCALE_SUSPECT = _flag(
+    "cell.scale_suspect", "warning", "{reason}",
+    r_in="R_in is outside what neurons show (0.1 MΩ–50 GΩ): check the current's unit and "
+         "the amplifier's gain (MΩ)",
+    capacitance="C = τ0/R_in is outside what neurons show (0.5 pF–100 nF): check the "
+                "current's unit and the amplifier's gain (pF)")
 CELL_UNSTABLE = _flag(
     "cell.unstable", "warning",
     "R_in changes by {x:+.0f} % and V_rest by {dv:+.1f} mV over the recording; the cell "
