@@ -225,12 +225,15 @@ def modes_needed(L: float, tau0: float, t_min: float) -> int:
 def _edge_weights(rates: np.ndarray, kinds: Sequence[str], durations: np.ndarray) -> np.ndarray:
     """Per segment and rate: 1 for a charging edge; exp(-lam*D) - 1 for a decay after a
     step or pulse of duration D (superposition of its two edges; -1, and 0 for lam = 0,
-    when the step was complete). Shape (n_segments, n_rates); complex rates allowed."""
-    out = np.ones((len(kinds), rates.size), dtype=np.result_type(rates, float))
+    when the step was complete). Shape (..., n_segments, n_rates) for rates (..., n_rates);
+    complex rates allowed."""
+    out = np.ones(rates.shape[:-1] + (len(kinds), rates.shape[-1]),
+                  dtype=np.result_type(rates, float))
     for s, kind in enumerate(kinds):
         if kind == "decay":
             d = durations[s]
-            out[s] = np.expm1(-rates * d) if math.isfinite(d) else np.where(rates == 0, 0.0, -1.0)
+            out[..., s, :] = (np.expm1(-rates * d) if math.isfinite(d)
+                              else np.where(rates == 0, 0.0, -1.0))
     return out
 
 
@@ -281,6 +284,35 @@ def _table_slopes(x: np.ndarray, L: float, rho: float
     dt = (1.0 - t * t) * dL
     d_inv = ((ds + dL) * (s + t) - (s + L) * (ds + dt)) / (s + t) ** 2
     return d_rate, d_ratio, d_inv
+
+
+def _cable_terms(x: np.ndarray, L, tanh_L, s, tau0: float, lag_rate: float
+                 ) -> tuple[np.ndarray, np.ndarray, float]:
+    """The rates (1/s) of :meth:`_Problem.amplitudes` — the step, the lag, mode 0, the
+    modes with roots ``x`` (last axis), the tail mode — and the scale's step amplitudes on
+    them, and the tail's root. ``L``, ``tanh_L`` and ``s`` = G_S/G_inf are numbers, or
+    columns (one row of ``x`` each) for several cells at once."""
+    n = x.shape[-1]
+    alpha2 = (x / L) ** 2
+    # step amplitude ratios: the pulse ratios 2(L + s)/(L + s + L alpha^2 s^2) over
+    # 1 + alpha^2 (cable.pulse_ratios_from_alphas), and V_inf/B0 = (s + L)/(s + tanh L)
+    ratio = 2.0 * (L + s) / (L + s + L * alpha2 * s * s) / (1.0 + alpha2)
+    v_inf = (s + L) / (s + tanh_L)
+    # the modes beyond the truncation, at the first rate left out: they matter only
+    # through the filter's ringing (their own exponentials are < e^-30 at every sample)
+    x_next = (n + 0.5) * math.pi + 0.5 * math.pi
+    rates = np.empty(x.shape[:-1] + (n + 4,))
+    rates[..., 0] = 0.0
+    rates[..., 1] = lag_rate
+    rates[..., 2] = 1.0 / tau0
+    rates[..., 3:-1] = (1.0 + alpha2) / tau0
+    rates[..., -1:] = (1.0 + (x_next / L) ** 2) / tau0
+    b0 = np.empty_like(rates)
+    b0[..., :1] = v_inf
+    b0[..., 1:3] = 0.0, -1.0
+    b0[..., 3:-1] = -ratio
+    b0[..., -1:] = -(v_inf - 1.0 - ratio.sum(axis=-1, keepdims=True))
+    return rates, b0, x_next
 
 
 def _mode_slopes(x: np.ndarray, L: float, rho: float, x_next: float, rates: np.ndarray,
@@ -457,46 +489,40 @@ class _Problem:
         warm = self._y_start is not None and self._y_start.size == n
         self._y_start = _root_offsets(s / L, n, self._y_start if warm else None)
         x = _centres(n) + self._y_start
-        alpha2 = (x / L) ** 2
-        # step amplitude ratios: the pulse ratios 2(L + s)/(L + s + L alpha^2 s^2) over
-        # 1 + alpha^2 (cable.pulse_ratios_from_alphas), and V_inf/B0 = (s + L)/(s + tanh L)
-        ratio = 2.0 * (L + s) / (L + s + L * alpha2 * s * s) / (1.0 + alpha2)
-        v_inf = (s + L) / (s + tanh_L)
-        # the modes beyond the truncation, at the first rate left out: they matter only
-        # through the filter's ringing (their own exponentials are < e^-30 at every sample)
-        x_next = (n + 0.5) * math.pi + 0.5 * math.pi
-        rates = np.empty(n + 4)   # the step, the lag, mode 0, modes 1..n, the tail
-        rates[0] = 0.0
-        rates[1] = math.exp(-theta[3]) if self.lag else 1.0
-        rates[2] = 1.0 / tau0
-        rates[3:-1] = (1.0 + alpha2) / tau0
-        rates[-1] = (1.0 + (x_next / L) ** 2) / tau0
-        b0 = np.empty(n + 4)
-        b0[:3] = v_inf, 0.0, -1.0
-        b0[3:-1] = -ratio
-        b0[-1] = -(v_inf - 1.0 - ratio.sum())
-        bridge = np.zeros(n + 4)
+        rates, b0, x_next = _cable_terms(x, L, tanh_L, s, tau0, self._lag_rate(theta))
+        amps, filtered = self._filtered(theta, rates, b0)
+        return (rates, amps), (x, L, rho, x_next, b0, *filtered)
+
+    def _lag_rate(self, theta: np.ndarray) -> float:
+        """1/lag when a bridge jump is fitted (a placeholder 1 otherwise)."""
+        return math.exp(-theta[3]) if self.lag else 1.0
+
+    def _filtered(self, theta: np.ndarray, rates: np.ndarray, b0: np.ndarray):
+        """The amplitudes of :meth:`amplitudes` from the rates and the scale's amplitudes
+        per rate, ``b0``: through the filter and the edge weights, for the scale and the
+        bridge; then what their derivatives need. Leading axes of ``rates`` and ``b0``
+        (several cells at once) lead the amplitudes too."""
+        bridge = np.zeros(rates.shape[-1])
         if self.lag:
             bridge[:2] = 1.0, -1.0
         lp = self.lowpass(theta)
         if lp is None:
-            gain, inverse = 1.0, None
+            gain, inverse = np.ones_like(rates), None
         else:
-            inverse = 1.0 / (lp.poles + rates[:, None])   # 1/(p_k + lam), (n_rates, 4)
-            gain = np.real(np.prod(lp.poles * inverse, axis=1))
+            inverse = 1.0 / (lp.poles + rates[..., None])   # 1/(p_k + lam), (..., n_rates, 4)
+            gain = np.real(np.prod(lp.poles * inverse, axis=-1))
         weights = _edge_weights(rates, self.kinds, self.durations)
-        filt = gain * weights
-        filt[~self.known_base, 0] = 0.0   # a step from a free offset: the offset carries it
-        amps = np.stack([b0 * filt, bridge * filt])
+        filt = gain[..., None, :] * weights
+        filt[..., ~self.known_base, 0] = 0.0   # a step from a free offset: the offset carries it
+        amps = np.stack([b0[..., None, :] * filt, bridge * filt], axis=-3)
         pole_weights = edge = None
         if lp is not None:
             pole_weights = lp.residues * inverse   # c_k/(p_k + lam) (Lowpass.pole_weights)
             edge = self._ring_edges(lp)
-            ring = edge * (np.stack([b0, bridge]) @ pole_weights)[:, None, :]
-            amps = np.concatenate([ring.real, -ring.imag, amps], axis=2)
-        return ((rates, amps),
-                (x, L, rho, x_next, b0, bridge, lp, gain, weights, filt, pole_weights, inverse,
-                 edge))
+            both = np.stack([b0, np.broadcast_to(bridge, b0.shape)], axis=-2)
+            ring = edge * (both @ pole_weights)[..., None, :]
+            amps = np.concatenate([ring.real, -ring.imag, amps], axis=-1)
+        return amps, (bridge, lp, gain, weights, filt, pole_weights, inverse, edge)
 
     def _ring_edges(self, lp: Lowpass) -> np.ndarray:
         """Edge weights of the filter's own terms, per segment and pole (cached)."""
