@@ -225,12 +225,15 @@ def modes_needed(L: float, tau0: float, t_min: float) -> int:
 def _edge_weights(rates: np.ndarray, kinds: Sequence[str], durations: np.ndarray) -> np.ndarray:
     """Per segment and rate: 1 for a charging edge; exp(-lam*D) - 1 for a decay after a
     step or pulse of duration D (superposition of its two edges; -1, and 0 for lam = 0,
-    when the step was complete). Shape (n_segments, n_rates); complex rates allowed."""
-    out = np.ones((len(kinds), rates.size), dtype=np.result_type(rates, float))
+    when the step was complete). Shape (..., n_segments, n_rates) for rates (..., n_rates);
+    complex rates allowed."""
+    out = np.ones(rates.shape[:-1] + (len(kinds), rates.shape[-1]),
+                  dtype=np.result_type(rates, float))
     for s, kind in enumerate(kinds):
         if kind == "decay":
             d = durations[s]
-            out[s] = np.expm1(-rates * d) if math.isfinite(d) else np.where(rates == 0, 0.0, -1.0)
+            out[..., s, :] = (np.expm1(-rates * d) if math.isfinite(d)
+                              else np.where(rates == 0, 0.0, -1.0))
     return out
 
 
@@ -281,6 +284,35 @@ def _table_slopes(x: np.ndarray, L: float, rho: float
     dt = (1.0 - t * t) * dL
     d_inv = ((ds + dL) * (s + t) - (s + L) * (ds + dt)) / (s + t) ** 2
     return d_rate, d_ratio, d_inv
+
+
+def _cable_terms(x: np.ndarray, L, tanh_L, s, tau0: float, lag_rate: float
+                 ) -> tuple[np.ndarray, np.ndarray, float]:
+    """The rates (1/s) of :meth:`_Problem.amplitudes` — the step, the lag, mode 0, the
+    modes with roots ``x`` (last axis), the tail mode — and the scale's step amplitudes on
+    them, and the tail's root. ``L``, ``tanh_L`` and ``s`` = G_S/G_inf are numbers, or
+    columns (one row of ``x`` each) for several cells at once."""
+    n = x.shape[-1]
+    alpha2 = (x / L) ** 2
+    # step amplitude ratios: the pulse ratios 2(L + s)/(L + s + L alpha^2 s^2) over
+    # 1 + alpha^2 (cable.pulse_ratios_from_alphas), and V_inf/B0 = (s + L)/(s + tanh L)
+    ratio = 2.0 * (L + s) / (L + s + L * alpha2 * s * s) / (1.0 + alpha2)
+    v_inf = (s + L) / (s + tanh_L)
+    # the modes beyond the truncation, at the first rate left out: they matter only
+    # through the filter's ringing (their own exponentials are < e^-30 at every sample)
+    x_next = (n + 0.5) * math.pi + 0.5 * math.pi
+    rates = np.empty(x.shape[:-1] + (n + 4,))
+    rates[..., 0] = 0.0
+    rates[..., 1] = lag_rate
+    rates[..., 2] = 1.0 / tau0
+    rates[..., 3:-1] = (1.0 + alpha2) / tau0
+    rates[..., -1:] = (1.0 + (x_next / L) ** 2) / tau0
+    b0 = np.empty_like(rates)
+    b0[..., :1] = v_inf
+    b0[..., 1:3] = 0.0, -1.0
+    b0[..., 3:-1] = -ratio
+    b0[..., -1:] = -(v_inf - 1.0 - ratio.sum(axis=-1, keepdims=True))
+    return rates, b0, x_next
 
 
 def _mode_slopes(x: np.ndarray, L: float, rho: float, x_next: float, rates: np.ndarray,
@@ -457,46 +489,40 @@ class _Problem:
         warm = self._y_start is not None and self._y_start.size == n
         self._y_start = _root_offsets(s / L, n, self._y_start if warm else None)
         x = _centres(n) + self._y_start
-        alpha2 = (x / L) ** 2
-        # step amplitude ratios: the pulse ratios 2(L + s)/(L + s + L alpha^2 s^2) over
-        # 1 + alpha^2 (cable.pulse_ratios_from_alphas), and V_inf/B0 = (s + L)/(s + tanh L)
-        ratio = 2.0 * (L + s) / (L + s + L * alpha2 * s * s) / (1.0 + alpha2)
-        v_inf = (s + L) / (s + tanh_L)
-        # the modes beyond the truncation, at the first rate left out: they matter only
-        # through the filter's ringing (their own exponentials are < e^-30 at every sample)
-        x_next = (n + 0.5) * math.pi + 0.5 * math.pi
-        rates = np.empty(n + 4)   # the step, the lag, mode 0, modes 1..n, the tail
-        rates[0] = 0.0
-        rates[1] = math.exp(-theta[3]) if self.lag else 1.0
-        rates[2] = 1.0 / tau0
-        rates[3:-1] = (1.0 + alpha2) / tau0
-        rates[-1] = (1.0 + (x_next / L) ** 2) / tau0
-        b0 = np.empty(n + 4)
-        b0[:3] = v_inf, 0.0, -1.0
-        b0[3:-1] = -ratio
-        b0[-1] = -(v_inf - 1.0 - ratio.sum())
-        bridge = np.zeros(n + 4)
+        rates, b0, x_next = _cable_terms(x, L, tanh_L, s, tau0, self._lag_rate(theta))
+        amps, filtered = self._filtered(theta, rates, b0)
+        return (rates, amps), (x, L, rho, x_next, b0, *filtered)
+
+    def _lag_rate(self, theta: np.ndarray) -> float:
+        """1/lag when a bridge jump is fitted (a placeholder 1 otherwise)."""
+        return math.exp(-theta[3]) if self.lag else 1.0
+
+    def _filtered(self, theta: np.ndarray, rates: np.ndarray, b0: np.ndarray):
+        """The amplitudes of :meth:`amplitudes` from the rates and the scale's amplitudes
+        per rate, ``b0``: through the filter and the edge weights, for the scale and the
+        bridge; then what their derivatives need. Leading axes of ``rates`` and ``b0``
+        (several cells at once) lead the amplitudes too."""
+        bridge = np.zeros(rates.shape[-1])
         if self.lag:
             bridge[:2] = 1.0, -1.0
         lp = self.lowpass(theta)
         if lp is None:
-            gain, inverse = 1.0, None
+            gain, inverse = np.ones_like(rates), None
         else:
-            inverse = 1.0 / (lp.poles + rates[:, None])   # 1/(p_k + lam), (n_rates, 4)
-            gain = np.real(np.prod(lp.poles * inverse, axis=1))
+            inverse = 1.0 / (lp.poles + rates[..., None])   # 1/(p_k + lam), (..., n_rates, 4)
+            gain = np.real(np.prod(lp.poles * inverse, axis=-1))
         weights = _edge_weights(rates, self.kinds, self.durations)
-        filt = gain * weights
-        filt[~self.known_base, 0] = 0.0   # a step from a free offset: the offset carries it
-        amps = np.stack([b0 * filt, bridge * filt])
+        filt = gain[..., None, :] * weights
+        filt[..., ~self.known_base, 0] = 0.0   # a step from a free offset: the offset carries it
+        amps = np.stack([b0[..., None, :] * filt, bridge * filt], axis=-3)
         pole_weights = edge = None
         if lp is not None:
             pole_weights = lp.residues * inverse   # c_k/(p_k + lam) (Lowpass.pole_weights)
             edge = self._ring_edges(lp)
-            ring = edge * (np.stack([b0, bridge]) @ pole_weights)[:, None, :]
-            amps = np.concatenate([ring.real, -ring.imag, amps], axis=2)
-        return ((rates, amps),
-                (x, L, rho, x_next, b0, bridge, lp, gain, weights, filt, pole_weights, inverse,
-                 edge))
+            both = np.stack([b0, np.broadcast_to(bridge, b0.shape)], axis=-2)
+            ring = edge * (both @ pole_weights)[..., None, :]
+            amps = np.concatenate([ring.real, -ring.imag, amps], axis=-1)
+        return amps, (bridge, lp, gain, weights, filt, pole_weights, inverse, edge)
 
     def _ring_edges(self, lp: Lowpass) -> np.ndarray:
         """Edge weights of the filter's own terms, per segment and pole (cached)."""
@@ -524,26 +550,28 @@ class _Problem:
         (:meth:`_ring_bases`), then exp(-lam u) per rate, for the single samples and for
         the bins (averaged exactly; the modes they need), and, with ``derivative``, d/d
         lam of the bins' exp(-lam u) (for single samples it is -u times their
-        exp(-lam u))."""
+        exp(-lam u)). Leading axes of ``rates`` (several cells at once) lead the bases
+        too."""
         m = 3 + self.n_bin_modes
         minus_u1, minus_ub, n, dt = self._columns
         lp = self.lowpass(theta)
-        key = (rates.tobytes(), m, None if lp is None else lp.corner_hz)
+        key = (rates.shape, rates.tobytes(), m, None if lp is None else lp.corner_hz)
         if self._cache.get("exp_key") != key:   # the residual's, then the Jacobian's
             ring, n1 = self._ring_bases(lp), self.n_single
             q = ring.shape[1]
-            single = np.empty((n1, q + rates.size))
-            single[:, :q] = ring[:n1]
-            np.exp(minus_u1 * rates, out=single[:, q:])
+            lead, row = rates.shape[:-1], rates[..., None, :]   # the same for every point
+            single = np.empty(lead + (n1, q + rates.shape[-1]))
+            single[..., :q] = ring[:n1]
+            np.exp(minus_u1 * row, out=single[..., q:])
             # a bin's mean of exp(-lam t) over t = u + i dt, i < n, is exp(-lam u) times
             # (1 - exp(-n x))/(n (1 - exp(-x))), x = lam dt; 1 for the step (lam = 0)
-            x = dt * rates[1:m]
+            x = dt * row[..., 1:m]
             em_n, em_1 = np.expm1(-n * x), np.expm1(-x)
-            bins = np.empty((self.u.size - n1, q + m))
-            bins[:, :q] = ring[n1:]
-            eb = bins[:, q:]
-            np.exp(minus_ub * rates[:m], out=eb)
-            eb[:, 1:] *= em_n / (n * em_1)
+            bins = np.empty(lead + (self.u.size - n1, q + m))
+            bins[..., :q] = ring[n1:]
+            eb = bins[..., q:]
+            np.exp(minus_ub * row[..., :m], out=eb)
+            eb[..., 1:] *= em_n / (n * em_1)
             self._cache["exp"] = (single, bins, eb, em_n, em_1)
             self._cache["exp_key"] = key
         single, bins, eb, em_n, em_1 = self._cache["exp"]
@@ -573,14 +601,13 @@ class _Problem:
     def _sum(self, single: np.ndarray, bins: np.ndarray, amps: np.ndarray) -> np.ndarray:
         """Per point, its bases (``single`` or ``bins``, per column) times its segment's
         amplitudes, summed, for K sets of amplitudes ``amps`` (K, n_segments, >= columns)
-        at once. Returns shape (n_points, K)."""
+        at once. Returns shape (n_points, K); leading axes of all three (several cells at
+        once) lead it."""
         n1 = self.n_single
-        out = np.empty((self.u.size, amps.shape[0]))
+        out = np.empty(single.shape[:-2] + (self.u.size, amps.shape[-3]))
         for a, b, s in self._runs:
-            if a < n1:
-                out[a:b] = single[a:b] @ amps[:, s, :single.shape[1]].T
-            else:
-                out[a:b] = bins[a - n1:b - n1] @ amps[:, s, :bins.shape[1]].T
+            bases = single[..., a:b, :] if a < n1 else bins[..., a - n1:b - n1, :]
+            out[..., a:b, :] = bases @ np.swapaxes(amps[..., s, :bases.shape[-1]], -1, -2)
         return out
 
     def shape(self, theta: np.ndarray, derivative: bool = False):
@@ -609,7 +636,7 @@ class _Problem:
         single, bins, eb_d = self._bases(theta, rates, derivative)
         if not derivative:
             value = self._sum(single, bins, amps)
-            return value[:, 0], value[:, 1]
+            return value[..., 0], value[..., 1]
         n_num = theta.size - self.estimate_corner  # differentiated through the amplitudes
         n_seg, q = amps.shape[1], amps.shape[2] - rates.size
         # K = 2 + 2 n_num amplitude sets: (b0, bridge), then (d b0, d bridge) per parameter
@@ -632,18 +659,33 @@ class _Problem:
                 o[:, -1] = (a - b) / (2 * _MODE_STEP)
         return value, out
 
+    def cell_shapes(self, theta: np.ndarray, cells: np.ndarray):
+        """:meth:`shape` (without derivatives) at ``theta`` with its (log L, log rho) set to
+        each row of ``cells`` in turn, all at once: shape (n_cells, n_points) each. The
+        current mode counts must suffice for every cell."""
+        L, rho = np.exp(cells[:, :1]), np.exp(cells[:, 1:2])   # columns: a cell per row
+        tanh_L = np.tanh(L)
+        s = tanh_L / rho  # G_S/G_inf
+        x = _centres(self.n_modes) + _root_offsets(s / L, self.n_modes)
+        rates, b0, _ = _cable_terms(x, L, tanh_L, s, math.exp(theta[0]), self._lag_rate(theta))
+        amps, _ = self._filtered(theta, rates, b0)
+        single, bins, _ = self._bases(theta, rates)
+        value = self._sum(single, bins, amps)
+        return value[..., 0], value[..., 1]
+
     def _design(self, shapes) -> np.ndarray:
-        """Weighted design matrix, shape (n_points, n_cols), for the given model columns."""
+        """Weighted design matrix, shape (n_points, n_cols), for the given model columns
+        (their leading axes lead it)."""
         if self._offsets is None:
             self._offsets = np.zeros((self.u.size, self.n_cols))
             free = np.flatnonzero(self.offset_col[self.seg] >= 0)
             self._offsets[free, self.offset_col[self.seg[free]]] = self.sw[free]
-        a = self._offsets.copy()
+        a = np.broadcast_to(self._offsets, shapes[0].shape[:-1] + self._offsets.shape).copy()
         rows = np.arange(self.u.size)
-        a[rows, self.scale_col[self.seg]] = shapes[0] * self.sw
+        a[..., rows, self.scale_col[self.seg]] = shapes[0] * self.sw
         with_bridge = self.bridge_col[self.seg] >= 0
-        a[rows[with_bridge], self.bridge_col[self.seg[with_bridge]]] = \
-            shapes[1][with_bridge] * self.sw[with_bridge]
+        a[..., rows[with_bridge], self.bridge_col[self.seg[with_bridge]]] = \
+            shapes[1][..., with_bridge] * self.sw[with_bridge]
         return a
 
     def design(self, theta: np.ndarray) -> np.ndarray:
@@ -667,21 +709,17 @@ class _Problem:
     def residual(self, theta: np.ndarray) -> np.ndarray:
         return self.solve(theta)[1]
 
-    def cost_of(self, shapes) -> float:
-        """Sum of squared weighted residuals for the given model columns (not cached)."""
-        resid = self._project(self._design(shapes))[1]
-        return float(resid @ resid)
-
-    def costs_of(self, shapes, n_cols: Sequence[int]) -> list[float]:
-        """:meth:`cost_of` of the designs made of the first ``n`` columns of this one, for
-        each n in ``n_cols``, from one QR (the first n columns of q span the first n of
-        the design)."""
+    def costs_of(self, shapes, n_cols: Sequence[int]) -> np.ndarray:
+        """Sums of squared weighted residuals of the designs made of the first ``n`` columns
+        of the one for the given model columns, for each n in ``n_cols`` (first axis), from
+        one QR (the first n columns of q span the first n of the design). Leading axes of
+        the model columns (several cells at once) follow."""
         q, _ = np.linalg.qr(self._design(shapes))
         costs = []
         for n in n_cols:
-            resid = self.yw - q[:, :n] @ (q[:, :n].T @ self.yw)
-            costs.append(float(resid @ resid))
-        return costs
+            resid = self.yw - (q[..., :n] @ (self.yw @ q[..., :n])[..., None])[..., 0]
+            costs.append(np.sum(resid * resid, axis=-1))
+        return np.array(costs)
 
     def _d_design(self, d_shapes):
         """The weighted derivatives of the theta-dependent design columns (scale, then
@@ -1270,22 +1308,27 @@ def _grid_ranks(probs: Sequence[_Problem], theta0s: Sequence[np.ndarray]) -> lis
     """The grid points ordered by their cost, for each problem at its ``theta0``'s tau0.
 
     Problems of the same segments differ only in their linear columns (with or without
-    the bridge jump), so each point's model columns are computed once, by the first
-    problem, with the modes that point needs.
+    the bridge jump), so the model columns are computed once, by the first problem. The
+    points needing the same modes (those of one L) are computed together.
     """
     lead, costs = probs[0], np.empty((len(probs), len(_GRID)))
-    shared = None   # whether every design is the first columns of the lead's
+    theta0 = theta0s[0]
+    groups = {}
     for i, cell in enumerate(_GRID):
-        point = theta0s[0].copy()
+        point = theta0.copy()
         point[1:3] = cell
-        lead.set_modes(point, margin=1.0)
-        shapes = lead.shape(point)
+        groups.setdefault(lead.modes_for(point), []).append(i)
+    shared = None   # whether every design is the first columns of the lead's
+    for modes, cells in groups.items():
+        lead.n_modes, lead.n_bin_modes = modes
+        shapes = lead.cell_shapes(theta0, _GRID[cells])
         if shared is None:
             a = lead._design(shapes)
             shared = all(np.array_equal(p.yw, lead.yw) and p.n_cols <= lead.n_cols
-                         and np.array_equal(p._design(shapes), a[:, :p.n_cols]) for p in probs)
-        costs[:, i] = (lead.costs_of(shapes, [p.n_cols for p in probs]) if shared
-                       else [prob.cost_of(shapes) for prob in probs])
+                         and np.array_equal(p._design(shapes), a[..., :p.n_cols])
+                         for p in probs)
+        costs[:, cells] = (lead.costs_of(shapes, [p.n_cols for p in probs]) if shared
+                           else [p.costs_of(shapes, [p.n_cols])[0] for p in probs])
     return [np.argsort(c, kind="stable") for c in costs]
 
 
