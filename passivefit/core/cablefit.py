@@ -701,10 +701,11 @@ class _Problem:
 
     def _project(self, a: np.ndarray) -> tuple:
         """Least squares of the data on the weighted design `a`: (coefficients, residual,
-        q, r) with a = q r."""
+        q, r, the inverse of r or None) with a = q r."""
         q, r = np.linalg.qr(a)   # numpy's: importing scipy.linalg costs more than a fit
         qty = q.T @ self.yw
-        return _solve_r(r, qty), self.yw - q @ qty, q, r
+        r_inv = _inverse_r(r)
+        return _solve_r(r, r_inv, qty), self.yw - q @ qty, q, r, r_inv
 
     def residual(self, theta: np.ndarray) -> np.ndarray:
         return self.solve(theta)[1]
@@ -747,7 +748,7 @@ class _Problem:
         bridge columns of A depend on theta.
         """
         self.solve(theta)
-        coef, resid, q, r = self._solved
+        coef, resid, q, r, r_inv = self._solved
         _, d_shapes = self.shape(theta, derivative=True)
         first = np.zeros((self.u.size, theta.size))
         g = np.zeros((self.n_cols, theta.size))
@@ -755,7 +756,7 @@ class _Problem:
             first += d_col * (coef @ to_col)[:, None]
             g += to_col @ (d_col * resid[:, None])
         first -= q @ (q.T @ first)
-        return -(first + q @ _solve_r(r, g, transpose=True))
+        return -(first + q @ _solve_r(r, r_inv, g, transpose=True))
 
     def full_jacobian(self, theta: np.ndarray) -> np.ndarray:
         """Jacobian of the weighted model in (theta, linear coefficients)."""
@@ -768,18 +769,25 @@ class _Problem:
 
 
 
-def _solve_r(r: np.ndarray, b: np.ndarray, transpose: bool = False) -> np.ndarray:
+def _inverse_r(r: np.ndarray) -> np.ndarray | None:
+    """The inverse of the upper triangle r of a QR when r is well conditioned (reciprocal
+    condition number in the 1-norm above 1e-10), else None."""
+    if not np.all(np.diag(r) != 0):
+        return None
+    with np.errstate(over="ignore"):
+        inverse = np.linalg.inv(r)
+    rcond = 1.0 / (np.abs(r).sum(axis=0).max() * np.abs(inverse).sum(axis=0).max())
+    return inverse if rcond > 1e-10 else None
+
+
+def _solve_r(r: np.ndarray, r_inv: np.ndarray | None, b: np.ndarray,
+             transpose: bool = False) -> np.ndarray:
     """x with r x = b (r^T x = b with ``transpose``) for the upper triangle r of a QR: by
-    numpy.linalg.solve when r is well conditioned (reciprocal condition number in the
-    1-norm above 1e-10), else as the least-squares solution of numpy.linalg.lstsq."""
-    m = r.T if transpose else r
-    if np.all(np.diag(r) != 0):
-        with np.errstate(over="ignore"):
-            inverse = np.linalg.inv(r)
-        rcond = 1.0 / (np.abs(r).sum(axis=0).max() * np.abs(inverse).sum(axis=0).max())
-        if rcond > 1e-10:
-            return np.linalg.solve(m, b)
-    return np.linalg.lstsq(m, b, rcond=None)[0]
+    its inverse ``r_inv`` (:func:`_inverse_r`) when r is well conditioned, else as the
+    least-squares solution of numpy.linalg.lstsq."""
+    if r_inv is not None:
+        return (r_inv.T if transpose else r_inv) @ b
+    return np.linalg.lstsq(r.T if transpose else r, b, rcond=None)[0]
 
 
 def _check(segments: Sequence[CableSegment], corner_hz: float | None,
