@@ -411,3 +411,10 @@ def test_summaries_of_stacked_problems_equal_their_own():
             same = np.array_equal(a, b, equal_nan=True) if isinstance(a, np.ndarray) else a == b
             assert same, f.name
         assert fit.taus[0] > fit.taus[1]   # sorted slowest first, as fitted
+    # values only (a bootstrap's refits): the same values, the errors not computed
+    for (prob, theta, message), fit in zip(items, expfit._summarize_many(items, errors=False),
+                                            strict=True):
+        full = expfit._summarize(prob, theta, message, True)
+        for name in ("taus", "amplitudes", "offsets", "rss", "rmse", "aic"):
+            assert np.array_equal(getattr(fit, name), getattr(full, name)), name
+        assert np.all(np.isnan(fit.tau_se)) and np.all(np.isnan(fit.amp_se))

@@ -150,11 +150,12 @@ def fit_exponentials(segs, components: str, tau_init=None, max_components: int =
 def refit_many(segments: list[tuple], step: Step, fit: TransientFit
                ) -> list[TransientFit | None]:
     """`fit` refitted (its components, from its time constants) to each of `segments`
-    (from fit_segments_rows), all at once; None where a refit fails."""
+    (from fit_segments_rows), all at once, values only (no standard errors: a bootstrap
+    needs none); None where a refit fails."""
     from passivefit.core import expfit
 
     results = expfit.fit_exponentials_many([segs for segs, _ in segments], fit.n_total,
-                                           fit.all_taus)
+                                           fit.all_taus, errors=False)
     return [None if isinstance(r, Exception) else label_components(r, step, rec[0].charging)
             for r, (_, rec) in zip(results, segments, strict=True)]
 

@@ -537,6 +537,7 @@ def fit_exponentials_many(
     n_components: int,
     tau_init: Sequence[float],
     tau_bounds: tuple[float, float] = (1e-5, 10.0),
+    errors: bool = True,
 ) -> list[ExpFit | ValueError]:
     """:func:`fit_exponentials` of each problem from the same ``tau_init``, the searches
     run together (e.g. the resamples of a bootstrap).
@@ -544,7 +545,8 @@ def fit_exponentials_many(
     Returns, per problem, what ``fit_exponentials(segments, n_components, tau_init,
     tau_bounds)`` returns, or the ValueError it raises (numpy's LinAlgError is one). A
     problem whose search from ``tau_init`` ends in trouble is fitted again alone, which
-    also tries the other starts.
+    also tries the other starts. Without ``errors``, the fits of the joint search carry no
+    standard errors (NaN), which saves their covariance (a bootstrap needs only values).
     """
     tau0 = np.asarray(tau_init, dtype=float).ravel()
     if tau0.size != n_components or np.any(~np.isfinite(tau0)) or np.any(tau0 <= 0):
@@ -571,7 +573,7 @@ def fit_exponentials_many(
         good = [(i, prob, sol) for (i, prob, lo_i, hi_i), sol in zip(ready, solutions, strict=True)
                 if sol is not None and not _problems(sol.x, lo_i, hi_i, sol.status)]
         for i, fit in zip([i for i, _, _ in good], _summarize_many(
-                [(prob, sol.x, sol.message) for _, prob, sol in good]), strict=True):
+                [(prob, sol.x, sol.message) for _, prob, sol in good], errors), strict=True):
             out[i] = fit
         for i, _, _, _ in ready:
             if out[i] is None:
@@ -582,7 +584,7 @@ def fit_exponentials_many(
     return out
 
 
-def _summarize_many(items: list[tuple[_Projected, np.ndarray, str]]
+def _summarize_many(items: list[tuple[_Projected, np.ndarray, str]], errors: bool = True
                     ) -> list[ExpFit | ValueError]:
     """:func:`_summarize` (a success) of each (problem, theta, message), or the ValueError
     it raises; problems of one shape solved together (stacked: the same values)."""
@@ -598,42 +600,44 @@ def _summarize_many(items: list[tuple[_Projected, np.ndarray, str]]
                 thetas = np.array([items[j][1] for j in members])
                 thetas = np.take_along_axis(thetas, np.argsort(thetas, axis=1)[:, ::-1], axis=1)
                 resid = stacked.residual(thetas)
-                jac = stacked.full_jacobian(thetas)
+                jac = stacked.full_jacobian(thetas) if errors else [None] * len(members)
                 solved = list(zip(thetas, resid, jac, stacked.coef, strict=True))
             except (ValueError, np.linalg.LinAlgError):
                 pass   # each on its own, to keep its own error
         for j, pre in zip(members, solved, strict=True):
             prob, theta, message = items[j]
             try:
-                out[j] = _summarize(prob, theta, message, True, pre)
+                out[j] = _summarize(prob, theta, message, True, pre, errors)
             except ValueError as exc:
                 out[j] = exc
     return out
 
 
 def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool,
-               solved: tuple | None = None) -> ExpFit:
-    """The ExpFit of `prob` at `theta`; `solved`: (sorted theta, residual, full Jacobian,
-    coefficients) computed already (:func:`_summarize_many`)."""
+               solved: tuple | None = None, errors: bool = True) -> ExpFit:
+    """The ExpFit of `prob` at `theta`; `solved`: (sorted theta, residual, full Jacobian
+    or None, coefficients) computed already (:func:`_summarize_many`). Without `errors`,
+    its standard errors are NaN (not computed)."""
     k = prob.k
     if solved is None:
         theta = theta[np.argsort(theta)[::-1]]
         resid = prob.residual(theta)
-        jac, coef = prob.full_jacobian(theta), prob.coef
+        jac, coef = prob.full_jacobian(theta) if errors else None, prob.coef
     else:
         theta, resid, jac, coef = solved
     rss = float(resid @ resid)
     n, p = prob.n_points, prob.n_params
     dof = max(n - p, 1)
-    sigma2 = rss / dof
     n_c = k + 1
-    free = np.ones(jac.shape[1], dtype=bool)  # drop fixed-offset columns (all zero)
-    for s in np.flatnonzero(~prob.has_offset):
-        free[k + s * n_c + k] = False
-    cov = np.zeros((jac.shape[1],) * 2)
-    cov[np.ix_(free, free)] = sigma2 * np.linalg.pinv(jac[:, free].T @ jac[:, free])
-    var = np.diag(cov)
-    var = np.where(var >= 0, var, np.nan)  # round-off in a near-singular problem: unknown
+    var = np.full(k + coef.size, np.nan)
+    if errors:
+        free = np.ones(jac.shape[1], dtype=bool)  # drop fixed-offset columns (all zero)
+        for s in np.flatnonzero(~prob.has_offset):
+            free[k + s * n_c + k] = False
+        cov = np.zeros((jac.shape[1],) * 2)
+        cov[np.ix_(free, free)] = rss / dof * np.linalg.pinv(jac[:, free].T @ jac[:, free])
+        var = np.diag(cov)
+        var = np.where(var >= 0, var, np.nan)  # round-off in a near-singular problem: unknown
     taus = np.exp(theta) * prob.scale
     tau_se = taus * np.sqrt(var[:k])
     coef_se = np.sqrt(var[k:]).reshape(-1, n_c)
