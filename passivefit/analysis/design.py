@@ -520,6 +520,23 @@ def cell_covariance(tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge
 def _sds(cov: np.ndarray, tau0_s: float, L: float, rho: float, r_in_ohm: float
          ) -> tuple[dict, float]:
     """CRLB sd of each of `NAMES` (SI) from the covariance of θ, and τ1 (s)."""
+    grad, tau1 = _tau1_gradient(tau0_s, L, rho)
+
+    def sd(var: float) -> float:
+        return math.sqrt(var) if math.isfinite(var) and var >= 0 else math.inf
+
+    with np.errstate(invalid="ignore"):
+        var_tau1 = (float(grad[:3] @ cov[:3, :3] @ grad[:3]) if np.all(np.isfinite(cov[:3, :3]))
+                    else math.inf)
+    return {"tau0": tau0_s * sd(cov[0, 0]), "tau1": tau1 * sd(var_tau1),
+            "L": L * sd(cov[1, 1]), "rho": rho * sd(cov[2, 2]),
+            "r_in": r_in_ohm * sd(cov[3, 3]), "bridge": sd(cov[4, 4])}, tau1
+
+
+@lru_cache(maxsize=8)
+def _tau1_gradient(tau0_s: float, L: float, rho: float) -> tuple[np.ndarray, float]:
+    """∂ ln τ1/∂(ln τ0, ln L, ln ρ) by central differences, and τ1 (s): the same for every
+    protocol of one cell, so kept for the protocol changes' bounds."""
     def ln_tau1(t: np.ndarray) -> float:
         from passivefit.core.cable import ballstick_alphas
 
@@ -533,17 +550,8 @@ def _sds(cov: np.ndarray, tau0_s: float, L: float, rho: float, r_in_ohm: float
         up[i] += _LOG_STEP
         down[i] -= _LOG_STEP
         grad[i] = (ln_tau1(up) - ln_tau1(down)) / (2 * _LOG_STEP)
-    tau1 = math.exp(ln_tau1(t))
-
-    def sd(var: float) -> float:
-        return math.sqrt(var) if math.isfinite(var) and var >= 0 else math.inf
-
-    with np.errstate(invalid="ignore"):
-        var_tau1 = (float(grad[:3] @ cov[:3, :3] @ grad[:3]) if np.all(np.isfinite(cov[:3, :3]))
-                    else math.inf)
-    return {"tau0": tau0_s * sd(cov[0, 0]), "tau1": tau1 * sd(var_tau1),
-            "L": L * sd(cov[1, 1]), "rho": rho * sd(cov[2, 2]),
-            "r_in": r_in_ohm * sd(cov[3, 3]), "bridge": sd(cov[4, 4])}, tau1
+    grad.setflags(write=False)
+    return grad, math.exp(ln_tau1(t))
 
 
 # ---------------------------------------------------------------------------- advise
