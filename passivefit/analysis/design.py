@@ -46,6 +46,7 @@ from dataclasses import dataclass
 from functools import lru_cache
 
 import numpy as np
+import scipy.fft
 
 from passivefit.core.lowpass import Lowpass, filtered_exponential_slopes, filtered_exponentials
 from passivefit.core.qc import Z95, detrended
@@ -155,7 +156,8 @@ def jacobian(model: Callable[[np.ndarray], np.ndarray], theta: Sequence[float],
 
 
 def fisher_information(jac: np.ndarray, sigma: float, acf: Sequence[float] | None = None,
-                       keep: np.ndarray | None = None) -> np.ndarray:
+                       keep: np.ndarray | None = None, *,
+                       spectrum: Callable[[], np.ndarray] | None = None) -> np.ndarray:
     """Fisher information JᵀC⁻¹J of Gaussian noise of sd `sigma` (signal units).
 
     Parameters
@@ -169,6 +171,9 @@ def fisher_information(jac: np.ndarray, sigma: float, acf: Sequence[float] | Non
         by `ar_whitener` along the samples before the sum.
     keep : ndarray of bool, optional
         Samples that are used (the others are whitened with the rest, then left out).
+    spectrum : callable, optional
+        Gives the columns' `_spectrum`, when it is kept for other noise models of the same
+        Jacobian (default: computed here).
 
     Notes
     -----
@@ -177,20 +182,60 @@ def fisher_information(jac: np.ndarray, sigma: float, acf: Sequence[float] | Non
     64 the bound of Bessel-filtered noise is within about 5 % of the exact JᵀC⁻¹J
     (slightly optimistic; tests/test_design.py).
     """
-    ratio = 1.0
     used = np.ones(jac.shape[0], dtype=bool) if keep is None else np.asarray(keep, bool).copy()
-    if acf is not None:
-        b, ratio = ar_whitener(acf)
-        jac = _fir(b, jac)
-        used[: b.size - 1] = False
-    jac = jac[used]
-    return jac.T @ jac / (sigma**2 * ratio)
+    if acf is None:
+        return _gram(jac, used) / sigma**2
+    b, ratio = ar_whitener(acf)
+    used[: b.size - 1] = False
+    if b.size == 1:
+        return _gram(jac, used) * b[0] ** 2 / (sigma**2 * ratio)
+    columns = _spectrum(jac) if spectrum is None else spectrum()
+    return _whitened_gram(jac, columns, b, used) / (sigma**2 * ratio)
 
 
-def _fir(b: np.ndarray, x: np.ndarray) -> np.ndarray:
-    """`x` filtered along its first axis by the FIR filter `b` (zero history)."""
-    n = x.shape[0]
-    return np.column_stack([np.convolve(column, b)[:n] for column in x.T])
+def _gram(x: np.ndarray, used: np.ndarray) -> np.ndarray:
+    """Σ xₙxₙᵀ over the `used` rows of `x`."""
+    x = x[used]
+    return x.T @ x
+
+
+def _spectrum(jac: np.ndarray) -> np.ndarray:
+    """The columns' real DFT, zero-padded so that an FIR filter of up to `AR_ORDER` + 1
+    taps does not wrap around, one row per column with the real and imaginary parts
+    interleaved: shape (P, 2 (M // 2 + 1)), M the padded length."""
+    size = scipy.fft.next_fast_len(jac.shape[0] + AR_ORDER, real=True)
+    return scipy.fft.rfft(np.ascontiguousarray(jac.T), size, axis=1).view(float)
+
+
+def _whitened_gram(jac: np.ndarray, spectrum: np.ndarray, b: np.ndarray, used: np.ndarray
+                   ) -> np.ndarray:
+    """Σ eₙeₙᵀ over the `used` rows of e = `b` * `jac` (the columns FIR-filtered, zero
+    history), from the columns' `spectrum` (`_spectrum`).
+
+    Every sample of the filtered columns, those past the end included, sums by Parseval's
+    theorem to Σₖ wₖ |B(k)|² Re(Ĵₖ* Ĵₖᵀ) (wₖ = 1/M at 0 and M/2, else 2/M; B the filter's
+    DFT); the samples not used and the p past the end are then taken off, each filtered
+    directly. When those hold much of the sum (or are many), the filtered columns are
+    summed instead, so that no difference of near-equal sums loses digits."""
+    n, taps = jac.shape[0], b.size
+    size = scipy.fft.next_fast_len(n + AR_ORDER, real=True)
+    response = scipy.fft.rfft(b, size)
+    if np.count_nonzero(~used) <= n // 8:
+        weight = np.full(response.size, 2.0 / size)
+        weight[0] = 1.0 / size
+        if size % 2 == 0:
+            weight[-1] = 1.0 / size
+        weight *= response.real**2 + response.imag**2
+        total = (spectrum * np.repeat(weight, 2)) @ spectrum.T
+        left = np.concatenate((np.flatnonzero(~used), np.arange(n, n + taps - 1)))
+        rows = left[:, None] - np.arange(taps)               # the samples each one sums
+        inside = (rows >= 0) & (rows < n)
+        e = np.einsum("j,ijp->ip", b, jac[np.clip(rows, 0, n - 1)] * inside[..., None])
+        dropped = e.T @ e
+        if np.all(np.diag(dropped) <= 0.5 * np.diag(total)):
+            return total - dropped
+    filtered = scipy.fft.irfft(spectrum.view(complex) * response, size, axis=1)[:, :n]
+    return _gram(filtered.T, used)
 
 
 def covariance(fisher: np.ndarray) -> np.ndarray:
@@ -491,6 +536,15 @@ def _cached_jacobian(protocol: Protocol, theta: tuple[float, ...]) -> np.ndarray
     return jac
 
 
+@lru_cache(maxsize=4)
+def _cached_spectrum(protocol: Protocol, theta: tuple[float, ...]) -> np.ndarray:
+    """`_spectrum` of `_cached_jacobian`, kept with it (the advice's bound and the
+    protocol changes' reference whiten the same Jacobian by two noise models)."""
+    spectrum = _spectrum(_cached_jacobian(protocol, theta))
+    spectrum.setflags(write=False)
+    return spectrum
+
+
 def _model_acf(protocol: Protocol) -> np.ndarray:
     lags = np.arange(AR_ORDER + 1) / protocol.sample_rate_hz
     if protocol.lowpass is None:
@@ -505,9 +559,10 @@ def cell_covariance(tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge
     `protocol` (each sweep's baseline estimated too); `acf` None: the filter's."""
     theta = np.array([math.log(tau0_s), math.log(L), math.log(rho), math.log(r_in_ohm),
                       bridge_ohm, 0.0])
-    jac = _cached_jacobian(protocol, tuple(theta))
-    fisher = fisher_information(jac, noise_sd_V, _model_acf(protocol) if acf is None else acf,
-                                protocol.keep())
+    key = tuple(theta)
+    fisher = fisher_information(_cached_jacobian(protocol, key), noise_sd_V,
+                                _model_acf(protocol) if acf is None else acf, protocol.keep(),
+                                spectrum=lambda: _cached_spectrum(protocol, key))
     if not protocol.bridge_known:
         return covariance(n_sweeps * profile_out(fisher, [5]))
     keep = [0, 1, 2, 3, 5]   # the bridge held at its value: not estimated
