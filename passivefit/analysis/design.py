@@ -448,10 +448,19 @@ def _sweep_of(protocol: Protocol, edge_response, columns: tuple[int, ...] = ()) 
     the time's): the step's onset minus its end."""
     t = protocol.times()
     out = np.zeros((t.size, *columns))
+    first = None   # the onset's response, reused for the end when it falls on the same grid
     for edge, sign in ((protocol.onset_s, 1.0), (protocol.onset_s + protocol.duration_s, -1.0)):
         after = int(np.searchsorted(t, edge, side="right"))   # the first sample after it
-        if after < t.size:
-            out[after:] += sign * edge_response(t[after:] - edge)
+        if after == t.size:
+            continue
+        u = t[after:] - edge
+        if first is not None and u.size <= first[0].size and np.allclose(
+                u, first[0][:u.size], rtol=0.0, atol=1e-9 / protocol.sample_rate_hz):
+            response = first[1][:u.size]   # the times after the edge agree to round-off
+        else:
+            response = edge_response(u)
+            first = first or (u, response)
+        out[after:] += sign * response
     return out
 
 
