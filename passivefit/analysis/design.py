@@ -554,6 +554,14 @@ def _cached_spectrum(protocol: Protocol, theta: tuple[float, ...]) -> np.ndarray
     return spectrum
 
 
+def _per_unit_current(protocol: Protocol) -> Protocol:
+    """`protocol` with an amplitude of 1 A: all but the baseline's column of the Jacobian
+    scale with the amplitude, so one Jacobian serves every amplitude."""
+    from dataclasses import replace
+
+    return replace(protocol, amplitude_A=1.0)
+
+
 def _model_acf(protocol: Protocol) -> np.ndarray:
     lags = np.arange(AR_ORDER + 1) / protocol.sample_rate_hz
     if protocol.lowpass is None:
@@ -568,10 +576,12 @@ def cell_covariance(tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge
     `protocol` (each sweep's baseline estimated too); `acf` None: the filter's."""
     theta = np.array([math.log(tau0_s), math.log(L), math.log(rho), math.log(r_in_ohm),
                       bridge_ohm, 0.0])
-    key = tuple(theta)
-    fisher = fisher_information(_cached_jacobian(protocol, key), noise_sd_V,
+    key, unit = tuple(theta), _per_unit_current(protocol)
+    fisher = fisher_information(_cached_jacobian(unit, key), noise_sd_V,
                                 _model_acf(protocol) if acf is None else acf, protocol.keep(),
-                                spectrum=lambda: _cached_spectrum(protocol, key))
+                                spectrum=lambda: _cached_spectrum(unit, key))
+    scale = np.array([*[protocol.amplitude_A] * 5, 1.0])   # s is linear in the current
+    fisher = fisher * np.outer(scale, scale)
     if not protocol.bridge_known:
         return covariance(n_sweeps * profile_out(fisher, [5]))
     keep = [0, 1, 2, 3, 5]   # the bridge held at its value: not estimated
@@ -798,8 +808,10 @@ def _pulse_like(cell, bridge_ohm: float, protocol: Protocol) -> Protocol:
     from dataclasses import replace
 
     unit = replace(protocol, kind="pulse", duration_s=PULSE_S, amplitude_A=1.0)
-    theta = np.array([*np.log(cell), 0.0, 0.0])
-    peak = float(np.max(np.abs(_forward(unit)(theta))))
+    theta = tuple(np.array([*map(math.log, cell), bridge_ohm, 0.0]))   # as cell_covariance's
+    # the response per unit current is the Jacobian's column in ln R_in (kept for the
+    # pulse's bound)
+    peak = float(np.max(np.abs(_cached_jacobian(unit, theta)[:, 3])))
     amplitude = protocol.amplitude_A * cell[3] / peak
     return replace(unit, amplitude_A=amplitude)
 
