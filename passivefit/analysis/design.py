@@ -46,6 +46,7 @@ from dataclasses import dataclass
 from functools import lru_cache
 
 import numpy as np
+import scipy.fft
 
 from passivefit.core.lowpass import Lowpass, filtered_exponential_slopes, filtered_exponentials
 from passivefit.core.qc import Z95, detrended
@@ -155,7 +156,8 @@ def jacobian(model: Callable[[np.ndarray], np.ndarray], theta: Sequence[float],
 
 
 def fisher_information(jac: np.ndarray, sigma: float, acf: Sequence[float] | None = None,
-                       keep: np.ndarray | None = None) -> np.ndarray:
+                       keep: np.ndarray | None = None, *,
+                       spectrum: Callable[[], np.ndarray] | None = None) -> np.ndarray:
     """Fisher information JᵀC⁻¹J of Gaussian noise of sd `sigma` (signal units).
 
     Parameters
@@ -169,6 +171,9 @@ def fisher_information(jac: np.ndarray, sigma: float, acf: Sequence[float] | Non
         by `ar_whitener` along the samples before the sum.
     keep : ndarray of bool, optional
         Samples that are used (the others are whitened with the rest, then left out).
+    spectrum : callable, optional
+        Gives the columns' `_spectrum`, when it is kept for other noise models of the same
+        Jacobian (default: computed here).
 
     Notes
     -----
@@ -177,20 +182,60 @@ def fisher_information(jac: np.ndarray, sigma: float, acf: Sequence[float] | Non
     64 the bound of Bessel-filtered noise is within about 5 % of the exact JᵀC⁻¹J
     (slightly optimistic; tests/test_design.py).
     """
-    ratio = 1.0
     used = np.ones(jac.shape[0], dtype=bool) if keep is None else np.asarray(keep, bool).copy()
-    if acf is not None:
-        b, ratio = ar_whitener(acf)
-        jac = _fir(b, jac)
-        used[: b.size - 1] = False
-    jac = jac[used]
-    return jac.T @ jac / (sigma**2 * ratio)
+    if acf is None:
+        return _gram(jac, used) / sigma**2
+    b, ratio = ar_whitener(acf)
+    used[: b.size - 1] = False
+    if b.size == 1:
+        return _gram(jac, used) * b[0] ** 2 / (sigma**2 * ratio)
+    columns = _spectrum(jac) if spectrum is None else spectrum()
+    return _whitened_gram(jac, columns, b, used) / (sigma**2 * ratio)
 
 
-def _fir(b: np.ndarray, x: np.ndarray) -> np.ndarray:
-    """`x` filtered along its first axis by the FIR filter `b` (zero history)."""
-    n = x.shape[0]
-    return np.column_stack([np.convolve(column, b)[:n] for column in x.T])
+def _gram(x: np.ndarray, used: np.ndarray) -> np.ndarray:
+    """Σ xₙxₙᵀ over the `used` rows of `x`."""
+    x = x[used]
+    return x.T @ x
+
+
+def _spectrum(jac: np.ndarray) -> np.ndarray:
+    """The columns' real DFT, zero-padded so that an FIR filter of up to `AR_ORDER` + 1
+    taps does not wrap around, one row per column with the real and imaginary parts
+    interleaved: shape (P, 2 (M // 2 + 1)), M the padded length."""
+    size = scipy.fft.next_fast_len(jac.shape[0] + AR_ORDER, real=True)
+    return scipy.fft.rfft(np.ascontiguousarray(jac.T), size, axis=1).view(float)
+
+
+def _whitened_gram(jac: np.ndarray, spectrum: np.ndarray, b: np.ndarray, used: np.ndarray
+                   ) -> np.ndarray:
+    """Σ eₙeₙᵀ over the `used` rows of e = `b` * `jac` (the columns FIR-filtered, zero
+    history), from the columns' `spectrum` (`_spectrum`).
+
+    Every sample of the filtered columns, those past the end included, sums by Parseval's
+    theorem to Σₖ wₖ |B(k)|² Re(Ĵₖ* Ĵₖᵀ) (wₖ = 1/M at 0 and M/2, else 2/M; B the filter's
+    DFT); the samples not used and the p past the end are then taken off, each filtered
+    directly. When those hold much of the sum (or are many), the filtered columns are
+    summed instead, so that no difference of near-equal sums loses digits."""
+    n, taps = jac.shape[0], b.size
+    size = scipy.fft.next_fast_len(n + AR_ORDER, real=True)
+    response = scipy.fft.rfft(b, size)
+    if np.count_nonzero(~used) <= n // 8:
+        weight = np.full(response.size, 2.0 / size)
+        weight[0] = 1.0 / size
+        if size % 2 == 0:
+            weight[-1] = 1.0 / size
+        weight *= response.real**2 + response.imag**2
+        total = (spectrum * np.repeat(weight, 2)) @ spectrum.T
+        left = np.concatenate((np.flatnonzero(~used), np.arange(n, n + taps - 1)))
+        rows = left[:, None] - np.arange(taps)               # the samples each one sums
+        inside = (rows >= 0) & (rows < n)
+        e = np.einsum("j,ijp->ip", b, jac[np.clip(rows, 0, n - 1)] * inside[..., None])
+        dropped = e.T @ e
+        if np.all(np.diag(dropped) <= 0.5 * np.diag(total)):
+            return total - dropped
+    filtered = scipy.fft.irfft(spectrum.view(complex) * response, size, axis=1)[:, :n]
+    return _gram(filtered.T, used)
 
 
 def covariance(fisher: np.ndarray) -> np.ndarray:
@@ -403,10 +448,19 @@ def _sweep_of(protocol: Protocol, edge_response, columns: tuple[int, ...] = ()) 
     the time's): the step's onset minus its end."""
     t = protocol.times()
     out = np.zeros((t.size, *columns))
+    first = None   # the onset's response, reused for the end when it falls on the same grid
     for edge, sign in ((protocol.onset_s, 1.0), (protocol.onset_s + protocol.duration_s, -1.0)):
         after = int(np.searchsorted(t, edge, side="right"))   # the first sample after it
-        if after < t.size:
-            out[after:] += sign * edge_response(t[after:] - edge)
+        if after == t.size:
+            continue
+        u = t[after:] - edge
+        if first is not None and u.size <= first[0].size and np.allclose(
+                u, first[0][:u.size], rtol=0.0, atol=1e-9 / protocol.sample_rate_hz):
+            response = first[1][:u.size]   # the times after the edge agree to round-off
+        else:
+            response = edge_response(u)
+            first = first or (u, response)
+        out[after:] += sign * response
     return out
 
 
@@ -491,6 +545,23 @@ def _cached_jacobian(protocol: Protocol, theta: tuple[float, ...]) -> np.ndarray
     return jac
 
 
+@lru_cache(maxsize=4)
+def _cached_spectrum(protocol: Protocol, theta: tuple[float, ...]) -> np.ndarray:
+    """`_spectrum` of `_cached_jacobian`, kept with it (the advice's bound and the
+    protocol changes' reference whiten the same Jacobian by two noise models)."""
+    spectrum = _spectrum(_cached_jacobian(protocol, theta))
+    spectrum.setflags(write=False)
+    return spectrum
+
+
+def _per_unit_current(protocol: Protocol) -> Protocol:
+    """`protocol` with an amplitude of 1 A: all but the baseline's column of the Jacobian
+    scale with the amplitude, so one Jacobian serves every amplitude."""
+    from dataclasses import replace
+
+    return replace(protocol, amplitude_A=1.0)
+
+
 def _model_acf(protocol: Protocol) -> np.ndarray:
     lags = np.arange(AR_ORDER + 1) / protocol.sample_rate_hz
     if protocol.lowpass is None:
@@ -505,9 +576,12 @@ def cell_covariance(tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge
     `protocol` (each sweep's baseline estimated too); `acf` None: the filter's."""
     theta = np.array([math.log(tau0_s), math.log(L), math.log(rho), math.log(r_in_ohm),
                       bridge_ohm, 0.0])
-    jac = _cached_jacobian(protocol, tuple(theta))
-    fisher = fisher_information(jac, noise_sd_V, _model_acf(protocol) if acf is None else acf,
-                                protocol.keep())
+    key, unit = tuple(theta), _per_unit_current(protocol)
+    fisher = fisher_information(_cached_jacobian(unit, key), noise_sd_V,
+                                _model_acf(protocol) if acf is None else acf, protocol.keep(),
+                                spectrum=lambda: _cached_spectrum(unit, key))
+    scale = np.array([*[protocol.amplitude_A] * 5, 1.0])   # s is linear in the current
+    fisher = fisher * np.outer(scale, scale)
     if not protocol.bridge_known:
         return covariance(n_sweeps * profile_out(fisher, [5]))
     keep = [0, 1, 2, 3, 5]   # the bridge held at its value: not estimated
@@ -520,6 +594,23 @@ def cell_covariance(tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge
 def _sds(cov: np.ndarray, tau0_s: float, L: float, rho: float, r_in_ohm: float
          ) -> tuple[dict, float]:
     """CRLB sd of each of `NAMES` (SI) from the covariance of θ, and τ1 (s)."""
+    grad, tau1 = _tau1_gradient(tau0_s, L, rho)
+
+    def sd(var: float) -> float:
+        return math.sqrt(var) if math.isfinite(var) and var >= 0 else math.inf
+
+    with np.errstate(invalid="ignore"):
+        var_tau1 = (float(grad[:3] @ cov[:3, :3] @ grad[:3]) if np.all(np.isfinite(cov[:3, :3]))
+                    else math.inf)
+    return {"tau0": tau0_s * sd(cov[0, 0]), "tau1": tau1 * sd(var_tau1),
+            "L": L * sd(cov[1, 1]), "rho": rho * sd(cov[2, 2]),
+            "r_in": r_in_ohm * sd(cov[3, 3]), "bridge": sd(cov[4, 4])}, tau1
+
+
+@lru_cache(maxsize=8)
+def _tau1_gradient(tau0_s: float, L: float, rho: float) -> tuple[np.ndarray, float]:
+    """∂ ln τ1/∂(ln τ0, ln L, ln ρ) by central differences, and τ1 (s): the same for every
+    protocol of one cell, so kept for the protocol changes' bounds."""
     def ln_tau1(t: np.ndarray) -> float:
         from passivefit.core.cable import ballstick_alphas
 
@@ -533,17 +624,8 @@ def _sds(cov: np.ndarray, tau0_s: float, L: float, rho: float, r_in_ohm: float
         up[i] += _LOG_STEP
         down[i] -= _LOG_STEP
         grad[i] = (ln_tau1(up) - ln_tau1(down)) / (2 * _LOG_STEP)
-    tau1 = math.exp(ln_tau1(t))
-
-    def sd(var: float) -> float:
-        return math.sqrt(var) if math.isfinite(var) and var >= 0 else math.inf
-
-    with np.errstate(invalid="ignore"):
-        var_tau1 = (float(grad[:3] @ cov[:3, :3] @ grad[:3]) if np.all(np.isfinite(cov[:3, :3]))
-                    else math.inf)
-    return {"tau0": tau0_s * sd(cov[0, 0]), "tau1": tau1 * sd(var_tau1),
-            "L": L * sd(cov[1, 1]), "rho": rho * sd(cov[2, 2]),
-            "r_in": r_in_ohm * sd(cov[3, 3]), "bridge": sd(cov[4, 4])}, tau1
+    grad.setflags(write=False)
+    return grad, math.exp(ln_tau1(t))
 
 
 # ---------------------------------------------------------------------------- advise
@@ -726,8 +808,10 @@ def _pulse_like(cell, bridge_ohm: float, protocol: Protocol) -> Protocol:
     from dataclasses import replace
 
     unit = replace(protocol, kind="pulse", duration_s=PULSE_S, amplitude_A=1.0)
-    theta = np.array([*np.log(cell), 0.0, 0.0])
-    peak = float(np.max(np.abs(_forward(unit)(theta))))
+    theta = tuple(np.array([*map(math.log, cell), bridge_ohm, 0.0]))   # as cell_covariance's
+    # the response per unit current is the Jacobian's column in ln R_in (kept for the
+    # pulse's bound)
+    peak = float(np.max(np.abs(_cached_jacobian(unit, theta)[:, 3])))
     amplitude = protocol.amplitude_A * cell[3] / peak
     return replace(unit, amplitude_A=amplitude)
 
