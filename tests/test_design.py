@@ -348,3 +348,14 @@ def test_a_known_bridge_can_only_narrow_the_bounds(advice):
         assert known.bound(name).crlb_ci <= advice.bound(name).crlb_ci * (1 + 1e-9)
     assert known.bound("rho").crlb_ci < 0.95 * advice.bound("rho").crlb_ci
     assert not math.isfinite(known.bound("bridge").crlb_ci)
+
+
+def test_fast_fft_length_is_scipys():
+    # the FFT length of the whitened sums: the smallest 5-smooth length >= n, as
+    # scipy.fft.next_fast_len gives for real transforms (checked against scipy itself)
+    import scipy.fft
+
+    from passivefit.analysis.design import _fast_length
+
+    for n in (1, 2, 7, 11, 97, 1000, 12_345, 20_001, 20_065, 40_129, 100_003):
+        assert _fast_length(n) == scipy.fft.next_fast_len(n, real=True), n
