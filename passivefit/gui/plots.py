@@ -24,7 +24,7 @@ MAX_SEMILOG_POINTS = 500
 # window, so it must be above it to take the mouse there; the fit keeps its free start
 REGION_Z = {"fit_off": -13, "fit": -12, "baseline": -10, "steady": -9}
 #: Heights of the window labels, as fractions of the view (staggered so none overlap)
-LABEL_HEIGHT = {"baseline": 0.97, "fit": 0.90, "steady": 0.83, "fit_off": 0.97}
+LABEL_HEIGHT = {"baseline": 0.97, "fit": 0.90, "steady": 0.90, "fit_off": 0.97}
 
 
 def new_plot(title: str = "", x_label: str = "", y_label: str = "", *,
