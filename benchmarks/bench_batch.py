@@ -3,8 +3,9 @@
 Writes simulated recordings of invented cells (20 kHz, 1 s sweeps, NWB with the
 command current), runs `passivefit batch FOLDER --db FILE --workers 2` as a
 separate process and samples the resident memory of that process and its worker
-processes (summed, from /proc, every 20 ms). Target (issue #14): >= 150 sweeps/s with 2 workers, >= 85 % of two single-core rates;
-peak memory for 4N files about the same as for N (bounded, not growing with the folder).
+processes (summed, from /proc, every 20 ms). Targets (issue #14): >= 150 sweeps/s with
+2 workers, and >= 85 % of two single-core rates; peak memory for 4N files about the same
+as for N (bounded, not growing with the folder).
 
     python benchmarks/bench_batch.py [--files N] [--sweeps S] [--workers W] [--data DIR]
 
