@@ -351,11 +351,11 @@ def test_a_known_bridge_can_only_narrow_the_bounds(advice):
 
 
 def test_fast_fft_length_is_scipys():
-    # the FFT length of the whitened sums: the smallest 5-smooth length >= n, as
+    # the FFT length of the whitened sums and the event scans: the smallest 5-smooth length >= n, as
     # scipy.fft.next_fast_len gives for real transforms (checked against scipy itself)
     import scipy.fft
 
-    from passivefit.analysis.design import _fast_length
+    from passivefit.core.qc import fft_length
 
     for n in (1, 2, 7, 11, 97, 1000, 12_345, 20_001, 20_065, 40_129, 100_003):
-        assert _fast_length(n) == scipy.fft.next_fast_len(n, real=True), n
+        assert fft_length(n) == scipy.fft.next_fast_len(n, real=True), n

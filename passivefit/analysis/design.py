@@ -48,7 +48,7 @@ from functools import lru_cache
 import numpy as np
 
 from passivefit.core.lowpass import Lowpass, filtered_exponential_slopes, filtered_exponentials
-from passivefit.core.qc import Z95, detrended
+from passivefit.core.qc import Z95, detrended, fft_length
 from passivefit.model import schema as S
 
 MAX_SWEEPS = 500                   # beyond this a value is "not resolvable" in practice
@@ -198,28 +198,11 @@ def _gram(x: np.ndarray, used: np.ndarray) -> np.ndarray:
     return x.T @ x
 
 
-def _fast_length(n: int) -> int:
-    """The smallest length >= `n` with no prime factor above 5, which the FFT does fast
-    (numpy's FFT: importing scipy.fft costs more than the whole advice)."""
-    best = 2 * n
-    five = 1
-    while five < best:
-        three = five
-        while three < best:
-            two = three
-            while two < n:
-                two *= 2
-            best = min(best, two)
-            three *= 3
-        five *= 5
-    return best
-
-
 def _spectrum(jac: np.ndarray) -> np.ndarray:
     """The columns' real DFT, zero-padded so that an FIR filter of up to `AR_ORDER` + 1
     taps does not wrap around, one row per column with the real and imaginary parts
     interleaved: shape (P, 2 (M // 2 + 1)), M the padded length."""
-    size = _fast_length(jac.shape[0] + AR_ORDER)
+    size = fft_length(jac.shape[0] + AR_ORDER)
     return np.fft.rfft(np.ascontiguousarray(jac.T), size, axis=1).view(float)
 
 
@@ -234,7 +217,7 @@ def _whitened_gram(jac: np.ndarray, spectrum: np.ndarray, b: np.ndarray, used: n
     directly. When those hold much of the sum (or are many), the filtered columns are
     summed instead, so that no difference of near-equal sums loses digits."""
     n, taps = jac.shape[0], b.size
-    size = _fast_length(n + AR_ORDER)
+    size = fft_length(n + AR_ORDER)
     response = np.fft.rfft(b, size)
     if np.count_nonzero(~used) <= n // 8:
         weight = np.full(response.size, 2.0 / size)

@@ -29,7 +29,7 @@ from functools import lru_cache
 
 import numpy as np
 
-from passivefit.core.qc import robust_sd
+from passivefit.core.qc import fft_length, robust_sd
 
 __all__ = [
     "EVENT_Z",
@@ -230,27 +230,9 @@ def _correlate_valid(x: np.ndarray, shape: EventShape, fs_hz: float, n_pre: int,
     n, k = x.shape[-1], n_pre + n_post
     if n < k:
         return np.zeros(x.shape[:-1] + (0,))
-    size = _fft_size(n + k - 1)
+    size = fft_length(n + k - 1)
     spectrum = _kernel_spectrum(shape, fs_hz, n_pre, n_post, size)
     return np.fft.irfft(np.fft.rfft(x, size) * spectrum, size)[..., k - 1: n]
-
-
-@lru_cache(maxsize=256)
-def _fft_size(n: int) -> int:
-    """The least 2^a 3^b 5^c >= n: numpy's FFT is fast on any such length, and one near
-    n costs up to half of the next power of 2."""
-    best = 1 << (n - 1).bit_length()
-    p5 = 1
-    while p5 < best:
-        p35 = p5
-        while p35 < best:
-            p = p35
-            while p < n:
-                p *= 2
-            best = min(best, p)
-            p35 *= 3
-        p5 *= 5
-    return best
 
 
 @lru_cache(maxsize=32)

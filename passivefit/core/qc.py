@@ -106,6 +106,25 @@ def robust_sd(x: np.ndarray) -> float:
     return float(1.4826 * np.median(np.abs(x - np.median(x)))) if x.size else 0.0
 
 
+@lru_cache(maxsize=256)
+def fft_length(n: int) -> int:
+    """The least 2^a 3^b 5^c >= n: numpy's FFT is fast on any such length, and one near n
+    costs up to half of the next power of 2 (scipy.fft.next_fast_len's lengths for real
+    transforms; importing scipy.fft costs more than most of the FFTs it would serve)."""
+    best = 1 << (n - 1).bit_length()
+    p5 = 1
+    while p5 < best:
+        p35 = p5
+        while p35 < best:
+            p = p35
+            while p < n:
+                p *= 2
+            best = min(best, p)
+            p35 *= 3
+        p5 *= 5
+    return best
+
+
 def detrended(x: np.ndarray) -> np.ndarray:
     """`x` less its least-squares straight line over the sample index, along its last
     axis (each row of a 2-d array on its own)."""
