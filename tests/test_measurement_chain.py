@@ -94,6 +94,19 @@ def test_a_12_megohm_bridge_with_80_us_lag_is_found_and_taken_out():
     assert abs(cell["bridge_MOhm"] - 12.0) <= cell["bridge_ci95_MOhm"]
     assert cell["bridge_applied"] is True
     assert cell["r_in_raw_MOhm"] == pytest.approx(122.0, rel=0.02)
+    # at 20 kHz behind a 5 kHz filter the 80 µs lag is not determined (its CI is wider than
+    # itself): it is not reported
+    assert cell.get("electrode_lag_us") is None
+
+
+def test_a_lag_the_data_determine_is_reported_with_its_interval():
+    # a 30 MΩ bridge error through a 150 µs lag, sampled at 50 kHz behind a 10 kHz filter
+    cell = BallStick.from_electrotonic(0.022, 1.0, 5.0, 110e6)
+    rec, _ = simulate_recording(cell, protocol=STEPS, n_sweeps=20, sweep_duration_s=0.8,
+                                sample_rate_hz=50_000, noise_sd_V=0.2e-3, filter_hz=10_000,
+                                bridge_ohm=30e6, electrode_tau_s=150e-6, seed=3)
+    data = analyze(rec, Settings(bootstrap=0)).to_dict()["cell"]
+    assert abs(data["electrode_lag_us"] - 150.0) <= data["electrode_lag_ci95_us"] < 150.0
 
 
 def test_a_clean_cell_with_an_unstated_filter_gets_no_bridge():
@@ -104,6 +117,7 @@ def test_a_clean_cell_with_an_unstated_filter_gets_no_bridge():
     assert cell["r_in_MOhm"] == cell["r_in_raw_MOhm"]
     assert cell["r_in_MOhm"] == pytest.approx(truth["r_in_MOhm"], rel=0.01)
     assert "cell.filter_estimated" in codes
+    assert cell.get("electrode_lag_us") is None   # no jump: no lag
     assert cell["filter_source"] == "estimated from the baseline noise spectrum"
     assert cell["filter_corner_hz"] == pytest.approx(5_000.0, rel=0.1)
 
@@ -172,3 +186,19 @@ def test_the_window_shows_the_cells_one_tau1(qtbot, open_window, recording_file,
              if item.name()]
     assert caption in names
     assert all("start value" in n for n in names if n.startswith("peel"))
+
+
+@pytest.mark.parametrize("se_hz, undetermined", [(200.0, False), (60_000.0, True), (None, False)])
+def test_a_fitted_corner_the_data_do_not_determine_is_said(se_hz, undetermined):
+    # a corner fitted to the step edge with a 95 % CI wider than itself (as 500 ± 116,000 Hz
+    # on a real recording behind a 500 Hz filter) asks for --filter-hz; one from the noise
+    # spectrum (no CI) or a determined one does not
+    from types import SimpleNamespace
+
+    from passivefit.analysis.cable import Chain
+    from passivefit.analysis.pipeline import _chain_flags
+
+    fit = SimpleNamespace(corner_hz=500.0, corner_se_hz=se_hz)
+    (flag,) = _chain_flags(fit, Chain(source="estimated from the step edge"))
+    assert flag.code == "cell.filter_estimated"
+    assert ("give the corner with --filter-hz" in flag.message) is undetermined

@@ -362,15 +362,30 @@ def _chain_values(fit, chain: Chain) -> dict:
         values[S.FILTER] = fit.corner_hz
         if fit.corner_se_hz is not None:
             values[S.FILTER_CI] = 1.96 * fit.corner_se_hz
-    if np.isfinite(fit.lag_s):
-        values[S.LAG] = fit.lag_s
+    if _lag_determined(fit):
+        values[S.LAG], values[S.LAG_CI] = fit.lag_s, 1.96 * fit.lag_se_s
     return values
+
+
+def _lag_determined(fit) -> bool:
+    """Whether the electrode lag means something: the data need the bridge jump it belongs
+    to, and the lag is clear of its fit bounds with a 95 % CI narrower than itself."""
+    from passivefit.core.cablefit import LAG_BOUNDS_S
+
+    low, high = LAG_BOUNDS_S
+    return (fit.bridge_needed and low * 1.02 < fit.lag_s < high / 1.02
+            and 1.96 * fit.lag_se_s < fit.lag_s)
 
 
 def _chain_flags(fit, chain: Chain) -> list[Flag]:
     if fit is None or chain.source == CORNER_GIVEN or fit.corner_hz is None:
         return []
-    return [S.CELL_FILTER_ESTIMATED.make(fit.corner_hz, how=chain.source)]
+    fitted = fit.corner_se_hz is not None   # fitted to the step edge (else: from the noise)
+    undetermined = ("; these data do not determine it (its 95 % CI is wider than the value): "
+                    "give the corner with --filter-hz"
+                    if fitted and not 1.96 * fit.corner_se_hz < fit.corner_hz else "")
+    return [S.CELL_FILTER_ESTIMATED.make(fit.corner_hz, how=chain.source,
+                                         undetermined=undetermined)]
 
 
 def _L_cyl_samples(boot: dict | None, cable: bool) -> np.ndarray | None:

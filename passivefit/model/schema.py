@@ -156,8 +156,9 @@ FILTER = Quantity("filter_corner_hz", "filter corner", "Hz", 1.0, 4, ci="filter_
                   title="Low-pass filter corner used by the model")
 FILTER_CI = _ci("filter_corner_ci95_hz", "filter corner", "Hz")
 FILTER_SOURCE = Quantity("filter_source", "filter corner from", kind="text")
-LAG = Quantity("electrode_lag_us", "electrode lag", "µs", 1e-6, 3,
+LAG = Quantity("electrode_lag_us", "electrode lag", "µs", 1e-6, 3, ci="electrode_lag_ci95_us",
                title="Electrode lag of the bridge jump")
+LAG_CI = _ci("electrode_lag_ci95_us", "electrode lag", "µs", 1e-6)
 CM = Quantity("cm_uF_per_cm2", "specific Cm", "µF/cm²", 1e-2, 4)   # SI: F/m²
 RM = Quantity("rm_kOhm_cm2", "specific Rm", "kΩ·cm²", 0.1, 4)      # SI: Ω·m²
 
@@ -197,7 +198,7 @@ CELL_EXTRA = (BRIDGE, BRIDGE_CI, BRIDGE_APPLIED, TAU1_SOURCE, TAU1_EXP, TAU2, TA
               COMPONENTS_REASON, CI_METHOD, REF_STEP, C_RATIO, CM, RM, TAU_SAG, R_IN_PEAK,
               R_IN_SLOPE, R_IN_CHORD, REBOUND, R_IN_CHANGE, V_REST_CHANGE, STABLE_SWEEPS, HUM,
               R_IN_CI, R_IN_RAW, R_IN_CORRECTED, L_CI_LOW, L_CI_HIGH, RHO_CI_LOW, RHO_CI_HIGH,
-              FILTER, FILTER_CI, FILTER_SOURCE, LAG)
+              FILTER, FILTER_CI, FILTER_SOURCE, LAG, LAG_CI)
 CELL = CELL_CORE + CELL_EXTRA
 
 # Sweep values (each of `sweeps`), in contract order.
@@ -342,7 +343,7 @@ CELL_BRIDGE_UNCERTAIN = _flag(
                  "may hold a bridge error (fitted jump, MΩ)")
 CELL_FILTER_ESTIMATED = _flag(
     "cell.filter_estimated", "info",
-    "the file does not state the amplifier's low-pass corner; it was {how} (Hz)")
+    "the file does not state the amplifier's low-pass corner; it was {how}{undetermined} (Hz)")
 CELL_ASYMMETRIC = _flag(
     "cell.asymmetric", "warning",
     "depolarizing and hyperpolarizing steps give R_in that differ: the responses are not "
