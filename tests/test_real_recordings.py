@@ -87,6 +87,8 @@ def test_a_sagging_cell_with_two_steps_per_sweep(results):
     codes = {f.code for f in result.flags}
     assert {"cell.sag", "fit.sag_window", "cable.not_passive"} <= codes
     assert cell[S.L_BS.key] is None and cell[S.L_CYL.key] is None
+    # no τ1 in a sagging cell, and no amplitude of a component it does not give
+    assert cell[S.TAU1.key] is None and cell[S.C1.key] is None
 
 
 @pytest.mark.slow

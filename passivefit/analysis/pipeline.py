@@ -465,8 +465,7 @@ def _time_constants(fit, bs, avg: GroupAverage, boot: dict | None, fs: float,
         tau0_ci = max(halfwidth(boot, "tau0") or 0.0, floor)
     values: dict = {S.N_COMPONENTS: n, S.TAU0: fit.taus[0], S.TAU0_CI: tau0_ci,
                     S.C0: amps[0], S.REF_STEP: avg.amplitude_A}
-    if n >= 2:
-        values[S.C1] = amps[1]
+    if n >= 2:   # the exponential fit's own τ1 always; C1 only with the cell's τ1 (below)
         values[S.TAU1_EXP] = fit.taus[1]
     if n >= 3:
         values[S.TAU2] = fit.taus[2]
@@ -489,7 +488,7 @@ def _time_constants(fit, bs, avg: GroupAverage, boot: dict | None, fs: float,
         return values, [S.FIT_TAU1_UNRESOLVED.make(tau1 / MS, reason="too_fast")]
     if tau1_ci is None or not np.isfinite(tau1_ci) or tau1_ci > tau1:
         return values, [S.FIT_TAU1_UNRESOLVED.make(tau1 / MS, reason="wide_ci")]
-    values[S.TAU1], values[S.TAU1_CI] = tau1, tau1_ci
+    values[S.TAU1], values[S.TAU1_CI], values[S.C1] = tau1, tau1_ci, amps[1]
     return values, []
 
 
