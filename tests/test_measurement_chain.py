@@ -70,6 +70,10 @@ def test_r_in_is_one_value_whatever_the_fit_start_components_or_bootstrap(ca1):
     variants = [dict(fit_start_ms=ms, bootstrap=0) for ms in (1.0, 2.0, 3.5, 5.0)]
     variants += [dict(components=n, bootstrap=0) for n in ("1", "2", "3")]
     variants += [dict(bootstrap=40)]
+    # ρ from the amplitudes, (V_inf − B0)/(B0 L coth L − V_inf) (Rall's step amplitudes,
+    # docs/references.md §3), agrees with the time course's ρ and the sample's truth (ρ = 5)
+    assert reference["rho_amplitude"] == pytest.approx(5.0, rel=0.15)
+    assert reference["rho_amplitude"] == pytest.approx(reference["rho"], rel=0.15)
     for options in variants:
         cell = _cell(ca1, **options)
         assert abs(cell["r_in_MOhm"] - r_in) < ci, options

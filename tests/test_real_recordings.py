@@ -211,6 +211,9 @@ def test_the_test_pulse_is_taken_with_the_recorded_current(results):
         0.25, abs=1e-3)
     assert "protocol.holding_disagrees" in {f.code for f in result.flags}
     assert result.sweeps[0].accepted
+    # one exponential only: no τ1, so no ρ, and no check of a ρ that is not given
+    cell = result.to_dict()["cell"]
+    assert cell[S.RHO.key] is None and "cable.rho_mismatch" not in {f.code for f in result.flags}
 
 
 def test_a_step_of_the_wrong_sign_is_one_line(tmp_path):

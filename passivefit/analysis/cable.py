@@ -154,7 +154,7 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
                 flags.append(spec.make(value))
         values[S.TAU0_MODEL] = bs.tau0_s
         values[S.C_TOTAL] = bs.c_total_F(0, step.amplitude_A)
-        if kind == "step" and r_in and _inside(bs.rho, RHO_BOUNDS):
+        if kind == "step" and r_in and S.RHO in values:   # a ρ given, to check
             more, more_flags = rho_cross_check(bs, r_in * step.amplitude_A)
             values.update(more)
             flags.extend(more_flags)
