@@ -477,3 +477,45 @@ def test_one_electrode_gives_no_choice_flag(tmp_path):
     assert not any(f.code == S.PROTOCOL_ELECTRODE.code for f in recording.flags)
     same = load(tmp_path / "one.nwb", channel="electrode_0")
     assert_allclose(same.sweeps[1].voltage, recording.sweeps[1].voltage)
+
+
+def test_a_mixed_protocol_file_is_analysed_from_its_steps(tmp_path):
+    # as archives of patch-clamp data hold them: one file, sweeps of several stimulus
+    # types and lengths paired by sweep number (a ramp, long squares, a brief square),
+    # written by pynwb itself. The cell comes from the long squares; the other sweeps
+    # say what they are.
+    from passivefit.analysis import Settings, analyze
+    from passivefit.simulate import BallStick, StepProtocol, simulate_recording
+
+    rate = 20_000.0
+    nwb, electrode = _file()
+    sweeps = []
+    t = np.arange(int(1.2 * rate)) / rate
+    ramp = np.where(t > 0.2, (t - 0.2) * 100e-12, 0.0)
+    sweeps.append((-0.070 + ramp * 150e6, ramp, "Ramp"))
+    cell = BallStick.from_electrotonic(0.025, 1.0, 4.0, 150e6)
+    for k, (onset, duration, amp) in enumerate([(0.2, 0.5, -50e-12), (0.2, 0.5, -30e-12),
+                                                (0.2, 0.5, -10e-12), (0.3, 0.003, -400e-12)]):
+        rec, _ = simulate_recording(cell, protocol=StepProtocol(onset, duration, (amp,)),
+                                    n_sweeps=1, sweep_duration_s=1.0, sample_rate_hz=rate,
+                                    noise_sd_V=0.2e-3, filter_hz=5_000, seed=k)
+        sweep = rec.sweeps[0]
+        sweeps.append((sweep.voltage, sweep.current, "LongSquare" if duration > 0.1 else
+                       "ShortSquare"))
+    for k, (v, i, kind) in enumerate(sweeps):
+        common = dict(electrode=electrode, gain=1.0, rate=rate, sweep_number=np.uint32(k),
+                      stimulus_description=kind)
+        nwb.add_acquisition(CurrentClampSeries(name=f"data_{k:05d}_AD0",
+                                               data=np.asarray(v) * 1e3, conversion=1e-3,
+                                               **common))
+        nwb.add_stimulus(CurrentClampStimulusSeries(name=f"data_{k:05d}_DA0",
+                                                    data=np.asarray(i) * 1e12, conversion=1e-12,
+                                                    **common))
+    result = analyze(load(_write(nwb, tmp_path / "mixed.nwb")), Settings(bootstrap=0))
+    fits = {f.index: f for f in result.sweeps}
+    assert {k for k, f in fits.items() if f.accepted} == {1, 2, 3}
+    assert fits[0].reject_reason == "a current ramp, no step"
+    assert fits[4].reject_reason.startswith("only brief pulses")
+    cell_values = result.to_dict()["cell"]
+    assert cell_values["r_in_MOhm"] == pytest.approx(150.0, rel=0.03)
+    assert cell_values["tau0_ms"] == pytest.approx(25.0, rel=0.03)

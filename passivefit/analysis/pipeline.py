@@ -49,7 +49,7 @@ from passivefit.analysis.sweep import (
     with_bridge_removed,
 )
 from passivefit.analysis.uncertainty import CableContext, bootstrap, halfwidth
-from passivefit.analysis.windows import span
+from passivefit.analysis.windows import no_step_reason, span
 from passivefit.core.qc import Flag, detrended
 from passivefit.io.recording import Recording
 from passivefit.model import schema as S
@@ -86,7 +86,7 @@ def analyze(recording: Recording, settings: Settings | None = None, *,
         fits = hyperpolarizing_only(fits)
         active += [S.FIT_SAG_WINDOW.make(sag_end / MS, end=f"{sag_end / MS:.0f} ms")]
     fits, stability, unstable = stable_stretch(fits, settings.all_sweeps)
-    fits = apply_decisions(fits, effective)
+    fits = _why_no_step(apply_decisions(fits, effective), chosen, fs)
     cell = summarize_cell(fits, voltages, fs, effective, replace(base, fit_start_ms=None),
                           _chain(recording, settings, chosen), sagging=sag_end is not None,
                           hum=start.hum)
@@ -100,6 +100,13 @@ def analyze(recording: Recording, settings: Settings | None = None, *,
         flags=tuple(cell.flags), effective_settings=effective, protocol=cell.protocol,
         average=cell.average, cable_fit=cell.cable_fit, cell_fit=cell.cell_fit,
         peel=cell.peel, scan=cell.scan, vi=cell.vi, design=advice)
+
+
+def _why_no_step(fits: list[SweepFit], chosen, fs: float) -> list[SweepFit]:
+    """A sweep without the protocol's step says what its current holds instead."""
+    current = {s.index: s.current for s, st in chosen if st is None and s.current is not None}
+    return [replace(f, reject_reason=no_step_reason(current[f.index], fs))
+            if f.step is None and f.index in current else f for f in fits]
 
 
 def _fitted_sweeps(chosen, voltages: dict[int, np.ndarray], fs: float, effective: Settings,

@@ -65,6 +65,18 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
     return steps
 
 
+#: What a sweep without an analysed step holds instead (core.steps.classify_stimulus)
+_NO_STEP = {"step": "no step where the other sweeps have theirs",
+            "pulse": "only brief pulses: the cell is analysed from its steps",
+            "ramp": "a current ramp, no step", "waveform": "a current waveform, no step",
+            "none": "no current step: the current is flat"}
+
+
+def no_step_reason(current: np.ndarray, fs: float) -> str:
+    """Why a sweep has no analysed step, from what its current holds."""
+    return _NO_STEP[classify_stimulus(current, fs)]
+
+
 def artefact_end_s(v: np.ndarray, edge: int, fs: float, noise: float) -> float:
     """Time after a step edge at which the electrode/filter artefact has settled, in s.
 
