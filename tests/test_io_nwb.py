@@ -519,3 +519,41 @@ def test_a_mixed_protocol_file_is_analysed_from_its_steps(tmp_path):
     cell_values = result.to_dict()["cell"]
     assert cell_values["r_in_MOhm"] == pytest.approx(150.0, rel=0.03)
     assert cell_values["tau0_ms"] == pytest.approx(25.0, rel=0.03)
+
+
+def _clamp_file(path, rates: dict[int, float], seal_test: bool = False):
+    """Current-clamp sweeps with the given sweep numbers and rates, paired by number; with
+    `seal_test`, a voltage-clamp sweep 0 before them (numbers as an acquisition program
+    gives them)."""
+    nwb, electrode = _file()
+    if seal_test:
+        nwb.add_acquisition(VoltageClampSeries(name="seal", data=np.zeros(N), electrode=electrode,
+                                               gain=1.0, rate=RATE, sweep_number=np.uint32(0)))
+    for number, rate in rates.items():
+        common = dict(electrode=electrode, gain=1.0, rate=rate, sweep_number=np.uint32(number))
+        nwb.add_acquisition(CurrentClampSeries(name=f"v{number}", data=_ramp(number) * 1e-3,
+                                               **common))
+        nwb.add_stimulus(CurrentClampStimulusSeries(name=f"i{number}",
+                                                    data=np.full(N, -1e-12 * number), **common))
+    return _write(nwb, path)
+
+
+@pytest.mark.parametrize("reader", [read_nwb_hdf5, read_nwb_pynwb], ids=["h5py", "pynwb"])
+def test_sweeps_keep_the_files_own_numbers(tmp_path, reader):
+    # a seal test in voltage clamp is sweep 0 of the file: the current-clamp sweeps are
+    # named 1, 2, 3 as in the acquisition program, not renumbered from 0
+    rec = reader(_clamp_file(tmp_path / "seal.nwb", {1: RATE, 2: RATE, 3: RATE},
+                             seal_test=True))
+    assert [s.index for s in rec.sweeps] == [1, 2, 3]
+    assert_allclose(rec.sweeps[2].current, -3e-12)
+
+
+def test_sweeps_at_another_rate_are_left_out_and_said(tmp_path):
+    # three sweeps at 10 kHz, one at 50 kHz (a brief square sampled faster): the three
+    # are read, the other left out with a flag (the h5py reader leaves such files to pynwb)
+    path = _clamp_file(tmp_path / "rates.nwb", {0: RATE, 1: RATE, 2: 50_000.0, 3: RATE})
+    assert read_nwb_hdf5(path) is None
+    rec = load(path)
+    assert rec.sample_rate_hz == RATE and [s.index for s in rec.sweeps] == [0, 1, 3]
+    (flag,) = [f for f in rec.flags if f.code == "protocol.rates_mixed"]
+    assert "the 3 sweeps at 10000 Hz are analysed, 1 at 50000 Hz left out" in flag.message

@@ -202,15 +202,45 @@ def _cut(item: Any) -> tuple[Any, int, int | None]:
     return item, 0, None
 
 
+def _sweep_numbers(numbers: list) -> list[int]:
+    """The file's own sweep numbers when every current-clamp sweep has a distinct one (so
+    a sweep is named as in the acquisition program, voltage-clamp sweeps between them
+    or not), else 0, 1, 2, … in their order."""
+    if any(n is None for n in numbers) or len(set(numbers)) != len(numbers):
+        return list(range(len(numbers)))
+    return [int(n) for n in numbers]
+
+
+def _one_rate(sweeps: list[Sweep], rates: list[float], settings: list[dict]):
+    """The sweeps at the sampling rate most of them share (the first sweep's on a tie),
+    their settings, and a flag naming those left out at other rates (none if one rate)."""
+    from collections import Counter
+
+    from passivefit.model import schema as S
+
+    counts = Counter(rates)
+    if len(counts) < 2:
+        return sweeps, rates[0] if rates else float("nan"), settings, ()
+    rate = max(counts, key=lambda r: (counts[r], -rates.index(r)))
+    keep = [k for k, r in enumerate(rates) if r == rate]
+    others = ", ".join(f"{n} at {r:g} Hz" for r, n in counts.items() if r != rate)
+    flag = S.PROTOCOL_RATES.make(float(len(sweeps) - len(keep)), kept=f"{len(keep)} sweeps",
+                                 rate=f"{rate:g} Hz", others=others)
+    return [sweeps[k] for k in keep], rate, [settings[k] for k in keep], (flag,)
+
+
 def _read_sweeps(
     path: Path, pairs: list[tuple[Any, Any]]
-) -> tuple[list[Sweep], float, list[dict]]:
-    sweeps, rates, settings = [], set(), []
-    for k, (response, stimulus) in enumerate(pairs):
+) -> tuple[list[Sweep], float, list[dict], tuple]:
+    """The sweeps of the pairs, at one sampling rate (`_one_rate`), their amplifier
+    settings, and the flag of sweeps left out at other rates."""
+    sweeps, rates, settings = [], [], []
+    numbers = _sweep_numbers([getattr(_cut(r)[0], "sweep_number", None) for r, _ in pairs])
+    for k, (response, stimulus) in zip(numbers, pairs, strict=True):
         series, start, count = _cut(response)
         settings.append({f: getattr(series, f, None) for f in AMPLIFIER_SETTINGS})
         voltage = _si(series, start, count)
-        rates.add(_series_rate(series))
+        rates.append(_series_rate(series))
         current = None
         if stimulus is not None:
             s_series, s_start, s_count = _cut(stimulus)
@@ -222,11 +252,7 @@ def _read_sweeps(
                     f"the file's stimulus and response do not match",
                 )
         sweeps.append(Sweep(k, voltage, current))
-    if len(rates) > 1:
-        raise LoadError(
-            path, f"sweeps have different sampling rates {sorted(rates)} Hz; split the file"
-        )
-    return sweeps, rates.pop() if rates else float("nan"), settings
+    return _one_rate(sweeps, rates, settings)
 
 
 def _electrode(nwb: Any) -> Any:
@@ -361,7 +387,8 @@ def read_nwb_pynwb(path: str | Path, channel: int | str | None = None) -> Record
                         "no current-clamp sweeps in this NWB file (CurrentClampSeries); "
                         "passivefit analyses current clamp only",
                     )
-                sweeps, rate, settings = _read_sweeps(path, pairs)
+                sweeps, rate, settings, left_out = _read_sweeps(path, pairs)
+                flags = (*flags, *left_out)
                 metadata = _metadata(nwb, electrode)
                 metadata.update(_settings_metadata(settings))
     except LoadError:
@@ -525,7 +552,8 @@ def _direct_sweeps(
     pairs: list[tuple[tuple, tuple | None]]
 ) -> tuple[list[Sweep], float, list[dict]]:
     sweeps, rates, settings = [], set(), []
-    for k, ((series, start, count), stimulus) in enumerate(pairs):
+    numbers = _sweep_numbers([series.attrs.get("sweep_number") for (series, _, _), _ in pairs])
+    for k, ((series, start, count), stimulus) in zip(numbers, pairs, strict=True):
         settings.append({f: _direct_setting(series, f) for f in AMPLIFIER_SETTINGS})
         voltage = _direct_samples(series, "volts", start, count)
         rates.add(_direct_rate(series))
@@ -534,7 +562,7 @@ def _direct_sweeps(
             current = _direct_samples(stimulus[0], "amperes", stimulus[1], stimulus[2])
         sweeps.append(Sweep(k, voltage, current))  # unequal lengths raise: pynwb words it
     if len(rates) != 1:
-        raise _Unfamiliar(f"sampling rates {sorted(rates)}")
+        raise _Unfamiliar(f"sampling rates {sorted(rates)}")   # pynwb's path keeps one
     return sweeps, rates.pop(), settings
 
 

@@ -446,6 +446,10 @@ PROTOCOL_ELECTRODE = _flag(
     "protocol.electrode_chosen", "info",
     "sweeps read from electrode {electrode} only, one cell of {count}; the file also holds "
     "{others}: analyse each on its own by naming it as the channel (`--channel NAME`)")
+PROTOCOL_RATES = _flag(
+    "protocol.rates_mixed", "warning",
+    "the file's current-clamp sweeps are sampled at several rates: the {kept} at {rate} are "
+    "analysed, {others} left out (sweeps left out)")
 
 # real cells: sag, activity, the sign of the step, stability over the recording
 FIT_SAG_COMPONENT = _flag(
