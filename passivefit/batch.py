@@ -394,14 +394,21 @@ def run_batch(paths: list[str], db: str, settings, *, workers: int | None = None
         except OSError as exc:
             raise BatchError(f"`--reports` {reports}: cannot create the folder "
                              f"({exc.strerror})") from None
-    unreadable: list[tuple[str, str]] = []
-    files = find_recordings(paths, _excluded_paths(db, sheet, metadata), unreadable)
-    notes = match_metadata(table, files)
-    database = _open(db)
+    # the workers start now and import the analysis while this process opens the database
+    # and reads the files' hashes
+    pool = _start_workers(workers, limits)
+    try:
+        unreadable: list[tuple[str, str]] = []
+        files = find_recordings(paths, _excluded_paths(db, sheet, metadata), unreadable)
+        notes = match_metadata(table, files)
+        database = _open(db)
+    except BaseException:
+        _close_all(pool)
+        raise
     started = time.perf_counter()
     try:
         summary = _run_files(files, settings, database, notes, workers, reanalyse, reports,
-                             limits, db, progress, stop)
+                             limits, db, progress, stop, pool)
         summary.failed[:0] = unreadable
         if sheet:
             try:
@@ -411,6 +418,7 @@ def run_batch(paths: list[str], db: str, settings, *, workers: int | None = None
                                  "the analyses are stored: write the sheet with `passivefit "
                                  "db export`") from None
     finally:
+        _close_all(pool)   # those no file reached (the others are closed already)
         database.close()
     summary.seconds = time.perf_counter() - started
     summary.unused_metadata = table.unused()
@@ -487,7 +495,7 @@ def _default_workers() -> int:
 
 def _run_files(files: list[Path], settings, database, metadata: dict[Path, dict], workers: int,
                reanalyse: bool, reports: str | None, limits: Limits = Limits(),
-               db: str = "", callback=None, stop=None) -> BatchSummary:
+               db: str = "", callback=None, stop=None, pool=None) -> BatchSummary:
     from sqlalchemy.exc import SQLAlchemyError
 
     from passivefit import __version__
@@ -521,7 +529,7 @@ def _run_files(files: list[Path], settings, database, metadata: dict[Path, dict]
             todo.append(path)
         seen.setdefault(sha, path)
     finished: set[str] = set()
-    outcomes = _analyse_all(todo, settings, workers, reports, limits)
+    outcomes = _analyse_all(todo, settings, workers, reports, limits, started=pool)
     try:
         for outcome in outcomes:
             _store_outcome(outcome, database, metadata, digest, reanalyse, summary, progress)
@@ -546,23 +554,48 @@ _DIED = "the analysis process died (out of memory or a crash)"
 _BLAS_THREADS = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
 
+def _context():
+    """Spawned worker processes (not forked: no inherited database connections), each with
+    one BLAS thread (one process per core: BLAS threads would only contend)."""
+    import os
+    from multiprocessing import get_context
+
+    for name in _BLAS_THREADS:
+        os.environ.setdefault(name, "1")   # (read by each worker as it imports numpy)
+    return get_context("spawn")
+
+
+def _start_workers(workers: int, limits: Limits) -> list[_Worker]:
+    """`workers` analysis processes, started (they import the analysis as they start)."""
+    context = _context()
+    return [_Worker(context, limits, None) for _ in range(workers)]
+
+
+def _close_all(pool: list[_Worker]) -> None:
+    for w in pool:
+        w.stop()
+    for w in pool:
+        w.close()
+
+
 def _analyse_all(paths: list[Path], settings, workers: int, reports: str | None,
-                 limits: Limits = Limits(), work=None):
+                 limits: Limits = Limits(), work=None, started: list[_Worker] | None = None):
     """Yield a FileOutcome for every path, one file per worker process at a time.
 
     Each file has `limits.seconds`: a file over time fails and its worker is killed and
     replaced; so is a worker that dies (out of memory, a crash in a library). Workers
     die with this process (`_worker_main`). `work(path, settings, reports)` replaces
-    `analyse_file` (a module-level function; tests use it).
+    `analyse_file` (a module-level function; tests use it). `started`: workers started
+    already (`_start_workers`), used instead of new ones; those beyond the number of
+    files are closed.
     """
-    import os
-    from multiprocessing import get_context
-
-    context = get_context("spawn")  # not fork: no inherited database connections
-    for name in _BLAS_THREADS:   # one process per core: BLAS threads would only contend
-        os.environ.setdefault(name, "1")   # (read by each worker as it imports numpy)
+    context = _context()
     queue = [str(p) for p in reversed(paths)]
-    pool: list[_Worker] = []
+    pool: list[_Worker] = list(started or [])
+    spare, pool = pool[len(queue):], pool[:len(queue)]
+    for w in spare:
+        w.kill()
+        w.close()
     starts_failed = 0
 
     def hand_out() -> None:
@@ -571,7 +604,8 @@ def _analyse_all(paths: list[Path], settings, workers: int, reports: str | None,
                 w.give(queue.pop(), settings, reports, limits.seconds)
 
     try:
-        pool = [_Worker(context, limits, work) for _ in range(min(workers, len(queue)))]
+        missing = min(workers, len(queue)) - len(pool)
+        pool += [_Worker(context, limits, work) for _ in range(missing)]
         while queue or any(w.path for w in pool):
             hand_out()
             done = list(_collect(pool, limits))
@@ -591,10 +625,7 @@ def _analyse_all(paths: list[Path], settings, workers: int, reports: str | None,
                 pool[k] = _Worker(context, limits, work) if queue else w
             pool = [w for w in pool if w.process.is_alive() or w.path]
     finally:
-        for w in pool:
-            w.stop()
-        for w in pool:
-            w.close()
+        _close_all(pool)
 
 
 def _collect(pool: list[_Worker], limits: Limits):
@@ -679,6 +710,9 @@ def _worker_main(conn, parent_pid: int, memory_mb: int, work=None) -> None:
     _die_with_parent(parent_pid)
     _limit_memory(memory_mb)
     warnings.simplefilter("ignore")  # numerical warnings must not reach the batch's stderr
+    if work is None:   # the analysis imported before the first file
+        import passivefit.analysis  # noqa: F401
+        import passivefit.io  # noqa: F401
     work = work or analyse_file
     conn.send(None)  # ready
     while True:
