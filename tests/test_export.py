@@ -356,3 +356,14 @@ def test_wide_intervals_are_written_without_an_exponent():
             L_CI_HIGH.key: 1530.0}
     assert uncertainty_text(cell, R_IN) == " ± 240"
     assert uncertainty_text(cell, L_BS) == " (0.012–1500)"
+
+
+def test_a_narrow_interval_shows_its_width():
+    """An interval whose ends round alike at two digits (1.3–1.3) is written with the
+    decimals that show its width to two digits."""
+    from passivefit.model.schema import L_BS, L_CI_HIGH, L_CI_LOW, uncertainty_text
+
+    cell = {L_BS.key: 1.309, L_CI_LOW.key: 1.2861, L_CI_HIGH.key: 1.3338}
+    assert uncertainty_text(cell, L_BS) == " (1.286–1.334)"
+    cell = {L_BS.key: 1.309, L_CI_LOW.key: 0.88, L_CI_HIGH.key: 1.1}
+    assert uncertainty_text(cell, L_BS) == " (0.88–1.1)"

@@ -13,6 +13,7 @@ code as a string literal; a test greps for strays.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
@@ -173,6 +174,16 @@ def _two_digits(x: float) -> str:
     return f"{float(f'{x:.2g}'):g}"
 
 
+def _interval(low: float, high: float) -> str:
+    """"low–high" to two significant digits, or, where that rounds both ends alike (a
+    narrow interval: 1.3–1.3), to the decimals that show the width to two digits."""
+    a, b = _two_digits(low), _two_digits(high)
+    if a != b or not high > low:
+        return f"{a}–{b}"
+    decimals = max(0, 1 - math.floor(math.log10(high - low)))
+    return f"{low:.{decimals}f}–{high:.{decimals}f}"
+
+
 def uncertainty_text(cell: Mapping, q: Quantity) -> str:
     """How sure a value of `cell` (display units) is, for tables and cards: " (2.5–11)"
     for a skewed interval, " ± 0.29" from the CI half-width, "" without either."""
@@ -180,11 +191,10 @@ def uncertainty_text(cell: Mapping, q: Quantity) -> str:
         return ""
     ends = [cell.get(e.key) for e in INTERVALS.get(q.key, ())]
     if len(ends) == 2 and None not in ends:
-        low, high = ends
-        return f" ({_two_digits(low)}–{_two_digits(high)})"
+        return f" ({_interval(*ends)})"
     ci = cell.get(q.ci) if q.ci else None
     if isinstance(ci, list | tuple) and len(ci) == 2 and None not in ci:   # (low, high)
-        return f" ({_two_digits(ci[0])}–{_two_digits(ci[1])})"
+        return f" ({_interval(ci[0], ci[1])})"
     if isinstance(ci, int | float):
         return f" ± {_two_digits(ci)}"
     return ""
