@@ -85,6 +85,9 @@ def test_brief_pulses_give_tau_capacitance_and_input_resistance():
     # (derived, docs/references.md §3), and τ0/R_in follows
     assert cell["r_in_MOhm"] == pytest.approx(truth["r_in_MOhm"], rel=0.03)
     assert cell["r_in_method"].startswith("charge integral")
+    # its CI, from the spread of the sweeps' own integrals, holds the truth and is not wider
+    # than a few % of R_in (0.2 mV noise on 30 sweeps)
+    assert abs(cell["r_in_MOhm"] - truth["r_in_MOhm"]) <= cell["r_in_ci95_MOhm"] < 0.05 * 60.0
     assert cell["c_tau_pF"] == pytest.approx(truth["c_tau_pF"], rel=0.04)
     assert "cell.no_steady_state" not in {f["code"] for f in data["flags"]}
 

@@ -68,27 +68,41 @@ def _ratio_ci(r: np.ndarray) -> float | None:
     return t975(r.size - 1) * float(np.std(r, ddof=1)) / np.sqrt(r.size)
 
 
-def pulse_input_resistance(g: GroupAverage, fit, fs: float) -> tuple[dict, list[Flag]]:
+def pulse_input_resistance(g: GroupAverage, fit, fs: float, used: list[SweepFit] = (),
+                           voltages: dict[int, np.ndarray] | None = None
+                           ) -> tuple[dict, list[Flag]]:
     """R_in of brief pulses: the charge the cell holds, ∫ΔV dt, over the charge injected,
     Q = I·D (for a linear cell the integral of the voltage response to a charge is
     Q·R_in — the impulse response's integral is the input resistance; derived,
     docs/references.md §3). The integral runs from the pulse onset over the recorded
-    decay, plus the fitted exponentials' remainder past the end of the sweep."""
+    decay, plus the fitted exponentials' remainder past the end of the sweep. Its CI is
+    that of the mean of the `used` sweeps' own integrals (each with the same remainder)."""
     step = g.step
-    onset, end = step.onset, g.v_V.size
-    dv = g.v_V[onset:end] - g.v_base_V
-    seen = np.isfinite(dv)
-    integral = float(np.sum(dv[seen])) / fs * dv.size / max(np.count_nonzero(seen), 1)
     seg = next((s for s in g.segments if not s.charging), g.segments[0])
-    t_end = (end - 1) / fs - seg.edge_s
+    t_end = (g.v_V.size - 1) / fs - seg.edge_s
     amps = np.asarray(fit.full.amplitudes[seg.index], dtype=float)
     taus = np.asarray(fit.full.taus, dtype=float)
     remainder = float(np.sum(amps * taus * np.exp(-t_end / taus)))
-    charge = step.amplitude_A * step.duration_s
-    r_in = (integral + remainder) / charge
+    r_in = (_held_charge(g.v_V[step.onset:], g.v_base_V, fs) + remainder) / (
+        step.amplitude_A * step.duration_s)
     if not r_in > 0:
         return {}, [S.CELL_NO_STEADY_STATE.make()]
-    return {S.R_IN: r_in, S.R_IN_METHOD: "charge integral (brief pulses)"}, []
+    values = {S.R_IN: r_in, S.R_IN_METHOD: "charge integral (brief pulses)"}
+    if voltages is not None:
+        each = np.array([(_held_charge(voltages[f.index][f.step.onset:], f.v_rest_V, fs)
+                          + remainder) / (f.step.amplitude_A * f.step.duration_s)
+                         for f in used if f.step is not None and f.v_rest_V is not None])
+        if each.size >= 2:
+            values[S.R_IN_CI] = t975(each.size - 1) * float(np.std(each, ddof=1)) / np.sqrt(
+                each.size)
+    return values, []
+
+
+def _held_charge(v: np.ndarray, v_base: float, fs: float) -> float:
+    """∫(v − v_base) dt over `v` (V·s), samples cut out (NaN) filled by the mean of the rest."""
+    dv = v - v_base
+    seen = np.isfinite(dv)
+    return float(np.sum(dv[seen])) / fs * dv.size / max(np.count_nonzero(seen), 1)
 
 
 def sag(used: list[SweepFit]) -> tuple[dict, list[Flag]]:

@@ -294,7 +294,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     # the number of components or the bootstrap)
     used = [f for f in fits if f.accepted]
     if out.protocol == "pulse" and fit is not None:
-        values, flags = checks.pulse_input_resistance(avg, fit, fs)
+        values, flags = checks.pulse_input_resistance(avg, fit, fs, used, voltages)
     else:
         values, out.vi, flags = checks.input_resistance(used)
     out.values.update(values)
