@@ -473,7 +473,7 @@ class VIView(QtWidgets.QWidget):
             if result is None:
                 _note(self.plot, WAITING)
             elif all(f.step is None or f.step.kind == "pulse" for f in result.sweeps):
-                _note(self.plot, "brief pulses reach no steady state:\nno V–I relation")
+                _note(self.plot, "brief pulses:\nno steady state,\nno V–I relation")
             else:
                 _note(self.plot, "no V–I relation:\ntoo few sweeps with a steady state")
             return
