@@ -360,10 +360,13 @@ def test_wide_intervals_are_written_without_an_exponent():
 
 def test_a_narrow_interval_shows_its_width():
     """An interval whose ends round alike at two digits (1.3–1.3) is written with the
-    decimals that show its width to two digits."""
+    decimals that show its width to two digits; ends of like size share their decimals."""
     from passivefit.model.schema import L_BS, L_CI_HIGH, L_CI_LOW, uncertainty_text
 
     cell = {L_BS.key: 1.309, L_CI_LOW.key: 1.2861, L_CI_HIGH.key: 1.3338}
     assert uncertainty_text(cell, L_BS) == " (1.286–1.334)"
-    cell = {L_BS.key: 1.309, L_CI_LOW.key: 0.88, L_CI_HIGH.key: 1.1}
-    assert uncertainty_text(cell, L_BS) == " (0.88–1.1)"
+    # ends of like size share their decimals: 3.0–3.1 and 0.88–1.10, not 3–3.1, 0.88–1.1
+    cell = {L_BS.key: 1.0, L_CI_LOW.key: 0.88, L_CI_HIGH.key: 1.1}
+    assert uncertainty_text(cell, L_BS) == " (0.88–1.10)"
+    cell = {L_BS.key: 3.033, L_CI_LOW.key: 3.0, L_CI_HIGH.key: 3.1}
+    assert uncertainty_text(cell, L_BS) == " (3.0–3.1)"

@@ -175,13 +175,20 @@ def _two_digits(x: float) -> str:
 
 
 def _interval(low: float, high: float) -> str:
-    """"low–high" to two significant digits, or, where that rounds both ends alike (a
-    narrow interval: 1.3–1.3), to the decimals that show the width to two digits."""
-    a, b = _two_digits(low), _two_digits(high)
-    if a != b or not high > low:
-        return f"{a}–{b}"
-    decimals = max(0, 1 - math.floor(math.log10(high - low)))
+    """"low–high": ends of like size with the same decimals, enough for two significant
+    digits of each (3.0–3.1, 0.88–1.10) or, where those round both ends alike, for two of
+    the width (1.286–1.334); ends a decade or more apart each to two digits (0.66–35)."""
+    if not (0 < low < high) or high >= 10 * low:
+        return f"{_two_digits(low)}–{_two_digits(high)}"
+    decimals = max(_decimals(low), _decimals(high))
+    if f"{low:.{decimals}f}" == f"{high:.{decimals}f}":
+        decimals = _decimals(high - low)
     return f"{low:.{decimals}f}–{high:.{decimals}f}"
+
+
+def _decimals(x: float) -> int:
+    """Decimals that show `x` (> 0) to two significant digits."""
+    return max(0, 1 - math.floor(math.log10(x)))
 
 
 def uncertainty_text(cell: Mapping, q: Quantity) -> str:
