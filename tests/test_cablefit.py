@@ -371,3 +371,21 @@ def test_recovers_neuron_cell(soma_um, dend_diam_um, dend_len_um):
     assert fit.L == pytest.approx(L, rel=5e-3)
     assert fit.rho == pytest.approx(rho, rel=2e-2)
     assert fit.bridge_jump_V(0, -0.070) / -50e-12 == pytest.approx(0.0, abs=0.3e6)
+
+
+def test_values_only_fit_equals_the_full_one():
+    # without errors (a bootstrap's refits) the search and its values are the same; the
+    # standard errors and intervals are left out (NaN)
+    cell = BallStick.from_electrotonic(TAU_M, 1.0, 5.0, R_IN)
+    rec, _ = simulate_recording(cell, protocol=StepProtocol(0.1, 0.4, (I_STEP,)),
+                                sweep_duration_s=0.8, n_sweeps=20, bridge_ohm=10e6, seed=1)
+    v = np.mean([s.voltage for s in rec.sweeps], axis=0)
+    segs = step_segments(v, 0.3e-3, group=0, baseline=float(np.mean(v[: ON - 10])))
+    full = fit_ballstick(segs, corner_hz=5_000.0)
+    bare = fit_ballstick(segs, corner_hz=5_000.0, errors=False)
+    for name in ("tau0_s", "L", "rho", "rss", "bridge_needed"):
+        assert getattr(bare, name) == getattr(full, name), name
+    assert np.array_equal(bare.taus_s, full.taus_s) and np.array_equal(bare.bridge_V,
+                                                                       full.bridge_V)
+    assert np.isnan(bare.L_se) and np.isnan(bare.tau0_ci95_s) and np.isnan(bare.L_ci95)
+    assert np.isfinite(full.L_se)

@@ -38,12 +38,14 @@ def noise_factor(avg: GroupAverage, fs: float) -> float:
 
 
 def fit_cable(avg: GroupAverage, fs: float, init, chain: Chain, profile: bool = False,
-              segments: tuple | None = None) -> tuple[object | None, Flag | None]:
+              segments: tuple | None = None, errors: bool = True
+              ) -> tuple[object | None, Flag | None]:
     """Ball-and-stick fit of the combined response with the measurement chain
     (core.cablefit), searched thoroughly and with profile intervals when `profile`: (fit,
     None) when it succeeded; (fit, flag) when it converged with a
     value at its bound (its bridge still counts); (None, flag) when it failed.
-    `segments`: those of `avg` (fit_segments) when already made."""
+    `segments`: those of `avg` (fit_segments) when already made; without `errors`, values
+    only (no standard errors)."""
     from passivefit.core import cablefit
 
     fit_segs, records = segments or fit_segments(avg.v_V, fs, avg.step, avg.windows_s)
@@ -58,7 +60,7 @@ def fit_cable(avg: GroupAverage, fs: float, init, chain: Chain, profile: bool = 
         bs = cablefit.fit_ballstick(segs, init=init, corner_hz=chain.corner_hz,
                                     estimate_corner=chain.estimate_corner, bridge=chain.bridge,
                                     noise_factor=chain.noise_factor, profile=profile,
-                                    thorough=profile)
+                                    thorough=profile, errors=errors)
     except FIT_ERRORS as exc:
         return None, S.CABLE_FIT_FAILED.make(reason="failed", problem=exc)
     if not bs.success:

@@ -79,7 +79,8 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
                 bs0 = cable.fit
                 bs, problem = fit_cable(
                     replace(cable.average, v_V=v, v_base_V=_baseline(v, cable.average, fs)),
-                    fs, (bs0.tau0_s, bs0.L, bs0.rho), cable.chain, segments=cable_segs)
+                    fs, (bs0.tau0_s, bs0.L, bs0.rho), cable.chain, segments=cable_segs,
+                    errors=False)
                 bs = None if problem else bs
             out["tau1_model"].append(bs.taus_s[1] if bs else np.nan)
             out["L"].append(bs.L if bs else np.nan)

@@ -1360,6 +1360,7 @@ def fit_ballstick(
     noise_factor: float = 1.0,
     profile: bool = False,
     thorough: bool = False,
+    errors: bool = True,
 ) -> BallStickFit:
     """Fit a uniform ball-and-stick model to somatic voltage transients.
 
@@ -1390,6 +1391,9 @@ def fit_ballstick(
         Fit from the grid's best starts as well as from ``init`` and keep the best, so the
         answer does not depend on the start; otherwise the grid is tried only when the fit
         from ``init`` fails.
+    errors : bool
+        Compute the standard errors and intervals (NaN without: values only, as for the
+        refits of a bootstrap).
 
     Returns
     -------
@@ -1415,21 +1419,21 @@ def fit_ballstick(
     best, problem = _best_fit(prob, prob.start(init), thorough, ranked[0])
     if not prob.lag:
         return _summarize(prob, best.x, problem or "converged", not problem, noise_factor,
-                          profile and not problem)
+                          profile and not problem, errors)
     # Is the jump needed? A lagged jump can stand in for fast dendritic charging, so the
     # cell is read from the model without one unless the data reject that model
     # (likelihood ratio, chi-square with 2 degrees of freedom at 95 %).
     with_jump = _summarize(prob, best.x, problem or "converged", not problem, noise_factor,
-                           False)
+                           False, errors)
     bare_best, bare_problem = _best_fit(bare, bare.start(init), thorough, ranked[1])
     sigma2 = noise_factor * with_jump.rss / max(with_jump.n_points - with_jump.n_params, 1)
     needed = 2 * bare_best.cost * bare.y_scale**2 - with_jump.rss > 5.991 * sigma2
     if needed or bare_problem and not problem:
         if not (profile and not problem):
             return with_jump   # the same summary: no profile to add
-        return _summarize(prob, best.x, problem or "converged", True, noise_factor, True)
+        return _summarize(prob, best.x, problem or "converged", True, noise_factor, True, errors)
     fit = _summarize(bare, bare_best.x, bare_problem or "converged", not bare_problem,
-                     noise_factor, profile and not bare_problem)
+                     noise_factor, profile and not bare_problem, errors)
     return replace(fit, bridge_V=with_jump.bridge_V, bridge_se_V=with_jump.bridge_se_V,
                    lag_s=with_jump.lag_s, lag_se_s=with_jump.lag_se_s, bridge_needed=False)
 
@@ -1526,15 +1530,19 @@ def _profile(prob: _Problem, theta: np.ndarray, j: int, rss: float, sigma2: floa
 
 def _summarize(
     prob: _Problem, theta: np.ndarray, message: str, success: bool, noise_factor: float,
-    profile: bool,
+    profile: bool, errors: bool = True,
 ) -> BallStickFit:
+    """The BallStickFit of `prob` at `theta`; without `errors`, its standard errors and
+    intervals are NaN (not computed: a bootstrap's refits need values only)."""
     prob.set_modes(theta)
     coef, resid = prob.solve(theta)
     rss = float(resid @ resid)
     n, p = prob.u.size, theta.size + prob.n_cols
     dof = max(n - p, 1)
-    jac = prob.full_jacobian(theta)
-    cov = noise_factor * rss / dof * np.linalg.pinv(jac.T @ jac)
+    cov = np.full((p, p), np.nan)
+    if errors:
+        jac = prob.full_jacobian(theta)
+        cov = noise_factor * rss / dof * np.linalg.pinv(jac.T @ jac)
     se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
     q = t975(dof)
     tau0, L, rho = np.exp(theta[:3])
