@@ -206,9 +206,9 @@ def scan_drift(scan: dict) -> list[Flag]:
     return []
 
 
-#: What whole neurons show, with margin (from memory: R_in from ~1 MΩ in the largest
-#: motoneurons to a few GΩ in small granule cells; capacitance from a few pF to a few
-#: nF). A current read in the wrong unit (nA as pA, or pA as nA) moves both 1000-fold.
+#: What whole neurons show, with a decade of margin (docs/references.md §8: R_in from
+#: ~1 MΩ in motoneurons to a few GΩ in small granule cells; capacitance from a few pF to a
+#: few nF). A current read in the wrong unit (nA as pA, or pA as nA) moves both 1000-fold.
 R_IN_RANGE_OHM = (1e5, 5e10)
 C_RANGE_F = (5e-13, 1e-7)
 
