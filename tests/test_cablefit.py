@@ -389,3 +389,20 @@ def test_values_only_fit_equals_the_full_one():
                                                                        full.bridge_V)
     assert np.isnan(bare.L_se) and np.isnan(bare.tau0_ci95_s) and np.isnan(bare.L_ci95)
     assert np.isfinite(full.L_se)
+
+
+def test_a_lag_far_below_the_sampling_interval_keeps_its_large_error():
+    # a column a billion times smaller than the others (a lag that barely moves the
+    # model): numpy's pseudo-inverse of the unscaled normal matrix drops it and gives
+    # it no variance; the lag's error comes from the scaled matrix, where it is the large
+    # 1/|column| it is (the exact inverse of the scaled matrix, checked here)
+    from passivefit.core.cablefit import _lag_se
+
+    rng = np.random.default_rng(2)
+    jac = rng.normal(size=(200, 6))
+    jac[:, 3] *= 1e-9
+    unscaled = np.sqrt(np.linalg.pinv(jac.T @ jac)[3, 3])
+    norms = np.linalg.norm(jac, axis=0)
+    exact = np.sqrt(np.linalg.inv((jac / norms).T @ (jac / norms))[3, 3]) / norms[3]
+    assert _lag_se(jac, 1.0) == pytest.approx(exact, rel=1e-9)
+    assert unscaled < 1e-3 * exact

@@ -1528,6 +1528,20 @@ def _profile(prob: _Problem, theta: np.ndarray, j: int, rss: float, sigma2: floa
     return ends[0], ends[1]
 
 
+def _lag_se(jac: np.ndarray, sigma2: float) -> float:
+    """The standard error of log lag (column 3 of `jac`) from the column-scaled normal
+    matrix. A lag far below the sampling interval barely moves the model: its column is
+    so small that the pseudo-inverse of the unscaled matrix drops it and gives it no
+    variance at all (a CI of 10⁻¹² s); scaled, it gets the large one it has."""
+    norms = np.sqrt(np.sum(jac * jac, axis=0))
+    if not norms[3] > 0:
+        return math.inf
+    scaled = jac[:, norms > 0] / norms[norms > 0]
+    column = int(np.count_nonzero(norms[:3] > 0))   # column 3 among the kept ones
+    variance = np.linalg.pinv(scaled.T @ scaled)[column, column] * sigma2
+    return math.sqrt(max(variance, 0.0)) / norms[3]
+
+
 def _summarize(
     prob: _Problem, theta: np.ndarray, message: str, success: bool, noise_factor: float,
     profile: bool, errors: bool = True,
@@ -1544,6 +1558,8 @@ def _summarize(
         jac = prob.full_jacobian(theta)
         cov = noise_factor * rss / dof * np.linalg.pinv(jac.T @ jac)
     se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    if errors and prob.lag:
+        se[3] = _lag_se(jac, noise_factor * rss / dof)
     q = t975(dof)
     tau0, L, rho = np.exp(theta[:3])
     free = prob.offset_col >= 0
