@@ -269,3 +269,28 @@ def test_a_current_read_in_the_wrong_unit_is_flagged():
     assert "check the current's unit" in flags["cell.scale_suspect"]["message"]
     right = analyze(rec, Settings(bootstrap=0)).to_dict()["flags"]
     assert "cell.scale_suspect" not in {f["code"] for f in right}
+
+
+def test_one_sweeps_r_in_interval_is_its_noise():
+    # from one sweep the R_in interval comes from the errors of its baseline and steady
+    # levels: for white noise of sd s over N_b and N_s samples, 1.96 s sqrt(1/N_b + 1/N_s)
+    # over the current (the standard error of a difference of means; textbook statistics;
+    # the code's t quantile for 20 blocks, 2.09, is within the 10 % allowed)
+    from types import SimpleNamespace
+
+    from passivefit.analysis.checks import _one_sweep_ci
+
+    fs, sd, amp = 20_000.0, 0.5e-3, -50e-12
+    rng = np.random.default_rng(3)
+    widths = []
+    for _ in range(200):
+        v = rng.normal(-0.070, sd, 16_000)
+        f = SimpleNamespace(trend=(0.0, 0.0), step=SimpleNamespace(amplitude_A=amp),
+                            windows_s={"baseline": (0.0, 0.1), "steady": (0.5, 0.6)})
+        widths.append(_one_sweep_ci(f, v, fs))
+    expected = 1.96 * sd * np.sqrt(2 / 2000) / abs(amp)
+    assert np.median(widths) == pytest.approx(expected, rel=0.1)
+    # and a real one-sweep cell gets one: simulated, its interval holds the truth
+    rec, truth = simulate(n_sweeps=1)
+    cell = analyze(rec, Settings(bootstrap=0)).to_dict()["cell"]
+    assert abs(cell["r_in_MOhm"] - truth["r_in_MOhm"]) <= cell["r_in_ci95_MOhm"]

@@ -10,6 +10,7 @@ import numpy as np
 
 from passivefit.analysis.fits import FIT_ERRORS, fit_average, residual
 from passivefit.analysis.hum import Hum
+from passivefit.analysis.windows import span
 from passivefit.core import steady
 from passivefit.core.qc import Flag, mains_hum, runs_test_z, t975
 from passivefit.model import schema as S
@@ -18,13 +19,16 @@ from passivefit.model.results import GroupAverage, SweepFit
 MS, MV = 1e-3, 1e-3
 
 
-def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag]]:
+def input_resistance(used: list[SweepFit], voltages: dict[int, np.ndarray] | None = None,
+                     fs: float | None = None) -> tuple[dict, dict | None, list[Flag]]:
     """R_in from the steady-state V–I relation; (values, V–I points, flags).
 
     With ≥ 3 step amplitudes and a straight V–I relation, its slope; when the relation
     bends (e.g. inward rectification pins the voltage on large hyperpolarizing steps),
     the chord of the smallest steps, which stay nearest to rest; with fewer amplitudes,
-    the least-squares ratio of all steps. Slope and chord are both reported.
+    the least-squares ratio of all steps. Slope and chord are both reported. From one
+    sweep (with its `voltages` and `fs`), the CI is that of the sweep's noise
+    (`_one_sweep_ci`).
     """
     pts = [(f.step.amplitude_A, f.dv_ss_V) for f in used if f.dv_ss_V is not None]
     if not pts:
@@ -50,6 +54,8 @@ def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag
         values[S.R_IN] = np.sum(dv * i) / np.sum(i * i)
         values[S.R_IN_METHOD] = "mean step"
         values[S.R_IN_CI] = _ratio_ci(dv / i)
+        if len(used) == 1 and voltages is not None:
+            values[S.R_IN_CI] = _one_sweep_ci(used[0], voltages[used[0].index], fs)
     if values[S.R_IN_CI] is None or not np.isfinite(values[S.R_IN_CI]):
         del values[S.R_IN_CI]
     neg, pos = dv[i < 0] / i[i < 0], dv[i > 0] / i[i > 0]
@@ -59,6 +65,25 @@ def input_resistance(used: list[SweepFit]) -> tuple[dict, dict | None, list[Flag
         if asym > 0.1:
             flags.append(S.CELL_ASYMMETRIC.make(asym))
     return values, vi, flags
+
+
+def _one_sweep_ci(f: SweepFit, v: np.ndarray, fs: float) -> float | None:
+    """95 % CI half-width of one sweep's R_in from its noise: the errors of its baseline
+    and steady-state levels (its drift taken out), each from the scatter of the means of
+    5 ms blocks, so that slow noise counts; None when a window holds fewer than 4."""
+    slope, t_ref = f.trend
+    block = max(1, round(5e-3 * fs))
+    errors, blocks = [], []
+    for name in ("baseline", "steady"):
+        a, b = span(f.windows_s[name], fs, v.size)
+        n = (b - a) // block
+        if n < 4:
+            return None
+        x = v[a:a + n * block] - slope * (np.arange(a, a + n * block) / fs - t_ref)
+        means = np.nanmean(x.reshape(n, block), axis=1)
+        errors.append(float(np.std(means, ddof=1)) / np.sqrt(n))
+        blocks.append(n)
+    return t975(min(blocks) - 1) * float(np.hypot(*errors)) / abs(f.step.amplitude_A)
 
 
 def _ratio_ci(r: np.ndarray) -> float | None:

@@ -296,7 +296,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     if out.protocol == "pulse" and fit is not None:
         values, flags = checks.pulse_input_resistance(avg, fit, fs, used, voltages)
     else:
-        values, out.vi, flags = checks.input_resistance(used)
+        values, out.vi, flags = checks.input_resistance(used, voltages, fs)
     out.values.update(values)
     out.flags.extend(flags)
     values, flags, fits = _bridge_correction(fits, bridge, out.values, settings)
