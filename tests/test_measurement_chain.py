@@ -195,7 +195,7 @@ def test_the_window_shows_the_cells_one_tau1(qtbot, open_window, recording_file,
 @pytest.mark.parametrize("se_hz, undetermined", [(200.0, False), (60_000.0, True), (None, False)])
 def test_a_fitted_corner_the_data_do_not_determine_is_said(se_hz, undetermined):
     # a corner fitted to the step edge with a 95 % CI wider than itself (as 500 ± 116,000 Hz
-    # on a real recording behind a 500 Hz filter) asks for --filter-hz; one from the noise
+    # on a real recording behind a 500 Hz filter) asks for the corner; one from the noise
     # spectrum (no CI) or a determined one does not
     from types import SimpleNamespace
 
@@ -205,4 +205,4 @@ def test_a_fitted_corner_the_data_do_not_determine_is_said(se_hz, undetermined):
     fit = SimpleNamespace(corner_hz=500.0, corner_se_hz=se_hz)
     (flag,) = _chain_flags(fit, Chain(source="estimated from the step edge"))
     assert flag.code == "cell.filter_estimated"
-    assert ("give the corner with --filter-hz" in flag.message) is undetermined
+    assert ("give the corner (`--filter-hz`" in flag.message) is undetermined

@@ -389,7 +389,7 @@ def _chain_flags(fit, chain: Chain) -> list[Flag]:
         return []
     fitted = fit.corner_se_hz is not None   # fitted to the step edge (else: from the noise)
     undetermined = ("; these data do not determine it (its 95 % CI is wider than the value): "
-                    "give the corner with --filter-hz"
+                    "give the corner (`--filter-hz`; in the window, the analysis settings)"
                     if fitted and not 1.96 * fit.corner_se_hz < fit.corner_hz else "")
     return [S.CELL_FILTER_ESTIMATED.make(fit.corner_hz, how=chain.source,
                                          undetermined=undetermined)]
