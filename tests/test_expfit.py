@@ -418,3 +418,19 @@ def test_summaries_of_stacked_problems_equal_their_own():
         for name in ("taus", "amplitudes", "offsets", "rss", "rmse", "aic"):
             assert np.array_equal(getattr(fit, name), getattr(full, name)), name
         assert np.all(np.isnan(fit.tau_se)) and np.all(np.isnan(fit.amp_se))
+
+
+def test_a_collapsed_component_has_no_zero_interval():
+    # data of one exponential read as two: the second's amplitude is ~0, so its tau's
+    # column is ~0 too. The unscaled pseudo-inverse dropped that direction and gave the
+    # tau a CI of 1e-24 s ("resolved"); from the column-scaled matrix it is the wide
+    # interval it has (wider than the tau itself: not resolved)
+    from passivefit.core import expfit
+
+    t = np.arange(1, 4000) / 20_000
+    rng = np.random.default_rng(0)
+    y = -0.070 - 0.005 * np.exp(-t / 0.02) + rng.normal(0, 1e-12, t.size)
+    prob = expfit._Projected(expfit._check_segments([Segment(t, y)], 2), 2)
+    fit = expfit._summarize(prob, np.log(np.array([0.02, 0.002]) / prob.scale), "", True)
+    assert abs(fit.amplitudes[0, 1]) < 1e-9
+    assert fit.tau_ci95[1] > fit.taus[1]

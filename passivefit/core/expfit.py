@@ -635,7 +635,14 @@ def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool,
         for s in np.flatnonzero(~prob.has_offset):
             free[k + s * n_c + k] = False
         cov = np.zeros((jac.shape[1],) * 2)
-        cov[np.ix_(free, free)] = rss / dof * np.linalg.pinv(jac[:, free].T @ jac[:, free])
+        # through the column-scaled normal matrix: a component whose amplitude collapsed
+        # has a tiny column in its tau, which the unscaled pseudo-inverse would drop,
+        # giving that tau no variance at all (a CI of zero: "resolved")
+        norms = np.sqrt(np.sum(jac[:, free] ** 2, axis=0))
+        norms = np.where(norms > 0, norms, 1.0)
+        scaled = jac[:, free] / norms
+        cov[np.ix_(free, free)] = rss / dof * np.linalg.pinv(scaled.T @ scaled) / np.outer(
+            norms, norms)
         var = np.diag(cov)
         var = np.where(var >= 0, var, np.nan)  # round-off in a near-singular problem: unknown
     taus = np.exp(theta) * prob.scale
