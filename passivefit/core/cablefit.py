@@ -59,7 +59,7 @@ import numpy as np
 from passivefit.core import cable
 from passivefit.core.lowpass import Lowpass
 from passivefit.core.peel import check_samples
-from passivefit.core.qc import t975
+from passivefit.core.qc import normal_inverse, t975
 
 __all__ = [
     "L_BOUNDS",
@@ -1530,16 +1530,12 @@ def _profile(prob: _Problem, theta: np.ndarray, j: int, rss: float, sigma2: floa
 
 def _lag_se(jac: np.ndarray, sigma2: float) -> float:
     """The standard error of log lag (column 3 of `jac`) from the column-scaled normal
-    matrix. A lag far below the sampling interval barely moves the model: its column is
-    so small that the pseudo-inverse of the unscaled matrix drops it and gives it no
-    variance at all (a CI of 10⁻¹² s); scaled, it gets the large one it has."""
-    norms = np.sqrt(np.sum(jac * jac, axis=0))
-    if not norms[3] > 0:
+    matrix (core.qc.normal_inverse). A lag far below the sampling interval barely moves
+    the model: its column is so small that the pseudo-inverse of the unscaled matrix
+    drops it and gives it no variance at all (a CI of 10⁻¹² s)."""
+    if not np.any(jac[:, 3]):
         return math.inf
-    scaled = jac[:, norms > 0] / norms[norms > 0]
-    column = int(np.count_nonzero(norms[:3] > 0))   # column 3 among the kept ones
-    variance = np.linalg.pinv(scaled.T @ scaled)[column, column] * sigma2
-    return math.sqrt(max(variance, 0.0)) / norms[3]
+    return math.sqrt(max(normal_inverse(jac)[3, 3] * sigma2, 0.0))
 
 
 def _summarize(

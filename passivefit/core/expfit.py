@@ -33,7 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from passivefit.core.peel import check_samples, geometric_bins, peel_checked
-from passivefit.core.qc import f_survival, t975
+from passivefit.core.qc import f_survival, normal_inverse, t975
 
 _MIN_EXTRA_POINTS = 3  # points required beyond the number of free parameters
 _MAX_EXP_ARG = 700.0  # exp() argument clip: exp(700) ~ 1e304 < float64 max
@@ -635,14 +635,9 @@ def _summarize(prob: _Projected, theta: np.ndarray, message: str, success: bool,
         for s in np.flatnonzero(~prob.has_offset):
             free[k + s * n_c + k] = False
         cov = np.zeros((jac.shape[1],) * 2)
-        # through the column-scaled normal matrix: a component whose amplitude collapsed
-        # has a tiny column in its tau, which the unscaled pseudo-inverse would drop,
-        # giving that tau no variance at all (a CI of zero: "resolved")
-        norms = np.sqrt(np.sum(jac[:, free] ** 2, axis=0))
-        norms = np.where(norms > 0, norms, 1.0)
-        scaled = jac[:, free] / norms
-        cov[np.ix_(free, free)] = rss / dof * np.linalg.pinv(scaled.T @ scaled) / np.outer(
-            norms, norms)
+        # (a component whose amplitude collapsed has a tiny column in its tau: scaled, its
+        # variance stays the large one it has, not zero, which would read as resolved)
+        cov[np.ix_(free, free)] = rss / dof * normal_inverse(jac[:, free])
         var = np.diag(cov)
         var = np.where(var >= 0, var, np.nan)  # round-off in a near-singular problem: unknown
     taus = np.exp(theta) * prob.scale

@@ -106,6 +106,18 @@ def robust_sd(x: np.ndarray) -> float:
     return float(1.4826 * np.median(np.abs(x - np.median(x)))) if x.size else 0.0
 
 
+def normal_inverse(jac: np.ndarray) -> np.ndarray:
+    """(JᵀJ)⁺ of a Jacobian `jac` (points × parameters), through the column-scaled
+    matrix: a parameter whose column is tiny in absolute terms (a collapsed component's
+    tau, a lag far below the sampling interval) keeps the large variance it has, where
+    the unscaled pseudo-inverse drops its direction and gives it none. A zero column gets
+    zero (such a parameter must be treated by the caller)."""
+    norms = np.sqrt(np.sum(jac * jac, axis=0))
+    norms = np.where(norms > 0, norms, 1.0)
+    scaled = jac / norms
+    return np.linalg.pinv(scaled.T @ scaled) / np.outer(norms, norms)
+
+
 @lru_cache(maxsize=256)
 def fft_length(n: int) -> int:
     """The least 2^a 3^b 5^c >= n: numpy's FFT is fast on any such length, and one near n
