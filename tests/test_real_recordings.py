@@ -89,6 +89,9 @@ def test_a_sagging_cell_with_two_steps_per_sweep(results):
     assert cell[S.L_BS.key] is None and cell[S.L_CYL.key] is None
     # no τ1 in a sagging cell, and no amplitude of a component it does not give
     assert cell[S.TAU1.key] is None and cell[S.C1.key] is None
+    # R_in from the one smallest (−25 pA) sweep, its CI from that sweep's noise
+    assert cell[S.R_IN_METHOD.key].startswith("smallest steps")
+    assert 0 < cell[S.R_IN_CI.key] < 0.2 * cell[S.R_IN.key]
 
 
 @pytest.mark.slow

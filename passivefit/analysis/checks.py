@@ -26,11 +26,12 @@ def input_resistance(used: list[SweepFit], voltages: dict[int, np.ndarray] | Non
     With ≥ 3 step amplitudes and a straight V–I relation, its slope; when the relation
     bends (e.g. inward rectification pins the voltage on large hyperpolarizing steps),
     the chord of the smallest steps, which stay nearest to rest; with fewer amplitudes,
-    the least-squares ratio of all steps. Slope and chord are both reported. From one
-    sweep (with its `voltages` and `fs`), the CI is that of the sweep's noise
+    the least-squares ratio of all steps. Slope and chord are both reported. When R_in
+    rests on one sweep (with `voltages` and `fs`), its CI is that of the sweep's noise
     (`_one_sweep_ci`).
     """
-    pts = [(f.step.amplitude_A, f.dv_ss_V) for f in used if f.dv_ss_V is not None]
+    measured = [f for f in used if f.dv_ss_V is not None]
+    pts = [(f.step.amplitude_A, f.dv_ss_V) for f in measured]
     if not pts:
         return {}, None, [S.CELL_NO_STEADY_STATE.make()]
     values: dict = {}
@@ -41,6 +42,7 @@ def input_resistance(used: list[SweepFit], voltages: dict[int, np.ndarray] | Non
     small = np.abs(i) == np.min(np.abs(i))
     chord = np.sum(dv[small] * i[small]) / np.sum(i[small] ** 2)
     values[S.R_IN_CHORD] = chord
+    on = measured   # the sweeps R_in rests on
     if fitline is not None:
         values[S.R_IN_SLOPE] = fitline.slope_ohm
         values[S.VI_R2] = fitline.r2
@@ -50,12 +52,14 @@ def input_resistance(used: list[SweepFit], voltages: dict[int, np.ndarray] | Non
             flags.append(S.VI_NONLINEAR.make(fitline.curvature))
             values[S.R_IN], values[S.R_IN_METHOD] = chord, "smallest steps (V-I not linear)"
             values[S.R_IN_CI] = _ratio_ci(dv[small] / i[small])
+            on = [f for f, s in zip(measured, small, strict=True) if s]
     else:
         values[S.R_IN] = np.sum(dv * i) / np.sum(i * i)
         values[S.R_IN_METHOD] = "mean step"
         values[S.R_IN_CI] = _ratio_ci(dv / i)
-        if len(used) == 1 and voltages is not None:
-            values[S.R_IN_CI] = _one_sweep_ci(used[0], voltages[used[0].index], fs)
+        on = measured
+    if values.get(S.R_IN_CI) is None and len(on) == 1 and voltages is not None:
+        values[S.R_IN_CI] = _one_sweep_ci(on[0], voltages[on[0].index], fs)
     if values[S.R_IN_CI] is None or not np.isfinite(values[S.R_IN_CI]):
         del values[S.R_IN_CI]
     neg, pos = dv[i < 0] / i[i < 0], dv[i > 0] / i[i > 0]
