@@ -58,3 +58,20 @@ def test_vi_slope_is_input_resistance_and_flags_curvature():
     assert steady.vi_slope(i, bent).curvature > 0.15
     assert steady.vi_slope(i[:10], 110e6 * i[:10]) is None  # two levels only
 
+
+
+def test_vi_slope_from_three_currents_has_its_error():
+    # three currents leave one degree of freedom: the least-squares slope's standard
+    # error sqrt(RSS/(n − 2) / Σ(i − ī)²) (textbook) is defined, and from four points it
+    # is numpy.polyfit's own (cov=True)
+    from passivefit.core.steady import vi_slope
+
+    i = np.array([-100e-12, -50e-12, 50e-12])
+    v = np.array([-16.2e-3, -7.9e-3, 8.2e-3])
+    fit = vi_slope(i, v)
+    slope, intercept = np.polyfit(i, v, 1)
+    rss = np.sum((v - slope * i - intercept) ** 2)
+    assert fit.slope_se_ohm == pytest.approx(np.sqrt(rss / 1 / np.sum((i - i.mean()) ** 2)))
+    i4, v4 = np.append(i, 100e-12), np.append(v, 16.0e-3)
+    _, cov = np.polyfit(i4, v4, 1, cov=True)
+    assert vi_slope(i4, v4).slope_se_ohm == pytest.approx(np.sqrt(cov[0, 0]), rel=1e-9)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -71,12 +72,14 @@ def vi_slope(currents_A: np.ndarray, deflections_V: np.ndarray) -> VISlope | Non
     levels = np.unique(np.round(i, 15))
     if levels.size < 3:
         return None
-    (slope, intercept), cov = np.polyfit(i, v, 1, cov=True) if i.size > 3 else (
-        np.polyfit(i, v, 1), np.full((2, 2), np.nan))
+    slope, intercept = np.polyfit(i, v, 1)
     residual = v - (slope * i + intercept)
+    # the least-squares slope's standard error, RSS/(n − 2) over Σ(i − ī)² (textbook;
+    # numpy's polyfit gives the same with cov=True, but only from 4 points)
+    slope_se = math.sqrt(np.sum(residual**2) / (i.size - 2) / np.sum((i - i.mean()) ** 2))
     total = np.sum((v - v.mean()) ** 2)
     r2 = 1.0 - np.sum(residual**2) / total if total > 0 else float("nan")
     quad = np.polyfit(i, v, 2)[0]
     curvature = abs(2 * quad * np.ptp(i) / slope) if slope != 0 else float("inf")
-    return VISlope(float(slope), float(np.sqrt(cov[0, 0])), float(intercept), float(r2),
+    return VISlope(float(slope), slope_se, float(intercept), float(r2),
                    float(curvature), int(levels.size))
