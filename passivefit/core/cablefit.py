@@ -1549,13 +1549,14 @@ def _summarize(
     rss = float(resid @ resid)
     n, p = prob.u.size, theta.size + prob.n_cols
     dof = max(n - p, 1)
+    sigma2 = noise_factor * rss / dof
     cov = np.full((p, p), np.nan)
     if errors:
         jac = prob.full_jacobian(theta)
-        cov = noise_factor * rss / dof * np.linalg.pinv(jac.T @ jac)
+        cov = sigma2 * np.linalg.pinv(jac.T @ jac)
     se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
     if errors and prob.lag:
-        se[3] = _lag_se(jac, noise_factor * rss / dof)
+        se[3] = _lag_se(jac, sigma2)
     q = t975(dof)
     tau0, L, rho = np.exp(theta[:3])
     free = prob.offset_col >= 0
@@ -1575,7 +1576,7 @@ def _summarize(
     for j, name in ((1, "L"), (2, "rho")):
         wald = (theta[j] - q * se[j], theta[j] + q * se[j])
         if profile and rss > 0:
-            ends = _profile(prob, theta, j, rss, noise_factor * rss / dof, q * se[j])
+            ends = _profile(prob, theta, j, rss, sigma2, q * se[j])
             if ends != wald:
                 profiled.append(name)
             wald = ends

@@ -73,12 +73,12 @@ def vi_slope(currents_A: np.ndarray, deflections_V: np.ndarray) -> VISlope | Non
     if levels.size < 3:
         return None
     slope, intercept = np.polyfit(i, v, 1)
-    residual = v - (slope * i + intercept)
+    rss = float(np.sum((v - (slope * i + intercept)) ** 2))
     # the least-squares slope's standard error, RSS/(n − 2) over Σ(i − ī)² (textbook;
     # numpy's polyfit gives the same with cov=True, but only from 4 points)
-    slope_se = math.sqrt(np.sum(residual**2) / (i.size - 2) / np.sum((i - i.mean()) ** 2))
+    slope_se = math.sqrt(rss / (i.size - 2) / np.sum((i - i.mean()) ** 2))
     total = np.sum((v - v.mean()) ** 2)
-    r2 = 1.0 - np.sum(residual**2) / total if total > 0 else float("nan")
+    r2 = 1.0 - rss / total if total > 0 else float("nan")
     quad = np.polyfit(i, v, 2)[0]
     curvature = abs(2 * quad * np.ptp(i) / slope) if slope != 0 else float("inf")
     return VISlope(float(slope), slope_se, float(intercept), float(r2),
