@@ -42,7 +42,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import lru_cache
 
 import numpy as np
@@ -556,8 +556,6 @@ def _cached_spectrum(protocol: Protocol, theta: tuple[float, ...]) -> np.ndarray
 def _per_unit_current(protocol: Protocol) -> Protocol:
     """`protocol` with an amplitude of 1 A: all but the baseline's column of the Jacobian
     scale with the amplitude, so one Jacobian serves every amplitude."""
-    from dataclasses import replace
-
     return replace(protocol, amplitude_A=1.0)
 
 
@@ -760,8 +758,6 @@ def _changes(cell, bridge_ohm: float, protocol: Protocol, sd: float, now: dict
              ) -> tuple[Change, ...]:
     """The L and ρ CRLB of a few other protocols, relative to the recorded one (the same
     sweeps, the filter's noise model for both)."""
-    from dataclasses import replace
-
     base = _sds(cell_covariance(*cell, bridge_ohm, protocol, sd, 1.0), *cell)[0]
 
     def ratio(other: Protocol, other_sd: float) -> tuple[float, float]:
@@ -804,8 +800,6 @@ def _narrower(before: float, after: float) -> float:
 def _pulse_like(cell, bridge_ohm: float, protocol: Protocol) -> Protocol:
     """A `PULSE_S` pulse at the step's onset whose peak deflection equals the step's
     steady deflection (I × R_in)."""
-    from dataclasses import replace
-
     unit = replace(protocol, kind="pulse", duration_s=PULSE_S, amplitude_A=1.0)
     theta = tuple(np.array([*map(math.log, cell), bridge_ohm, 0.0]))   # as cell_covariance's
     # the response per unit current is the Jacobian's column in ln R_in (kept for the
