@@ -23,8 +23,9 @@ MAX_SEMILOG_POINTS = 500
 # stacking of the windows (higher on top): the steady-state window lies inside the fit
 # window, so it must be above it to take the mouse there; the fit keeps its free start
 REGION_Z = {"fit_off": -13, "fit": -12, "baseline": -10, "steady": -9}
-#: Heights of the window labels, as fractions of the view (staggered so none overlap)
-LABEL_HEIGHT = {"baseline": 0.97, "fit": 0.90, "steady": 0.90, "fit_off": 0.97}
+#: Heights of the window labels, as fractions of the view: four rows, so that none
+#: overlap even when a long sweep squeezes the windows into a few pixels
+LABEL_HEIGHT = {"baseline": 0.97, "fit": 0.91, "steady": 0.85, "fit_off": 0.79}
 
 
 def new_plot(title: str = "", x_label: str = "", y_label: str = "", *,
