@@ -30,6 +30,7 @@ from passivefit.model.protocol import (
     SOURCE_EPOCH_TABLE,
     SOURCE_NONE,
     SOURCE_RECORDED,
+    TIMING_TOL_S,
     Epoch,
     Protocol,
     SweepProtocol,
@@ -434,6 +435,22 @@ def _refusal(abf: Any, source: str, currents: list[np.ndarray] | None, rate: flo
     return None
 
 
+def _follows_command(cmd_steps: list[list], rec_steps: list[list]) -> bool:
+    """Whether a recorded current witnesses the command: it shows, in some sweep, a step
+    starting where a command step starts (or the command has no step to check).
+
+    A current channel of another cell or amplifier (a paired recording: cell 1 in current
+    clamp, cell 2 in voltage clamp) shows its own steps at other times; it is then not the
+    current that this DAC injected. Amplitudes are not compared: a recorded current may
+    rightly differ from the command there.
+    """
+    if not any(cmd_steps):
+        return True
+    return any(abs(r.onset_s - c.onset_s) <= max(TIMING_TOL_S, 0.5 * c.duration_s)
+               for planned, seen in zip(cmd_steps, rec_steps, strict=True)
+               for c in planned for r in seen)
+
+
 @dataclass
 class _Current:
     """The current chosen for a file's sweeps, and what was noticed choosing it."""
@@ -465,7 +482,9 @@ def _choose_current(path: Path, abf: Any, rate: float, dac: int, command_units: 
                                                             _CURRENT_UNITS) or 1.0, np.float64)
     rec_steps = [find_steps(r, rate) for r in recorded] if recorded is not None else []
     cmd_steps = [find_steps(c, rate) for c in commands] if commands is not None else []
-    if recorded is not None and (any(rec_steps) or not any(cmd_steps)):
+    listed = any(f.code == S.PROTOCOL_USER_LIST.code for f in flags)  # the table may be off
+    if recorded is not None and (any(rec_steps) or not any(cmd_steps)) and (
+            listed or _follows_command(cmd_steps, rec_steps)):
         current = _Current(recorded, SOURCE_RECORDED, f"recorded channel {i_label}", i_label,
                            protocol or protocol_from_steps(rec_steps, SOURCE_RECORDED), flags)
     elif commands is not None:
