@@ -324,9 +324,15 @@ def _resolve_channel(path: Path, abf: Any, channel: int | str) -> int:
 
 
 def _drive_dac(abf: Any) -> int:
-    """The output (DAC) that plays the stimulus: the first with its waveform enabled."""
+    """The output (DAC) that plays the stimulus: the first with its waveform enabled.
+
+    ABF 1 names an "active" DAC as well; it is kept when its waveform is enabled, but an
+    ABF 1 file may name DAC 0 while only DAC 1 plays an epoch table.
+    """
     if _major(abf) == 1:
-        return int(abf._headerV1.nActiveDACChannel)
+        active = int(abf._headerV1.nActiveDACChannel)
+        enabled = [d for d, on in enumerate(abf._headerV1.nWaveformEnable) if on]
+        return active if active in enabled or not enabled else enabled[0]
     enabled = [d for d, on in enumerate(abf._dacSection.nWaveformEnable) if on]
     return enabled[0] if enabled else 0
 
