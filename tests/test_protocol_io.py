@@ -202,6 +202,16 @@ def test_voltage_clamp_from_the_units_of_a_synthetic_file(tmp_path):
         load(path)
 
 
+def test_voltage_clamp_with_the_current_in_microamperes(tmp_path):
+    # Two-electrode voltage clamp (oocytes) records its current in uA; Clampex writes the
+    # micro sign as byte 0xB5, which pyabf turns into "u" (pyabf/abf2/stringsSection.py).
+    path = _two_channel_abf2(tmp_path, np.zeros(3000), command_units=b"mV",
+                             second_units=b"\xb5A")
+    with pytest.raises(LoadError, match=r"a voltage-clamp recording \(current recorded in uA, "
+                                        r"command in mV\)"):
+        load(path)
+
+
 def test_nwb_without_any_sweep_is_not_called_voltage_clamp(tmp_path):
     import datetime as dt
 

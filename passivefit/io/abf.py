@@ -42,7 +42,8 @@ from passivefit.model.protocol import (
 _SIGNATURES = (b"ABF ", b"ABF2")
 # units, compared in lower case after NUL padding is stripped
 _VOLTAGE_UNITS = {"mv": 1e-3, "v": 1.0}
-_CURRENT_UNITS = {"pa": 1e-12, "na": 1e-9}
+# uA: two-electrode voltage clamp; pyabf reads Clampex's micro sign (byte 0xB5) as "u"
+_CURRENT_UNITS = {"pa": 1e-12, "na": 1e-9, "ua": 1e-6, "\u00b5a": 1e-6, "\u03bca": 1e-6}
 # a membrane potential sits in this range and varies by more than this, in V
 # (common practice, no source)
 _VM_RANGE_V = (-0.120, 0.020)
