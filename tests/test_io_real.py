@@ -200,6 +200,31 @@ def test_channel_override_by_index_and_by_name():
         load(REAL / "18425108.abf", channel="Imemb")
 
 
+def test_abf1_stimulus_on_dac1_while_the_header_names_dac0(tmp_path):
+    # Some ABF 1 files keep nActiveDACChannel = 0 while only DAC 1 plays an epoch table.
+    # The real 190619B file with its table, units and holding moved from DAC 0 to DAC 1
+    # (offsets as pyabf's abf1/headerV1.py reads them) must read as the original does.
+    import struct
+
+    raw = bytearray((REAL / "190619B_0003.abf").read_bytes())
+    raw[1346:1362] = b"mV".ljust(8, b"\0") + b"pA".ljust(8, b"\0")  # sDACChannelUnit
+    struct.pack_into("<f", raw, 1398, struct.unpack_from("<f", raw, 1394)[0])  # holding
+    struct.pack_into("<hh", raw, 2296, 0, 1)  # nWaveformEnable: DAC 1 only
+    assert struct.unpack_from("<h", raw, 1440)[0] == 0  # nActiveDACChannel stays 0
+    for at, fmt in ((2308, "h"), (2348, "f"), (2428, "f"), (2508, "i"), (2588, "i")):
+        size = struct.calcsize(fmt)  # nEpochType ... lEpochDurationInc: 10 per DAC
+        raw[at + 10 * size: at + 20 * size] = raw[at: at + 10 * size]
+        raw[at: at + 10 * size] = bytes(10 * size)
+    path = tmp_path / "dac1.abf"
+    path.write_bytes(bytes(raw))
+    moved, original = load(path), load(REAL / "190619B_0003.abf")
+    assert moved.current_source == "epoch table"
+    assert moved.metadata["current_channel"] == "DAC 1 [pA]"
+    for a, b in zip(moved.sweeps, original.sweeps, strict=True):
+        np.testing.assert_array_equal(a.current, b.current)
+        np.testing.assert_array_equal(a.voltage, b.voltage)
+
+
 def test_abf1_holding_level_is_read_from_the_header_not_the_epoch_levels():
     from passivefit.io.abf import _abf1_holding
 

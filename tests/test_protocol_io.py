@@ -130,6 +130,29 @@ def test_abf2_recorded_current_that_disagrees_with_the_table_is_used_and_flagged
     assert rec.protocol.source == "epoch table"
 
 
+def test_abf2_recorded_current_of_another_cell_is_not_taken_for_the_command(tmp_path):
+    # A paired recording: cell 1 in current clamp (IN 0, driven by DAC 0), cell 2 in voltage
+    # clamp (IN 1 in pA: its own holding and test-step current, at other times). IN 1 is not
+    # the current DAC 0 injected, so the epoch table is used; the mismatch stays flagged.
+    samples, rng = 3000, np.random.default_rng(6)
+    v = (-7000 + rng.integers(-300, 300, (2, samples))).astype(np.int16)
+    i = (-200 + rng.integers(-20, 20, (2, samples))).astype(np.int16)  # -20 pA holding
+    i[:, 1000:1400] -= 590  # cell 2's -59 pA test step, 20 ms after cell 1's step began
+    epochs = [(1, 0.0, 0.0, 300), (1, -40.0, -20.0, 300), (1, 0.0, 0.0, 1500)]
+    path = tmp_path / "pair.abf"
+    path.write_bytes(abf2_bytes(v, i, 20_000.0, epochs))
+    rec = load(path)
+    assert rec.current_source == "epoch table"
+    assert rec.metadata["current_channel"] == "DAC 0 [pA]"
+    start = samples // 64 + 300
+    for k, sweep in enumerate(rec.sweeps):
+        (step,) = find_steps(sweep.current, rec.sample_rate_hz)
+        assert (step.onset, step.offset) == (start, start + 300)
+        assert step.amplitude_A == pytest.approx((-40 - 20 * k) * 1e-12)
+    codes = [f.code for f in rec.flags]
+    assert S.PROTOCOL_STEP_MISSING.code in codes and S.PROTOCOL_AMPLITUDE.code not in codes
+
+
 def test_channel_option_is_for_abf_files_only(tmp_path):
     path = save(charging_recording(n_sweeps=1), tmp_path / "cell.csv")
     with pytest.raises(LoadError, match="`channel` applies to ABF and NWB files only"):
@@ -175,6 +198,16 @@ def test_of_two_plausible_channels_the_one_answering_the_steps_is_chosen(tmp_pat
 def test_voltage_clamp_from_the_units_of_a_synthetic_file(tmp_path):
     path = _two_channel_abf2(tmp_path, np.zeros(3000), command_units=b"mV", second_units=b"pA")
     with pytest.raises(LoadError, match=r"a voltage-clamp recording \(current recorded in pA, "
+                                        r"command in mV\)"):
+        load(path)
+
+
+def test_voltage_clamp_with_the_current_in_microamperes(tmp_path):
+    # Two-electrode voltage clamp (oocytes) records its current in uA; Clampex writes the
+    # micro sign as byte 0xB5, which pyabf turns into "u" (pyabf/abf2/stringsSection.py).
+    path = _two_channel_abf2(tmp_path, np.zeros(3000), command_units=b"mV",
+                             second_units=b"\xb5A")
+    with pytest.raises(LoadError, match=r"a voltage-clamp recording \(current recorded in uA, "
                                         r"command in mV\)"):
         load(path)
 

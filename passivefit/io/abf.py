@@ -30,6 +30,7 @@ from passivefit.model.protocol import (
     SOURCE_EPOCH_TABLE,
     SOURCE_NONE,
     SOURCE_RECORDED,
+    TIMING_TOL_S,
     Epoch,
     Protocol,
     SweepProtocol,
@@ -41,7 +42,8 @@ from passivefit.model.protocol import (
 _SIGNATURES = (b"ABF ", b"ABF2")
 # units, compared in lower case after NUL padding is stripped
 _VOLTAGE_UNITS = {"mv": 1e-3, "v": 1.0}
-_CURRENT_UNITS = {"pa": 1e-12, "na": 1e-9}
+# uA: two-electrode voltage clamp; pyabf reads Clampex's micro sign (byte 0xB5) as "u"
+_CURRENT_UNITS = {"pa": 1e-12, "na": 1e-9, "ua": 1e-6, "\u00b5a": 1e-6, "\u03bca": 1e-6}
 # a membrane potential sits in this range and varies by more than this, in V
 # (common practice, no source)
 _VM_RANGE_V = (-0.120, 0.020)
@@ -323,9 +325,15 @@ def _resolve_channel(path: Path, abf: Any, channel: int | str) -> int:
 
 
 def _drive_dac(abf: Any) -> int:
-    """The output (DAC) that plays the stimulus: the first with its waveform enabled."""
+    """The output (DAC) that plays the stimulus: the first with its waveform enabled.
+
+    ABF 1 names an "active" DAC as well; it is kept when its waveform is enabled, but an
+    ABF 1 file may name DAC 0 while only DAC 1 plays an epoch table.
+    """
     if _major(abf) == 1:
-        return int(abf._headerV1.nActiveDACChannel)
+        active = int(abf._headerV1.nActiveDACChannel)
+        enabled = [d for d, on in enumerate(abf._headerV1.nWaveformEnable) if on]
+        return active if active in enabled or not enabled else enabled[0]
     enabled = [d for d, on in enumerate(abf._dacSection.nWaveformEnable) if on]
     return enabled[0] if enabled else 0
 
@@ -434,6 +442,22 @@ def _refusal(abf: Any, source: str, currents: list[np.ndarray] | None, rate: flo
     return None
 
 
+def _follows_command(cmd_steps: list[list], rec_steps: list[list]) -> bool:
+    """Whether a recorded current witnesses the command: it shows, in some sweep, a step
+    starting where a command step starts (or the command has no step to check).
+
+    A current channel of another cell or amplifier (a paired recording: cell 1 in current
+    clamp, cell 2 in voltage clamp) shows its own steps at other times; it is then not the
+    current that this DAC injected. Amplitudes are not compared: a recorded current may
+    rightly differ from the command there.
+    """
+    if not any(cmd_steps):
+        return True
+    return any(abs(r.onset_s - c.onset_s) <= max(TIMING_TOL_S, 0.5 * c.duration_s)
+               for planned, seen in zip(cmd_steps, rec_steps, strict=True)
+               for c in planned for r in seen)
+
+
 @dataclass
 class _Current:
     """The current chosen for a file's sweeps, and what was noticed choosing it."""
@@ -465,7 +489,9 @@ def _choose_current(path: Path, abf: Any, rate: float, dac: int, command_units: 
                                                             _CURRENT_UNITS) or 1.0, np.float64)
     rec_steps = [find_steps(r, rate) for r in recorded] if recorded is not None else []
     cmd_steps = [find_steps(c, rate) for c in commands] if commands is not None else []
-    if recorded is not None and (any(rec_steps) or not any(cmd_steps)):
+    listed = any(f.code == S.PROTOCOL_USER_LIST.code for f in flags)  # the table may be off
+    if recorded is not None and (any(rec_steps) or not any(cmd_steps)) and (
+            listed or _follows_command(cmd_steps, rec_steps)):
         current = _Current(recorded, SOURCE_RECORDED, f"recorded channel {i_label}", i_label,
                            protocol or protocol_from_steps(rec_steps, SOURCE_RECORDED), flags)
     elif commands is not None:
