@@ -62,6 +62,7 @@ def abf2_bytes(
     second_units: bytes = b"pA",
     command_units: bytes = b"pA",
     second_per_count: float = 0.1,
+    waveform_source: int = 1,
 ) -> bytes:
     """A minimal two-channel ABF 2 file (IN 0 in mV, IN 1 in pA, OUT 0 in pA).
 
@@ -83,6 +84,9 @@ def abf2_bytes(
         Units of IN 1 and of the DACs (both pA by default).
     second_per_count : float
         Gain of IN 1, in its units per count.
+    waveform_source : int
+        What the DACs play when enabled (`nWaveformSource`): 1 the epoch table, 2 a
+        stimulus file (not named: the strings hold no path).
     """
     sweeps, samples = voltage_counts.shape
     strings = b"\0\0" + b"\0".join(
@@ -129,7 +133,8 @@ def abf2_bytes(
         base = 256 * i
         struct.pack_into("<h", dac, base, i)
         struct.pack_into("<ii", dac, base + 24, 7, 8)  # name, units indices
-        struct.pack_into("<hhh", dac, base + 40, int(waveform_enabled and i == 0), 1, 0)
+        struct.pack_into("<hhh", dac, base + 40, int(waveform_enabled and i == 0),
+                         waveform_source, 0)
     blocks["dac"] = dac
 
     epoch_digital = bytearray(4 * len(epochs))

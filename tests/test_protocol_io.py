@@ -160,7 +160,8 @@ def test_channel_option_is_for_abf_files_only(tmp_path):
 
 
 def _two_channel_abf2(tmp_path, second_mV: np.ndarray, command_units: bytes = b"pA",
-                      second_units: bytes = b"mV", rate: float = 20_000.0):
+                      second_units: bytes = b"mV", rate: float = 20_000.0,
+                      waveform_source: int = 1):
     """IN 0: a cell answering a -40/-60 pA step; IN 1: `second_mV` (in mV, 0.01 mV/count)."""
     samples, rng = 3000, np.random.default_rng(4)
     start = samples // 64 + 300
@@ -172,7 +173,7 @@ def _two_channel_abf2(tmp_path, second_mV: np.ndarray, command_units: bytes = b"
     path = tmp_path / "two.abf"
     path.write_bytes(abf2_bytes(v, second, rate, [(1, 0.0, 0.0, 300), (1, -40.0, -20.0, 1500)],
                                 second_units=second_units, command_units=command_units,
-                                second_per_count=0.01))
+                                second_per_count=0.01, waveform_source=waveform_source))
     return path
 
 
@@ -193,6 +194,26 @@ def test_of_two_plausible_channels_the_one_answering_the_steps_is_chosen(tmp_pat
     rec = load(_two_channel_abf2(tmp_path, wandering[::-1].copy()))
     assert rec.voltage_channel == "IN 0 [mV]"
     assert "IN 1 [mV] answers the steps less" in rec.flags[0].message
+
+
+def test_a_command_played_from_a_stimulus_file_is_named_in_the_refusal(tmp_path):
+    # A DAC that replays a stimulus file (nWaveformSource 2, as real files whose command
+    # is a noise or sine waveform do) leaves the recording without its command; with no
+    # current channel either, the error says why, and a step the user gives still counts.
+    from passivefit.analysis.windows import sweep_steps
+    from passivefit.model.settings import Settings
+
+    rec = load(_two_channel_abf2(tmp_path, np.zeros(3000), second_units=b"dB",
+                                 waveform_source=2))
+    assert rec.current_source == "none" and not rec.has_current
+    assert rec.metadata["stimulus_file"] == "not named in the header"
+    with pytest.raises(LoadError, match=r"no step found: the command was played from a "
+                       r"stimulus file \(not named in the header\) that the recording does "
+                       r"not hold, and no current was recorded; give `--step"):
+        sweep_steps(rec, Settings())
+    given = StepSpec(0.0173, 0.075, -40e-12, -20e-12)
+    steps = sweep_steps(rec, Settings(step=given))
+    assert [round(s.amplitude_A * 1e12) for s in steps] == [-40, -60]
 
 
 def test_voltage_clamp_from_the_units_of_a_synthetic_file(tmp_path):

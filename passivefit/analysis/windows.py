@@ -45,8 +45,12 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
     elif recording.has_current:
         rec = recording
     else:
-        raise LoadError(recording.path, "no step found: this file carries no command or current "
-                        "waveform; give `--step ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]`")
+        played = recording.metadata.get("stimulus_file")
+        what = (f"the command was played from a stimulus file ({played}) that the recording "
+                "does not hold, and no current was recorded" if played else
+                "this file carries no command or current waveform")
+        raise LoadError(recording.path, f"no step found: {what}; give "
+                        "`--step ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]`")
     per_sweep = [find_steps(s.current, fs) for s in rec.sweeps]
     steps = [None if st is None else replace(st, region_end=min(
         (later.onset for later in found if later.onset >= st.offset),

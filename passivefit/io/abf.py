@@ -15,7 +15,7 @@ import datetime as dt
 import struct
 import warnings
 from dataclasses import dataclass
-from pathlib import Path
+from pathlib import Path, PureWindowsPath
 from typing import Any
 
 import numpy as np
@@ -342,13 +342,33 @@ def _dac_units(abf: Any, dac: int) -> str:
     return _clean(abf.dacUnits[dac]) if 0 <= dac < len(abf.dacUnits) else ""
 
 
-def _epoch_table_enabled(abf: Any, dac: int) -> bool:
+def _waveform_source(abf: Any, dac: int) -> int:
+    """What a DAC plays: 1 its epoch table, 2 a stimulus file, 0 nothing (disabled)."""
     if _major(abf) == 1:
         header = abf._headerV1
         enable, source = header.nWaveformEnable, header.nWaveformSource
     else:
         enable, source = abf._dacSection.nWaveformEnable, abf._dacSection.nWaveformSource
-    return 0 <= dac < min(len(enable), len(source)) and bool(enable[dac]) and source[dac] == 1
+    if 0 <= dac < min(len(enable), len(source)) and enable[dac]:
+        return int(source[dac])
+    return 0
+
+
+def _epoch_table_enabled(abf: Any, dac: int) -> bool:
+    return _waveform_source(abf, dac) == 1
+
+
+def _stimulus_file(abf: Any, dac: int) -> str | None:
+    """The name of the stimulus file a DAC played (kept outside the recording; ABF 1
+    headers do not name it); None when it played none."""
+    if _waveform_source(abf, dac) != 2:
+        return None
+    try:
+        index = abf._dacSection.lDACFilePathIndex[dac]
+        name = PureWindowsPath(_clean(abf._stringsSection._indexedStrings[index])).name
+    except (AttributeError, IndexError, TypeError):
+        name = ""
+    return name or "not named in the header"
 
 
 def _abf1_holding(path: Path, abf: Any, dac: int) -> float:
@@ -592,6 +612,9 @@ def _read(path: Path, abf: Any, rate: float, channel: int | str | None) -> Recor
     rec.metadata["voltage_channel"] = rec.voltage_channel
     if current.channel:
         rec.metadata["current_channel"] = current.channel
+    stimulus_file = _stimulus_file(abf, dac)
+    if stimulus_file is not None:
+        rec.metadata["stimulus_file"] = stimulus_file
     filter_hz = _corner_hz(_lowpass_setting(path, abf, v_ch), rate)
     if filter_hz is not None:
         rec.metadata["filter_hz"] = filter_hz
@@ -672,7 +695,9 @@ def read_abf(path: str | Path, channel: int | str | None = None) -> Recording:
         Voltage in V, current in A (or None when the file holds no current and no
         epoch table); `current_source`, `voltage_channel`, `protocol` and `flags`
         set. Metadata: `date` (ISO), `protocol`, `comment`, `abf_version`,
-        `current_source`, `voltage_channel`, `current_channel`, and `filter_hz` (the
+        `current_source`, `voltage_channel`, `current_channel`, `stimulus_file` (the
+        waveform file the command was played from, which the recording does not hold:
+        its current is then only the recorded one, if any), and `filter_hz` (the
         voltage channel's `fSignalLowpassFilter`, in Hz) when it is a plausible
         corner: 10 Hz to 1 MHz and below the Nyquist frequency.
 
