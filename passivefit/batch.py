@@ -550,18 +550,16 @@ def _run_files(files: list[Path], settings, database, metadata: dict[Path, dict]
 
 
 _DIED = "the analysis process died (out of memory or a crash)"
-#: Thread counts of the linear-algebra libraries numpy may use, one per worker.
-_BLAS_THREADS = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
 
 def _context():
     """Spawned worker processes (not forked: no inherited database connections), each with
     one BLAS thread (one process per core: BLAS threads would only contend)."""
-    import os
     from multiprocessing import get_context
 
-    for name in _BLAS_THREADS:
-        os.environ.setdefault(name, "1")   # (read by each worker as it imports numpy)
+    from passivefit import one_blas_thread
+
+    one_blas_thread()   # (read by each worker as it imports numpy)
     return get_context("spawn")
 
 

@@ -1,12 +1,14 @@
 """The `passivefit` command: the JSON contract (README, "The JSON result"), one-line errors."""
 
 import json
+import os
 import subprocess
 import sys
 from pathlib import Path
 
 import pytest
 
+import passivefit
 from passivefit.cli import main
 from passivefit.model.schema import CELL_CORE
 
@@ -113,6 +115,20 @@ def test_analyze_never_imports_qt():
             "sys.exit(1 if bad else 0)")
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     assert proc.returncode == 0, proc.stderr
+
+
+def test_the_command_asks_for_one_blas_thread_unless_the_user_chose(tmp_path):
+    # numpy reads the thread count as it is imported, so the command sets it first
+    code = ("import os, sys; from passivefit.cli import main; "
+            "assert 'numpy' not in sys.modules; "
+            f"main(['analyze', {str(tmp_path / 'missing.abf')!r}]); "
+            "print(os.environ['OPENBLAS_NUM_THREADS'])")
+    env = {k: v for k, v in os.environ.items() if k not in passivefit.BLAS_THREADS}
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)
+    assert proc.returncode == 0 and proc.stdout.strip() == "1", proc.stderr
+    env["OPENBLAS_NUM_THREADS"] = "3"   # the user's choice stands
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)
+    assert proc.returncode == 0 and proc.stdout.strip() == "3", proc.stderr
 
 
 def test_demo_writes_samples_with_truth(tmp_path):

@@ -14,7 +14,7 @@ import sys
 import warnings
 from collections.abc import Sequence
 
-from passivefit import __version__
+from passivefit import __version__, one_blas_thread
 
 EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT = 0, 1, 2
 
@@ -63,6 +63,7 @@ def _command_module(module: str):
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    one_blas_thread()   # before any command imports numpy
     argv = list(sys.argv[1:] if argv is None else argv)
     if not argv:
         argv = ["gui"]
