@@ -796,7 +796,8 @@ def _store_outcome(outcome: FileOutcome, database, metadata: dict[Path, dict], d
         summary.sweeps += len(outcome.result.get("sweeps", ()))
         cell = outcome.result.get("cell") or {}
         n_sweeps = len(outcome.result.get("sweeps", ()))
-        progress.update("stored", outcome.path, f"{n_sweeps} sweeps, tau0 "
+        used = cell.get(S.N_SWEEPS_USED.key)
+        progress.update("stored", outcome.path, f"{n_sweeps} sweeps ({_fmt(used)} used), tau0 "
                         f"{_fmt(cell.get(S.TAU0.key))} ms, R_in {_fmt(cell.get(S.R_IN.key))} MOhm",
                         sweeps=n_sweeps)
     else:
