@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from passivefit.core.qc import f_survival, first_spike, t975
+from passivefit.core.qc import f_survival, first_spike, runs_ratio, runs_test_z, t975
 
 
 @pytest.mark.parametrize("dof", [*range(1, 60), 99, 100, 1000, 1001, 5000, 10**6])
@@ -73,3 +73,19 @@ def test_first_spike_finds_a_spike_that_peaks_below_minus_10_mV():
     v_high = v + 0.080 * bump                            # overshoots: found by its peak
     assert abs(first_spike(v_high, FS, _edges_quiet()) - 6006) <= 2
     assert first_spike(v + 0.005 * bump, FS, _edges_quiet()) is None   # a 5 mV bump: no
+
+
+def test_runs_ratio_of_white_and_slow_noise():
+    # independent signs give the expected number of runs (Wald–Wolfowitz; ratio ≈ 1 and
+    # z ≈ 0); noise kept by a slow filter changes sign far less often
+    rng = np.random.default_rng(11)
+    white = rng.standard_normal(20_000)
+    assert abs(runs_ratio(white) - 1) < 0.03 and abs(runs_test_z(white)) < 4
+    slow = np.convolve(white, np.ones(50) / 50, mode="valid")
+    assert runs_ratio(slow) < 0.2 and runs_test_z(slow) < -40
+    # weighed against another stretch of the same slow noise, nothing is left to see
+    other = np.convolve(rng.standard_normal(20_000), np.ones(50) / 50, mode="valid")
+    assert abs(runs_test_z(slow, runs_ratio(other))) < 4
+    assert runs_ratio(np.ones(10)) == 0.0 and runs_test_z(np.ones(10)) == float("-inf")
+    # alternating signs: as many runs as values, twice what independence expects
+    assert runs_ratio(np.tile([1.0, -1.0], 500)) == pytest.approx(2.0, rel=0.01)

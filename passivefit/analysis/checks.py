@@ -12,7 +12,7 @@ from passivefit.analysis.fits import FIT_ERRORS, fit_average, residual
 from passivefit.analysis.hum import Hum
 from passivefit.analysis.windows import span
 from passivefit.core import steady
-from passivefit.core.qc import Flag, mains_hum, runs_test_z, t975
+from passivefit.core.qc import Flag, mains_hum, runs_ratio, runs_test_z, t975
 from passivefit.model import schema as S
 from passivefit.model.results import GroupAverage, SweepFit
 
@@ -188,18 +188,37 @@ def sweep_spread(used: list[SweepFit], fit) -> list[Flag]:
     return []
 
 
+#: Baseline bins needed to weigh the residuals' runs against the noise's own
+MIN_BASELINE_BINS = 20
+
+
 def residual_structure(fit, avg: GroupAverage, fs: float, hum: bool = False) -> list[Flag]:
-    """Runs test on 0.5-ms bin means of the residuals (bins make filtered noise independent);
-    with `hum` found in the baselines the words say that the hum may be what it sees."""
+    """Runs test on 0.5-ms bin means of the residuals (bins make filtered noise
+    independent), with the runs expected from the noise taken from the same bins of the
+    baseline (about a line): the slow noise of a real cell keeps its sign for long too,
+    and the plain test flags every real recording. With `hum` found in the baselines the
+    words say that the hum may be what it sees."""
     width = max(1, int(0.5e-3 * fs))
-    resid = []
-    for seg in avg.segments:
-        r = residual(avg.v_V, fit, seg, fs)[1]
+
+    def bins(r: np.ndarray) -> np.ndarray:
         m = r.size // width * width
-        resid.append(r[:m].reshape(-1, width).mean(axis=1))
-    z = runs_test_z(np.concatenate(resid)) if resid else 0.0
+        return r[:m].reshape(-1, width).mean(axis=1)
+
+    resid = [bins(residual(avg.v_V, fit, seg, fs)[1]) for seg in avg.segments]
+    if not resid:
+        return []
+    resid = np.concatenate(resid)
+    z = runs_test_z(resid)
     if z >= -4:
         return []
+    a, b = span(avg.windows_s["baseline"], fs, avg.v_V.size)
+    base = bins(avg.v_V[a:b])
+    if base.size >= MIN_BASELINE_BINS:
+        k = np.arange(base.size)
+        base = base - np.polyval(np.polyfit(k, base, 1), k)
+        z = runs_test_z(resid, min(runs_ratio(base), 1.0))
+        if z >= -4:
+            return []   # no more runs than the recording's own noise makes
     return [S.FIT_RESIDUAL_STRUCTURE.make(z, reason="hum" if hum else "misfit")]
 
 

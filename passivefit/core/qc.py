@@ -33,21 +33,40 @@ class Flag:
         return {"code": self.code, "message": self.message, "value": value}
 
 
-def runs_test_z(residuals: np.ndarray) -> float:
-    """Wald–Wolfowitz runs test on the signs of the residuals, as a z score.
-
-    Strongly negative z means too few sign changes: structure left in the residuals.
-    """
+def _runs(residuals: np.ndarray) -> tuple[int, float, float]:
+    """(runs of one sign, their mean and variance for independent signs); mean 0 when
+    every sign is the same."""
     signs = np.asarray(residuals) > 0
     n_pos = int(signs.sum())
     n_neg = signs.size - n_pos
     if n_pos == 0 or n_neg == 0:
-        return float("-inf")
+        return 1, 0.0, 0.0
     runs = 1 + int(np.count_nonzero(signs[1:] != signs[:-1]))
     n = n_pos + n_neg
     mean = 2.0 * n_pos * n_neg / n + 1.0
-    var = (mean - 1.0) * (mean - 2.0) / (n - 1.0)
+    return runs, mean, (mean - 1.0) * (mean - 2.0) / (n - 1.0)
+
+
+def runs_test_z(residuals: np.ndarray, noise_ratio: float = 1.0) -> float:
+    """Wald–Wolfowitz runs test on the signs of the residuals, as a z score.
+
+    Strongly negative z means too few sign changes: structure left in the residuals.
+    `noise_ratio`: the :func:`runs_ratio` that the noise alone gives (1 for independent
+    noise); the runs expected, and their variance, are scaled by it (an effective number
+    of independent signs; common practice, no source).
+    """
+    runs, mean, var = _runs(residuals)
+    if mean == 0:
+        return float("-inf")
+    mean, var = mean * noise_ratio, var * noise_ratio
     return float((runs - mean) / np.sqrt(var)) if var > 0 else 0.0
+
+
+def runs_ratio(values: np.ndarray) -> float:
+    """Runs of one sign over the number independent signs would give (1 for white noise,
+    small for slow noise or structure; 0 when every sign is the same)."""
+    runs, mean, _ = _runs(values)
+    return runs / mean if mean > 0 else 0.0
 
 
 def bootstrap_halfwidth(samples: np.ndarray) -> float | None:
