@@ -21,8 +21,10 @@ MS, MV, PA = 1e-3, 1e-3, 1e-12
 STAGE_COLOURS = (theme.TEAL, theme.TERRACOTTA, "#7a5ea8")
 MAX_SEMILOG_POINTS = 500
 # stacking of the windows (higher on top): the steady-state window lies inside the fit
-# window, so it must be above it to take the mouse there; the fit keeps its free start
-REGION_Z = {"fit_off": -13, "fit": -12, "baseline": -10, "steady": -9}
+# window, so it must be above it to take the mouse there; the fit keeps its free start.
+# All lie over the faint sweeps (z 0), so that their labels are not hidden where many
+# sweeps fire, and under the sweep on screen (5) and its fit (6)
+REGION_Z = {"fit_off": 1, "fit": 2, "baseline": 3, "steady": 4}
 #: Heights of the window labels, as fractions of the view: four rows, so that none
 #: overlap even when a long sweep squeezes the windows into a few pixels
 LABEL_HEIGHT = {"baseline": 0.97, "fit": 0.91, "steady": 0.85, "fit_off": 0.79}
