@@ -92,6 +92,22 @@ def test_a_long_step_is_chosen_over_a_brief_test_pulse_before_it():
             for s in chosen] == [(0.3, -90), (0.3, -50), None, (0.3, 50)]
 
 
+def test_in_a_file_of_several_protocols_the_long_steps_win_over_test_pulses():
+    """Every sweep begins with the same 10 ms test pulse (as some acquisition systems
+    add; common practice, no source); three sweeps then hold a 1 s step, six a ramp or
+    nothing. The long steps are analysed, not the six sweeps' test pulses, which had
+    won the vote."""
+    pulse = (0.02, 0.01, -50 * PA)
+    steps = [_levels(40_000, pulse, (0.3, 1.0, amp * PA)) for amp in (-90, -50, -30)]
+    others = [_levels(40_000, pulse) for _ in range(3)]
+    ramp = _levels(40_000, pulse)
+    ramp[6000:36_000] = np.linspace(0, 200 * PA, 30_000)
+    others += [ramp.copy() for _ in range(3)]
+    chosen = common_steps([find_steps(c, FS) for c in steps + others])
+    assert [None if s is None else (round(s.onset_s, 3), round(s.amplitude_A / PA))
+            for s in chosen] == [(0.3, -90), (0.3, -50), (0.3, -30)] + [None] * 6
+
+
 def test_a_noisy_recorded_current_with_offset_and_capacitive_spikes():
     rng = np.random.default_rng(7)
     current = 79 * PA + _levels(60_000, (0.25, 0.25, -49 * PA))

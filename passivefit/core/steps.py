@@ -455,7 +455,10 @@ def common_steps(per_sweep: list[list[Step]],
     Each sweep's analysable step (`find_step`'s rule) votes for its onset; the
     onset with most votes wins, and every sweep gets its analysable step starting
     there (within 1 ms), or None. A sweep whose variable step is 0 pA then gives None
-    instead of the next step in its sweep.
+    instead of the next step in its sweep. Where some sweeps hold a step of
+    SETTLED_STEP_S or longer, only those vote: in a file of several protocols whose
+    sweeps all begin with a brief test pulse, the long steps are analysed, not the
+    pulses of the ramps and noise sweeps.
 
     Parameters
     ----------
@@ -469,8 +472,10 @@ def common_steps(per_sweep: list[list[Step]],
     list of (Step or None)
         One entry per sweep.
     """
-    firsts = [_first_analysable(steps, min_baseline_s) for steps in per_sweep]
-    onsets = np.asarray([s.onset_s for s in firsts if s is not None])
+    firsts = [s for s in (_first_analysable(steps, min_baseline_s) for steps in per_sweep)
+              if s is not None]
+    settled = [s for s in firsts if s.duration_s >= SETTLED_STEP_S]
+    onsets = np.asarray([s.onset_s for s in settled or firsts])
     if onsets.size == 0:
         return [None] * len(per_sweep)
     votes = [int(np.count_nonzero(np.abs(onsets - t) <= _SAME_ONSET_S)) for t in onsets]
