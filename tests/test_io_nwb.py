@@ -548,6 +548,22 @@ def test_sweeps_keep_the_files_own_numbers(tmp_path, reader):
     assert_allclose(rec.sweeps[2].current, -3e-12)
 
 
+@pytest.mark.parametrize("reader", [read_nwb_hdf5, read_nwb_pynwb], ids=["h5py", "pynwb"])
+def test_sweeps_in_other_clamp_modes_are_left_out_and_said(tmp_path, reader):
+    # a seal test in voltage clamp among current-clamp sweeps (acquisition layout), and
+    # table rows in voltage clamp and at I = 0: read alike by both readers, and named
+    seal = reader(_clamp_file(tmp_path / "seal.nwb", {1: RATE, 2: RATE}, seal_test=True))
+    (flag,) = [f for f in seal.flags if f.code == "protocol.other_clamp"]
+    assert flag.message.startswith("1 sweep(s) of the file were not recorded in current "
+                                   "clamp (voltage clamp: sweeps 0) and are left out")
+    table = reader(_mixed_table_file(tmp_path / "mixed.nwb"))
+    assert len(table.sweeps) == 1
+    (flag,) = [f for f in table.flags if f.code == "protocol.other_clamp"]
+    assert "2 sweep(s)" in flag.message and "(I = 0 and voltage clamp: sweeps 0, 0)" in flag.message
+    plain = reader(_clamp_file(tmp_path / "plain.nwb", {1: RATE, 2: RATE}))
+    assert not [f for f in plain.flags if f.code == "protocol.other_clamp"]
+
+
 def test_sweeps_at_another_rate_are_left_out_and_said(tmp_path):
     # three sweeps at 10 kHz, one at 50 kHz (a brief square sampled faster): the three
     # are read, the other left out with a flag (the h5py reader leaves such files to pynwb)

@@ -183,16 +183,39 @@ def _acquisition_pairs(nwb: Any, current_clamp: tuple[type, ...]) -> list[tuple[
     ]
 
 
-def _has_voltage_clamp(nwb: Any) -> bool:
-    """Whether the file holds voltage-clamp responses (in `acquisition` or the table)."""
-    from pynwb.icephys import VoltageClampSeries
+#: Response types that are not current clamp, as the flag names them
+_OTHER_CLAMP = {"VoltageClampSeries": "voltage clamp", "IZeroClampSeries": "I = 0"}
 
-    series = list(nwb.acquisition.values())
+
+def _other_clamp(nwb: Any) -> dict[str, list]:
+    """Sweep numbers (None where a series has none) of the responses recorded in voltage
+    clamp or at I = 0, by kind ("voltage clamp", "I = 0"): of the table's rows, or of
+    `acquisition` in a file without a table (where its sweeps are read from)."""
     table = nwb.intracellular_recordings
     if table is not None and len(table) > 0:
         responses = table.get_category("responses")["response"]
-        series += [responses[row].timeseries for row in range(len(table))]
-    return any(isinstance(s, VoltageClampSeries) for s in series)
+        series = [responses[row].timeseries for row in range(len(table))]
+    else:
+        series = list(nwb.acquisition.values())
+    found: dict[str, list] = {}
+    for s in {id(s): s for s in series if s is not None}.values():
+        kind = _OTHER_CLAMP.get(type(s).__name__)
+        if kind is not None:
+            found.setdefault(kind, []).append(s.sweep_number)
+    return found
+
+
+def _other_clamp_flag(others: dict[str, list]) -> tuple:
+    """The protocol.other_clamp flag of sweeps left out by clamp mode (none without any)."""
+    from passivefit.model import schema as S
+
+    numbers = [n for group in others.values() for n in group]
+    if not numbers:
+        return ()
+    which = (", ".join(str(int(n)) for n in sorted(numbers)) if None not in numbers
+             else "without sweep numbers")
+    return (S.PROTOCOL_OTHER_CLAMP.make(len(numbers), count=len(numbers),
+                                        kinds=" and ".join(sorted(others)), which=which),)
 
 
 def _cut(item: Any) -> tuple[Any, int, int | None]:
@@ -375,7 +398,8 @@ def read_nwb_pynwb(path: str | Path, channel: int | str | None = None) -> Record
                     pairs = _acquisition_pairs(nwb, current_clamp)
                 pairs = [p for p in pairs if not isinstance(_cut(p[0])[0], IZeroClampSeries)]
                 pairs, electrode, flags = _one_electrode(path, nwb, pairs, channel)
-                if not pairs and _has_voltage_clamp(nwb):
+                others = _other_clamp(nwb)
+                if not pairs and "voltage clamp" in others:
                     raise LoadError(
                         path,
                         "a voltage-clamp recording (VoltageClampSeries; no current-clamp sweeps "
@@ -388,7 +412,7 @@ def read_nwb_pynwb(path: str | Path, channel: int | str | None = None) -> Record
                         "passivefit analyses current clamp only",
                     )
                 sweeps, rate, settings, left_out = _read_sweeps(path, pairs)
-                flags = (*flags, *left_out)
+                flags = (*flags, *_other_clamp_flag(others), *left_out)
                 metadata = _metadata(nwb, electrode)
                 metadata.update(_settings_metadata(settings))
     except LoadError:
@@ -476,8 +500,9 @@ def _references(table: Any, category: str, column: str) -> np.ndarray | None:
     return rows
 
 
-def _direct_table_pairs(f: Any, table: Any) -> list[tuple[tuple, tuple | None]]:
-    """((series, start, count), stimulus cut or None) per current-clamp table row."""
+def _direct_table_pairs(f: Any, table: Any) -> tuple[list[tuple[tuple, tuple | None]], dict]:
+    """((series, start, count), stimulus cut or None) per current-clamp table row, and the
+    sweep numbers of the rows in other clamp modes (`_other_clamp`)."""
     responses = _references(table, "responses", "response")
     stimuli = _references(table, "stimuli", "stimulus")
     rows = len(table["id"])
@@ -485,12 +510,15 @@ def _direct_table_pairs(f: Any, table: Any) -> list[tuple[tuple, tuple | None]]:
         raise _Unfamiliar("intracellular_recordings: response column missing or short")
     if stimuli is not None and len(stimuli) != rows:
         raise _Unfamiliar("intracellular_recordings: stimulus column of another length")
-    pairs = []
+    pairs, others = [], {}
     for row, (start, count, reference) in enumerate(responses):
         if start < 0 or count < 0:
             continue  # no response in this row: pynwb gives None, which is no current clamp
         series = f[reference]
-        if _type_of(series) != _RESPONSE_TYPE:
+        kind = _type_of(series)
+        if kind in _OTHER_CLAMP:
+            others.setdefault(series.name, series)
+        if kind != _RESPONSE_TYPE:
             continue
         stimulus = None
         if stimuli is not None and stimuli[row]["idx_start"] >= 0 and stimuli[row]["count"] >= 0:
@@ -500,25 +528,37 @@ def _direct_table_pairs(f: Any, table: Any) -> list[tuple[tuple, tuple | None]]:
                 raise _Unfamiliar(f"{s_series.name}: stimulus of another type")
             stimulus = (s_series, int(s_start), int(s_count))
         pairs.append(((series, int(start), int(count)), stimulus))
-    return pairs
+    return pairs, _numbers_by_kind(list(others.values()))
 
 
-def _series_in(group: Any, kind: str) -> list[Any]:
-    """Members of `group` whose core type is `kind` (hard links under their own name)."""
-    found = []
+def _by_type(group: Any) -> dict[str, list]:
+    """Members of `group` by core type (hard links under their own name)."""
+    found: dict[str, list] = {}
     for name, obj in group.items():
         if obj.name.rsplit("/", 1)[-1] != name:
             raise _Unfamiliar(f"{group.name}/{name} links to {obj.name}")
-        if _type_of(obj) == kind:
-            found.append(obj)
+        found.setdefault(_type_of(obj), []).append(obj)
     return found
 
 
-def _direct_acquisition_pairs(f: Any) -> list[tuple[tuple, tuple | None]]:
-    """Responses in `acquisition` with the `stimulus` series of the same sweep number."""
-    responses = _series_in(f["acquisition"], _RESPONSE_TYPE)
+def _numbers_by_kind(series: list) -> dict[str, list]:
+    """Sweep numbers (None where absent) of voltage-clamp and I = 0 series, by kind."""
+    found: dict[str, list] = {}
+    for s in series:
+        number = s.attrs.get("sweep_number")
+        found.setdefault(_OTHER_CLAMP[_type_of(s)], []).append(
+            None if number is None else int(number))
+    return found
+
+
+def _direct_acquisition_pairs(f: Any) -> tuple[list[tuple[tuple, tuple | None]], dict]:
+    """Responses in `acquisition` with the `stimulus` series of the same sweep number, and
+    the sweep numbers of its other clamp modes (`_other_clamp`)."""
+    acquired = _by_type(f["acquisition"])
+    responses = acquired.get(_RESPONSE_TYPE, [])
+    others = _numbers_by_kind([s for kind in _OTHER_CLAMP for s in acquired.get(kind, [])])
     stimuli: dict = {}
-    for s in _series_in(f["stimulus/presentation"], _STIMULUS_TYPE):
+    for s in _by_type(f["stimulus/presentation"]).get(_STIMULUS_TYPE, []):
         number = s.attrs.get("sweep_number")
         if number is not None:
             if number in stimuli:
@@ -536,7 +576,7 @@ def _direct_acquisition_pairs(f: Any) -> list[tuple[tuple, tuple | None]]:
         number = r.attrs.get("sweep_number")
         stimulus = stimuli.get(number) if number is not None else None
         pairs.append(((r, 0, None), None if stimulus is None else (stimulus, 0, None)))
-    return pairs
+    return pairs, others
 
 
 def _direct_setting(series: Any, field: str) -> float | None:
@@ -644,15 +684,16 @@ def _read_direct(f: Any, path: Path) -> Recording:
     table_path = f"{_ICEPHYS}/intracellular_recordings"
     table = f[table_path] if table_path in f else None
     if table is not None and len(table["id"]) > 0:
-        pairs = _direct_table_pairs(f, table)
+        pairs, others = _direct_table_pairs(f, table)
     else:
-        pairs = _direct_acquisition_pairs(f)
+        pairs, others = _direct_acquisition_pairs(f)
     if not pairs:
         raise _Unfamiliar("no current-clamp sweeps")  # pynwb words the error
     sweeps, rate, settings = _direct_sweeps(pairs)
     metadata = _direct_metadata(f)
     metadata.update(_settings_metadata(settings))
-    return _finish(Recording(sweeps, rate, path=str(path), format="nwb", metadata=metadata))
+    return _finish(Recording(sweeps, rate, path=str(path), format="nwb", metadata=metadata,
+                             flags=_other_clamp_flag(others)))
 
 
 def read_nwb_hdf5(path: str | Path) -> Recording | None:

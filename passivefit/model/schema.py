@@ -463,6 +463,10 @@ PROTOCOL_ELECTRODE = _flag(
     "protocol.electrode_chosen", "info",
     "sweeps read from electrode {electrode} only, one cell of {count}; the file also holds "
     "{others}: analyse each on its own by naming it as the channel (`--channel NAME`)")
+PROTOCOL_OTHER_CLAMP = _flag(
+    "protocol.other_clamp", "info",
+    "{count} sweep(s) of the file were not recorded in current clamp ({kinds}: sweeps "
+    "{which}) and are left out (sweeps left out)")
 PROTOCOL_RATES = _flag(
     "protocol.rates_mixed", "warning",
     "the file's current-clamp sweeps are sampled at several rates: the {kept} at {rate} are "
