@@ -26,8 +26,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-
 from io_fixtures import abf1_channels_bytes, abf2_channels_bytes
+
 from passivefit.simulate import BallStick, RectifyingLeak, SagConductance, Spiking
 from passivefit.simulate.active import _active_responses
 from passivefit.simulate.recording import _apply_filter, _bessel, _electrode_lag, _events
