@@ -90,6 +90,22 @@ def test_active_cell_matches_an_independent_compartmental_solution(which):
     assert np.max(np.abs(ours - ref)) < 0.01 * effect
 
 
+def test_one_command_per_row_equals_each_row_alone():
+    # sweeps of several epochs (tests/protocol_replicas.py): a 2-d command, one per row,
+    # gives each row's 1-d response, with its own amplitude and scale
+    sag, n = SagConductance(3e-9, tau_s=0.08), int(0.3 * FS)
+    rows = np.zeros((2, n))
+    rows[0, 400:2000] = 1.0
+    rows[1, 400:2000], rows[1, 3000:5000] = -1.0, 0.5
+    amps, scales = np.array([-80e-12, 120e-12]), np.array([1.0, 1.2])
+    both = _active_responses(CELL, rows, amps, scales, 1 / FS, -0.07, sag, None)
+    for k in range(2):
+        alone = _active_responses(CELL, rows[k], amps[k:k + 1], scales[k:k + 1], 1 / FS,
+                                  -0.07, sag, None)[0]
+        assert_allclose(both[k], alone, rtol=0, atol=1e-12)
+    assert np.ptp(both[1, 3000:5000]) > 1e-3   # the second epoch is played
+
+
 def test_defaults_leave_the_recording_unchanged():
     # the opt-in options off: bit-identical to the plain passive simulation
     a, ta = simulate_recording(CELL, protocol=STEPS, sweep_duration_s=1.0, n_sweeps=3)

@@ -8,6 +8,7 @@ residual still holds an event after the cut (events on events, or a misfit).
 
 from __future__ import annotations
 
+import math
 from dataclasses import replace
 
 import numpy as np
@@ -23,6 +24,10 @@ BEFORE_S = 2e-3
 AFTER_S = 0.1
 #: Cut and refit at most this many times before the sweep is given up.
 ROUNDS = 3
+#: When the AFTER_S cut would leave no fit window (an event just before a step edge), the
+#: event's stretch ends where a PSP of the detector's template decay (core.events
+#: EventShape) has fallen to the noise, but lasts at least this long (s).
+SHORT_MIN_S = 0.02
 
 
 def noise_model(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: float):
@@ -141,8 +146,14 @@ def cut_out_events(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         cut: list[tuple[float, float]] = []
         new, left = f, found
         for _ in range(ROUNDS):   # a slow PSP can show again past its first cut
-            cut = _merged([*cut, *((t - BEFORE_S, t + AFTER_S) for t, _, _ in left)])
-            new = refit(f, tuple(cut))
+            wide = _merged([*cut, *((t - BEFORE_S, t + AFTER_S) for t, _, _ in left)])
+            new = refit(f, tuple(wide))
+            if new.fit is None:   # the cut took the fit window: cut each event's own extent
+                short = _merged([*cut, *((t - BEFORE_S, t + _extent_s(a, noise))
+                                         for t, a, _ in left)])
+                trial = refit(f, tuple(short)) if short != wide else new
+                wide, new = (short, trial) if trial.fit is not None else (wide, new)
+            cut = wide
             left = find_events(new, v, fs, noise) if new.fit is not None else []
             found += left
             if not left:
@@ -157,6 +168,20 @@ def cut_out_events(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         else:
             out.append(replace(new, flags=(*new.flags, flag)))
     return out
+
+
+def _extent_s(amplitude_V: float, noise) -> float:
+    """How long after its onset an event of `amplitude_V` stays above the noise, for the
+    detector's template (rise and decay of core.events.EventShape): the time to its peak
+    plus the decay time constants needed to fall to the raw noise sd; between SHORT_MIN_S
+    and AFTER_S. Whatever is left of a slower event is found again in the refit's residual
+    and cut in the next round."""
+    shape = noise.shape
+    peak = (shape.rise_s * shape.decay_s / (shape.decay_s - shape.rise_s)
+            * math.log(shape.decay_s / shape.rise_s))
+    ratio = abs(amplitude_V) / noise.sd_V if noise.sd_V > 0 else math.inf
+    tail = shape.decay_s * math.log(ratio) if ratio > 1 else 0.0
+    return float(np.clip(peak + tail, SHORT_MIN_S, AFTER_S))
 
 
 def _merged(intervals: list[tuple[float, float]]) -> list[tuple[float, float]]:

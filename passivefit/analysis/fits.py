@@ -15,6 +15,10 @@ from passivefit.core.steps import Step
 from passivefit.model.results import GroupAverage, Segment
 
 KEEP_FULL_S, BIN_FACTOR = 5e-3, 1.05  # fit samples at full rate up to 5 ms, then 5 % bins
+#: A fit window with events cut out (NaN) is fitted only when at least this share of it
+#: is left: a scrap (e.g. the first millisecond before an event) cannot show a time
+#: constant of tens of ms, and its fit would be taken for the sweep's.
+MIN_KEPT_SHARE = 0.25
 FIT_ERRORS = (ValueError, np.linalg.LinAlgError, RuntimeError)
 
 
@@ -44,7 +48,7 @@ def fit_segments_rows(rows: np.ndarray, fs: float, step: Step, wins: dict) -> li
             binned = [(tb, row, wb) for row in yb]
         else:
             binned = [decimate_tail(t[k], row[k], KEEP_FULL_S, BIN_FACTOR)
-                      if np.count_nonzero(k) >= 20 else None
+                      if np.count_nonzero(k) >= max(20, MIN_KEPT_SHARE * k.size) else None
                       for row, k in zip(y, kept, strict=True)]
         for (segs, records), bins in zip(out, binned, strict=True):
             if bins is not None:

@@ -277,7 +277,9 @@ def _end(sweep: tuple, prep: tuple, wins: dict, fit, records, fit_error: str | N
         if where == "during the step":   # spikes, not a steady state: no R_in
             dv = r_in = None
     elif fit_error:
-        accepted, reason = False, fit_error
+        cut = masked_s and fit_error.endswith("too few samples")
+        accepted, reason = False, fit_error + (" once the spontaneous events are cut out"
+                                               if cut else "")
     elif drift is not None and abs(drift) > max(DRIFT_V, 0.25 * abs(dv or 0.0)):
         accepted, reason = False, (f"the baseline drifts {drift / MV:+.1f} mV between the "
                                    "start and the end of the sweep")

@@ -21,10 +21,15 @@ def noise_sd(v: np.ndarray) -> float:
     """Robust sd of a window about its linear trend (MAD × 1.4826), in the input's unit.
 
     The trend is fitted twice, the second time without the samples beyond 5 MADs, so a
-    spike does not tilt it.
+    spike does not tilt it. NaN samples (cut out) are left out; NaN when none is left.
     """
     v = np.asarray(v, dtype=np.float64)
     x = np.arange(v.size) - (v.size - 1) / 2.0
+    finite = np.isfinite(v)
+    if not finite.all():
+        if not finite.any():
+            return math.nan
+        v, x = v[finite], x[finite]
     keep = np.ones(v.size, dtype=bool)
     for _ in range(2):
         xk, vk = x[keep], v[keep]

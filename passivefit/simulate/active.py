@@ -213,7 +213,9 @@ def _active_responses(
 ) -> np.ndarray:
     """Somatic voltage deviations (rows, V) of `cell` with its conductances scaled by 1/scale.
 
-    Row r is driven by amplitudes_A[r] * unit_A. The passive cable is the exact modal
+    Row r is driven by amplitudes_A[r] * unit_A, or by amplitudes_A[r] * unit_A[r] when
+    `unit_A` is 2-D (one command per row, e.g. sweeps of several epochs). The passive cable
+    is the exact modal
     response (zero-order hold); the sag and rectifier currents are fed back into it as
     somatic currents held over each sample (their value at the sample's start), with the
     sag gate advanced by exponential Euler. The currents are taken relative to rest, so
@@ -229,12 +231,13 @@ def _active_responses(
     a = decay[slow]
     b = gains[slow] * taus[slow] * (1.0 - a)
     # the command's response, exact and linear
+    unit_A = np.asarray(unit_A, dtype=float)
     unit_v = np.zeros_like(unit_A)
     for ak, bk in zip(a, b, strict=True):
-        unit_v += lfilter([0.0, bk], [1.0, -ak], unit_A)
-    unit_v[1:] += instant_ohm * unit_A[:-1]
+        unit_v += lfilter([0.0, bk], [1.0, -ak], unit_A, axis=-1)
+    unit_v[..., 1:] += instant_ohm * unit_A[..., :-1]
     scales = np.asarray(scales, dtype=float)
-    v_cmd = (scales * amplitudes_A)[:, None] * unit_v[None, :]
+    v_cmd = (scales * amplitudes_A)[:, None] * np.atleast_2d(unit_v)
     # The feedback is explicit: stable while the resistance the soma shows within one
     # sample, times the active conductance, stays below about 1.
     g_active = (sag.g_max_S if sag else 0.0) + (rectifier.g_max_S if rectifier else 0.0)
