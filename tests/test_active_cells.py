@@ -172,3 +172,23 @@ def test_mains_hum_is_named_and_measured(hum_mV):
         assert all("mains hum" in f.message for f in structure)
     else:
         assert "cell.hum" not in codes(result) and S.HUM.key not in cell
+
+
+def test_depolarizing_only_says_whether_hyperpolarizing_steps_were_left_out():
+    """The flag's words: no hyperpolarizing step in the sweeps, or all of them rejected for
+    their own reasons (an event, drift, a failed fit), which the sweeps' reasons tell."""
+    from types import SimpleNamespace
+
+    from passivefit.analysis.selection import leave_out_active
+
+    def sweep(amplitude_pA, accepted):
+        step = SimpleNamespace(amplitude_A=amplitude_pA * 1e-12, kind="step")
+        return SimpleNamespace(accepted=accepted, r_in_ohm=100e6, step=step)
+
+    _, flags = leave_out_active([sweep(20, True), sweep(40, True)])
+    (flag,) = [f for f in flags if f.code == "cell.depolarizing_only"]
+    assert flag.message.startswith("every step is depolarizing: it moves the cell")
+    _, flags = leave_out_active([sweep(-50, False), sweep(20, True)])
+    (flag,) = [f for f in flags if f.code == "cell.depolarizing_only"]
+    assert flag.message.startswith("every hyperpolarizing step was left out (see the sweeps' "
+                                   "reasons), so the values come from depolarizing steps")

@@ -80,7 +80,9 @@ def leave_out_active(fits: list[SweepFit]) -> tuple[list[SweepFit], list[Flag]]:
         out.append(f)
     flags = [S.CELL_ACTIVE_SWEEPS.make(n, n=n, reference=source)] if n else []
     if depolarizing_only:
-        flags.append(S.CELL_DEPOLARIZING_ONLY.make(smallest * 1e12))
+        stepped_down = any(f.step is not None and f.step.amplitude_A < 0 for f in fits)
+        flags.append(S.CELL_DEPOLARIZING_ONLY.make(
+            smallest * 1e12, reason="left_out" if stepped_down else "none"))
     return out, flags
 
 

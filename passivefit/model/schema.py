@@ -497,9 +497,12 @@ CELL_ACTIVE_SWEEPS = _flag(
     "passive values come from the sweeps that respond passively (number left out)")
 CELL_DEPOLARIZING_ONLY = _flag(
     "cell.depolarizing_only", "warning",
-    "every step is depolarizing: it moves the cell towards threshold, where voltage-gated "
-    "conductances open, so even the smallest step may not respond passively; hyperpolarizing "
-    "steps give the passive values (smallest step, pA)")
+    "{reason}: it moves the cell towards threshold, where voltage-gated conductances open, so "
+    "even the smallest step may not respond passively; hyperpolarizing steps give the "
+    "passive values (smallest step, pA)",
+    none="every step is depolarizing",
+    left_out="every hyperpolarizing step was left out (see the sweeps' reasons), so the "
+             "values come from depolarizing steps")
 CELL_SCALE_SUSPECT = _flag(
     "cell.scale_suspect", "warning", "{reason}",
     r_in="R_in is outside what neurons show (0.1 MΩ–50 GΩ): check the current's unit and "
