@@ -147,3 +147,19 @@ def test_bootstrap_option_sets_the_ci_method(tmp_path):
     assert json.loads(out.read_text())["cell"]["ci_method"] == "fit covariance"
     proc = run_cli("analyze", CA1, "--bootstrap", "-1")
     assert proc.returncode == 2 and "bootstrap" in proc.stderr
+
+
+def test_the_table_says_when_an_accepted_sweep_has_no_tau0():
+    # a sweep whose own τ0 interval is wider than τ0 shows "—": the status says why
+    from passivefit.analysis import analyze
+    from passivefit.cli.analyze import format_table
+    from passivefit.io import load
+    from passivefit.model.settings import Settings
+
+    data = analyze(load(CA1), Settings(bootstrap=0)).to_dict()
+    data["sweeps"][0]["tau0_ms"] = None
+    lines = format_table(data).splitlines()
+    header = next(i for i, line in enumerate(lines) if line.endswith("status"))
+    rows = lines[header + 1: header + 1 + len(data["sweeps"])]
+    assert "ok (τ0 not resolved in this sweep alone)" in rows[0]
+    assert all("not resolved" not in row for row in rows[1:])

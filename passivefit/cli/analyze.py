@@ -86,6 +86,8 @@ def format_table(data: dict) -> str:
         status = "ok" if s[S.ACCEPTED.key] else f"rejected: {s[S.REJECT_REASON.key]}"
         codes = {f["code"] for f in s[S.FLAGS_KEY]}
         notes = [note for code, note in SWEEP_NOTES.items() if code in codes]
+        if s[S.ACCEPTED.key] and s[S.TAU0.key] is None and s[S.RMSE.key] is not None:
+            notes.append("τ0 not resolved in this sweep alone")   # fitted, CI too wide
         status += f" ({'; '.join(notes)})" if notes else ""
         cells = [f"{_fmt(s[q.key], DIGITS.get(q, 4)):>{w}}" for q, w in SWEEP_WIDTHS]
         lines.append("  " + "  ".join(cells) + f"  {status}")
