@@ -32,6 +32,11 @@ def test_brief_pulse_is_a_pulse_and_flat_command_has_no_step():
     assert find_step(pulse, FS).kind == "pulse"
     assert find_step(np.zeros(4000), FS) is None
     assert PULSE_MAX_S < 0.01
+    # the common 5 ms pulse (a train's, e.g.) is a pulse too, a sample longer is a step
+    five = StepSpec(0.02, 5e-3, 1e-9).command(4000, FS, 0)
+    assert find_step(five, FS).kind == "pulse"
+    longer = StepSpec(0.02, 5e-3 + 1 / FS, 1e-9).command(4000, FS, 0)
+    assert find_step(longer, FS).kind == "step"
 
 
 def test_step_spec_increment_changes_amplitude_per_sweep():

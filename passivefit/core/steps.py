@@ -20,7 +20,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-#: A step shorter than this is treated as a brief pulse: only its decay is fitted.
+#: A step this long or shorter is treated as a brief pulse: only its decay is fitted (the
+#: common 5 ms pulse charges a cell to a fifth of its steady state or less)
 PULSE_MAX_S = 5e-3
 #: Levels and pulses shorter than this are not steps (noise blips, capacitive spikes).
 MIN_DURATION_S = 0.2e-3
@@ -119,7 +120,7 @@ class Step:
     @property
     def kind(self) -> str:
         """"step" when the charging phase can be fitted, "pulse" for a brief pulse."""
-        return "pulse" if self.duration_s < PULSE_MAX_S else "step"
+        return "pulse" if self.duration_s <= PULSE_MAX_S * (1 + 1e-9) else "step"
 
 
 @dataclass(frozen=True)
@@ -504,7 +505,7 @@ def classify_stimulus(current: np.ndarray | None, sample_rate_hz: float,
     Returns
     -------
     str
-        "step" when an analysable step of `PULSE_MAX_S` or longer exists, "pulse"
+        "step" when an analysable step longer than `PULSE_MAX_S` exists, "pulse"
         when only brief pulses do, "ramp" when the current changes steadily in one
         direction over a long stretch, "waveform" for other changes (sines, noise
         stimuli), "none" for a flat current.

@@ -52,7 +52,7 @@ class Epoch:
     level_A : float
         Current during the epoch (a ramp's end level), in A.
     kind : str
-        "step", "pulse" (shorter than `core.steps.PULSE_MAX_S`), "ramp", "pulse train"
+        "step", "pulse" (at most `core.steps.PULSE_MAX_S`), "ramp", "pulse train"
         or "other" (a shape passivefit does not draw).
     pulse_period_s, pulse_width_s : float
         For a pulse train: period and width of its pulses, in s (0 otherwise).
