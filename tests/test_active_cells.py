@@ -192,3 +192,16 @@ def test_depolarizing_only_says_whether_hyperpolarizing_steps_were_left_out():
     (flag,) = [f for f in flags if f.code == "cell.depolarizing_only"]
     assert flag.message.startswith("every hyperpolarizing step was left out (see the sweeps' "
                                    "reasons), so the values come from depolarizing steps")
+
+
+def test_a_pulse_that_fires_is_named_as_a_pulse():
+    """2 ms, 2 nA pulses that fire (as suprathreshold pulse protocols do): every sweep is
+    left out, its reason naming the pulse, and nothing is reported for the cell."""
+    from passivefit.simulate.recording import PulseProtocol
+
+    rec, _ = simulate(protocol=PulseProtocol(0.2, 2e-3, 2e-9), n_sweeps=3,
+                      sweep_duration_s=0.5, spiking=Spiking(threshold_V=-0.050))
+    result = analyze(rec, Settings(bootstrap=0))
+    assert all(s.reject_reason.startswith("action potential during the pulse")
+               for s in result.sweeps)
+    assert "cell.no_sweeps" in codes(result)

@@ -274,7 +274,7 @@ def _end(sweep: tuple, prep: tuple, wins: dict, fit, records, fit_error: str | N
         where = _part_of_sweep(spike, step)
         accepted, reason = False, (f"action potential {where} (peak {v[spike] / MV:+.0f} mV "
                                    f"at {spike / fs * 1e3:.0f} ms)")
-        if where == "during the step":   # spikes, not a steady state: no R_in
+        if step.onset <= spike < step.offset:   # spikes, not a steady state: no R_in
             dv = r_in = None
     elif fit_error:
         cut = masked_s and fit_error.endswith("too few samples")
@@ -343,10 +343,10 @@ def _sag(v: np.ndarray, step: Step, fs: float, v_base: float
 
 
 def _part_of_sweep(sample: int, step: Step) -> str:
-    """Where a sample lies relative to the step, in words."""
+    """Where a sample lies relative to the step (or pulse), in words."""
     if sample < step.onset:
-        return "before the step"
-    return "during the step" if sample < step.offset else "after the step"
+        return f"before the {step.kind}"
+    return f"during the {step.kind}" if sample < step.offset else f"after the {step.kind}"
 
 
 def reject_outliers(fits: list[SweepFit]) -> list[SweepFit]:
