@@ -109,3 +109,20 @@ def test_a_current_too_small_to_be_a_step_names_its_size(tmp_path):
     with pytest.raises(LoadError, match=r"the current is flat, changing by at most 0.06 pA: "
                                         r"is its unit right\?"):
         analyze(load(save(recording, tmp_path / "tiny.nwb")))
+
+
+def test_a_current_that_changes_much_without_a_step_is_not_called_flat(tmp_path):
+    """A long noise stimulus (±60 pA, held 1 ms at a time): the edge detector finds no
+    step, and the refusal says how much the current changes rather than calling it flat
+    and doubting its unit."""
+    from passivefit.analysis import analyze
+
+    recording = charging_recording(n_sweeps=2, n_samples=6000)
+    rng = np.random.default_rng(2)
+    for sweep in recording.sweeps:
+        current = np.zeros(sweep.current.size)
+        current[2000:] = np.repeat(rng.normal(0, 60e-12, 200), 20)
+        sweep.current = current
+    with pytest.raises(LoadError, match=r"the current is changing by up to \d+ pA with no "
+                                        r"step standing out\); give `--step"):
+        analyze(load(save(recording, tmp_path / "noise.nwb")))

@@ -29,6 +29,11 @@ def tail_end(step: Step, n_samples: int) -> int:
     return min(n_samples, 2 * step.offset - step.onset + round(TAIL_AFTER_S * step.sample_rate_hz))
 
 
+#: A current that changes by this much is not taken for one read in the wrong unit
+#: (a current-clamp step is tens to hundreds of pA; common practice, no source)
+_NO_UNIT_DOUBT_A = 5e-12
+
+
 def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
     """The analysed step of every sweep: from the user's StepSpec, else from the current.
 
@@ -58,8 +63,10 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
         for st, found, s in zip(common_steps(per_sweep), per_sweep, rec.sweeps, strict=True)]
     if all(s is None for s in steps):
         largest = max(float(np.ptp(s.current)) for s in rec.sweeps)
-        flat = "flat" if largest == 0 else (f"flat, changing by at most {largest * 1e12:.2g} pA: "
-                                            "is its unit right?")
+        flat = ("flat" if largest == 0 else
+                f"flat, changing by at most {largest * 1e12:.3g} pA: is its unit right?"
+                if largest < _NO_UNIT_DOUBT_A else
+                f"changing by up to {largest * 1e12:.3g} pA with no step standing out")
         words = {"ramp": "a ramp", "waveform": "a waveform", "none": flat}
         kinds = {classify_stimulus(s.current, fs) for s in rec.sweeps} - {"step", "pulse"}
         what = f" (the current is {' or '.join(words[k] for k in sorted(kinds))})" if kinds else ""
