@@ -113,6 +113,15 @@ class TransientFit:
         return self.full.taus
 
     @property
+    def sag_share(self) -> float | None:
+        """|sag amplitude| over |τ0 amplitude| at the first transient's edge; None without
+        a sag component."""
+        if self.sag is None:
+            return None
+        a = np.abs(np.asarray(self.full.amplitudes[0], dtype=float))
+        return float(a[self.sag] / a[self.keep[0]]) if a[self.keep[0]] > 0 else float("inf")
+
+    @property
     def sag_tau(self) -> float | None:
         """Time constant of the sag component (s); None without one."""
         return None if self.sag is None else float(self.full.taus[self.sag])

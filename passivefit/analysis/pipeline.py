@@ -266,12 +266,12 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     avg_cable = average_of(pool, avg.v_V, fs, automatic or settings)
     chain = replace(chain or Chain(), noise_factor=noise_factor(avg_cable, fs))
     bs = bridge = None
-    if fit is not None and fit.sag is not None:  # not passive: no cable model
+    if fit is not None and fit.sag is not None:
         out.values[S.TAU_SAG] = fit.sag_tau
-        out.flags += [S.FIT_SAG_COMPONENT.make(fit.sag_tau / MS, tau=f"{fit.sag_tau / MS:.0f} ms"),
-                      S.CABLE_NOT_PASSIVE.make()]
-    elif sagging:
-        out.flags.append(S.CABLE_NOT_PASSIVE.make())
+        out.flags.append(S.FIT_SAG_COMPONENT.make(fit.sag_tau / MS,
+                                                  tau=f"{fit.sag_tau / MS:.0f} ms"))
+    if sagging or fit is not None and (fit.sag_share or 0.0) >= SLIGHT_SAG:
+        out.flags.append(S.CABLE_NOT_PASSIVE.make())   # not passive: no cable model
     else:  # its start values from its own data, not from the person's exponential fit
         chain_fit, problem = fit_cable(avg_cable, fs, None, chain, profile=True)
         out.flags.extend([problem] if problem else [])
@@ -452,6 +452,12 @@ def _bridge_correction(fits: list[SweepFit], bridge: tuple[float, float, bool] |
         if measured.get(S.R_IN_CI) is not None:
             values[S.R_IN_CI] = float(np.hypot(measured[S.R_IN_CI], ci))
     return values, flags, fits
+
+
+#: A sag component smaller than this share of τ0's amplitude leaves the cell passive
+#: enough for the cable model (a trace of Ih, as in many fast-spiking interneurons; the
+#: cell.sag flag's steady/peak threshold is 0.95; common practice, no source)
+SLIGHT_SAG = 0.05
 
 
 def _time_constants(fit, bs, avg: GroupAverage, boot: dict | None, fs: float,
