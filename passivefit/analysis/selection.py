@@ -95,6 +95,21 @@ def hyperpolarizing_only(fits: list[SweepFit]) -> list[SweepFit]:
             for f in fits]
 
 
+def _tau0_drift(used: list[SweepFit], k: int, values: dict) -> list[Flag]:
+    """The change of the sweeps' own τ0 from the first to the last `k` of `used` (one step)
+    into `values`, flagged beyond UNSTABLE_R_IN; nothing when either end has fewer than
+    two resolved τ0."""
+    first = [t for t in (f.tau(0) for f in used[:k]) if t is not None]
+    last = [t for t in (f.tau(0) for f in used[-k:]) if t is not None]
+    if min(len(first), len(last)) < 2:
+        return []
+    change = float(np.median(last) / np.median(first) - 1)
+    values[S.TAU0_CHANGE] = change
+    if abs(change) <= UNSTABLE_R_IN:
+        return []
+    return [S.CELL_TAU0_DRIFT.make(100 * change, x=100 * change)]
+
+
 def stable_stretch(fits: list[SweepFit], use_all: bool
                    ) -> tuple[list[SweepFit], dict, list[Flag]]:
     """The change of V_rest and R_in over the recording and, when R_in drifts, the
@@ -119,8 +134,9 @@ def stable_stretch(fits: list[SweepFit], use_all: bool
     change = (np.median([f.r_in_ohm for f in used[-k:]])
               / np.median([f.r_in_ohm for f in used[:k]]) - 1)
     values[S.R_IN_CHANGE] = change
+    drift = _tau0_drift(used, k, values)
     if abs(change) <= UNSTABLE_R_IN:
-        return fits, values, []
+        return fits, values, drift
     best: list[SweepFit] = []
     for i in range(len(used)):
         for j in range(len(used), i + len(best), -1):
@@ -133,7 +149,7 @@ def stable_stretch(fits: list[SweepFit], use_all: bool
     what = ("all sweeps (as set)" if use_all
             else f"the longest stable stretch, sweeps {best[0].index}–{best[-1].index}")
     values[S.STABLE_SWEEPS] = f"{best[0].index}-{best[-1].index}"
-    flags = [S.CELL_UNSTABLE.make(100 * change, x=100 * change, dv=dv / MV, what=what)]
+    flags = [S.CELL_UNSTABLE.make(100 * change, x=100 * change, dv=dv / MV, what=what), *drift]
     if use_all:
         return fits, values, flags
     out = [f if f.index in keep or not f.accepted or f not in used else replace(

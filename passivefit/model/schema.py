@@ -140,6 +140,8 @@ R_IN_CHORD = Quantity("r_in_chord_MOhm", "R_in, smallest steps", "MΩ", MOHM)
 REBOUND = Quantity("rebound_mV", "rebound", "mV", MV, title="Rebound after the step")
 R_IN_CHANGE = Quantity("r_in_change_pct", "R_in change over the recording", "%", 0.01, 3,
                        title="R_in change, first to last quarter of the sweeps")
+TAU0_CHANGE = Quantity("tau0_change_pct", "τ0 change over the recording", "%", 0.01, 3,
+                      title="τ0 change, first to last quarter of the sweeps")
 V_REST_CHANGE = Quantity("v_rest_change_mV", "V_rest change over the recording", "mV", MV, 3,
                          title="V_rest change, first to last quarter of the sweeps")
 HUM = Quantity("hum_mV", "mains hum", "mV", MV, 3, title="Mains hum in the baselines")
@@ -213,9 +215,9 @@ CELL_CORE = (V_REST, R_IN, TAU0, TAU0_CI, TAU1, TAU1_CI, C0, C1, L_CYL, L_BS, L_
 CELL_EXTRA = (BRIDGE, BRIDGE_CI, BRIDGE_APPLIED, TAU1_SOURCE, TAU1_EXP, TAU2, TAU0_MODEL, L_CYL_CI,
               RHO_AMPLITUDE, FIT_START, R_IN_METHOD, VI_R2, R_IN_ASYMMETRY, N_COMPONENTS,
               COMPONENTS_REASON, CI_METHOD, REF_STEP, C_RATIO, CM, RM, TAU_SAG, R_IN_PEAK,
-              R_IN_SLOPE, R_IN_CHORD, REBOUND, R_IN_CHANGE, V_REST_CHANGE, STABLE_SWEEPS, HUM,
-              R_IN_CI, R_IN_RAW, R_IN_CORRECTED, L_CI_LOW, L_CI_HIGH, RHO_CI_LOW, RHO_CI_HIGH,
-              FILTER, FILTER_CI, FILTER_SOURCE, LAG, LAG_CI)
+              R_IN_SLOPE, R_IN_CHORD, REBOUND, R_IN_CHANGE, TAU0_CHANGE, V_REST_CHANGE,
+              STABLE_SWEEPS, HUM, R_IN_CI, R_IN_RAW, R_IN_CORRECTED, L_CI_LOW, L_CI_HIGH,
+              RHO_CI_LOW, RHO_CI_HIGH, FILTER, FILTER_CI, FILTER_SOURCE, LAG, LAG_CI)
 CELL = CELL_CORE + CELL_EXTRA
 
 # Sweep values (each of `sweeps`), in contract order.
@@ -513,6 +515,12 @@ CELL_UNSTABLE = _flag(
     "cell.unstable", "warning",
     "R_in changes by {x:+.0f} % and V_rest by {dv:+.1f} mV over the recording; the cell "
     "values come from {what} (R_in change, %)")
+
+CELL_TAU0_DRIFT = _flag(
+    "cell.tau0_drift", "warning",
+    "τ0 changes by {x:+.0f} % over the recording (first to last quarter of the sweeps of one "
+    "step): the cell or the recording changed (series resistance, the cell's health), and "
+    "the cell's τ0 and its interval average over that change (τ0 change, %)")
 
 #: core.cable.implausible() check names → flag codes.
 PLAUSIBILITY = {"tau2_ratio": CABLE_TAU2_RATIO, "shunt_pulse": CABLE_SHUNT_SUSPECTED,
