@@ -225,3 +225,20 @@ def test_common_steps_group_onsets_that_differ_by_a_sample_or_two():
     chosen = common_steps([find_steps(c, FS) for c in sweeps])
     assert [c is not None for c in chosen] == [True, True, True, False]
     assert chosen[0].onset == 2929 and chosen[1].onset == 2931
+
+
+def test_a_sweep_whose_second_step_is_0_pA_is_read_as_far_as_the_others():
+    """A fixed first step, then a family of second steps from 0 pA (as 18711001 has): the
+    0 pA sweep has no next step of its own, yet it is read only to where the others' second
+    step begins, so all sweeps have one length and are combined together."""
+    from io_fixtures import charging_recording
+
+    from passivefit.analysis.windows import sweep_steps
+    from passivefit.model.settings import Settings
+
+    rec = charging_recording(n_sweeps=3, n_samples=8000)
+    for k, sweep in enumerate(rec.sweeps):
+        sweep.current = _levels(8000, (0.04, 0.1, -100 * PA), (0.25, 0.1, 50 * k * PA))
+    steps = sweep_steps(rec, Settings())
+    assert [round(s.onset_s, 3) for s in steps] == [0.04] * 3
+    assert [s.region_end for s in steps] == [5000, 5000, 5000]

@@ -29,6 +29,20 @@ def tail_end(step: Step, n_samples: int) -> int:
     return min(n_samples, 2 * step.offset - step.onset + round(TAIL_AFTER_S * step.sample_rate_hz))
 
 
+def _protocol_region_ends(steps: list[Step | None]) -> list[Step | None]:
+    """A sweep whose next step is missing (its level 0 pA in this sweep, as a family of
+    second steps starting at 0 pA has it) is read only as far as the sweeps of the same
+    step timing are, up to their next step: the protocol holds that step there, and the
+    sweep is then combined with the others rather than set apart by its length."""
+    ends: dict[tuple[int, int], int] = {}
+    for st in steps:
+        if st is not None and st.region_end is not None:
+            key = (st.onset, st.offset)
+            ends[key] = min(ends.get(key, st.region_end), st.region_end)
+    return [st if st is None or st.region_end is not None or (st.onset, st.offset) not in ends
+            else replace(st, region_end=ends[(st.onset, st.offset)]) for st in steps]
+
+
 #: A current that changes by this much is not taken for one read in the wrong unit
 #: (a current-clamp step is tens to hundreds of pA; common practice, no source)
 _NO_UNIT_DOUBT_A = 5e-12
@@ -61,6 +75,7 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
         (later.onset for later in found if later.onset >= st.offset),
         default=tail_end(st, s.n_samples) if settings.step is not None else None))
         for st, found, s in zip(common_steps(per_sweep), per_sweep, rec.sweeps, strict=True)]
+    steps = _protocol_region_ends(steps)
     if all(s is None for s in steps):
         largest = max(float(np.ptp(s.current)) for s in rec.sweeps)
         flat = ("flat" if largest == 0 else
