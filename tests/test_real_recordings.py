@@ -110,6 +110,16 @@ def test_residual_structure_is_weighed_against_the_cells_own_noise(results):
 
 
 @pytest.mark.slow
+def test_a_fit_through_a_spike_shows_no_values(results):
+    """171116sh_0018: the +250 pA sweep fires inside its fit window (first spike at 169
+    ms), so its fit's τ0 and rmse mean nothing and are not shown; the +50 pA sweep fires at
+    397 ms, after its 61 ms fit window, and keeps its τ0."""
+    fits = {f.index: f for f in results["171116sh_0018"].sweeps}
+    assert not fits[14].accepted and fits[14].tau(0) is None and fits[14].rmse_V is None
+    assert not fits[6].accepted and fits[6].tau(0) is not None
+
+
+@pytest.mark.slow
 def test_an_early_step_keeps_its_sign_and_the_drift_is_reported(results):
     """18711001: −100 pA at 23.4 ms with only 23 ms of baseline before it; R_in rises
     over the recording (reference: 197 MΩ in the first five sweeps, 228 MΩ in the last)."""

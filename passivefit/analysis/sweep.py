@@ -268,7 +268,7 @@ def _end(sweep: tuple, prep: tuple, wins: dict, fit, records, fit_error: str | N
     if drift is not None and abs(drift) > 0.25 * DRIFT_V:
         done = "subtracted as a straight line" if settings.correct_drift else "not corrected"
         flags.append(S.SWEEP_DRIFT.make(drift / MV, done=done))
-    accepted, reason = True, None
+    accepted, reason, through_spike = True, None, False
     spike = spike_in(v, step, fs)
     if spike is not None:
         where = _part_of_sweep(spike, step)
@@ -276,6 +276,10 @@ def _end(sweep: tuple, prep: tuple, wins: dict, fit, records, fit_error: str | N
                                    f"at {spike / fs * 1e3:.0f} ms)")
         if step.onset <= spike < step.offset:   # spikes, not a steady state: no R_in
             dv = r_in = None
+        # a fit through a spike means nothing: its values are not shown (the fit is kept
+        # for the noise model of the event search, which reads every fitted sweep)
+        through_spike = fit is not None and any(
+            r.samples(fs).start <= spike < r.samples(fs).stop for r in records)
     elif fit_error:
         cut = masked_s and fit_error.endswith("too few samples")
         accepted, reason = False, fit_error + (" once the spontaneous events are cut out"
@@ -283,13 +287,16 @@ def _end(sweep: tuple, prep: tuple, wins: dict, fit, records, fit_error: str | N
     elif drift is not None and abs(drift) > max(DRIFT_V, 0.25 * abs(dv or 0.0)):
         accepted, reason = False, (f"the baseline drifts {drift / MV:+.1f} mV between the "
                                    "start and the end of the sweep")
-    if fit is not None:
+    if fit is not None and not through_spike:
         resids = np.concatenate([residual(seen, fit, r, fs)[1] for r in records])
         rmse = float(np.sqrt(np.nanmean(resids ** 2)))
+    if through_spike:
+        amps, bridge = (), None
     return SweepFit(
         index=index, accepted=accepted, reject_reason=reason, step=step,
         v_rest_V=v_base, dv_ss_V=dv, r_in_ohm=r_in,
-        taus_s=tuple(float(t) for t in fit.taus) if fit is not None else (),
+        taus_s=tuple(float(t) for t in fit.taus) if fit is not None and not through_spike
+        else (),
         amps_V=amps, rmse_V=rmse,
         bridge_ohm=bridge, sag=sag, r_in_peak_ohm=r_peak, rebound_V=rebound, noise_V=noise,
         drift_V=drift, trend=trend, windows_s=wins, masked_s=masked_s, segments=records,
