@@ -110,6 +110,20 @@ def test_residual_structure_is_weighed_against_the_cells_own_noise(results):
 
 
 @pytest.mark.slow
+def test_why_the_cable_model_is_not_fitted_matches_the_sag_shown(results):
+    """171116sh_0018 sags (ratio 0.80): "sags back"; 190619B shows no sag of its peak
+    (ratio 1) yet its fit needs a slow component of the opposite sign (τ 129 ms): the
+    words say that, not that it sags back."""
+    def why(key):
+        (flag,) = [f for f in results[key].flags if f.code == "cable.not_passive"]
+        return flag.message
+
+    assert why("171116sh_0018").startswith("the response sags back")
+    assert why("190619B_0003").startswith("the response holds a slow component of the "
+                                          "opposite sign")
+
+
+@pytest.mark.slow
 def test_a_fit_through_a_spike_shows_no_values(results):
     """171116sh_0018: the +250 pA sweep fires inside its fit window (first spike at 169
     ms), so its fit's τ0 and rmse mean nothing and are not shown; the +50 pA sweep fires at

@@ -10,6 +10,7 @@ import numpy as np
 
 from passivefit.analysis.fits import FIT_ERRORS, fit_average, residual
 from passivefit.analysis.hum import Hum
+from passivefit.analysis.pool import SAG_RATIO
 from passivefit.analysis.windows import span
 from passivefit.core import steady
 from passivefit.core.qc import Flag, mains_hum, runs_ratio, runs_test_z, t975
@@ -134,6 +135,12 @@ def _held_charge(v: np.ndarray, v_base: float, fs: float) -> float:
     return float(np.sum(dv[seen])) / fs * dv.size / max(np.count_nonzero(seen), 1)
 
 
+def sag_seen(used: list[SweepFit]) -> bool:
+    """Whether the largest hyperpolarizing step sags below the cell.sag threshold."""
+    ratio = sag(used)[0].get(S.SAG_RATIO)
+    return ratio is not None and ratio < SAG_RATIO
+
+
 def sag(used: list[SweepFit]) -> tuple[dict, list[Flag]]:
     """Sag ratio (steady/peak), R_in at the peak and the rebound after the step, of the
     largest hyperpolarizing step (core.sag)."""
@@ -149,7 +156,7 @@ def sag(used: list[SweepFit]) -> tuple[dict, list[Flag]]:
         if got:
             values[q] = float(np.median(got))
     ratio = values[S.SAG_RATIO]
-    return values, [S.CELL_SAG.make(ratio)] if ratio < 0.95 else []
+    return values, [S.CELL_SAG.make(ratio)] if ratio < SAG_RATIO else []
 
 
 def hum(used: list[SweepFit], voltages: dict[int, np.ndarray], fs: float,

@@ -271,7 +271,9 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         out.flags.append(S.FIT_SAG_COMPONENT.make(fit.sag_tau / MS,
                                                   tau=f"{fit.sag_tau / MS:.0f} ms"))
     if sagging or fit is not None and (fit.sag_share or 0.0) >= SLIGHT_SAG:
-        out.flags.append(S.CABLE_NOT_PASSIVE.make())   # not passive: no cable model
+        # not passive: no cable model; "sag" when the sag is seen, else the fit's component
+        out.flags.append(S.CABLE_NOT_PASSIVE.make(
+            reason="sag" if sagging or checks.sag_seen(used) else "component"))
     else:  # its start values from its own data, not from the person's exponential fit
         chain_fit, problem = fit_cable(avg_cable, fs, None, chain, profile=True)
         out.flags.extend([problem] if problem else [])

@@ -487,8 +487,10 @@ FIT_SAG_WINDOW = _flag(
     "(fit end, ms)")
 CABLE_NOT_PASSIVE = _flag(
     "cable.not_passive", "warning",
-    "the response sags back (an active conductance), so the passive cable model (L, ρ, "
-    "C total, bridge) is not fitted")
+    "{reason}, so the passive cable model (L, ρ, C total, bridge) is not fitted",
+    sag="the response sags back (an active conductance)",
+    component="the response holds a slow component of the opposite sign (an active "
+              "conductance), though too small or slow to show as a sag of the peak")
 CABLE_AT_BOUND = _flag(
     "cable.at_bound", "warning",
     "{name} sits at the bound of the ball-and-stick fit ({x:.3g}): not determined by these "
