@@ -149,6 +149,16 @@ def test_bootstrap_option_sets_the_ci_method(tmp_path):
     assert proc.returncode == 2 and "bootstrap" in proc.stderr
 
 
+def test_the_summary_says_where_its_intervals_and_r_in_come_from():
+    from passivefit.analysis import analyze
+    from passivefit.cli.analyze import format_table
+    from passivefit.io import load
+    from passivefit.model.settings import Settings
+
+    text = format_table(analyze(load(CA1), Settings(bootstrap=0)).to_dict())
+    assert "± = 95 % CI (fit covariance) · R_in by V-I slope" in text
+
+
 def test_the_table_says_when_an_accepted_sweep_has_no_tau0():
     # a sweep whose own τ0 interval is wider than τ0 shows "—": the status says why
     from passivefit.analysis import analyze
