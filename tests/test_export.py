@@ -294,6 +294,21 @@ def test_report_says_how_the_values_were_found():
     assert "by hand" not in lines[2] and "rejected: action potential" in lines[2]
 
 
+def test_report_writes_long_reasons_out_below_the_sweep_table():
+    # a reason too long for the table's status column is not cut ("rejected: action
+    # [...]" had been all a reader saw): the table says "(below)", and the reasons follow,
+    # one line per reason with its sweeps
+    from passivefit.export.report import _reason_lines, _sweep_lines
+
+    why = "action potential during the step (peak +{} mV at {} ms)"
+    sweeps = [{"index": k, "accepted": False, "reject_reason": why.format(50 + k, 200 - k)}
+              for k in (6, 7)] + [{"index": 8, "accepted": True, "reject_reason": None}]
+    lines = _sweep_lines(sweeps, status_width=22)
+    assert lines[1].endswith("rejected (below)") and lines[3].endswith("ok")
+    assert _reason_lines(sweeps, set(), 22) == [
+        "sweeps 6, 7: rejected: action potential during the step"]
+
+
 @pytest.mark.slow
 def test_a_long_pulse_recording_keeps_to_two_pages(tmp_path):
     """30 sweeps of the bundled pulse sample: figures page plus one page of numbers."""

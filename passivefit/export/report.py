@@ -407,7 +407,8 @@ def _numbers_pages(pdf, recording, data: dict, when: datetime) -> None:
     pages.title("Flags")
     pages.paragraphs(_flag_lines(data), width=118)
     pages.title("Sweeps")
-    lines = _sweep_lines(data["sweeps"], _by_hand(data), 22 if len(data["sweeps"]) > 16 else 60)
+    width = 22 if len(data["sweeps"]) > 16 else 60
+    lines = _sweep_lines(data["sweeps"], _by_hand(data), width)
     if len(data["sweeps"]) > 16:  # two columns, so a long recording keeps to two pages
         head, body = lines[0], lines[1:]
         half = (len(body) + 1) // 2
@@ -416,6 +417,8 @@ def _numbers_pages(pdf, recording, data: dict, when: datetime) -> None:
                                          zip(body[:half], right, strict=True)]
     for line in lines:
         pages.row([(LEFT, line)], step=0.0098, family="monospace", fontsize=6)
+    pages.paragraphs(_reason_lines(data["sweeps"], _by_hand(data), width), width=150,
+                     fontsize=6.2)
     if data.get("design"):   # its full table is in the JSON and the window
         pages.title("What to record next")
         pages.paragraphs([data["design"]["advice"]], width=138, fontsize=6.6)
@@ -471,21 +474,43 @@ def _flag_lines(data: dict) -> list[str]:
     return lines or ["none"]
 
 
+def _status(s: Mapping, by_hand: set[int]) -> str:
+    status = "ok" if s[S.ACCEPTED.key] else f"rejected: {s.get(S.REJECT_REASON.key) or ''}"
+    if s[S.INDEX.key] in by_hand:
+        status = ("accepted" if s[S.ACCEPTED.key] else "rejected") + " by hand" + (
+            "" if s[S.ACCEPTED.key] else f": {s.get(S.REJECT_REASON.key) or ''}")
+    return status
+
+
 def _sweep_lines(sweeps: Sequence[Mapping], by_hand: set[int] = frozenset(),
                  status_width: int = 60) -> list[str]:
+    """The sweep table; a status too long for `status_width` reads "… (below)" and is
+    written out whole by `_reason_lines`."""
     widths = (3, 8, 9, 8, 7, 7, 8)
     columns = tuple(zip(S.SWEEP_TABLE, widths, strict=True))
     lines = [" ".join(f"{f'{q.label} {q.unit}'.strip():>{w}}" for q, w in columns) + "  status"]
     for s in sweeps:
-        status = ("ok" if s[S.ACCEPTED.key]
-                  else f"rejected: {s.get(S.REJECT_REASON.key) or ''}")
-        if s[S.INDEX.key] in by_hand:
-            status = ("accepted" if s[S.ACCEPTED.key] else "rejected") + " by hand" + (
-                "" if s[S.ACCEPTED.key] else f": {s.get(S.REJECT_REASON.key) or ''}")
+        status = _status(s, by_hand)
+        if len(status) > status_width:
+            status = status.split(":")[0] + " (below)"
         cells = [_fmt(s.get(q.key)) if s.get(q.key) is not None else "—" for q, _ in columns]
         lines.append(" ".join(f"{c:>{w}}" for c, (_, w) in zip(cells, columns, strict=True))
-                     + f"  {textwrap.shorten(status, status_width)}")
+                     + f"  {status}")
     return lines
+
+
+def _reason_lines(sweeps: Sequence[Mapping], by_hand: set[int], status_width: int
+                  ) -> list[str]:
+    """The statuses `_sweep_lines` left for below, one line per reason with its sweeps
+    ("sweeps 6, 7: rejected: action potential during the step"; the details in
+    parentheses, such as each spike's time, are in the JSON and the window)."""
+    groups: dict[str, list[str]] = {}
+    for s in sweeps:
+        status = _status(s, by_hand)
+        if len(status) > status_width:
+            groups.setdefault(status.split(" (")[0], []).append(str(s[S.INDEX.key]))
+    return [f"sweep{'s' if len(k) > 1 else ''} {', '.join(k)}: {why}"
+            for why, k in groups.items()]
 
 
 def _provenance_lines(data: dict, when: datetime) -> list[str]:
