@@ -199,22 +199,29 @@ def sweep_spread(used: list[SweepFit], fit) -> list[Flag]:
 MIN_BASELINE_BINS = 20
 
 
-def residual_structure(fit, avg: GroupAverage, fs: float, hum: bool = False) -> list[Flag]:
+#: Mains hum left in the sweeps is named as the cause of structured residuals when its rms
+#: is at least this share of theirs (common practice, no source)
+HUM_SHARE = 0.3
+
+
+def residual_structure(fit, avg: GroupAverage, fs: float, hum_V: float = 0.0) -> list[Flag]:
     """Runs test on 0.5-ms bin means of the residuals (bins make filtered noise
     independent), with the runs expected from the noise taken from the same bins of the
     baseline (about a line): the slow noise of a real cell keeps its sign for long too,
-    and the plain test flags every real recording. With `hum` found in the baselines the
-    words say that the hum may be what it sees."""
+    and the plain test flags every real recording. Mains hum of amplitude `hum_V` left
+    in the sweeps is named as what it sees when the hum could be (HUM_SHARE)."""
     width = max(1, int(0.5e-3 * fs))
 
     def bins(r: np.ndarray) -> np.ndarray:
         m = r.size // width * width
         return r[:m].reshape(-1, width).mean(axis=1)
 
-    resid = [bins(residual(avg.v_V, fit, seg, fs)[1]) for seg in avg.segments]
-    if not resid:
+    raw = [residual(avg.v_V, fit, seg, fs)[1] for seg in avg.segments]
+    if not raw:
         return []
-    resid = np.concatenate(resid)
+    resid = np.concatenate([bins(r) for r in raw])
+    rms = float(np.sqrt(np.nanmean(np.concatenate(raw) ** 2)))
+    hum = hum_V / np.sqrt(2) >= HUM_SHARE * rms
     z = runs_test_z(resid)
     if z >= -4:
         return []

@@ -321,7 +321,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     tau1 = values.get(S.TAU1)
     out.flags.extend(checks.sweep_spread(used, fit))
     out.flags.extend(checks.residual_structure(
-        fit, avg, fs, hum=S.HUM in out.values and not (hum and hum.removed)))
+        fit, avg, fs, hum_V=0.0 if hum and hum.removed else out.values.get(S.HUM, 0.0)))
     out.flags.extend(checks.onset_offset(avg, fs, fit))
     out.scan = fit_start_scan(avg, fs, fit)
     if tau1 is not None:
