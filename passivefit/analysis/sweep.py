@@ -252,10 +252,12 @@ def _end(sweep: tuple, prep: tuple, wins: dict, fit, records, fit_error: str | N
             unsettled = abs(np.mean(model_in_steady) - v_inf) / max(abs(v_inf - v_base), 1e-9)
             if v_ss is None or unsettled > 0.01:
                 # the asymptote only of a fit that reaches the steady window: one cut
-                # short (before a sag) extrapolates a model the data no longer follow
+                # short (before a sag) extrapolates a model the data no longer follow;
+                # a settled fit's asymptote stands in for a window events took, unflagged
                 covered = v_ss is None or wins["fit"][1] >= wins["steady"][0]
-                flags.append(S.STEADY_NOT_REACHED.make(
-                    unsettled, reason="asymptote" if covered else "measured"))
+                if unsettled > 0.01:
+                    flags.append(S.STEADY_NOT_REACHED.make(
+                        unsettled, reason="asymptote" if covered else "measured"))
                 v_ss = v_inf if covered else v_ss
         if v_ss is not None:
             dv = v_ss - v_base
