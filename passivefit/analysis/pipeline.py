@@ -270,8 +270,9 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         out.values[S.TAU_SAG] = fit.sag_tau
         out.flags.append(S.FIT_SAG_COMPONENT.make(fit.sag_tau / MS,
                                                   tau=f"{fit.sag_tau / MS:.0f} ms"))
-    if sagging or fit is not None and (fit.sag_share or 0.0) >= SLIGHT_SAG:
-        # not passive: no cable model; "sag" when the sag is seen, else the fit's component
+    passive = not (sagging or fit is not None and (fit.sag_share or 0.0) >= SLIGHT_SAG)
+    if not passive:
+        # no cable model; "sag" when the sag is seen, else the fit's component
         out.flags.append(S.CABLE_NOT_PASSIVE.make(
             reason="sag" if sagging or checks.sag_seen(used) else "component"))
     else:  # its start values from its own data, not from the person's exponential fit
@@ -315,7 +316,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     if fit is None:
         return out
 
-    values, flags = _time_constants(fit, bs, avg, boot, fs, sagging, chain.noise_factor)
+    values, flags = _time_constants(fit, bs, avg, boot, fs, not passive, chain.noise_factor)
     out.values.update(values)
     out.flags.extend(flags)
     tau1 = values.get(S.TAU1)
@@ -329,7 +330,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     out.peel = _peel(avg, avg_cable, fs, fit)
     r_in = out.values.get(S.R_IN)
     values, flags = cable_values(fit, bs, avg, r_in if r_in and r_in > 0 else None, tau1, cis,
-                                 _L_cyl_samples(boot, bs is not None), passive=not sagging)
+                                 _L_cyl_samples(boot, bs is not None), passive=passive)
     out.values.update(values)
     out.flags.extend(flags)
     out.flags.extend(checks.scale(out.values))
@@ -463,7 +464,7 @@ SLIGHT_SAG = 0.05
 
 
 def _time_constants(fit, bs, avg: GroupAverage, boot: dict | None, fs: float,
-                    sagging: bool = False, noise_factor: float = 1.0
+                    not_passive: bool = False, noise_factor: float = 1.0
                     ) -> tuple[dict, list[Flag]]:
     """τ0, τ1 (τ2) with CIs and the component amplitudes of the reference step.
 
@@ -486,7 +487,7 @@ def _time_constants(fit, bs, avg: GroupAverage, boot: dict | None, fs: float,
         values[S.TAU2] = fit.taus[2]
     if n < 2:  # the data show no second component: no τ1 from any model
         return values, [S.FIT_TAU1_UNRESOLVED.make(reason="one_component")]
-    if sagging:  # a fast component of a short fit before the sag is no equalizing mode
+    if not_passive:  # a fast component of a sagging response is no equalizing mode
         return values, [S.FIT_TAU1_UNRESOLVED.make(reason="not_passive")]
     if bs is not None:
         # the ball-and-stick fit uses the early transient with every equalizing mode in it,

@@ -381,7 +381,8 @@ FIT_TAU1_UNRESOLVED = _flag(
                   "length",
     too_fast="τ1 is shorter than 3 sampling intervals: not resolved (ms)",
     wide_ci="the 95 % CI of τ1 is wider than τ1 itself: not resolved (ms)",
-    not_passive="the cell sags, so no τ1 and no electrotonic length are given: they "
+    not_passive="the response is not passive (it sags back, or holds a slow component of "
+                "the opposite sign), so no τ1 and no electrotonic length are given: they "
                 "describe a passive membrane")
 FIT_TAU1_DRIFT = _flag(
     "fit.tau1_drift", "warning",
