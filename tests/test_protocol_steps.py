@@ -211,7 +211,9 @@ def test_compare_steps_flags_each_disagreement_with_values_in_units():
     assert codes == {S.PROTOCOL_AMPLITUDE.code, S.PROTOCOL_TIMING.code, S.PROTOCOL_HOLDING.code}
     amplitude = next(f for f in flags if f.code == S.PROTOCOL_AMPLITUDE.code)
     assert "-100.0 pA" in amplitude.message and "-49.0 pA" in amplitude.message
-    assert amplitude.value == pytest.approx(51 * PA)
+    assert amplitude.value == pytest.approx(51)   # in pA, as the message's units say
+    timing = next(f for f in flags if f.code == S.PROTOCOL_TIMING.code)
+    assert timing.value == pytest.approx(2, abs=0.1) and timing.message.endswith("shift, ms)")
     assert compare_steps(0, table, table) == []
     missing = compare_steps(3, table, [])
     assert [f.code for f in missing] == [S.PROTOCOL_STEP_MISSING.code]

@@ -188,31 +188,31 @@ def compare_steps(sweep: int, protocol: list[Step], recorded: list[Step],
         match = min(unmatched, key=lambda r: abs(r.onset_s - p.onset_s), default=None)
         if match is None or abs(match.onset_s - p.onset_s) > max(TIMING_TOL_S, 0.5 * p.duration_s):
             flags.append(S.PROTOCOL_STEP_MISSING.make(
-                p.amplitude_A, reason="not_recorded", sweep=sweep, source=protocol_source,
+                p.amplitude_A / S.PA, reason="not_recorded", sweep=sweep, source=protocol_source,
                 amplitude=pA(p.amplitude_A), at=ms(p.onset_s)))
             continue
         unmatched.remove(match)
         if abs(match.amplitude_A - p.amplitude_A) > AMPLITUDE_RTOL * abs(p.amplitude_A):
             flags.append(S.PROTOCOL_AMPLITUDE.make(
-                match.amplitude_A - p.amplitude_A, sweep=sweep, at=ms(p.onset_s),
+                (match.amplitude_A - p.amplitude_A) / S.PA, sweep=sweep, at=ms(p.onset_s),
                 planned=pA(p.amplitude_A), source=protocol_source,
                 recorded=pA(match.amplitude_A)))
         shift = max(abs(match.onset_s - p.onset_s), abs(match.offset_s - p.offset_s))
         if shift > TIMING_TOL_S:
             flags.append(S.PROTOCOL_TIMING.make(
-                shift, sweep=sweep, source=protocol_source,
+                shift / S.MS, sweep=sweep, source=protocol_source,
                 planned=f"{ms(p.onset_s)}–{ms(p.offset_s)}",
                 recorded=f"{ms(match.onset_s)}–{ms(match.offset_s)}"))
     for r in unmatched:
         flags.append(S.PROTOCOL_STEP_MISSING.make(
-            r.amplitude_A, reason="not_planned", sweep=sweep, source=protocol_source,
+            r.amplitude_A / S.PA, reason="not_planned", sweep=sweep, source=protocol_source,
             amplitude=pA(r.amplitude_A), at=ms(r.onset_s)))
     if protocol and recorded:
         smallest = min(abs(s.amplitude_A) for s in [*protocol, *recorded])
         offset = recorded[0].holding_A - protocol[0].holding_A
         if abs(offset) > HOLDING_RTOL * smallest:
             flags.append(S.PROTOCOL_HOLDING.make(
-                offset, sweep=sweep, source=protocol_source,
+                offset / S.PA, sweep=sweep, source=protocol_source,
                 recorded=pA(recorded[0].holding_A), planned=pA(protocol[0].holding_A),
                 offset=pA(offset)))
     return flags

@@ -439,21 +439,22 @@ CABLE_RHO_RANGE = _flag(
 PROTOCOL_AMPLITUDE = _flag(
     "protocol.amplitude_disagrees", "warning",
     "sweep {sweep}: the step at {at} is {planned} in the {source} but {recorded} in the "
-    "recorded current; the recorded current is used")
+    "recorded current; the recorded current is used (recorded − planned, pA)")
 PROTOCOL_TIMING = _flag(
     "protocol.timing_disagrees", "warning",
     "sweep {sweep}: the step is at {planned} in the {source} but at {recorded} in the "
-    "recorded current; the recorded current is used")
+    "recorded current; the recorded current is used (largest shift, ms)")
 PROTOCOL_HOLDING = _flag(
     "protocol.holding_disagrees", "info",
     "sweep {sweep}: the recorded current rests at {recorded} where the {source} holds "
-    "{planned} (offset {offset}); steps are measured from the level before each")
+    "{planned} (offset {offset}); steps are measured from the level before each (offset, "
+    "pA)")
 PROTOCOL_STEP_MISSING = _flag(
     "protocol.step_missing", "warning", "{reason}",
     not_recorded="sweep {sweep}: the {source} has a {amplitude} step at {at} that the "
-                 "recorded current does not show",
+                 "recorded current does not show (its amplitude, pA)",
     not_planned="sweep {sweep}: the recorded current has a {amplitude} step at {at} that "
-                "the {source} does not have")
+                "the {source} does not have (its amplitude, pA)")
 PROTOCOL_USER_LIST = _flag(
     "protocol.user_list", "warning",
     "the epoch table varies a parameter through a user list (values: {values}); the drawn "
