@@ -60,7 +60,7 @@ DIGITS = {S.TAU1: 3, S.RMSE: 2}
 
 
 #: Summary labels that say more than the quantity's short label (as the window's card)
-LABELS = {S.C0: "C0 amplitude", S.C1: "C1 amplitude"}
+LABELS = {S.C0: "C0 amplitude", S.C1: "C1 amplitude", S.SAG_RATIO: "sag, steady/peak"}
 
 #: Sweep flags named in the table's status column, in a few words.
 SWEEP_NOTES = {S.SWEEP_EVENT.code: "spontaneous event cut out",
