@@ -60,7 +60,7 @@ DIGITS = {S.TAU1: 3, S.RMSE: 2}
 
 
 #: Summary labels that say more than the quantity's short label (as the window's card)
-LABELS = {S.C0: "C0 amplitude", S.C1: "C1 amplitude", S.SAG_RATIO: "sag, steady/peak"}
+LABELS = {**S.AMPLITUDE_LABELS, S.SAG_RATIO.key: "sag, steady/peak"}
 
 #: Sweep flags named in the table's status column, in a few words.
 SWEEP_NOTES = {S.SWEEP_EVENT.code: "spontaneous event cut out",
@@ -83,7 +83,7 @@ def format_table(data: dict) -> str:
              f"{cell[S.N_SWEEPS_USED.key]} used)", ""]
     for q in S.SUMMARY:
         value = _fmt(cell.get(q.key)) + S.uncertainty_text(cell, q)
-        lines.append(f"  {LABELS.get(q, q.label):<20} {value:>18} {q.unit}")
+        lines.append(f"  {LABELS.get(q.key, q.label):<20} {value:>18} {q.unit}")
     how = [f"± = 95 % CI ({cell[S.CI_METHOD.key]})" if cell.get(S.CI_METHOD.key) else "",
            f"R_in by {cell[S.R_IN_METHOD.key]}" if cell.get(S.R_IN_METHOD.key) else ""]
     if any(how):

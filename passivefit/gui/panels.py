@@ -49,7 +49,7 @@ def fixed(x, decimals: int) -> str:
 
 # the window's own words for quantities whose short names mislead beside their neighbours:
 # C0 and C1 are amplitudes (mV) of the exponential components, not capacitances
-CARD_LABELS = {S.C0.key: "C0 amplitude", S.C1.key: "C1 amplitude",
+CARD_LABELS = {**S.AMPLITUDE_LABELS,
                S.C_TAU.key: "C from τ0/R_in", S.C_TOTAL.key: "C total (cable)"}
 
 

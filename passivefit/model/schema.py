@@ -99,6 +99,9 @@ TAU1 = Quantity("tau1_ms", "τ1", "ms", MS, ci="tau1_ci95_ms", title="First equa
 TAU1_CI = _ci("tau1_ci95_ms", "τ1", "ms", MS)
 C0 = Quantity("c0_mV", "C0", "mV", MV, title="Amplitude C0")
 C1 = Quantity("c1_mV", "C1", "mV", MV, title="Amplitude C1")
+#: Words for C0 and C1 where they stand beside capacitances (the window's card, the text
+#: summary): they are amplitudes (mV) of the exponential components
+AMPLITUDE_LABELS = {C0.key: "C0 amplitude", C1.key: "C1 amplitude"}
 L_CYL = Quantity("L_cyl", "L (cylinder)", digits=5, ci="L_cyl_ci95",
                  title="L, equivalent cylinder", column=True)
 L_BS = Quantity("L_bs", "L (ball-and-stick)", digits=5, ci="L_ci95",
