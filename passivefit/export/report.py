@@ -101,7 +101,7 @@ def _figure_page(recording, result, data: dict):
 
     fig = plt.figure(figsize=A4_PORTRAIT)
     grid = fig.add_gridspec(5, 2, left=0.09, right=0.97, top=0.92, bottom=0.045, hspace=0.62,
-                            wspace=0.28, height_ratios=[1.15, 1, 1, 1, 0.9])
+                            wspace=0.38, height_ratios=[1.15, 1, 1, 1, 0.9])
     _header(fig, recording, data, "fits and diagnostics")
     _draw_sweeps(fig.add_subplot(grid[0, :]), recording, result)
     _draw_average(fig.add_subplot(grid[1, 0]), result, recording.sample_rate_hz)
@@ -331,8 +331,10 @@ def _draw_time_course(ax_r, ax_v, data: dict) -> None:
         twin.plot(*zip(*tau, strict=True), "s", ms=2.5, color=MODE_COLOURS[1], alpha=0.8)
         twin.set_ylabel(S.TAU0.heading, color=MODE_COLOURS[1])
     change = data["cell"].get(S.R_IN_CHANGE.key)
+    tau_change = data["cell"].get(S.TAU0_CHANGE.key)
     ax_r.set_title("Over the recording: R_in (τ0 right)" + (
-        f", R_in change {change:+.0f} %" if change is not None else ""))
+        f", R_in {change:+.0f} %" if change is not None else "") + (
+        f", τ0 {tau_change:+.0f} %" if tau_change is not None else ""))
     ax_v.set_title("Over the recording: V_rest")
 
 
