@@ -102,8 +102,9 @@ class SweepFit:
 
     def model_curves(self) -> list[tuple[np.ndarray, np.ndarray]]:
         """(time in s, fitted voltage in V) over each fit segment, on the recorded trace
-        (the subtracted drift added back), for drawing."""
-        if self.fit is None:
+        (the subtracted drift added back), for drawing; none for a fit whose values are
+        not shown (one through a spike)."""
+        if self.fit is None or not self.taus_s:
             return []
         slope, t_ref = self.trend
         return [(t, v + slope * (t - t_ref)) for t, v in fit_curves(self.fit, self.segments)]
