@@ -220,8 +220,6 @@ def residual_structure(fit, avg: GroupAverage, fs: float, hum_V: float = 0.0) ->
     if not raw:
         return []
     resid = np.concatenate([bins(r) for r in raw])
-    rms = float(np.sqrt(np.nanmean(np.concatenate(raw) ** 2)))
-    hum = hum_V / np.sqrt(2) >= HUM_SHARE * rms
     z = runs_test_z(resid)
     if z >= -4:
         return []
@@ -233,6 +231,8 @@ def residual_structure(fit, avg: GroupAverage, fs: float, hum_V: float = 0.0) ->
         z = runs_test_z(resid, min(runs_ratio(base), 1.0))
         if z >= -4:
             return []   # no more runs than the recording's own noise makes
+    rms = float(np.sqrt(np.nanmean(np.concatenate(raw) ** 2)))
+    hum = hum_V / np.sqrt(2) >= HUM_SHARE * rms
     return [S.FIT_RESIDUAL_STRUCTURE.make(z, reason="hum" if hum else "misfit")]
 
 

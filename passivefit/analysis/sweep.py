@@ -281,7 +281,9 @@ def _end(sweep: tuple, prep: tuple, wins: dict, fit, records, fit_error: str | N
         # a fit through a spike means nothing: its values are not shown (the fit is kept
         # for the noise model of the event search, which reads every fitted sweep)
         through_spike = fit is not None and any(
-            r.samples(fs).start <= spike < r.samples(fs).stop for r in records)
+            cover.start <= spike < cover.stop for cover in (r.samples(fs) for r in records))
+        if through_spike:
+            amps, bridge = (), None
     elif fit_error:
         cut = masked_s and fit_error.endswith("too few samples")
         accepted, reason = False, fit_error + (" once the spontaneous events are cut out"
@@ -292,8 +294,6 @@ def _end(sweep: tuple, prep: tuple, wins: dict, fit, records, fit_error: str | N
     if fit is not None and not through_spike:
         resids = np.concatenate([residual(seen, fit, r, fs)[1] for r in records])
         rmse = float(np.sqrt(np.nanmean(resids ** 2)))
-    if through_spike:
-        amps, bridge = (), None
     return SweepFit(
         index=index, accepted=accepted, reject_reason=reason, step=step,
         v_rest_V=v_base, dv_ss_V=dv, r_in_ohm=r_in,

@@ -187,6 +187,17 @@ def _acquisition_pairs(nwb: Any, current_clamp: tuple[type, ...]) -> list[tuple[
 _OTHER_CLAMP = {"VoltageClampSeries": "voltage clamp", "IZeroClampSeries": "I = 0"}
 
 
+def _numbers_by_kind(typed) -> dict[str, list]:
+    """Sweep numbers (None where absent) of the (type name, sweep number) pairs whose type
+    is voltage clamp or I = 0, by kind; the other types are left out."""
+    found: dict[str, list] = {}
+    for type_name, number in typed:
+        kind = _OTHER_CLAMP.get(type_name)
+        if kind is not None:
+            found.setdefault(kind, []).append(None if number is None else int(number))
+    return found
+
+
 def _other_clamp(nwb: Any) -> dict[str, list]:
     """Sweep numbers (None where a series has none) of the responses recorded in voltage
     clamp or at I = 0, by kind ("voltage clamp", "I = 0"): of the table's rows, or of
@@ -197,12 +208,8 @@ def _other_clamp(nwb: Any) -> dict[str, list]:
         series = [responses[row].timeseries for row in range(len(table))]
     else:
         series = list(nwb.acquisition.values())
-    found: dict[str, list] = {}
-    for s in {id(s): s for s in series if s is not None}.values():
-        kind = _OTHER_CLAMP.get(type(s).__name__)
-        if kind is not None:
-            found.setdefault(kind, []).append(s.sweep_number)
-    return found
+    unique = {id(s): s for s in series if s is not None}.values()
+    return _numbers_by_kind((type(s).__name__, s.sweep_number) for s in unique)
 
 
 def _other_clamp_flag(others: dict[str, list]) -> tuple:
@@ -528,7 +535,7 @@ def _direct_table_pairs(f: Any, table: Any) -> tuple[list[tuple[tuple, tuple | N
                 raise _Unfamiliar(f"{s_series.name}: stimulus of another type")
             stimulus = (s_series, int(s_start), int(s_count))
         pairs.append(((series, int(start), int(count)), stimulus))
-    return pairs, _numbers_by_kind(list(others.values()))
+    return pairs, _direct_numbers_by_kind(others.values())
 
 
 def _by_type(group: Any) -> dict[str, list]:
@@ -541,14 +548,11 @@ def _by_type(group: Any) -> dict[str, list]:
     return found
 
 
-def _numbers_by_kind(series: list) -> dict[str, list]:
-    """Sweep numbers (None where absent) of voltage-clamp and I = 0 series, by kind."""
-    found: dict[str, list] = {}
-    for s in series:
-        number = s.attrs.get("sweep_number")
-        found.setdefault(_OTHER_CLAMP[_type_of(s)], []).append(
-            None if number is None else int(number))
-    return found
+
+
+def _direct_numbers_by_kind(series) -> dict[str, list]:
+    """`_numbers_by_kind` of h5py series."""
+    return _numbers_by_kind((_type_of(s), s.attrs.get("sweep_number")) for s in series)
 
 
 def _direct_acquisition_pairs(f: Any) -> tuple[list[tuple[tuple, tuple | None]], dict]:
@@ -556,7 +560,7 @@ def _direct_acquisition_pairs(f: Any) -> tuple[list[tuple[tuple, tuple | None]],
     the sweep numbers of its other clamp modes (`_other_clamp`)."""
     acquired = _by_type(f["acquisition"])
     responses = acquired.get(_RESPONSE_TYPE, [])
-    others = _numbers_by_kind([s for kind in _OTHER_CLAMP for s in acquired.get(kind, [])])
+    others = _direct_numbers_by_kind(s for kind in _OTHER_CLAMP for s in acquired.get(kind, []))
     stimuli: dict = {}
     for s in _by_type(f["stimulus/presentation"]).get(_STIMULUS_TYPE, []):
         number = s.attrs.get("sweep_number")
