@@ -4,7 +4,7 @@ out, and a 0.5 mV hum moves τ0 of a three-sweep cell by 10–15 %."""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -14,8 +14,9 @@ from passivefit.core.qc import mains_hum
 from passivefit.core.steps import Step
 
 #: Hum is reported, and taken out, when its amplitude is this many times its white-noise
-#: floor and at least HUM_MIN_V (common practice, no source).
-HUM_FLOOR_FACTOR, HUM_MIN_V = 4.0, 20e-6
+#: floor, HUM_LOCAL_FACTOR times the amplitude at its spectral neighbours (the noise that
+#: is really there) and at least HUM_MIN_V (common practice, no source).
+HUM_FLOOR_FACTOR, HUM_LOCAL_FACTOR, HUM_MIN_V = 4.0, 3.0, 20e-6
 #: Sweeps whose residual sets the mains frequency (core.hum.refine_frequency).
 _FREQUENCY_SWEEPS = 8
 _EDGE_S = 1e-3   # flat stretches keep this far from a step's edges
@@ -28,17 +29,19 @@ FREQUENCY_SPAN_HZ = 0.3
 @dataclass(frozen=True)
 class Hum:
     """Hum found in the flat stretches: its frequency (Hz, refined when taken out), mean
-    amplitude (V) and its white-noise floor (V), and whether it was taken out."""
+    amplitude (V), its white-noise floor (V), the amplitude at its neighbouring
+    frequencies (V; core.qc.mains_hum), and whether it was taken out."""
 
     freq_hz: float
     amplitude_V: float
     floor_V: float
+    local_V: float = 0.0
     removed: bool = False
 
     @property
     def seen(self) -> bool:
-        return self.floor_V > 0 and self.amplitude_V >= max(HUM_FLOOR_FACTOR * self.floor_V,
-                                                            HUM_MIN_V)
+        return self.floor_V > 0 and self.amplitude_V >= max(
+            HUM_FLOOR_FACTOR * self.floor_V, HUM_LOCAL_FACTOR * self.local_V, HUM_MIN_V)
 
 
 def flat_stretches(step: Step, n: int, fs: float, shortest_s: float) -> list[tuple[int, int]]:
@@ -67,10 +70,10 @@ def without_hum(voltages: dict[int, np.ndarray], steps: dict[int, Step], fs: flo
     freq = mains.refine_frequency([(voltages[k], flat[k]) for k in longest if flat[k]], fs,
                                   found.freq_hz, FREQUENCY_SPAN_HZ)
     if abs(freq - found.freq_hz) > 0.8 * FREQUENCY_SPAN_HZ:   # no mains line: noise
-        return voltages, Hum(found.freq_hz, found.amplitude_V, found.floor_V)
+        return voltages, replace(found, removed=False)
     out = dict(voltages)
     for k, stretches in flat.items():
         if stretches:
             coef, _ = mains.fit_hum(voltages[k], fs, stretches, freq)
             out[k] = voltages[k] - mains.hum_wave(voltages[k].size, fs, freq, coef)
-    return out, Hum(freq, found.amplitude_V, found.floor_V, removed=True)
+    return out, replace(found, freq_hz=freq, removed=True)

@@ -85,8 +85,10 @@ def bootstrap_halfwidth(samples: np.ndarray) -> float | None:
     return float((hi - lo) / 2)
 
 
-def mains_hum(segments, fs: float, freqs_hz=(50.0, 60.0)) -> tuple[float, float, float]:
-    """The mains hum in baseline segments: (frequency in Hz, amplitude, its noise floor).
+def mains_hum(segments, fs: float, freqs_hz=(50.0, 60.0)
+              ) -> tuple[float, float, float, float]:
+    """The mains hum in baseline segments: (frequency in Hz, amplitude, its noise floor,
+    the amplitude at its spectral neighbours).
 
     Each segment (one sweep's baseline, linear trend removed) is projected onto a sine
     and a cosine at each frequency by least squares; the amplitudes are averaged over
@@ -94,6 +96,12 @@ def mains_hum(segments, fs: float, freqs_hz=(50.0, 60.0)) -> tuple[float, float,
     amplitude from n samples averages σ·√(π/n) (Rayleigh), the floor returned, in the
     units of the segments. The frequency with the larger amplitude is returned. Segments
     of one length share their least-squares solve.
+
+    Real noise is not white: synaptic events and slow fluctuations put far more power
+    near 50–60 Hz than the white floor says, most of all in short baselines. The last
+    value is what that noise gives at the returned frequency: the median amplitude at
+    neighbouring frequencies (:func:`_neighbours`), averaged over segments like the
+    amplitude (docs/references.md §7, "Mains hum"; 0 where a segment has none).
     """
     by_length: dict[int, list[np.ndarray]] = {}
     for y in segments:
@@ -105,17 +113,45 @@ def mains_hum(segments, fs: float, freqs_hz=(50.0, 60.0)) -> tuple[float, float,
     for f in freqs_hz:
         amps, floors = [], []
         for size, ys in by_length.items():
-            t = np.arange(size) / fs
-            basis = np.column_stack([np.sin(2 * np.pi * f * t), np.cos(2 * np.pi * f * t),
-                                     np.ones_like(t), t - t.mean()])
-            block = np.column_stack(ys)
-            coef, *_ = np.linalg.lstsq(basis, block, rcond=None)
-            rest = block - basis @ coef
-            amps += list(np.hypot(coef[0], coef[1]))
+            pair, rest = _sine_fit(np.column_stack(ys), fs, [f])
+            amps += list(np.hypot(*pair))
             floors += list(np.std(rest, axis=0) * np.sqrt(np.pi / size))
         if amps and np.mean(amps) > best[1]:
             best = (f, float(np.mean(amps)), float(np.mean(floors)))
-    return best
+    local = []
+    for size, ys in by_length.items():
+        near = _neighbours(best[0], size, fs)
+        if near:
+            pairs = _sine_fit(np.column_stack(ys), fs, near)[:-1]
+            local += list(np.median([np.hypot(*pair) for pair in pairs], axis=0))
+    return (*best, float(np.mean(local)) if local else 0.0)
+
+
+def _sine_fit(block: np.ndarray, fs: float, freqs: list[float]) -> list[np.ndarray]:
+    """Least squares of each column of `block` on a sine and a cosine at each of `freqs`,
+    a level and a slope: the (sine, cosine) coefficients per frequency, then the
+    residuals."""
+    size = block.shape[0]
+    t = np.arange(size) / fs
+    waves = [g(2 * np.pi * f * t) for f in freqs for g in (np.sin, np.cos)]
+    basis = np.column_stack([*waves, np.ones_like(t), t - t.mean()])
+    coef, *_ = np.linalg.lstsq(basis, block, rcond=None)
+    pairs = [coef[2 * k:2 * k + 2] for k in range(len(freqs))]
+    return [*pairs, block - basis @ coef]
+
+
+def _neighbours(f: float, size: int, fs: float) -> list[float]:
+    """Frequencies 2–5 resolution steps (fs/size) either side of `f`, none within 1.5
+    steps of 0 Hz or of a multiple of 50 or 60 Hz (where hum or its leakage would be) and
+    none above fs/4."""
+    step = fs / size
+    out = []
+    for m in (2, 3, 4, 5):
+        for c in (f - m * step, f + m * step):
+            lines = [k * mains for mains in (50.0, 60.0) for k in range(1, int(c / mains) + 2)]
+            if 1.5 * step <= c <= fs / 4 and all(abs(c - x) >= 1.5 * step for x in lines):
+                out.append(c)
+    return out
 
 
 def robust_sd(x: np.ndarray) -> float:
