@@ -20,7 +20,7 @@ import sys
 
 import numpy as np
 import pytest
-from real_reference import DATA_DIR, FACTS, file_summary, sweep_estimate
+from real_reference import DATA_DIR, FACTS, file_summary, sweep_estimate, vi_slope_MOhm
 
 from passivefit.analysis import analyze
 from passivefit.io import load
@@ -90,9 +90,14 @@ def test_a_sagging_cell_with_two_steps_per_sweep(results):
     assert cell[S.L_BS.key] is None and cell[S.L_CYL.key] is None
     # no τ1 in a sagging cell, and no amplitude of a component it does not give
     assert cell[S.TAU1.key] is None and cell[S.C1.key] is None
-    # R_in from the one smallest (−25 pA) sweep, its CI from that sweep's noise
-    assert cell[S.R_IN_METHOD.key].startswith("smallest steps")
-    assert 0 < cell[S.R_IN_CI.key] < 0.2 * cell[S.R_IN.key]
+    # the four hyperpolarizing sweeps scatter (the −50 pA one, with synaptic events, lies
+    # below both neighbours) but do not bend beyond that scatter: R_in is the V–I slope,
+    # as the reference's least-squares slope (a transparent estimate, no source), not
+    # the one smallest sweep (133 MΩ, which a noise-blind curvature rule had taken)
+    assert cell[S.R_IN_METHOD.key] == "V-I slope"
+    assert "vi.nonlinear" not in codes
+    assert cell[S.R_IN.key] == pytest.approx(vi_slope_MOhm("171116sh_0018"), rel=0.1)
+    assert cell[S.R_IN.key] < 0.95 * cell[S.R_IN_CHORD.key]
 
 
 @pytest.mark.slow

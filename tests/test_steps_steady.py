@@ -64,6 +64,23 @@ def test_vi_slope_is_input_resistance_and_flags_curvature():
     assert steady.vi_slope(i[:10], 110e6 * i[:10]) is None  # two levels only
 
 
+def test_vi_relation_bends_only_beyond_its_scatter():
+    """A curvature is believed when its quadratic term stands out of the points' scatter
+    (t-test, n - 3 degrees of freedom; textbook regression); with three points nothing is
+    left to judge it by, so its size decides (common practice, no source)."""
+    i = np.array([-100e-12, -75e-12, -50e-12, -25e-12])
+    scattered = 116e6 * i + np.array([0.0, 0.2e-3, -1.0e-3, 0.4e-3])   # one point off
+    fit = steady.vi_slope(i, scattered)
+    assert fit.curvature > 0.15 and abs(fit.curvature_t) < 2
+    assert not fit.bends
+    five = np.linspace(-200e-12, -10e-12, 5)
+    rectified = 110e6 * five + 3e17 * five**2
+    noisy = rectified + np.random.default_rng(1).normal(0, 0.1e-3, five.size)
+    assert steady.vi_slope(five, noisy).bends
+    assert steady.vi_slope(i[:3], 110e6 * i[:3] + 4e17 * i[:3] ** 2).bends
+    assert not steady.vi_slope(i[:3], 110e6 * i[:3]).bends
+
+
 
 def test_vi_slope_from_three_currents_has_its_error():
     # three currents leave one degree of freedom: the least-squares slope's standard

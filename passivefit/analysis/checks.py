@@ -25,11 +25,11 @@ def input_resistance(used: list[SweepFit], voltages: dict[int, np.ndarray] | Non
     """R_in from the steady-state V–I relation; (values, V–I points, flags).
 
     With ≥ 3 step amplitudes and a straight V–I relation, its slope; when the relation
-    bends (e.g. inward rectification pins the voltage on large hyperpolarizing steps),
-    the chord of the smallest steps, which stay nearest to rest; with fewer amplitudes,
-    the least-squares ratio of all steps. Slope and chord are both reported. When R_in
-    rests on one sweep (with `voltages` and `fs`), its CI is that of the sweep's noise
-    (`_one_sweep_ci`).
+    bends beyond the points' scatter (`VISlope.bends`; e.g. inward rectification pins the
+    voltage on large hyperpolarizing steps), the chord of the smallest steps, which stay
+    nearest to rest; with fewer amplitudes, the least-squares ratio of all steps. Slope
+    and chord are both reported. When R_in rests on one sweep (with `voltages` and `fs`),
+    its CI is that of the sweep's noise (`_one_sweep_ci`).
     """
     measured = [f for f in used if f.dv_ss_V is not None]
     pts = [(f.step.amplitude_A, f.dv_ss_V) for f in measured]
@@ -49,7 +49,7 @@ def input_resistance(used: list[SweepFit], voltages: dict[int, np.ndarray] | Non
         values[S.VI_R2] = fitline.r2
         values[S.R_IN], values[S.R_IN_METHOD] = fitline.slope_ohm, "V-I slope"
         values[S.R_IN_CI] = t975(i.size - 2) * fitline.slope_se_ohm
-        if fitline.r2 < 0.98 or fitline.curvature > 0.15:
+        if fitline.bends:
             flags.append(S.VI_NONLINEAR.make(fitline.curvature))
             values[S.R_IN], values[S.R_IN_METHOD] = chord, "smallest steps (V-I not linear)"
             values[S.R_IN_CI] = _ratio_ci(dv[small] / i[small])

@@ -7,6 +7,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from passivefit.core.qc import t975
+
 
 def robust_level(v: np.ndarray, trim: float = 0.2) -> float:
     """Trimmed mean of a window (drops `trim` of the samples at each end), in the input's
@@ -59,7 +61,9 @@ class VISlope:
     """Linear regression of steady-state deflection on step current.
 
     slope_ohm is the input resistance in Ω; r2 the coefficient of determination;
-    curvature the relative change of slope across the current range (0 = linear).
+    curvature the relative change of slope across the current range (0 = linear), from a
+    quadratic fit; curvature_t its quadratic term over that term's standard error (inf
+    when the quadratic leaves no residual degree of freedom to judge it by).
     """
 
     slope_ohm: float
@@ -68,6 +72,17 @@ class VISlope:
     r2: float
     curvature: float
     n_levels: int
+    curvature_t: float = math.inf
+    n_points: int = 0
+
+    @property
+    def bends(self) -> bool:
+        """Whether the relation bends: a curvature above 0.15 that stands out of the
+        points' scatter (two-sided t-test at 95 %, n − 3 degrees of freedom); with
+        three points, where nothing is left to judge it by, the curvature alone
+        (common practice, no source). Scatter alone does not bend it."""
+        dof = self.n_points - 3
+        return self.curvature > 0.15 and (dof < 1 or abs(self.curvature_t) > t975(dof))
 
 
 def vi_slope(currents_A: np.ndarray, deflections_V: np.ndarray) -> VISlope | None:
@@ -84,7 +99,12 @@ def vi_slope(currents_A: np.ndarray, deflections_V: np.ndarray) -> VISlope | Non
     slope_se = math.sqrt(rss / (i.size - 2) / np.sum((i - i.mean()) ** 2))
     total = np.sum((v - v.mean()) ** 2)
     r2 = 1.0 - rss / total if total > 0 else float("nan")
-    quad = np.polyfit(i, v, 2)[0]
-    curvature = abs(2 * quad * np.ptp(i) / slope) if slope != 0 else float("inf")
+    quad, unscaled = np.polyfit(i, v, 2, cov="unscaled")
+    curvature = abs(2 * quad[0] * np.ptp(i) / slope) if slope != 0 else float("inf")
+    curvature_t = math.inf
+    if i.size > 3:   # the quadratic term's standard error from the residual scatter
+        rest = v - np.polyval(quad, i)
+        se = math.sqrt(float(rest @ rest) / (i.size - 3) * unscaled[0, 0])
+        curvature_t = quad[0] / se if se > 0 else math.inf
     return VISlope(float(slope), slope_se, float(intercept), float(r2),
-                   float(curvature), int(levels.size))
+                   float(curvature), int(levels.size), float(curvature_t), int(i.size))
