@@ -53,6 +53,12 @@ def analysis_cpu(recordings: list, variant: str, advise: bool) -> float:
         pipeline.fit_cable = shipped
 
 
+def print_table(header: tuple[str, ...], rows: list[tuple[str, ...]]) -> None:
+    """A Markdown table, as the README holds it."""
+    for row in (header, ("---",) * len(header), *rows):
+        print("| " + " | ".join(row) + " |")
+
+
 def main() -> None:
     from passivefit.io import load
 
@@ -65,11 +71,9 @@ def main() -> None:
         print()
         print("10-sweep files (20 files, one core, as a batch worker; target ≤ 10 ms/sweep)")
         print()
-        print("| analysis | CPU per sweep |")
-        print("|---|---|")
-        for variant in VARIANTS:
-            cpu = analysis_cpu(batch, variant, advise=False)
-            print(f"| {variant} | {1000 * cpu / n_sweeps:.1f} ms |")
+        print_table(("analysis", "CPU per sweep"), [
+            (v, f"{1000 * analysis_cpu(batch, v, advise=False) / n_sweeps:.1f} ms")
+            for v in VARIANTS])
 
         path = make_file(folder)
         anchor = folder / "anchor.py"
@@ -90,11 +94,11 @@ def main() -> None:
               f"{0.4 * anchor_cpu:.2f} s; start-up and reading {before_cpu:.2f} s; "
               f"left for the analysis {budget:.2f} s")
         print()
-        print("| analysis (with the design advice, as `analyze` has it) | CPU | of the budget |")
-        print("|---|---|---|")
-        for variant in VARIANTS:
-            cpu = analysis_cpu(long, variant, advise=True)
-            print(f"| {variant} | {cpu:.2f} s | {cpu / budget:.1f}× |")
+        cpus = [analysis_cpu(long, v, advise=True) for v in VARIANTS]
+        print_table(("analysis (with the design advice, as `analyze` has it)", "CPU",
+                     "of the budget"),
+                    [(v, f"{c:.2f} s", f"{c / budget:.1f}×")
+                     for v, c in zip(VARIANTS, cpus, strict=True)])
 
 
 if __name__ == "__main__":
