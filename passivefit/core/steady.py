@@ -70,12 +70,22 @@ class VISlope:
     n_levels: int
 
 
+#: Currents closer than this share of the largest one are one level of the V–I relation:
+#: a step repeated sweep after sweep (a test pulse) and read from a recorded current
+#: differs by its noise, a few hundredths of a pA, not by a step of a family (no source).
+SAME_CURRENT_SHARE = 0.02
+
+
 def vi_slope(currents_A: np.ndarray, deflections_V: np.ndarray) -> VISlope | None:
-    """Input resistance from the V–I relation; None with fewer than 3 distinct currents."""
+    """Input resistance from the V–I relation; None with fewer than 3 distinct currents
+    (closer than SAME_CURRENT_SHARE of the largest current: one level)."""
     i = np.asarray(currents_A, dtype=np.float64)
     v = np.asarray(deflections_V, dtype=np.float64)
-    levels = np.unique(np.round(i, 15))
-    if levels.size < 3:
+    if i.size == 0:
+        return None
+    gaps = np.diff(np.sort(i))
+    n_levels = 1 + int(np.count_nonzero(gaps > SAME_CURRENT_SHARE * np.max(np.abs(i))))
+    if n_levels < 3:
         return None
     slope, intercept = np.polyfit(i, v, 1)
     rss = float(np.sum((v - (slope * i + intercept)) ** 2))
@@ -87,4 +97,4 @@ def vi_slope(currents_A: np.ndarray, deflections_V: np.ndarray) -> VISlope | Non
     quad = np.polyfit(i, v, 2)[0]
     curvature = abs(2 * quad * np.ptp(i) / slope) if slope != 0 else float("inf")
     return VISlope(float(slope), slope_se, float(intercept), float(r2),
-                   float(curvature), int(levels.size))
+                   float(curvature), n_levels)
