@@ -473,7 +473,7 @@ def _loud_start(d: np.ndarray, fs: float, min_amplitude_A: float,
     Each QUIET_BLOCK_S block gets its own edge threshold (`_threshold`); the quietest
     block, though never below what one digitization step gives, is the reference. The
     first run of MIN_LOUD_S of blocks above LOUD_FACTOR times it is the wide-band
-    stretch. (None, 0) when there is none, or no quiet block before it.
+    stretch. (None, 0) when there is none; (0, 0) when it starts the sweep.
     """
     m = max(1, int(round(QUIET_BLOCK_S * fs)))
     n_blocks = d.size // m
@@ -488,9 +488,17 @@ def _loud_start(d: np.ndarray, fs: float, min_amplitude_A: float,
     loud = thresholds > LOUD_FACTOR * reference
     run = max(1, int(np.ceil(MIN_LOUD_S / QUIET_BLOCK_S)))
     first = next((a for a, b in _runs(loud) if b - a >= run), None)
-    if not first:   # no wide-band stretch, or one from the sweep's start
+    if first is None:
         return None, 0.0
-    return first * m, float(np.median(thresholds[:first]))
+    return first * m, float(np.median(thresholds[:first])) if first else 0.0
+
+
+def _wideband_start(x: np.ndarray, fs: float, min_amplitude_A: float
+                    ) -> tuple[int | None, float, np.ndarray, int]:
+    """`_loud_start` of a trace, with its filtered trace and the running median's width."""
+    f, width = _filtered(x, fs)
+    loud, threshold = _loud_start(_differences(f, fs), fs, min_amplitude_A, _quantum(x))
+    return loud, threshold, f, width
 
 
 def _before_waveform(current: np.ndarray, sample_rate_hz: float,
@@ -505,10 +513,8 @@ def _before_waveform(current: np.ndarray, sample_rate_hz: float,
     """
     x = np.asarray(current, dtype=np.float64)
     fs = float(sample_rate_hz)
-    f, width = _filtered(x, fs)
-    d = _differences(f, fs)
-    loud, threshold = _loud_start(d, fs, min_amplitude_A, _quantum(x))
-    if loud is None:
+    loud, threshold, f, width = _wideband_start(x, fs, min_amplitude_A)
+    if not loud:   # no wide-band stretch, or one from the sweep's start
         return []
     end = loud + max(1, int(round(EDGE_HALF_WIDTH_S * fs)))   # d[i] is centred on f[i + h]
     segs, threshold = _split(x[:end], fs, min_amplitude_A, threshold)
@@ -660,9 +666,11 @@ def classify_stimulus(current: np.ndarray | None, sample_rate_hz: float,
         return "pulse"
     segs = segments(current, sample_rate_hz, min_amplitude_A)
     bent = [s for s in segs if not s.flat]
-    if not bent and len(segs) < 2:
-        return "none"
     x = np.asarray(current, dtype=np.float64)
+    if not bent and len(segs) < 2:
+        # flat at the whole sweep's threshold, unless a wide-band stretch (noise) set it
+        wide = _wideband_start(x, float(sample_rate_hz), min_amplitude_A)[0]
+        return "none" if wide is None else "waveform"
     for s in bent:
         part = x[s.start:s.stop]
         if part.size > 2 and _monotone(part):
