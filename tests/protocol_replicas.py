@@ -334,7 +334,7 @@ def _wideband(rng: np.random.Generator, n: int, rate_hz: float, kind: str) -> np
 
 def replica_test_pulse_then_noise(folder: Path, pulse_ms: float = 100.0,
                                   pulse_pA: float = -50.0, wideband: str = "noise",
-                                  wideband_sd_pA: float = 60.0, seed: int = 11) -> Replica:
+                                  wideband_sd_pA: float = 120.0, seed: int = 11) -> Replica:
     """A test pulse from rest, then seconds of a wide-band stimulus from a stimulus file.
 
     The layout of survey row H19_29_150_11_21_01_0011 (project notes, abf-survey.md):
