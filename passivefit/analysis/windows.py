@@ -11,8 +11,8 @@ from dataclasses import replace
 
 import numpy as np
 
-from passivefit.core.steps import Step, classify_stimulus, common_steps, find_steps
 from passivefit.core.qc import Flag
+from passivefit.core.steps import Step, classify_stimulus, common_steps, find_steps
 from passivefit.io.recording import LoadError, Recording
 from passivefit.model import schema as S
 from passivefit.model.settings import Settings, Windows
