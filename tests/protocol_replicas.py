@@ -318,6 +318,66 @@ def replica_19122043(folder: Path, seed: int = 43) -> Replica:
     return Replica("19122043", path, truth)
 
 
+def _wideband(rng: np.random.Generator, n: int, rate_hz: float, kind: str) -> np.ndarray:
+    """A unit-sd wide-band current waveform of `n` samples: "noise" (white Gaussian noise
+    low-passed at 200 Hz, 4-pole Butterworth) or "chirp" (a sine sweeping 1-40 Hz)."""
+    if kind == "chirp":
+        t = np.arange(n) / rate_hz
+        span_s = n / rate_hz
+        phase = 2 * np.pi * (1.0 * t + 0.5 * (40.0 - 1.0) / span_s * t ** 2)
+        return np.sqrt(2.0) * np.sin(phase)
+    from scipy.signal import butter, sosfiltfilt
+
+    x = sosfiltfilt(butter(4, 200.0, fs=rate_hz, output="sos"), rng.normal(0.0, 1.0, n))
+    return x / x.std()
+
+
+def replica_test_pulse_then_noise(folder: Path, pulse_ms: float = 100.0,
+                                  pulse_pA: float = -50.0, wideband: str = "noise",
+                                  wideband_sd_pA: float = 120.0, seed: int = 11) -> Replica:
+    """A test pulse from rest, then seconds of a wide-band stimulus from a stimulus file.
+
+    The layout of survey row H19_29_150_11_21_01_0011 (project notes, abf-survey.md):
+    ABF 2, IN 0 [mV] and IN 4 [pA] (the recorded current), DAC 0 in pA replaying a
+    stimulus file (nWaveformSource 2), so its epoch table (112 pA -20/sweep) is not
+    played and only the recorded current shows the stimulus. Shorter here: 3 sweeps x
+    4 s at 20 kHz (the row: 2 x 13 s at 50 kHz). Each sweep: 100 ms at 0, the test
+    pulse, 0 until 600 ms, the wide-band current (`wideband`, sd `wideband_sd_pA`, new
+    each sweep) from 600 ms to 3.6 s, 0 to the end. A pyramidal cell (R_in 150 MOhm,
+    tau0 25 ms, weak sag) that the noise makes fire. The recorded current is the command
+    plus a 2 pA offset and 1.5 pA of white noise at 0.1 pA per count. Truth as for every
+    replica (`simulate_sweeps`), for the test pulse's window; truth["wideband_ms"] holds
+    the stretch of the wide-band current.
+    """
+    rate, n, n_sweeps = 20_000.0, 80_000, 3
+    on = 2000
+    off = on + int(round(pulse_ms * 1e-3 * rate))
+    wide = (12_000, 72_000)
+    rng = np.random.default_rng(seed)
+    command = np.zeros((n_sweeps, n))
+    for k in range(n_sweeps):
+        command[k, on:off] = pulse_pA * 1e-12
+        command[k, wide[0]:wide[1]] = (wideband_sd_pA * 1e-12
+                                       * _wideband(rng, wide[1] - wide[0], rate, wideband))
+    model = pyramidal(r_in_ohm=150e6, tau_s=0.025, v_rest_V=-0.065, g_h_S=1e-9,
+                      threshold_V=-0.052)
+    chain = Chain(noise_sd_V=0.12e-3, rest_drift_V=0.5e-3, events_per_s=0.5, seed=seed)
+    volt, truth = simulate_sweeps(model, command, rate, chain, (on, off))
+    truth.update(step_onset_ms=on / rate * 1e3, step_ms=pulse_ms,
+                 wideband_ms=(wide[0] / rate * 1e3, wide[1] / rate * 1e3))
+    current_pA = command * 1e12 + 2.0 + rng.normal(0.0, 1.5, command.shape)
+    name = f"pulse{pulse_ms:g}ms_{wideband}"
+    path = folder / f"{name}_replica.abf"
+    epochs = [(STEP, 112.0, -20.0, 20_000)]   # in the header, not played
+    path.write_bytes(abf2_channels_bytes(
+        [(b"IN 0", b"mV", 0.02, counts(volt, 0.02)),
+         (b"IN 4", b"pA", 0.1, np.round(current_pA / 0.1).astype("<i2"))],
+        rate, epochs, waveform_source=2,
+        protocol_path=b"C:\\protocols\\lol-pulse-then-noise.pro",
+        comment=b"LOL-2026-11-03 invented cell, noise from a stimulus file"))
+    return Replica(name, path, truth)
+
+
 REPLICAS = {
     "171116sh_0019": replica_171116sh_0019,
     "17o05028_ic_steps": replica_17o05028,

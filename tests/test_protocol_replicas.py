@@ -211,3 +211,81 @@ def test_the_replica_command_follows_the_abf_epoch_table(tmp_path):
     assert rec.current_source == "epoch table"
     for k, s in enumerate(rec.sweeps):
         np.testing.assert_allclose(s.current, want[k], rtol=1e-6, atol=1e-16)
+
+
+@pytest.fixture(scope="module")
+def pulse_then_wideband(tmp_path_factory):
+    """`replica_test_pulse_then_noise` written once per (pulse ms, pulse pA, waveform),
+    loaded and analysed: -> (replica, recording, result dict)."""
+    cache: dict = {}
+
+    def get(pulse_ms=100.0, pulse_pA=-50.0, wideband="noise"):
+        key = (pulse_ms, pulse_pA, wideband)
+        if key not in cache:
+            rep = pr.replica_test_pulse_then_noise(tmp_path_factory.mktemp("pulse"), pulse_ms,
+                                                   pulse_pA, wideband)
+            rec = load(rep.path)
+            cache[key] = (rep, rec, analyze(rec).to_dict())
+        return cache[key]
+    return get
+
+
+@pytest.mark.parametrize("pulse_ms, wideband", [(100.0, "noise"), (20.0, "noise"),
+                                                (100.0, "chirp")])
+def test_a_test_pulse_before_a_noise_stimulus_is_analysed_and_the_noise_is_not(
+        pulse_then_wideband, pulse_ms, wideband):
+    """The layout of survey row H19_29_150_11_21_01_0011 (project notes abf-survey.md):
+    a -50 pA test pulse from rest, then 3 s of wide-band current from a stimulus file, so
+    only the recorded current (IN 4 [pA]) shows it. The noise (120 pA sd) sets a
+    whole-sweep edge threshold near 290 pA (the chirp near 70 pA), which hid the pulse;
+    the cell fires during it in every sweep.
+
+    Truth, from the noiseless membrane potential (`simulate_sweeps`): V_rest the sweeps'
+    resting potentials; R_in for the 100 ms pulse the chord at its end (143.2 MOhm), for
+    the 20 ms pulse the passive R_in the charging curve heads for (150 MOhm: the chord at
+    20 ms is 80; a noiseless two-exponential fit over the pulse gives 144.4, and the weak
+    sag takes a 2 s step to 142.2). τ0: the membrane's 25 ms; noiseless two-exponential
+    fits over the 100 and 20 ms pulses give 23.3 and 23.2 ms (the Ih opening and the
+    cable's faster modes), measured for this test's notes.
+    """
+    rep, rec, res = pulse_then_wideband(pulse_ms, -50.0, wideband)
+    assert rec.current_source == "recorded channel"
+    assert rec.metadata["stimulus_file"]   # the waveform was played from a file
+    truth = rep.truth
+    assert all(n > 0 for n in truth["sweeps"]["spikes"])   # the cell fires in the noise
+    wide_on = int(round(truth["wideband_ms"][0] * 1e-3 * rec.sample_rate_hz))
+    for s in res["sweeps"]:   # every sweep's pulse found, at -50 pA, and used
+        assert s["accepted"], s["reject_reason"]
+        assert s["step_pA"] == pytest.approx(-50.0, rel=0.05)
+    from passivefit.analysis.windows import sweep_steps
+    from passivefit.model.settings import Settings
+
+    for st in sweep_steps(rec, Settings()):   # the pulse, read no further than the noise
+        assert st.onset_s == pytest.approx(truth["step_onset_ms"] * 1e-3, abs=1e-3)
+        assert st.duration_s == pytest.approx(pulse_ms * 1e-3, abs=1e-3)
+        assert st.waveform_from is not None and st.region_end == st.waveform_from
+        assert wide_on - 0.001 * rec.sample_rate_hz <= st.waveform_from
+        assert st.waveform_from <= wide_on + 0.010 * rec.sample_rate_hz  # a chirp starts slowly
+    cell = res["cell"]
+    assert cell["v_rest_mV"] == pytest.approx(np.mean(truth["sweeps"]["base_mV"]), abs=0.5)
+    r_in = truth["sweeps"]["r_in_MOhm"][0] if pulse_ms >= 100 else truth["r_in_passive_MOhm"]
+    assert cell["r_in_MOhm"] == pytest.approx(r_in, rel=0.05)
+    assert 0.85 * truth["tau0_ms"] <= cell["tau0_ms"] <= 1.05 * truth["tau0_ms"]
+    flags = {f["code"]: f for f in res["flags"]}
+    said = flags["protocol.waveform_after_step"]
+    assert said["value"] == pytest.approx(truth["wideband_ms"][0], abs=10.0)
+    assert "sweeps 0, 1, 2" in said["message"]
+    assert "vi.nonlinear" not in flags   # one repeated pulse is no V-I relation
+    assert cell["r_in_method"] == "mean step"
+
+
+def test_a_noise_stimulus_without_a_test_pulse_is_refused_in_one_line(tmp_path):
+    """The same sweeps with no pulse: the quiet stretch holds no step, so no step is
+    taken from the noise, and the refusal names the waveform."""
+    from passivefit.io.recording import LoadError
+
+    rep = pr.replica_test_pulse_then_noise(tmp_path, pulse_pA=0.0)
+    with pytest.raises(LoadError) as refused:
+        load(rep.path)
+    message = str(refused.value)
+    assert "no current step" in message and "waveform" in message and "\n" not in message

@@ -244,3 +244,37 @@ def test_a_sweep_whose_second_step_is_0_pA_is_read_as_far_as_the_others():
     steps = sweep_steps(rec, Settings())
     assert [round(s.onset_s, 3) for s in steps] == [0.04] * 3
     assert [s.region_end for s in steps] == [5000, 5000, 5000]
+
+
+def _pulse_then_noise(pulse_pA: float, seed: int = 3, count_pA: float = 0.0) -> np.ndarray:
+    """4 s at 20 kHz of a recorded current: 1.5 pA of white noise, a 100 ms pulse at
+    100 ms, and from 600 ms to 3.6 s white noise low-passed at 200 Hz (running mean of
+    5 ms), 80 pA sd; digitized at `count_pA` per count when given."""
+    rng = np.random.default_rng(seed)
+    x = _levels(80_000, (0.1, 0.1, pulse_pA * PA)) + rng.normal(0.0, 1.5, 80_000) * PA
+    wide = np.convolve(rng.normal(0.0, 1.0, 60_100), np.ones(100) / 100, mode="valid")[:60_000]
+    x[12_000:72_000] += 80 * PA * wide / wide.std()
+    return np.round(x / (count_pA * PA)) * count_pA * PA if count_pA else x
+
+
+@pytest.mark.parametrize("count_pA", [0.0, 0.5])
+def test_a_test_pulse_before_a_noise_stimulus_is_found_and_ends_at_the_noise(count_pA):
+    current = _pulse_then_noise(-30.0, count_pA=count_pA)
+    steps = find_steps(current, FS)
+    assert _summary(steps) == [(100.0, 100.0, pytest.approx(-30.0, abs=1.0), True)]
+    assert 11_950 <= steps[0].waveform_from <= 12_010   # the noise starts at sample 12 000
+    assert classify_stimulus(current, FS) == "step"
+
+
+def test_a_noise_stimulus_alone_holds_no_step_and_is_a_waveform():
+    current = _pulse_then_noise(0.0)
+    assert find_steps(current, FS) == []
+    assert classify_stimulus(current, FS) == "waveform"
+
+
+def test_a_sweep_whose_steps_are_found_keeps_them_without_a_waveform_end():
+    # the first reading finds the step: nothing is read again, the region is not cut
+    current = _levels(40_000, (0.1, 0.5, -50 * PA)) + np.random.default_rng(4).normal(
+        0.0, 1.5, 40_000) * PA
+    steps = find_steps(current, FS)
+    assert len(steps) == 1 and steps[0].waveform_from is None

@@ -81,6 +81,16 @@ def test_vi_relation_bends_only_beyond_its_scatter():
     assert not steady.vi_slope(i[:3], 110e6 * i[:3]).bends
 
 
+def test_a_repeated_step_read_from_a_recorded_current_is_one_vi_level():
+    # a -50 pA test pulse in every sweep, read from a recorded current: its amplitude
+    # differs by the current's noise (a few hundredths of a pA), which is no V-I relation
+    i = np.array([-49.899, -49.939, -49.905, -49.95]) * 1e-12
+    dv = np.array([-7.27, -7.26, -7.28, -7.27]) * 1e-3
+    assert steady.vi_slope(i, dv) is None
+    family = np.array([-50.0, -40.02, -29.97, -20.0]) * 1e-12   # 10 pA apart: four levels
+    assert steady.vi_slope(family, 110e6 * family).n_levels == 4
+
+
 
 def test_vi_slope_from_three_currents_has_its_error():
     # three currents leave one degree of freedom: the least-squares slope's standard

@@ -11,8 +11,10 @@ from dataclasses import replace
 
 import numpy as np
 
+from passivefit.core.qc import Flag
 from passivefit.core.steps import Step, classify_stimulus, common_steps, find_steps
 from passivefit.io.recording import LoadError, Recording
+from passivefit.model import schema as S
 from passivefit.model.settings import Settings, Windows
 
 MS = 1e-3
@@ -54,7 +56,8 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
     Every step and pulse of each sweep is found (core.steps.find_steps); all sweeps
     take the step at the protocol's common position that leaves the holding level after
     a flat baseline (core.steps.common_steps), and each is read up to the sweep's next
-    step (`Step.region_end`), so a second step or a train after it is not taken in. A
+    step (`Step.region_end`), or up to a waveform that follows it (`Step.waveform_from`:
+    noise, a chirp), so a second step, a train or a waveform after it is not taken in. A
     step the user describes is read to the end of its tail (`tail_end`): what follows
     in the sweep is not described, so not known to be quiet.
     """
@@ -73,7 +76,7 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
     per_sweep = [find_steps(s.current, fs) for s in rec.sweeps]
     steps = [None if st is None else replace(st, region_end=min(
         (later.onset for later in found if later.onset >= st.offset),
-        default=tail_end(st, s.n_samples) if settings.step is not None else None))
+        default=tail_end(st, s.n_samples) if settings.step is not None else st.waveform_from))
         for st, found, s in zip(common_steps(per_sweep), per_sweep, rec.sweeps, strict=True)]
     steps = _protocol_region_ends(steps)
     if all(s is None for s in steps):
@@ -89,6 +92,19 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
                         "give `--step ON_MS DURATION_MS AMPLITUDE_PA [INCREMENT_PA]` if the "
                         "waveform is wrong")
     return steps
+
+
+def waveform_flag(chosen: list[tuple[object, Step | None]], fs: float) -> list[Flag]:
+    """The protocol.waveform_after_step flag of the (sweep, step) pairs whose step is read
+    only up to a waveform that follows it (`Step.waveform_from`); none without such."""
+    cut = [(s.index, st.waveform_from) for s, st in chosen
+           if st is not None and st.waveform_from is not None
+           and st.region_end == st.waveform_from]
+    if not cut:
+        return []
+    first = min(at for _, at in cut) / fs
+    return [S.PROTOCOL_WAVEFORM.make(first / MS, which=", ".join(str(k) for k, _ in cut),
+                                     at=f"{first / MS:.0f} ms")]
 
 
 #: What a sweep without an analysed step holds instead (core.steps.classify_stimulus)

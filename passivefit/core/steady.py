@@ -85,12 +85,22 @@ class VISlope:
         return self.curvature > 0.15 and (dof < 1 or abs(self.curvature_t) > t975(dof))
 
 
+#: Currents closer than this share of the largest one are one level of the V–I relation:
+#: a step repeated sweep after sweep (a test pulse) and read from a recorded current
+#: differs by its noise, a few hundredths of a pA, not by a step of a family (no source).
+SAME_CURRENT_SHARE = 0.02
+
+
 def vi_slope(currents_A: np.ndarray, deflections_V: np.ndarray) -> VISlope | None:
-    """Input resistance from the V–I relation; None with fewer than 3 distinct currents."""
+    """Input resistance from the V–I relation; None with fewer than 3 distinct currents
+    (closer than SAME_CURRENT_SHARE of the largest current: one level)."""
     i = np.asarray(currents_A, dtype=np.float64)
     v = np.asarray(deflections_V, dtype=np.float64)
-    levels = np.unique(np.round(i, 15))
-    if levels.size < 3:
+    if i.size == 0:
+        return None
+    gaps = np.diff(np.sort(i))
+    n_levels = 1 + int(np.count_nonzero(gaps > SAME_CURRENT_SHARE * np.max(np.abs(i))))
+    if n_levels < 3:
         return None
     slope, intercept = np.polyfit(i, v, 1)
     rss = float(np.sum((v - (slope * i + intercept)) ** 2))
@@ -107,4 +117,4 @@ def vi_slope(currents_A: np.ndarray, deflections_V: np.ndarray) -> VISlope | Non
         se = math.sqrt(float(rest @ rest) / (i.size - 3) * unscaled[0, 0])
         curvature_t = quad[0] / se if se > 0 else math.inf
     return VISlope(float(slope), slope_se, float(intercept), float(r2),
-                   float(curvature), int(levels.size), float(curvature_t), int(i.size))
+                   float(curvature), n_levels, float(curvature_t), int(i.size))

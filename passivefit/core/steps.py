@@ -11,12 +11,18 @@ noise blips and capacitive spikes shorter than `MIN_DURATION_S`, and edges must
 exceed a threshold set by the trace's own noise (a robust, median-based estimate).
 Ramps, sine waves and other non-rectangular waveforms are recognised and never
 returned as steps; `classify_stimulus` names what a sweep holds.
+
+A sweep that plays a wide-band stimulus (noise, a chirp) over most of its length after
+a test pulse from rest has a threshold set by that stimulus, far above the pulse. When
+the whole sweep shows no step, the stretch before the first wide-band stretch is read
+again with the threshold of the sweep's quiet parts; steps found there carry where the
+waveform begins (`Step.waveform_from`), and nothing from there on is read.
 """
 
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -47,6 +53,16 @@ STIMULUS_KINDS = ("step", "pulse", "ramp", "waveform", "none")
 _SAME_LEVEL_FRACTION = 0.1
 # steps of different sweeps starting this close together are at the same position, in s
 _SAME_ONSET_S = 1e-3
+#: Blocks in which the edge detector's noise is measured to tell a sweep's quiet parts
+#: from a wide-band stimulus, in s.
+QUIET_BLOCK_S = 20e-3
+#: A block whose edge threshold is this many times that of the quietest block belongs to
+#: a wide-band stimulus. Quiet blocks of one recording scatter by less than 2x (about 1.4x
+#: in a simulated recorded current; no source), a noise stimulus of tens of pA by 10-100x.
+LOUD_FACTOR = 4.0
+#: A wide-band stretch lasts at least this long, in s; the edges of a test pulse make
+#: one or two blocks loud, not five.
+MIN_LOUD_S = 0.1
 
 
 @dataclass(frozen=True)
@@ -73,6 +89,10 @@ class Step:
     region_end : int or None
         Index where the sweep's next step begins: the step's response (its tail
         included) is read up to here. None: up to the end of the sweep.
+    waveform_from : int or None
+        Index where a wide-band or otherwise non-rectangular current (noise, a chirp)
+        begins after the step, found by reading only the sweep's quiet stretch before
+        it; the step's response is read no further. None: no such waveform was cut off.
     """
 
     onset: int
@@ -83,6 +103,7 @@ class Step:
     baseline_start: int = 0
     level_before_A: float | None = None
     region_end: int | None = None
+    waveform_from: int | None = None
 
     @property
     def duration_s(self) -> float:
@@ -274,24 +295,35 @@ def segments(current: np.ndarray, sample_rate_hz: float,
     return _split(current, sample_rate_hz, min_amplitude_A)[0]
 
 
-def _split(current: np.ndarray, sample_rate_hz: float,
-           min_amplitude_A: float) -> tuple[list[Segment], float]:
-    """`segments` and the edge threshold they were cut with, in A."""
+def _filtered(x: np.ndarray, fs: float) -> tuple[np.ndarray, int]:
+    """The trace after the running median (`_median_window`), and the median's width."""
+    width = _median_window(x, fs)
+    if width == 1:
+        return x, width
+    from scipy.ndimage import median_filter  # lazy: reading a file needs no scipy
+
+    return median_filter(x, size=width, mode="nearest"), width
+
+
+def _differences(f: np.ndarray, fs: float) -> np.ndarray:
+    """The edge detector: the filtered trace's change across 2 x EDGE_HALF_WIDTH_S."""
+    n = f.size
+    h = max(1, int(round(EDGE_HALF_WIDTH_S * fs)))
+    return f[2 * h :] - f[: n - 2 * h] if n > 2 * h else np.zeros(1)
+
+
+def _split(current: np.ndarray, sample_rate_hz: float, min_amplitude_A: float,
+           threshold: float | None = None) -> tuple[list[Segment], float]:
+    """`segments` and the edge threshold they were cut with, in A (the trace's own, from
+    `_threshold`, unless `threshold` is given)."""
     x = np.asarray(current, dtype=np.float64)
     n = x.size
     fs = float(sample_rate_hz)
     if n == 0:
         return [], min_amplitude_A
-    width = _median_window(x, fs)
-    if width > 1:
-        from scipy.ndimage import median_filter  # lazy: reading a file needs no scipy
-
-        f = median_filter(x, size=width, mode="nearest")
-    else:
-        f = x
-    h = max(1, int(round(EDGE_HALF_WIDTH_S * fs)))
-    d = f[2 * h :] - f[: n - 2 * h] if n > 2 * h else np.zeros(1)
-    threshold = _threshold(d, min_amplitude_A)
+    f, width = _filtered(x, fs)
+    if threshold is None:
+        threshold = _threshold(_differences(f, fs), min_amplitude_A)
     edges, slow = _edges(f, fs, threshold)
     cuts = sorted({0, n, *edges, *(c for span in slow for c in span)})
     trim = width + 1
@@ -400,6 +432,14 @@ _FOUND_SIZE = 1024
 def _find_steps(current: np.ndarray, sample_rate_hz: float,
                 min_amplitude_A: float) -> list[Step]:
     segs, threshold = _split(current, sample_rate_hz, min_amplitude_A)
+    steps = _steps_of(segs, threshold, sample_rate_hz)
+    if _first_analysable(steps) is None:
+        return _before_waveform(current, sample_rate_hz, min_amplitude_A) or steps
+    return steps
+
+
+def _steps_of(segs: list[Segment], threshold: float, sample_rate_hz: float) -> list[Step]:
+    """The steps among a sweep's segments (`find_steps`' rule)."""
     if len(segs) < 2 or not segs[0].flat:
         return []
     holding = segs[0].level_A
@@ -417,6 +457,101 @@ def _find_steps(current: np.ndarray, sample_rate_hz: float,
         steps.append(Step(seg.start, seg.stop, seg.level_A - before.level_A,
                           float(sample_rate_hz), holding, before.start, before.level_A))
     return steps
+
+
+def _quantum(x: np.ndarray) -> float:
+    """The smallest change between two of the trace's values (its digitization step)."""
+    gaps = np.diff(np.unique(x))
+    return float(gaps[gaps > 0].min()) if np.any(gaps > 0) else 0.0
+
+
+def _loud_start(d: np.ndarray, fs: float, min_amplitude_A: float,
+                quantum: float) -> tuple[int | None, float]:
+    """Where the first wide-band stretch of a sweep begins in the detector `d`, and the
+    edge threshold of the quiet blocks before it, in A.
+
+    Each QUIET_BLOCK_S block gets its own edge threshold (`_threshold`); the quietest
+    block, though never below what one digitization step gives, is the reference. The
+    first run of MIN_LOUD_S of blocks above LOUD_FACTOR times it is the wide-band
+    stretch. (None, 0) when there is none; (0, 0) when it starts the sweep.
+    """
+    m = max(1, int(round(QUIET_BLOCK_S * fs)))
+    n_blocks = d.size // m
+    if n_blocks < 2:
+        return None, 0.0
+    blocks = d[: n_blocks * m].reshape(n_blocks, m)
+    spread = np.abs(blocks - np.median(blocks, axis=1, keepdims=True))
+    sd = np.maximum(np.median(spread, axis=1) / 0.6745,
+                    np.percentile(spread, 90, axis=1) / 1.645)
+    thresholds = np.maximum(min_amplitude_A, EDGE_NOISE_SD * sd)
+    reference = max(float(thresholds.min()), EDGE_NOISE_SD * quantum / 1.645)
+    loud = thresholds > LOUD_FACTOR * reference
+    run = max(1, int(np.ceil(MIN_LOUD_S / QUIET_BLOCK_S)))
+    first = next((a for a, b in _runs(loud) if b - a >= run), None)
+    if first is None:
+        return None, 0.0
+    return first * m, float(np.median(thresholds[:first])) if first else 0.0
+
+
+def _wideband_start(x: np.ndarray, fs: float, min_amplitude_A: float
+                    ) -> tuple[int | None, float, np.ndarray, int]:
+    """`_loud_start` of a trace, with its filtered trace and the running median's width."""
+    f, width = _filtered(x, fs)
+    loud, threshold = _loud_start(_differences(f, fs), fs, min_amplitude_A, _quantum(x))
+    return loud, threshold, f, width
+
+
+def _before_waveform(current: np.ndarray, sample_rate_hz: float,
+                     min_amplitude_A: float) -> list[Step]:
+    """The steps of the quiet stretch before a sweep's first wide-band stretch.
+
+    The stretch runs from the sweep's start to the first wide-band stretch
+    (`_loud_start`) and is cut with the edge threshold of its quiet blocks; it ends
+    where the waveform begins (`_quiet_part`). Its steps carry that end as
+    `Step.waveform_from`; a level running straight into the waveform is not a step.
+    Empty when there is no such stretch or it holds no analysable step.
+    """
+    x = np.asarray(current, dtype=np.float64)
+    fs = float(sample_rate_hz)
+    loud, threshold, f, width = _wideband_start(x, fs, min_amplitude_A)
+    if not loud:   # no wide-band stretch, or one from the sweep's start
+        return []
+    end = loud + max(1, int(round(EDGE_HALF_WIDTH_S * fs)))   # d[i] is centred on f[i + h]
+    segs, threshold = _split(x[:end], fs, min_amplitude_A, threshold)
+    quiet, stop = _quiet_part(x[:end], f[:end], segs, threshold, width + 1, fs)
+    if len(quiet) < 2:
+        return []
+    waveform = Segment(stop, end, quiet[-1].level_A, 0.0, False)
+    steps = [replace(s, waveform_from=stop)
+             for s in _steps_of([*quiet, waveform], threshold, fs) if s.offset <= stop]
+    return steps if _first_analysable(steps) is not None else []
+
+
+def _quiet_part(x: np.ndarray, f: np.ndarray, segs: list[Segment], threshold: float,
+                trim: int, fs: float) -> tuple[list[Segment], int]:
+    """The flat levels of a stretch up to where a waveform begins, and that sample.
+
+    The waveform begins at the first segment that is not a flat level, or, when that
+    segment starts smoothly (a chirp's or a sine's first slow cycle, with no edge), where
+    it first leaves its opening level by half the edge threshold; with no such segment,
+    at the last level unless that is the holding level (the stretch was cut a little
+    into the waveform).
+    """
+    k = next((i for i, s in enumerate(segs) if not s.flat), None)
+    if k is None:
+        last = segs[-1]
+        if abs(last.level_A - segs[0].level_A) <= threshold:
+            return segs, last.stop
+        return segs[:-1], last.start
+    s = segs[k]
+    opening = float(np.median(f[s.start : s.start + int(round(QUIET_BLOCK_S * fs))]))
+    away = np.flatnonzero(np.abs(f[s.start : s.stop] - opening) > 0.5 * threshold)
+    leaves = s.start + (int(away[0]) if away.size else s.stop - s.start)
+    if leaves - s.start >= int(round(MIN_BASELINE_S * fs)):
+        level = _segment(x, f, s.start, leaves, trim, threshold)
+        if level.flat:
+            return [*segs[:k], level], leaves
+    return segs[:k], s.start
 
 
 def analysable(step: Step, min_baseline_s: float = MIN_BASELINE_S) -> bool:
@@ -531,9 +666,11 @@ def classify_stimulus(current: np.ndarray | None, sample_rate_hz: float,
         return "pulse"
     segs = segments(current, sample_rate_hz, min_amplitude_A)
     bent = [s for s in segs if not s.flat]
-    if not bent and len(segs) < 2:
-        return "none"
     x = np.asarray(current, dtype=np.float64)
+    if not bent and len(segs) < 2:
+        # flat at the whole sweep's threshold, unless a wide-band stretch (noise) set it
+        wide = _wideband_start(x, float(sample_rate_hz), min_amplitude_A)[0]
+        return "none" if wide is None else "waveform"
     for s in bent:
         part = x[s.start:s.stop]
         if part.size > 2 and _monotone(part):

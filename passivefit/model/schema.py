@@ -474,6 +474,12 @@ PROTOCOL_OTHER_CLAMP = _flag(
     "protocol.other_clamp", "info",
     "{count} sweep(s) of the file were not recorded in current clamp ({kinds}: sweeps "
     "{which}) and are left out (sweeps left out)")
+PROTOCOL_WAVEFORM = _flag(
+    "protocol.waveform_after_step", "info",
+    "sweeps {which}: a waveform follows the step from {at} (noise, a chirp or another "
+    "changing current; the sweep's edge threshold was taken from its quiet part before "
+    "it); the step before it is analysed, read up to there, and the waveform is not "
+    "(earliest start of the waveform, ms)")
 PROTOCOL_RATES = _flag(
     "protocol.rates_mixed", "warning",
     "the file's current-clamp sweeps are sampled at several rates: the {kept} at {rate} are "
