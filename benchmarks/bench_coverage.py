@@ -1,12 +1,12 @@
 """Coverage of the 95 % intervals: how often each interval holds the simulated truth.
 
-Run:  .venv/bin/python benchmarks/bench_coverage.py [--cells 200] [--workers 2]
+Run:  .venv/bin/python benchmarks/bench_coverage.py [--cells 200] [--workers 2] [--sweeps 20]
 
 Cells are drawn at random (fixed seed) from L 0.4–1.8, ρ 1–20, τm 15–35 ms,
 R_in 80–300 MΩ, noise 0.1–0.6 mV; half carry a 5–15 MΩ bridge error seen through a
 30–100 µs electrode lag; every recording is filtered by a 5 kHz Bessel, and half of the
 files do not state it (the model then estimates the corner from the step edge). Each
-recording has 20 sweeps of −50/−30 pA steps (400 ms, 20 kHz), analysed with the default
+recording has 20 sweeps (`--sweeps`) of −50/−30 pA steps (400 ms, 20 kHz), analysed with the default
 settings (bootstrap over sweeps).
 
 For τ0, τ1, L (ball-and-stick), ρ, R_in and the bridge: the share of cells whose 95 %
@@ -46,13 +46,13 @@ def draw(n: int, seed: int = 2026) -> list[dict]:
     return cells
 
 
-def one(c: dict) -> dict:
+def one(c: dict, n_sweeps: int = 20) -> dict:
     from passivefit.analysis import Settings, analyze
     from passivefit.simulate import BallStick, StepProtocol, simulate_recording
 
     cell = BallStick.from_electrotonic(c["tau_s"], c["L"], c["rho"], c["r_in"])
     rec, _ = simulate_recording(
-        cell, protocol=StepProtocol(0.1, 0.4, PROTOCOL_A), n_sweeps=20, sweep_duration_s=0.8,
+        cell, protocol=StepProtocol(0.1, 0.4, PROTOCOL_A), n_sweeps=n_sweeps, sweep_duration_s=0.8,
         noise_sd_V=c["noise"], filter_hz=5_000, bridge_ohm=c["bridge"],
         electrode_tau_s=c["lag"], seed=c["seed"])
     if not c["stated"]:
@@ -93,12 +93,13 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--cells", type=int, default=200)
     parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--sweeps", type=int, default=20)
     args = parser.parse_args()
     cells = draw(args.cells)
     t0 = time.perf_counter()
     with ProcessPoolExecutor(args.workers) as pool:
-        rows = list(pool.map(one, cells, chunksize=4))
-    print(f"{len(rows)} cells in {time.perf_counter() - t0:.0f} s\n")
+        rows = list(pool.map(one, cells, [args.sweeps] * len(cells), chunksize=4))
+    print(f"{len(rows)} cells of {args.sweeps} sweeps in {time.perf_counter() - t0:.0f} s\n")
     print(table(rows, "All cells"))
     print()
     print(table([r for r in rows if not r["stated"]], "Files that do not state the filter"))

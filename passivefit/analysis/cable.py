@@ -9,7 +9,7 @@ import numpy as np
 
 from passivefit.analysis.fits import FIT_ERRORS, fit_segments, onset_amplitudes
 from passivefit.analysis.windows import span
-from passivefit.core.qc import Flag, bootstrap_halfwidth
+from passivefit.core.qc import Flag
 from passivefit.model import schema as S
 from passivefit.model.results import GroupAverage
 
@@ -121,12 +121,12 @@ def _inside(value: float, bounds: tuple[float, float]) -> bool:
 
 
 def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | None,
-                 cis: dict[str, float | None], L_cyl_samples: np.ndarray | None,
+                 cis: dict[str, float | None], L_cyl_ci: float | None,
                  passive: bool = True) -> tuple[dict, list[Flag]]:
     """Equivalent cylinder (exponential fit), ball-and-stick and capacitance (cable fit).
 
     `cis` holds the 95 % intervals (low, high) of "L" and "rho" (None without a cable fit);
-    `L_cyl_samples` the resampled L_cyl values for its CI. A cell that is not `passive`
+    `L_cyl_ci` the bootstrap's half-width of L_cyl (None without one). A cell that is not `passive`
     (it sags) gets only C = τ0/R_in: the cable values assume a passive membrane.
     """
     from passivefit.core import cable
@@ -170,7 +170,7 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
     if tau1 is None or fit.sag is not None or not passive:  # no τ1, or not a passive cell
         return values, flags
     values[S.L_CYL] = cable.cylinder_L(tau0, tau1)
-    values[S.L_CYL_CI] = None if L_cyl_samples is None else bootstrap_halfwidth(L_cyl_samples)
+    values[S.L_CYL_CI] = L_cyl_ci
     # amplitude ratios of free exponentials are trustworthy only with τ2 fitted as well
     ratios = {}
     if len(fit.taus) >= 3:

@@ -50,7 +50,7 @@ from passivefit.analysis.sweep import (
 )
 from passivefit.analysis.uncertainty import CableContext, bootstrap, halfwidth
 from passivefit.analysis.windows import no_step_reason, span, waveform_flag
-from passivefit.core.qc import Flag, detrended
+from passivefit.core.qc import Flag, bootstrap_halfwidth, detrended
 from passivefit.io.recording import Recording
 from passivefit.model import schema as S
 from passivefit.model.results import CellResult, GroupAverage, RecordingResult, SweepFit
@@ -330,7 +330,7 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     out.peel = _peel(avg, avg_cable, fs, fit)
     r_in = out.values.get(S.R_IN)
     values, flags = cable_values(fit, bs, avg, r_in if r_in and r_in > 0 else None, tau1, cis,
-                                 _L_cyl_samples(boot, bs is not None), passive=passive)
+                                 _L_cyl_ci(boot, bs is not None), passive=passive)
     out.values.update(values)
     out.flags.extend(flags)
     out.flags.extend(checks.scale(out.values))
@@ -349,14 +349,15 @@ def _cable_cis(bs, boot: dict | None) -> dict[str, tuple[float, float] | None]:
     log ρ, as few cable refits make percentiles unstable); None without a cable fit."""
     if bs is None:
         return {S.L_BS.key: None, S.RHO.key: None}
-    from passivefit.core.qc import robust_sd
+    from passivefit.core.qc import few_units_factor, robust_sd
 
     out = {}
     for q, value, (lo, hi), name in ((S.L_BS, bs.L, bs.L_interval, "L"),
                                      (S.RHO, bs.rho, bs.rho_interval, "rho")):
         seen = boot[name][np.isfinite(boot[name])] if boot is not None else np.array([])
-        if seen.size >= 5:  # the resamples' robust spread, on the log scale (skewed values)
-            spread = 1.96 * robust_sd(np.log(seen))
+        if seen.size >= 5:  # the resamples' robust spread, on the log scale (skewed values),
+            #                 widened for few sweeps
+            spread = 1.96 * robust_sd(np.log(seen)) * few_units_factor(int(boot["n_sweeps"]))
             lo, hi = min(lo, value * np.exp(-spread)), max(hi, value * np.exp(spread))
         out[q.key] = (lo, hi)
     return out
@@ -398,15 +399,17 @@ def _chain_flags(fit, chain: Chain) -> list[Flag]:
                                          undetermined=undetermined)]
 
 
-def _L_cyl_samples(boot: dict | None, cable: bool) -> np.ndarray | None:
-    """L_cyl of every bootstrap resample (its τ1 from the cable fit when there is one)."""
+def _L_cyl_ci(boot: dict | None, cable: bool) -> float | None:
+    """The 95 % half-width of L_cyl over the bootstrap's resamples (their τ1 from the cable
+    fit when there is one), widened for few sweeps; None without a bootstrap."""
     from passivefit.core import cable as cable_theory
 
     if boot is None:
         return None
     pairs = zip(boot["tau0"], boot["tau1_model" if cable else "tau1"], strict=True)
-    return np.array([cable_theory.cylinder_L(t0, t1) if 0 < t1 < t0 else np.nan
-                     for t0, t1 in pairs])
+    samples = np.array([cable_theory.cylinder_L(t0, t1) if 0 < t1 < t0 else np.nan
+                        for t0, t1 in pairs])
+    return bootstrap_halfwidth(samples, int(boot["n_sweeps"]))
 
 
 def _bridge_correction(fits: list[SweepFit], bridge: tuple[float, float, bool] | None,

@@ -55,7 +55,8 @@ def _combined(pool: SweepPool, weights: np.ndarray, g: GroupAverage, fs: float,
 
 def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
               cable: CableContext | None = None, seed: int = 0) -> dict[str, np.ndarray]:
-    """Cell values refitted on sweeps resampled with replacement.
+    """Cell values refitted on sweeps resampled with replacement (and, as "n_sweeps", the
+    number of sweeps resampled).
 
     With `cable`, the first CABLE_BOOTSTRAP resamples also refit the ball-and-stick
     model; a resample whose fit fails, or is not refitted, gives NaN there.
@@ -85,9 +86,13 @@ def bootstrap(pool: SweepPool, g: GroupAverage, fs: float, fit, n_boot: int,
             out["tau1_model"].append(bs.taus_s[1] if bs else np.nan)
             out["L"].append(bs.L if bs else np.nan)
             out["rho"].append(bs.rho if bs else np.nan)
-    return {k: np.asarray(v, dtype=float) for k, v in out.items()}
+    return {k: np.asarray(v, dtype=float) for k, v in out.items()} | {
+        "n_sweeps": np.asarray(size)}
 
 
 def halfwidth(boot: dict | None, name: str) -> float | None:
-    """The bootstrap's 95 % half-width of `name`; None without a bootstrap."""
-    return bootstrap_halfwidth(boot[name]) if boot is not None else None
+    """The bootstrap's 95 % half-width of `name`, widened for few sweeps
+    (core.qc.few_units_factor); None without a bootstrap."""
+    if boot is None:
+        return None
+    return bootstrap_halfwidth(boot[name], int(boot["n_sweeps"]))

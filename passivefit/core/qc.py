@@ -69,20 +69,34 @@ def runs_ratio(values: np.ndarray) -> float:
     return runs / mean if mean > 0 else 0.0
 
 
-def bootstrap_halfwidth(samples: np.ndarray) -> float | None:
+def bootstrap_halfwidth(samples: np.ndarray, n_units: int | None = None) -> float | None:
     """95 % CI half-width from bootstrap samples (None with fewer than 10).
 
     1.96 times their sd below 200 samples, half the central 95 % range from 200 on: a
     standard error is steady from a few tens of resamples, the extreme percentiles need
-    about a thousand (docs/references.md §6).
+    about a thousand (docs/references.md §6). With `n_units`, the number of units
+    resampled (sweeps), widened by `few_units_factor` for the bootstrap's narrowness with
+    few of them.
     """
     samples = samples[np.isfinite(samples)]
     if samples.size < 10:
         return None
     if samples.size < 200:
-        return float(1.96 * np.std(samples, ddof=1))
-    lo, hi = np.percentile(samples, [2.5, 97.5])
-    return float((hi - lo) / 2)
+        half = float(1.96 * np.std(samples, ddof=1))
+    else:
+        lo, hi = np.percentile(samples, [2.5, 97.5])
+        half = float((hi - lo) / 2)
+    return half if n_units is None else half * few_units_factor(n_units)
+
+
+def few_units_factor(n: int) -> float:
+    """How much wider a 95 % bootstrap interval over `n` resampled units must be: the
+    resamples' sd is √((n − 1)/n) of the standard error, and with few units the error is
+    itself uncertain, so t(n − 1) stands for 1.96; for a mean this makes the interval
+    Student's t interval exactly (docs/references.md §6). 1 for n < 2."""
+    if n < 2:
+        return 1.0
+    return t975(n - 1) / Z95 * math.sqrt(n / (n - 1))
 
 
 def mains_hum(segments, fs: float, freqs_hz=(50.0, 60.0)
