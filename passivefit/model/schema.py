@@ -345,7 +345,9 @@ SWEEP_EVENT = _flag(
 CELL_NO_SWEEPS = _flag("cell.no_sweeps", "error", "no sweep was accepted; nothing to report")
 CELL_FEW_SWEEPS = _flag(
     "cell.few_sweeps", "warning",
-    "fewer than 3 sweeps accepted: averages are noisy and no bootstrap CIs (number of sweeps)")
+    "fewer than 3 sweeps accepted: averages are noisy, and the CIs of the time constants "
+    "come from the fit alone (the noise), not from what changes between sweeps (number of "
+    "sweeps)")
 CELL_NO_STEADY_STATE = _flag(
     "cell.no_steady_state", "info",
     "no step reaches a steady state and the pulses' charge integral gives no positive R_in: "
