@@ -113,8 +113,8 @@ def test_a_current_too_small_to_be_a_step_names_its_size(tmp_path):
 
 def test_a_current_that_changes_much_without_a_step_is_not_called_flat(tmp_path):
     """A long noise stimulus (±60 pA, held 1 ms at a time): the edge detector finds no
-    step, and the refusal says how much the current changes rather than calling it flat
-    and doubting its unit."""
+    step, and the refusal names a waveform rather than calling the current flat and
+    doubting its unit."""
     from passivefit.analysis import analyze
 
     recording = charging_recording(n_sweeps=2, n_samples=6000)
@@ -123,6 +123,6 @@ def test_a_current_that_changes_much_without_a_step_is_not_called_flat(tmp_path)
         current = np.zeros(sweep.current.size)
         current[2000:] = np.repeat(rng.normal(0, 60e-12, 200), 20)
         sweep.current = current
-    with pytest.raises(LoadError, match=r"the current is changing by up to \d+ pA with no "
-                                        r"step standing out\); give `--step"):
+    with pytest.raises(LoadError, match=r"no current step from rest found in any sweep "
+                                        r"\(the current is a waveform\); give `--step"):
         analyze(load(save(recording, tmp_path / "noise.nwb")))
