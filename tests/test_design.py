@@ -359,3 +359,17 @@ def test_fast_fft_length_is_scipys():
 
     for n in (1, 2, 7, 11, 97, 1000, 12_345, 20_001, 20_065, 40_129, 100_003):
         assert fft_length(n) == scipy.fft.next_fast_len(n, real=True), n
+
+
+def test_sweeps_needed_from_a_bootstrap_interval_widened_for_few_sweeps():
+    """A bootstrap CI over n sweeps carries the few-sweeps widening (core.qc.
+    few_units_factor): the count needed is where that factor over √m meets the target,
+    not the widened CI scaled as 1/√m (which over 3 sweeps asked for 7× too many)."""
+    from passivefit.analysis.design import _count
+    from passivefit.core.qc import few_units_factor
+
+    per_sweep, n, target = 1.0, 3, 0.2
+    achieved = few_units_factor(n) * per_sweep / n**0.5
+    m = _count(n, achieved, target, widened=True)
+    assert few_units_factor(round(m)) * per_sweep / m**0.5 == pytest.approx(target, rel=0.02)
+    assert _count(n, achieved, target, widened=False) > 5 * m

@@ -32,8 +32,8 @@ conductances are not in the model: the bound is for a passive cell in stationary
 and an estimator can only be worse.
 
 From the bound: the efficiency of the achieved CI (bound sd / achieved sd), the sweeps of
-this protocol needed to reach a target CI (the CI shrinks as 1/√n; from the achieved CI
-when there is one, else from the bound), and the factor by which a few other protocols
+this protocol needed to reach a target CI (the CI shrinks as 1/√n, a bootstrap's with its
+few-sweeps widening as well; from the achieved CI when there is one, else from the bound), and the factor by which a few other protocols
 (brief pulses, double sampling rate, a wider filter, half or double amplitude) would
 narrow the L and ρ intervals, each computed by the same model.
 """
@@ -48,7 +48,7 @@ from functools import lru_cache
 import numpy as np
 
 from passivefit.core.lowpass import Lowpass, filtered_exponential_slopes, filtered_exponentials
-from passivefit.core.qc import Z95, detrended, fft_length
+from passivefit.core.qc import Z95, detrended, few_units_factor, fft_length
 from passivefit.model import schema as S
 
 MAX_SWEEPS = 500                   # beyond this a value is "not resolvable" in practice
@@ -634,7 +634,8 @@ def advise(*, tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge_ohm: 
            targets: Mapping[str, float] | None = None,
            noise_acf: Sequence[float] | None = None, fit_start_s: float = 0.0,
            electrode_tau_s: float = 50e-6, max_sweeps: int = MAX_SWEEPS,
-           protocol_changes: bool = True, bridge_known: bool = False) -> DesignAdvice:
+           protocol_changes: bool = True, bridge_known: bool = False,
+           bootstrapped: bool = False) -> DesignAdvice:
     """The CRLB of this cell under this protocol, and what to record next.
 
     Parameters
@@ -677,6 +678,10 @@ def advise(*, tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge_ohm: 
     bridge_known : bool
         The analysis fitted no bridge jump (a likelihood-ratio test found none): the bound
         then holds the bridge at `bridge_ohm` instead of estimating it, as the fit did.
+    bootstrapped : bool
+        The achieved CIs come from a bootstrap over the `n_sweeps` sweeps, widened for few
+        sweeps (core.qc.few_units_factor): the widening is taken out before they are scaled
+        as 1/√n, and put back at the count of sweeps needed.
 
     Raises
     ------
@@ -707,7 +712,8 @@ def advise(*, tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge_ohm: 
     goals = dict(TARGETS if targets is None else targets)
     achieved = dict(achieved_ci or {})
     bounds = tuple(_bound(name, values[name], Z95 * sds[name], achieved.get(name),
-                          goals.get(name), n_sweeps, max_sweeps) for name in NAMES)
+                          goals.get(name), n_sweeps, max_sweeps, bootstrapped)
+                   for name in NAMES)
     changes = _changes(cell, bridge_ohm, protocol, noise_sd_V, sds) if protocol_changes \
         else ()
     advice = _advice(bounds, changes, n_sweeps, max_sweeps)
@@ -716,7 +722,8 @@ def advise(*, tau0_s: float, L: float, rho: float, r_in_ohm: float, bridge_ohm: 
 
 
 def _bound(name: str, value: float, crlb_ci: float, achieved: float | None,
-           target_rel: float | None, n: int, max_sweeps: int) -> Bound:
+           target_rel: float | None, n: int, max_sweeps: int,
+           bootstrapped: bool = False) -> Bound:
     q = QUANTITY[name]
     achieved = achieved if achieved is not None and math.isfinite(achieved) and achieved > 0 \
         else None
@@ -726,7 +733,9 @@ def _bound(name: str, value: float, crlb_ci: float, achieved: float | None,
     needed, note = None, ""
     if target is not None and target > 0:
         want = f"±{100 * target_rel:g} %"
-        count = n * (expected / target) ** 2 if math.isfinite(expected) else math.inf
+        count = math.inf
+        if math.isfinite(expected):
+            count = _count(n, expected, target, bootstrapped and achieved is not None)
         if not math.isfinite(crlb_ci) or count > max_sweeps:
             note = (f"{q.label} cannot be resolved to {want} with this protocol in any "
                     f"reasonable number of sweeps (more than {max_sweeps} needed)")
@@ -744,6 +753,19 @@ def _bound(name: str, value: float, crlb_ci: float, achieved: float | None,
                 "as balanced can be narrower")
     return Bound(name, value, crlb_ci, achieved, efficiency, target, needed, note,
                  _needed(n, crlb_ci, target, max_sweeps))
+
+
+def _count(n: int, ci: float, target: float, widened: bool) -> float:
+    """Sweeps (not rounded) for a CI of `ci` from `n` sweeps to shrink to `target`, as 1/√n;
+    a `widened` CI (a bootstrap's, core.qc.few_units_factor) shrinks as that factor over √n,
+    so the count is found by a few fixed-point steps (the factor changes slowly)."""
+    if not widened:
+        return n * (ci / target) ** 2
+    per_sweep = ci / few_units_factor(n)
+    count = n * (per_sweep / target) ** 2
+    for _ in range(8):
+        count = n * (per_sweep * few_units_factor(max(math.ceil(count), 2)) / target) ** 2
+    return count
 
 
 def _needed(n: int, ci: float, target: float | None, max_sweeps: int) -> int | None:

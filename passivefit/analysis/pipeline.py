@@ -185,7 +185,8 @@ def _design(cell: CellSummary, chosen, fs: float):
             n_sweeps=len(used), achieved_ci=achieved,
             fit_start_s=cell.cable_average.fit_start_s,   # the samples the chain fit used
             electrode_tau_s=bs.lag_s if np.isfinite(bs.lag_s) else 50e-6,
-            bridge_known=not bs.bridge_needed)
+            bridge_known=not bs.bridge_needed,
+            bootstrapped=v.get(S.CI_METHOD) == "bootstrap over sweeps")
     except (ValueError, np.linalg.LinAlgError):
         return None
 
