@@ -253,7 +253,7 @@ def onset_offset(g: GroupAverage, fs: float, fit) -> list[Flag]:
     (t_on, ci_on), (t_off, ci_off) = taus
     diff = abs(t_on - t_off) / fit.taus[0]
     if diff > 0.1 and abs(t_on - t_off) > np.hypot(ci_on, ci_off):
-        return [S.FIT_ONSET_OFFSET.make(diff)]
+        return [S.FIT_ONSET_OFFSET.make(diff, on=f"{t_on / MS:.3g} ms", off=f"{t_off / MS:.3g} ms")]
     return []
 
 

@@ -33,8 +33,9 @@ and an estimator can only be worse.
 
 From the bound: the efficiency of the achieved CI (bound sd / achieved sd), the sweeps of
 this protocol needed to reach a target CI (the CI shrinks as 1/√n, a bootstrap's with its
-few-sweeps widening as well; from the achieved CI when there is one, else from the bound), and the factor by which a few other protocols
-(brief pulses, double sampling rate, a wider filter, half or double amplitude) would
+few-sweeps widening as well; from the achieved CI when there is one, else from the
+bound), and the factor by which a few other protocols (brief pulses, double sampling
+rate, a wider filter, half or double amplitude) would
 narrow the L and ρ intervals, each computed by the same model.
 """
 

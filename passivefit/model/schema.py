@@ -395,7 +395,8 @@ FIT_TAU1_DRIFT = _flag(
     "components (relative change)")
 FIT_ONSET_OFFSET = _flag(
     "fit.onset_offset", "warning",
-    "τ0 of the charging and of the decay transient disagree (relative difference)")
+    "τ0 of the charging ({on}) and of the decay transient ({off}), fitted apart, disagree; "
+    "the cell's τ0 is fitted to both (relative difference)")
 FIT_RESIDUAL_STRUCTURE = _flag(
     "fit.residual_structure", "warning", "{reason}",
     misfit="the residuals keep their sign too long: the model misses part of the transient "
