@@ -518,3 +518,12 @@ def test_the_time_course_tab_shows_every_measured_sweep(qtbot, open_window, reco
         items = [i for i in plot.getPlotItem().listDataItems() if isinstance(i, pg.PlotDataItem)]
         shown = sum(len(i.getData()[0]) for i in items)
         assert shown == sum(1 for s in sweeps if s.get(q.key) is not None) >= 2
+
+
+def test_the_vi_panel_counts_the_steps_it_draws_through_the_origin(qtbot, open_window):
+    """190619B (real): two step amplitudes, too few for a V–I slope: the panel's line is
+    ΔV/ΔI through the origin, and its title says two steps (it had said "one step")."""
+    from real_reference import DATA_DIR
+
+    window = open_window(DATA_DIR / "190619B_0003.abf")
+    assert window.vi.plot.getPlotItem().titleLabel.text.startswith("2 steps · ΔV/ΔI")

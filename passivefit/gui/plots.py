@@ -498,10 +498,11 @@ class VIView(QtWidgets.QWidget):
             raw = slope.slope_ohm / 1e6
             line = (slope.slope_ohm * x * PA + slope.intercept_V) / MV
             title = f"slope {raw:.4g} MΩ · r² {slope.r2:.4f}"
-        else:   # one amplitude: the line through the origin is ΔV/ΔI
+        else:   # one or two amplitudes: the line through the origin is ΔV/ΔI
             raw = float(np.sum(vi["dv_V"] * vi["current_A"]) / np.sum(vi["current_A"] ** 2)) / 1e6
             line = raw * 1e6 * x * PA / MV
-            title = f"one step · ΔV/ΔI {raw:.4g} MΩ"
+            levels = np.unique(np.round(i_pa)).size
+            title = f"{'one step' if levels == 1 else f'{levels} steps'} · ΔV/ΔI {raw:.4g} MΩ"
         if values.get(S.BRIDGE_APPLIED.key) and values.get(S.R_IN.key) is not None:
             # the points are the raw deflections; the cell's R_in has the bridge taken out
             # (short: the panel is narrow)
