@@ -156,7 +156,9 @@ def test_the_summary_says_where_its_intervals_and_r_in_come_from():
     from passivefit.model.settings import Settings
 
     text = format_table(analyze(load(CA1), Settings(bootstrap=0)).to_dict())
-    assert "± = 95 % CI (fit covariance) · R_in by V-I slope" in text
+    # R_in's own interval is the V–I regression's, with the bridge's taken out of it
+    assert ("± = 95 % CI (fit covariance; R_in's from the V–I regression and the bridge's) · "
+            "R_in by V-I slope") in text
 
 
 def test_the_table_says_when_an_accepted_sweep_has_no_tau0():

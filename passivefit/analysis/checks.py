@@ -49,20 +49,25 @@ def input_resistance(used: list[SweepFit], voltages: dict[int, np.ndarray] | Non
         values[S.VI_R2] = fitline.r2
         values[S.R_IN], values[S.R_IN_METHOD] = fitline.slope_ohm, "V-I slope"
         values[S.R_IN_CI] = t975(i.size - 2) * fitline.slope_se_ohm
+        values[S.R_IN_CI_FROM] = "the V–I regression"
         if fitline.bends:
             flags.append(S.VI_NONLINEAR.make(fitline.curvature))
             values[S.R_IN], values[S.R_IN_METHOD] = chord, "smallest steps (V-I not linear)"
             values[S.R_IN_CI] = _ratio_ci(dv[small] / i[small])
+            values[S.R_IN_CI_FROM] = "the sweeps' spread"
             on = [f for f, s in zip(measured, small, strict=True) if s]
     else:
         values[S.R_IN] = np.sum(dv * i) / np.sum(i * i)
         values[S.R_IN_METHOD] = "mean step"
         values[S.R_IN_CI] = _ratio_ci(dv / i)
+        values[S.R_IN_CI_FROM] = "the sweeps' spread"
         on = measured
     if values.get(S.R_IN_CI) is None and len(on) == 1 and voltages is not None:
         values[S.R_IN_CI] = _one_sweep_ci(on[0], voltages[on[0].index], fs)
+        values[S.R_IN_CI_FROM] = "the sweep's noise"
     if values[S.R_IN_CI] is None or not np.isfinite(values[S.R_IN_CI]):
         del values[S.R_IN_CI]
+        values.pop(S.R_IN_CI_FROM, None)
     neg, pos = dv[i < 0] / i[i < 0], dv[i > 0] / i[i > 0]
     if neg.size and pos.size:
         asym = abs(neg.mean() - pos.mean()) / abs(np.mean(dv / i))
@@ -125,6 +130,7 @@ def pulse_input_resistance(g: GroupAverage, fit, fs: float, used: list[SweepFit]
         if each.size >= 2:
             values[S.R_IN_CI] = t975(each.size - 1) * float(np.std(each, ddof=1)) / np.sqrt(
                 each.size)
+            values[S.R_IN_CI_FROM] = "the sweeps' spread"
     return values, []
 
 

@@ -445,6 +445,8 @@ def _bridge_correction(fits: list[SweepFit], bridge: tuple[float, float, bool] |
         if measured.get(S.R_IN_CI) is not None:
             # the raw R_in holds whatever bridge the data cannot rule out: up to |jump| + CI
             values[S.R_IN_CI] = float(np.hypot(measured[S.R_IN_CI], abs(jump) + ci))
+            values[S.R_IN_CI_FROM] = (f"{measured[S.R_IN_CI_FROM]} and the bridge the data "
+                                      "cannot rule out")
         return values, flags, fits
     flags = []
     if abs(jump) > 5 * MOHM:
@@ -458,6 +460,7 @@ def _bridge_correction(fits: list[SweepFit], bridge: tuple[float, float, bool] |
                 values[q] = measured[q] - jump
         if measured.get(S.R_IN_CI) is not None:
             values[S.R_IN_CI] = float(np.hypot(measured[S.R_IN_CI], ci))
+            values[S.R_IN_CI_FROM] = f"{measured[S.R_IN_CI_FROM]} and the bridge's"
     return values, flags, fits
 
 

@@ -84,10 +84,9 @@ def format_table(data: dict) -> str:
     for q in S.SUMMARY:
         value = _fmt(cell.get(q.key)) + S.uncertainty_text(cell, q)
         lines.append(f"  {LABELS.get(q.key, q.label):<20} {value:>18} {q.unit}")
-    how = [f"± = 95 % CI ({cell[S.CI_METHOD.key]})" if cell.get(S.CI_METHOD.key) else "",
-           f"R_in by {cell[S.R_IN_METHOD.key]}" if cell.get(S.R_IN_METHOD.key) else ""]
-    if any(how):
-        lines += ["", "  " + " · ".join(h for h in how if h)]
+    how = S.legend(cell)
+    if how:
+        lines += ["", "  " + " · ".join(how)]
     lines += ["", "  " + "  ".join(f"{_heading(q):>{w}}" for q, w in SWEEP_WIDTHS) + "  status"]
     for s in data["sweeps"]:
         status = "ok" if s[S.ACCEPTED.key] else f"rejected: {s[S.REJECT_REASON.key]}"

@@ -446,12 +446,15 @@ def _more_rows(cell: Mapping) -> list[tuple[str, str, str]]:
     the fit start, sag, drift, …), with its CI where it has one."""
     shown = {q.key for q in VALUE_ROWS} | {q.ci for q in VALUE_ROWS if q.ci}
     shown |= {e.key for ends in S.INTERVALS.values() for e in ends}
+    shown.add(S.R_IN_CI_FROM.key)   # on the row of how R_in was found
     rows = []
     for q in S.CELL_EXTRA:
         value = cell.get(q.key)
         if q.key in shown or value is None or value is False or "ci95" in q.key:
             continue
         text = textwrap.shorten(_fmt(value), 70) + S.uncertainty_text(cell, q)
+        if q is S.R_IN_METHOD and cell.get(S.R_IN_CI_FROM.key):
+            text += f" (± from {cell[S.R_IN_CI_FROM.key]})"
         rows.append((q.title or q.label, text, q.unit))
     return rows
 

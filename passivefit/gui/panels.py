@@ -204,10 +204,7 @@ class CellCard(QtWidgets.QFrame):
             return
         used, total = cell.get(S.N_SWEEPS_USED.key) or 0, len(result.sweeps)
         bits = [f"{used} of {total} sweeps used"]
-        if cell.get(S.CI_METHOD.key):
-            bits.append(f"± = 95 % CI ({cell[S.CI_METHOD.key]})")
-        if cell.get(S.R_IN_METHOD.key):
-            bits.append(f"R_in by {cell[S.R_IN_METHOD.key]}".replace("-", "\u2011"))
+        bits += [bit.replace("-", "\u2011") for bit in S.legend(cell)]
         if busy:
             bits.append("updating…")
         self.footer.setText(" · ".join(bits))

@@ -128,6 +128,7 @@ L_CYL_CI = _ci("L_cyl_ci95", "L (cylinder)")
 RHO_AMPLITUDE = Quantity("rho_amplitude", "ρ from amplitudes", digits=4)
 FIT_START = Quantity("fit_start_ms", "fit start", "ms", MS, 4)
 R_IN_METHOD = Quantity("r_in_method", "R_in from", kind="text")
+R_IN_CI_FROM = Quantity("r_in_ci_from", "R_in's CI from", kind="text")
 VI_R2 = Quantity("vi_r2", "V–I r²", digits=5)
 R_IN_ASYMMETRY = Quantity("r_in_asymmetry", "± step R_in difference", digits=3)
 N_COMPONENTS = Quantity("n_components", "components", kind="int")
@@ -212,13 +213,27 @@ def uncertainty_text(cell: Mapping, q: Quantity) -> str:
     return ""
 
 
+def legend(cell: Mapping) -> list[str]:
+    """Where a cell's ± come from and how R_in was found, for the text summary and the
+    window's card: ["± = 95 % CI (…; R_in's from …)", "R_in by …"] (parts missing from
+    `cell` left out)."""
+    ci, r_in_ci = cell.get(CI_METHOD.key), cell.get(R_IN_CI_FROM.key)
+    out = []
+    if ci:
+        out.append(f"± = 95 % CI ({ci}; R_in's from {r_in_ci})" if r_in_ci
+                   else f"± = 95 % CI ({ci})")
+    if cell.get(R_IN_METHOD.key):
+        out.append(f"R_in by {cell[R_IN_METHOD.key]}")
+    return out
+
+
 #: The `cell` object of the JSON contract: these keys always, null when not estimable.
 CELL_CORE = (V_REST, R_IN, TAU0, TAU0_CI, TAU1, TAU1_CI, C0, C1, L_CYL, L_BS, L_CI, RHO,
              RHO_CI, C_TAU, C_TOTAL, SAG_RATIO, N_SWEEPS_USED)
 CELL_EXTRA = (BRIDGE, BRIDGE_CI, BRIDGE_APPLIED, TAU1_SOURCE, TAU1_EXP, TAU2, TAU0_MODEL, L_CYL_CI,
-              RHO_AMPLITUDE, FIT_START, R_IN_METHOD, VI_R2, R_IN_ASYMMETRY, N_COMPONENTS,
-              COMPONENTS_REASON, CI_METHOD, REF_STEP, C_RATIO, CM, RM, TAU_SAG, R_IN_PEAK,
-              R_IN_SLOPE, R_IN_CHORD, REBOUND, R_IN_CHANGE, TAU0_CHANGE, V_REST_CHANGE,
+              RHO_AMPLITUDE, FIT_START, R_IN_METHOD, R_IN_CI_FROM, VI_R2, R_IN_ASYMMETRY,
+              N_COMPONENTS, COMPONENTS_REASON, CI_METHOD, REF_STEP, C_RATIO, CM, RM, TAU_SAG,
+              R_IN_PEAK, R_IN_SLOPE, R_IN_CHORD, REBOUND, R_IN_CHANGE, TAU0_CHANGE, V_REST_CHANGE,
               STABLE_SWEEPS, HUM, R_IN_CI, R_IN_RAW, R_IN_CORRECTED, L_CI_LOW, L_CI_HIGH,
               RHO_CI_LOW, RHO_CI_HIGH, FILTER, FILTER_CI, FILTER_SOURCE, LAG, LAG_CI)
 CELL = CELL_CORE + CELL_EXTRA
