@@ -291,3 +291,20 @@ def test_a_step_of_the_wrong_sign_is_one_line(tmp_path):
                    "40")
     assert proc.returncode == 2 and "Traceback" not in proc.stderr
     assert "sign" in proc.stderr and len(proc.stderr.strip().splitlines()) == 1
+
+
+@pytest.mark.slow
+def test_c_of_a_sagging_cell_is_also_given_for_the_membrane_before_the_sag(results):
+    """171116sh_0018 sags: τ0 comes from the first 61 ms, before the sag, but R_in from
+    the steady state after it (115 MΩ), so C = τ0/R_in (375 pF) pairs two membrane states.
+    The note's I·τ0/C0 uses the fit's own amplitude; it agrees with τ0 over the R_in
+    measured at the peak, before the sag pulls back (an independent measurement of the
+    same state), within 10 %."""
+    result = results["171116sh_0018"]
+    cell = result.to_dict()["cell"]
+    (note,) = [f for f in result.flags if f.code == "cell.c_before_sag"]
+    by_peak = cell[S.TAU0.key] / cell[S.R_IN_PEAK.key] * 1e3   # ms / MΩ → pF
+    assert note.value == pytest.approx(by_peak, rel=0.1)
+    assert note.value < 0.85 * cell[S.C_TAU.key]
+    others = {k for k in results if "cell.c_before_sag" in {f.code for f in results[k].flags}}
+    assert others == {"171116sh_0018"}

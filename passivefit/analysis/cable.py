@@ -120,6 +120,27 @@ def _inside(value: float, bounds: tuple[float, float]) -> bool:
     return bounds[0] * 1.02 < value < bounds[1] / 1.02
 
 
+#: C = τ0/R_in and I·τ0/C0 of a fit that stops before the sag differ by more than this
+#: share before the note on it is given (common practice, no source)
+C_SAG_SHARE = 0.1
+
+
+def _c_tau_before_sag(c_tau: float, i_step: float, tau0: float, c0: float) -> list[Flag]:
+    """In a sagging cell τ0 comes from a fit that stops before the sag, but R_in from the
+    steady state after it, where the sag's conductance is open: C = τ0/R_in pairs the two
+    and comes out too large. The fit's own amplitude C0 (where its exponential heads,
+    before the sag) gives I·τ0/C0 (docs/references.md §4) for the same membrane state; a
+    note gives it when the two differ by more than C_SAG_SHARE."""
+    from passivefit.core import cable
+
+    if not c0 * i_step > 0:
+        return []
+    before = cable.c_total_step(i_step, tau0, c0)
+    if abs(c_tau / before - 1) <= C_SAG_SHARE:
+        return []
+    return [S.CELL_C_BEFORE_SAG.make(before / S.PF, c=f"{before / S.PF:.0f} pF")]
+
+
 def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | None,
                  cis: dict[str, float | None], L_cyl_ci: float | None,
                  passive: bool = True) -> tuple[dict, list[Flag]]:
@@ -165,6 +186,9 @@ def cable_values(fit, bs, g: GroupAverage, r_in: float | None, tau1: float | Non
         c0 = onset_amplitudes(fit, g)[0]
         if c0 * step.amplitude_A > 0:
             values[S.C_TOTAL] = cable.c_total_step(step.amplitude_A, tau0, c0)
+    elif kind == "step" and not passive and fit.sag is None and values.get(S.C_TAU):
+        flags.extend(_c_tau_before_sag(values[S.C_TAU], step.amplitude_A, tau0,
+                                       onset_amplitudes(fit, g)[0]))
     if values.get(S.C_TAU) and values.get(S.C_TOTAL):
         values[S.C_RATIO] = values[S.C_TAU] / values[S.C_TOTAL]
     if tau1 is None or fit.sag is not None or not passive:  # no τ1, or not a passive cell

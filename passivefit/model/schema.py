@@ -520,6 +520,11 @@ CABLE_NOT_PASSIVE = _flag(
     sag="the response sags back (an active conductance)",
     component="the response holds a slow component of the opposite sign (an active "
               "conductance), though too small or slow to show as a sag of the peak")
+CELL_C_BEFORE_SAG = _flag(
+    "cell.c_before_sag", "info",
+    "τ0 is fitted before the sag but R_in is the steady state after it, where the sag's "
+    "conductance is open, so C = τ0/R_in comes out too large; the fit's own amplitude "
+    "gives I·τ0/C0 = {c} for the membrane before the sag (pF)")
 CABLE_AT_BOUND = _flag(
     "cable.at_bound", "warning",
     "{name} sits at the bound of the ball-and-stick fit ({x:.3g}): not determined by these "
