@@ -274,7 +274,7 @@ def test_a_test_pulse_before_a_noise_stimulus_is_analysed_and_the_noise_is_not(
     flags = {f["code"]: f for f in res["flags"]}
     said = flags["protocol.waveform_after_step"]
     assert said["value"] == pytest.approx(truth["wideband_ms"][0], abs=10.0)
-    assert "sweeps 0, 1, 2" in said["message"]
+    assert said["message"].startswith("sweeps 0–2: a changing current")
     assert "vi.nonlinear" not in flags   # one repeated pulse is no V-I relation
     assert cell["r_in_method"] == "mean step"
 

@@ -308,3 +308,16 @@ def test_c_of_a_sagging_cell_is_also_given_for_the_membrane_before_the_sag(resul
     assert note.value < 0.85 * cell[S.C_TAU.key]
     others = {k for k in results if "cell.c_before_sag" in {f.code for f in results[k].flags}}
     assert others == {"171116sh_0018"}
+
+
+@pytest.mark.slow
+def test_later_steps_of_the_protocol_are_named_not_silently_skipped(results):
+    """171116sh_0018 holds a fixed −100 pA step at 1146.85 ms after the variable one
+    (tests/data/real/README.md), 18711001 a variable step after its early one: each is
+    named as not analysed; files with one step per sweep get no such note."""
+    def later(key):
+        return {f.code: f for f in results[key].flags}.get("protocol.later_steps")
+
+    assert later("171116sh_0018").value == pytest.approx(1146.85, abs=2.0)
+    assert later("18711001") is not None
+    assert later("File_axon_5") is None and later("190619B_0003") is None

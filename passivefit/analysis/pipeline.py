@@ -49,7 +49,7 @@ from passivefit.analysis.sweep import (
     with_bridge_removed,
 )
 from passivefit.analysis.uncertainty import CableContext, bootstrap, halfwidth
-from passivefit.analysis.windows import no_step_reason, span, waveform_flag
+from passivefit.analysis.windows import no_step_reason, region_flags, span
 from passivefit.core.qc import Flag, bootstrap_halfwidth, detrended
 from passivefit.io.recording import Recording
 from passivefit.model import schema as S
@@ -91,7 +91,8 @@ def analyze(recording: Recording, settings: Settings | None = None, *,
                           _chain(recording, settings, chosen), sagging=sag_end is not None,
                           hum=start.hum)
     cell.values.update(stability)
-    cell.flags[:0] = [*recording.flags, *waveform_flag(chosen, fs), *active, *unstable]
+    cell.flags[:0] = [*recording.flags, *region_flags(chosen, fs, settings.step is not None),
+                      *active, *unstable]
     advice = _design(cell, chosen, recording.sample_rate_hz) if advise else None
     return RecordingResult(
         source={"path": recording.path, "sha256": recording.sha256, "format": recording.format,

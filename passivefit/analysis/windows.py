@@ -94,17 +94,39 @@ def sweep_steps(recording: Recording, settings: Settings) -> list[Step | None]:
     return steps
 
 
-def waveform_flag(chosen: list[tuple[object, Step | None]], fs: float) -> list[Flag]:
-    """The protocol.waveform_after_step flag of the (sweep, step) pairs whose step is read
-    only up to a waveform that follows it (`Step.waveform_from`); none without such."""
-    cut = [(s.index, st.waveform_from) for s, st in chosen
-           if st is not None and st.waveform_from is not None
-           and st.region_end == st.waveform_from]
-    if not cut:
-        return []
-    first = min(at for _, at in cut) / fs
-    return [S.PROTOCOL_WAVEFORM.make(first / MS, which=", ".join(str(k) for k, _ in cut),
-                                     at=f"{first / MS:.0f} ms")]
+def region_flags(chosen: list[tuple[object, Step | None]], fs: float,
+                 described: bool = False) -> list[Flag]:
+    """What the sweeps go on to after the step analysed, where it is read only up to there:
+    a waveform (`Step.waveform_from`: protocol.waveform_after_step) or later steps of the
+    protocol (protocol.later_steps; not for a step the user `described`, read to its
+    tail's end). None of either: no flag."""
+    waveform, later = [], []
+    for s, st in chosen:
+        if st is None or st.region_end is None:
+            continue
+        if st.waveform_from is not None and st.region_end == st.waveform_from:
+            waveform.append((s.index, st.region_end))
+        elif not described:
+            later.append((s.index, st.region_end))
+    flags = []
+    for spec, cut in ((S.PROTOCOL_WAVEFORM, waveform), (S.PROTOCOL_LATER_STEPS, later)):
+        if cut:
+            first = min(at for _, at in cut) / fs / MS
+            which = f"sweep{'s' if len(cut) > 1 else ''} {sweep_list([k for k, _ in cut])}"
+            flags.append(spec.make(first, which=which, at=f"{first:.0f} ms"))
+    return flags
+
+
+def sweep_list(indices: list[int]) -> str:
+    """Sweep numbers with runs shortened: [0, 1, 2, 3, 7] -> "0–3, 7"."""
+    runs: list[list[int]] = []
+    for k in sorted(indices):
+        if runs and k == runs[-1][1] + 1:
+            runs[-1][1] = k
+        else:
+            runs.append([k, k])
+    return ", ".join(f"{a}" if a == b else f"{a}, {b}" if b == a + 1 else f"{a}–{b}"
+                     for a, b in runs)
 
 
 #: What a sweep without an analysed step holds instead (core.steps.classify_stimulus)

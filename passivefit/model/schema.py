@@ -494,10 +494,12 @@ PROTOCOL_OTHER_CLAMP = _flag(
     "{which}) and are left out (sweeps left out)")
 PROTOCOL_WAVEFORM = _flag(
     "protocol.waveform_after_step", "info",
-    "sweeps {which}: a waveform follows the step from {at} (noise, a chirp or another "
-    "changing current; the sweep's edge threshold was taken from its quiet part before "
-    "it); the step before it is analysed, read up to there, and the waveform is not "
-    "(earliest start of the waveform, ms)")
+    "{which}: a changing current (noise, a chirp) follows the step from {at}; the "
+    "step is analysed up to there, the waveform is not (earliest start, ms)")
+PROTOCOL_LATER_STEPS = _flag(
+    "protocol.later_steps", "info",
+    "{which}: the step analysed is followed by other steps or pulses of current from {at}, "
+    "which are not analysed; it is read up to there (earliest, ms)")
 PROTOCOL_RATES = _flag(
     "protocol.rates_mixed", "warning",
     "the file's current-clamp sweeps are sampled at several rates: the {kept} at {rate} are "
