@@ -91,8 +91,8 @@ def analyze(recording: Recording, settings: Settings | None = None, *,
                           _chain(recording, settings, chosen), sagging=sag_end is not None,
                           hum=start.hum)
     cell.values.update(stability)
-    cell.flags[:0] = [*recording.flags, *region_flags(chosen, fs, settings.step is not None),
-                      *active, *unstable]
+    cell.flags[:0] = [*recording.flags, *active, *unstable]
+    cell.flags += region_flags(chosen, fs, settings.step is not None)   # last: what is not read
     advice = _design(cell, chosen, recording.sample_rate_hz) if advise else None
     return RecordingResult(
         source={"path": recording.path, "sha256": recording.sha256, "format": recording.format,
