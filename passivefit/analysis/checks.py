@@ -141,12 +141,6 @@ def _held_charge(v: np.ndarray, v_base: float, fs: float) -> float:
     return float(np.sum(dv[seen])) / fs * dv.size / max(np.count_nonzero(seen), 1)
 
 
-def sag_seen(used: list[SweepFit]) -> bool:
-    """Whether the largest hyperpolarizing step sags below the cell.sag threshold."""
-    ratio = sag(used)[0].get(S.SAG_RATIO)
-    return ratio is not None and ratio < SAG_RATIO
-
-
 def sag(used: list[SweepFit]) -> tuple[dict, list[Flag]]:
     """Sag ratio (steady/peak), R_in at the peak and the rebound after the step, of the
     largest hyperpolarizing step (core.sag)."""

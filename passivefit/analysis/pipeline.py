@@ -273,10 +273,13 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
         out.flags.append(S.FIT_SAG_COMPONENT.make(fit.sag_tau / MS,
                                                   tau=f"{fit.sag_tau / MS:.0f} ms"))
     passive = not (sagging or fit is not None and (fit.sag_share or 0.0) >= SLIGHT_SAG)
+    # the sag of the largest hyperpolarizing step (the bridge correction below leaves the
+    # sag values as they are)
+    sag_values, sag_flags = checks.sag(used)
     if not passive:
         # no cable model; "sag" when the sag is seen, else the fit's component
         out.flags.append(S.CABLE_NOT_PASSIVE.make(
-            reason="sag" if sagging or checks.sag_seen(used) else "component"))
+            reason="sag" if sagging or sag_flags else "component"))
     else:  # its start values from its own data, not from the person's exponential fit
         chain_fit, problem = fit_cable(avg_cable, fs, None, chain, profile=True)
         out.flags.extend([problem] if problem else [])
@@ -309,9 +312,8 @@ def summarize_cell(fits: list[SweepFit], voltages: dict[int, np.ndarray], fs: fl
     out.flags.extend(flags)
     out.sweeps = tuple(fits)
     used = [f for f in fits if f.accepted]
-    values, flags = checks.sag(used)
-    out.values.update(values)
-    out.flags.extend(flags)
+    out.values.update(sag_values)
+    out.flags.extend(sag_flags)
     values, flags = checks.hum(used, voltages, fs, hum)
     out.values.update(values)
     out.flags.extend(flags)
