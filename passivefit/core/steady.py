@@ -91,15 +91,22 @@ class VISlope:
 SAME_CURRENT_SHARE = 0.02
 
 
+def current_levels(currents_A: np.ndarray) -> int:
+    """How many levels of the V–I relation the step currents hold: currents closer than
+    SAME_CURRENT_SHARE of the largest are one level (0 without currents)."""
+    i = np.asarray(currents_A, dtype=np.float64)
+    if i.size == 0:
+        return 0
+    gaps = np.diff(np.sort(i))
+    return 1 + int(np.count_nonzero(gaps > SAME_CURRENT_SHARE * np.max(np.abs(i))))
+
+
 def vi_slope(currents_A: np.ndarray, deflections_V: np.ndarray) -> VISlope | None:
-    """Input resistance from the V–I relation; None with fewer than 3 distinct currents
-    (closer than SAME_CURRENT_SHARE of the largest current: one level)."""
+    """Input resistance from the V–I relation; None with fewer than 3 levels of current
+    (`current_levels`)."""
     i = np.asarray(currents_A, dtype=np.float64)
     v = np.asarray(deflections_V, dtype=np.float64)
-    if i.size == 0:
-        return None
-    gaps = np.diff(np.sort(i))
-    n_levels = 1 + int(np.count_nonzero(gaps > SAME_CURRENT_SHARE * np.max(np.abs(i))))
+    n_levels = current_levels(i)
     if n_levels < 3:
         return None
     slope, intercept = np.polyfit(i, v, 1)

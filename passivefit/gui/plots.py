@@ -14,6 +14,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
+from passivefit.core import steady
 from passivefit.gui import theme
 from passivefit.model import schema as S
 
@@ -501,7 +502,7 @@ class VIView(QtWidgets.QWidget):
         else:   # one or two amplitudes: the line through the origin is ΔV/ΔI
             raw = float(np.sum(vi["dv_V"] * vi["current_A"]) / np.sum(vi["current_A"] ** 2)) / 1e6
             line = raw * 1e6 * x * PA / MV
-            levels = np.unique(np.round(i_pa)).size
+            levels = steady.current_levels(vi["current_A"])
             title = f"{'one step' if levels == 1 else f'{levels} steps'} · ΔV/ΔI {raw:.4g} MΩ"
         if values.get(S.BRIDGE_APPLIED.key) and values.get(S.R_IN.key) is not None:
             # the points are the raw deflections; the cell's R_in has the bridge taken out
