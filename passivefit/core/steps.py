@@ -207,16 +207,19 @@ def _median_window(x: np.ndarray, fs: float) -> int:
     return max(3, int(round(MIN_DURATION_S * fs)) | 1)
 
 
-def _threshold(d: np.ndarray, min_amplitude_A: float) -> float:
-    """Edge threshold from the detector's own noise (robust to edges and spikes).
+def _threshold(d: np.ndarray, min_amplitude_A: float):
+    """Edge threshold from the detector's own noise (robust to edges and spikes), over
+    the last axis of `d`: a float for one trace, one per row for blocks of it.
 
     The median absolute deviation is 0 for a current quantized coarser than its
     noise, so the 90th percentile of the absolute deviation (1.645 sd for Gaussian
     noise) stands in for it then.
     """
-    spread = np.abs(d - np.median(d))
-    sd = max(float(np.median(spread)) / 0.6745, float(np.percentile(spread, 90)) / 1.645)
-    return max(min_amplitude_A, EDGE_NOISE_SD * sd)
+    spread = np.abs(d - np.median(d, axis=-1, keepdims=True))
+    sd = np.maximum(np.median(spread, axis=-1) / 0.6745,
+                    np.percentile(spread, 90, axis=-1) / 1.645)
+    out = np.maximum(min_amplitude_A, EDGE_NOISE_SD * sd)
+    return float(out) if out.ndim == 0 else out
 
 
 def _edges(f: np.ndarray, fs: float, threshold: float) -> tuple[list[int], list[tuple[int, int]]]:
@@ -470,7 +473,7 @@ def _loud_start(d: np.ndarray, fs: float, min_amplitude_A: float,
     """Where the first wide-band stretch of a sweep begins in the detector `d`, and the
     edge threshold of the quiet blocks before it, in A.
 
-    Each QUIET_BLOCK_S block gets its own edge threshold (`_threshold`); the quietest
+    Each QUIET_BLOCK_S block gets its own edge threshold (`_threshold` of its rows); the quietest
     block, though never below what one digitization step gives, is the reference. The
     first run of MIN_LOUD_S of blocks above LOUD_FACTOR times it is the wide-band
     stretch. (None, 0) when there is none; (0, 0) when it starts the sweep.
@@ -479,11 +482,7 @@ def _loud_start(d: np.ndarray, fs: float, min_amplitude_A: float,
     n_blocks = d.size // m
     if n_blocks < 2:
         return None, 0.0
-    blocks = d[: n_blocks * m].reshape(n_blocks, m)
-    spread = np.abs(blocks - np.median(blocks, axis=1, keepdims=True))
-    sd = np.maximum(np.median(spread, axis=1) / 0.6745,
-                    np.percentile(spread, 90, axis=1) / 1.645)
-    thresholds = np.maximum(min_amplitude_A, EDGE_NOISE_SD * sd)
+    thresholds = _threshold(d[: n_blocks * m].reshape(n_blocks, m), min_amplitude_A)
     reference = max(float(thresholds.min()), EDGE_NOISE_SD * quantum / 1.645)
     loud = thresholds > LOUD_FACTOR * reference
     run = max(1, int(np.ceil(MIN_LOUD_S / QUIET_BLOCK_S)))
