@@ -123,20 +123,21 @@ def mains_hum(segments, fs: float, freqs_hz=(50.0, 60.0)
         y = y[np.isfinite(y)]
         if y.size >= 0.04 * fs:   # at least two mains periods
             by_length.setdefault(y.size, []).append(y)
+    blocks = {size: np.column_stack(ys) for size, ys in by_length.items()}
     best = (freqs_hz[0], 0.0, 0.0)
     for f in freqs_hz:
         amps, floors = [], []
-        for size, ys in by_length.items():
-            pair, rest = _sine_fit(np.column_stack(ys), fs, [f])
+        for size, block in blocks.items():
+            pair, rest = _sine_fit(block, fs, [f])
             amps += list(np.hypot(*pair))
             floors += list(np.std(rest, axis=0) * np.sqrt(np.pi / size))
         if amps and np.mean(amps) > best[1]:
             best = (f, float(np.mean(amps)), float(np.mean(floors)))
     local = []
-    for size, ys in by_length.items():
+    for size, block in blocks.items():
         near = _neighbours(best[0], size, fs)
         if near:
-            pairs = _sine_fit(np.column_stack(ys), fs, near)[:-1]
+            pairs = _sine_fit(block, fs, near)[:-1]
             local += list(np.median([np.hypot(*pair) for pair in pairs], axis=0))
     return (*best, float(np.mean(local)) if local else 0.0)
 
