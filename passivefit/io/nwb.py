@@ -548,8 +548,6 @@ def _by_type(group: Any) -> dict[str, list]:
     return found
 
 
-
-
 def _direct_numbers_by_kind(series) -> dict[str, list]:
     """`_numbers_by_kind` of h5py series."""
     return _numbers_by_kind((_type_of(s), s.attrs.get("sweep_number")) for s in series)
